@@ -1,0 +1,93 @@
+"""The source catalog: engines, introspected schemas and row counts.
+
+Column names and types come only from the engine (``describe``), never from a request.
+Schemas and row counts are cached per source and refreshed when the engine's data version
+changes, so a request costs no catalog round trip.
+"""
+
+from __future__ import annotations
+
+import threading
+from dataclasses import dataclass
+
+from sqlglot import exp
+
+from app.engines import Engine, EngineError, EngineUnavailable, open_engine
+from app.settings import Settings, SourceConfig
+from planner.dialects import get_dialect
+from planner.schema import ColumnInfo, SourceSchema, classify
+
+
+@dataclass
+class SourceEntry:
+    cfg: SourceConfig
+    schema: SourceSchema
+    row_count: int
+    version: str
+
+
+class UnknownSource(Exception):
+    def __init__(self, name: str, known: list[str]) -> None:
+        super().__init__(name)
+        self.name = name
+        self.known = known
+
+
+class Catalog:
+    def __init__(self, settings: Settings) -> None:
+        self.settings = settings
+        self._engines: dict[str, Engine] = {}
+        self._entries: dict[str, SourceEntry] = {}
+        self._lock = threading.Lock()
+
+    def names(self) -> list[str]:
+        return self.settings.source_names
+
+    def config(self, name: str) -> SourceConfig:
+        try:
+            return self.settings.sources[name]
+        except KeyError:
+            raise UnknownSource(name, self.names()) from None
+
+    def engine(self, name: str) -> Engine:
+        eng = self._engines.get(name)
+        if eng is None:
+            cfg = self.config(name)
+            with self._lock:
+                eng = self._engines.get(name)
+                if eng is None:
+                    eng = open_engine(cfg)
+                    self._engines[name] = eng
+        return eng
+
+    def entry(self, name: str) -> SourceEntry:
+        """Schema and row count of a source, introspected once per data version."""
+        eng = self.engine(name)
+        version = eng.data_version()
+        cached = self._entries.get(name)
+        if cached is not None and cached.version == version:
+            return cached
+        cfg = self.config(name)
+        parts = eng.split_table(cfg.table)
+        cols = eng.describe(parts)
+        if not cols:
+            raise EngineUnavailable(name, f"table {cfg.table!r} not found in source {name!r}")
+        dialect = get_dialect(eng.dialect)
+        schema = SourceSchema(
+            name=name, table=parts,
+            columns={c: ColumnInfo(c, classify(t, dialect.sqlglot or None), t) for c, t in cols})
+        count_sql = dialect.render(
+            exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True))
+            .from_(dialect.table(parts)))
+        row = eng.fetch_row(count_sql)
+        entry = SourceEntry(cfg, schema, int(row.get("n") or 0), version)
+        self._entries[name] = entry
+        return entry
+
+    def close(self) -> None:
+        for eng in self._engines.values():
+            try:
+                eng.close()
+            except EngineError:
+                pass
+        self._engines.clear()

@@ -1,0 +1,139 @@
+"""Arrow result -> response payloads.
+
+JSON is columnar (``{"data": {"col": [...]}}``) and encoded with orjson. Timestamps become
+RFC 3339 strings (``Z`` for UTC, else the offset of the key's ``tz``), decimals become numbers,
+non-finite floats become ``null``. Arrow IPC keeps native types and carries the same metadata
+as JSON in the schema metadata key ``sluice``.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import decimal
+from typing import Any
+
+import orjson
+import pyarrow as pa
+import pyarrow.compute as pc
+
+ARROW_STREAM = "application/vnd.apache.arrow.stream"
+
+
+def type_name(t: pa.DataType) -> str:
+    if pa.types.is_boolean(t):
+        return "boolean"
+    if pa.types.is_integer(t):
+        return "integer"
+    if pa.types.is_floating(t):
+        return "double"
+    if pa.types.is_decimal(t):
+        return "decimal"
+    if pa.types.is_timestamp(t):
+        return "timestamp"
+    if pa.types.is_date(t):
+        return "date"
+    if pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t):
+        return "string"
+    if pa.types.is_null(t):
+        return "null"
+    return str(t)
+
+
+def normalize_column(arr: pa.ChunkedArray) -> pa.ChunkedArray:
+    """Engine-specific types -> the few types the response uses."""
+    t = arr.type
+    if pa.types.is_decimal(t):
+        if t.scale == 0:
+            try:
+                return arr.cast(pa.int64())
+            except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+                return arr.cast(pa.float64())
+        return arr.cast(pa.float64())
+    if pa.types.is_string_view(t) or pa.types.is_large_string(t):
+        return arr.cast(pa.string())
+    if pa.types.is_timestamp(t) and t.tz is None:
+        return arr.cast(pa.timestamp(t.unit, tz="UTC"))  # naive values are read as UTC
+    if pa.types.is_unsigned_integer(t) or (pa.types.is_integer(t) and t != pa.int64()):
+        try:
+            return arr.cast(pa.int64())
+        except pa.ArrowInvalid:
+            return arr.cast(pa.float64())
+    if pa.types.is_floating(t) and t != pa.float64():
+        return arr.cast(pa.float64())
+    return arr
+
+
+def timestamps_to_text(arr: pa.ChunkedArray, tz: str | None) -> list[str | None]:
+    zone = tz or "UTC"
+    unit = arr.type.unit
+    shown = arr.cast(pa.timestamp(unit, tz=zone))
+    if len(shown) and unit != "s":
+        sub = pc.max(pc.subsecond(shown)).as_py()
+        if not sub:
+            shown = shown.cast(pa.timestamp("s", tz=zone), safe=False)
+    text = pc.strftime(shown, format="%Y-%m-%dT%H:%M:%S%z")
+    text = pc.replace_substring_regex(text, pattern=r"([+-]\d\d)(\d\d)$", replacement=r"\1:\2")
+    if zone == "UTC":
+        text = pc.replace_substring_regex(text, pattern=r"\+00:00$", replacement="Z")
+    return text.to_pylist()
+
+
+def instant_text(v: dt.datetime | None, tz: str | None) -> str | None:
+    if v is None:
+        return None
+    arr = pa.chunked_array([pa.array([v], pa.timestamp("us", tz="UTC"))])
+    return timestamps_to_text(arr, tz)[0]
+
+
+def column_values(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any]:
+    t = arr.type
+    if pa.types.is_timestamp(t):
+        return timestamps_to_text(arr, tz)
+    if pa.types.is_date(t):
+        return pc.strftime(arr.cast(pa.timestamp("s")), format="%Y-%m-%d").to_pylist()
+    return arr.to_pylist()
+
+
+def domain(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any] | None:
+    t = arr.type
+    if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_timestamp(t) \
+            or pa.types.is_date(t):
+        if pa.types.is_floating(t):
+            arr = pc.filter(arr, pc.is_finite(arr))
+        mm = pc.min_max(arr)
+        lo, hi = mm["min"], mm["max"]
+        if not lo.is_valid:
+            return None
+        if pa.types.is_timestamp(t):
+            return [instant_text(lo.as_py(), tz), instant_text(hi.as_py(), tz)]
+        if pa.types.is_date(t):
+            return [lo.as_py().isoformat(), hi.as_py().isoformat()]
+        return [lo.as_py(), hi.as_py()]
+    if pa.types.is_string(t) or pa.types.is_boolean(t):
+        seen: dict[Any, None] = {}
+        for v in arr.to_pylist():
+            seen.setdefault(v, None)
+        return list(seen)
+    return None
+
+
+def _default(o: Any) -> Any:
+    if isinstance(o, decimal.Decimal):
+        return float(o)
+    if isinstance(o, dt.datetime):
+        return instant_text(o, None)
+    if isinstance(o, dt.date):
+        return o.isoformat()
+    raise TypeError(f"cannot encode {type(o).__name__}")
+
+
+def dumps(payload: Any) -> bytes:
+    return orjson.dumps(payload, default=_default, option=orjson.OPT_SERIALIZE_NUMPY)
+
+
+def arrow_stream(table: pa.Table, meta: dict[str, Any]) -> bytes:
+    schema = table.schema.with_metadata({"sluice": dumps(meta)})
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_stream(sink, schema) as writer:
+        writer.write_table(table.cast(schema))
+    return sink.getvalue().to_pybytes()

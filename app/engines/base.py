@@ -1,0 +1,42 @@
+"""The engine interface the service relies on."""
+
+from __future__ import annotations
+
+from typing import Any, Protocol
+
+import pyarrow as pa
+
+
+class EngineError(Exception):
+    """A statement failed inside the engine."""
+
+    def __init__(self, source: str, message: str) -> None:
+        super().__init__(message)
+        self.source = source
+        self.message = message
+
+
+class EngineUnavailable(EngineError):
+    """The engine cannot be reached or opened (HTTP 503)."""
+
+
+class Engine(Protocol):
+    #: planner dialect name used to render SQL for this engine
+    dialect: str
+
+    def execute(self, sql: str) -> pa.Table:
+        """Run one read-only statement and return its result as Arrow."""
+
+    def fetch_row(self, sql: str) -> dict[str, Any]:
+        """Run a statement returning one row, as a dict."""
+
+    def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
+        """(column name, engine type name) for the table, in table order."""
+
+    def split_table(self, table: str) -> tuple[str, ...]:
+        """Qualified name parts of a configured table name."""
+
+    def data_version(self) -> str:
+        """Changes whenever the data may have changed (cache key part)."""
+
+    def close(self) -> None: ...

@@ -1,0 +1,88 @@
+"""DuckDB engine: one read-only connection per source, one cursor per worker thread."""
+
+from __future__ import annotations
+
+import os
+import threading
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import pyarrow as pa
+
+from app.engines.base import EngineError, EngineUnavailable
+from app.settings import SourceConfig
+
+
+class DuckDBEngine:
+    dialect = "duckdb"
+
+    def __init__(self, cfg: SourceConfig) -> None:
+        self.cfg = cfg
+        self.path = Path(cfg.path or ":memory:")
+        if not self.path.exists():
+            raise EngineUnavailable(cfg.name, f"DuckDB file {self.path} does not exist "
+                                    "(run `make demo` or fix `path` in the config)")
+        config: dict[str, Any] = {}
+        for key in ("memory_limit", "threads"):
+            if key in cfg.options:
+                config[key] = str(cfg.options[key])
+        try:
+            self._con = duckdb.connect(str(self.path), read_only=True, config=config)
+        except duckdb.Error as e:
+            raise EngineUnavailable(cfg.name, f"cannot open DuckDB file {self.path}: {e}") from None
+        self._local = threading.local()
+        self._cursors: list[duckdb.DuckDBPyConnection] = []
+        self._lock = threading.Lock()
+
+    def _cursor(self) -> duckdb.DuckDBPyConnection:
+        cur = getattr(self._local, "cur", None)
+        if cur is None:
+            cur = self._con.cursor()
+            cur.execute("SET TimeZone = 'UTC'")
+            self._local.cur = cur
+            with self._lock:
+                self._cursors.append(cur)
+        return cur
+
+    def execute(self, sql: str) -> pa.Table:
+        try:
+            return self._cursor().sql(sql).to_arrow_table()
+        except duckdb.Error as e:
+            raise EngineError(self.cfg.name, str(e)) from None
+
+    def fetch_row(self, sql: str) -> dict[str, Any]:
+        t = self.execute(sql)
+        return {name: col[0].as_py() for name, col in zip(t.column_names, t.columns)} if t.num_rows else {}
+
+    def split_table(self, table: str) -> tuple[str, ...]:
+        return tuple(table.split("."))
+
+    def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
+        name = table[-1]
+        schema = table[-2] if len(table) >= 2 else None
+        q = ("SELECT column_name, data_type FROM information_schema.columns "
+             "WHERE table_name = ? " + ("AND table_schema = ? " if schema else "") +
+             "ORDER BY ordinal_position")
+        params = [name] + ([schema] if schema else [])
+        try:
+            rows = self._cursor().execute(q, params).fetchall()
+        except duckdb.Error as e:
+            raise EngineError(self.cfg.name, str(e)) from None
+        return [(r[0], r[1]) for r in rows]
+
+    def data_version(self) -> str:
+        st = os.stat(self.path)
+        return f"{st.st_ino}:{st.st_size}:{st.st_mtime_ns}"
+
+    def interrupt(self) -> None:
+        for cur in list(self._cursors):
+            try:
+                cur.interrupt()
+            except duckdb.Error:
+                pass
+
+    def close(self) -> None:
+        for cur in self._cursors:
+            cur.close()
+        self._con.close()

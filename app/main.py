@@ -1,0 +1,173 @@
+"""HTTP API. ``uvicorn app.main:app`` serves it; ``create_app(settings)`` builds one."""
+
+from __future__ import annotations
+
+import logging
+import time
+from contextlib import asynccontextmanager
+from typing import Any
+
+from fastapi import FastAPI, Query, Request
+from fastapi.exceptions import RequestValidationError
+from starlette.responses import Response
+
+from app.catalog import Catalog, UnknownSource
+from app.encode import ARROW_STREAM, arrow_stream, dumps
+from app.engines import EngineError, EngineUnavailable
+from app.problems import PROBLEM_JSON, Problem, from_plan_error, problem_response, validation_handler
+from app.service import ChartService
+from app.settings import Settings, load_settings
+from planner.dialects import DIALECTS
+from planner.errors import PlanError, nearest
+from planner.model import ChartRequest
+
+log = logging.getLogger("sluice")
+
+
+class JSONResponse(Response):
+    media_type = "application/json"
+
+    def render(self, content: Any) -> bytes:
+        return dumps(content)
+
+
+def _problem_responses() -> dict[int | str, dict[str, Any]]:
+    desc = {400: "Malformed request", 404: "Unknown source", 413: "Body too large",
+            422: "The request cannot be planned (the pointer names the field)",
+            503: "The source's engine is unavailable"}
+    return {code: {"description": d, "content": {PROBLEM_JSON: {}}} for code, d in desc.items()}
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings or load_settings()
+    catalog = Catalog(settings)
+    service = ChartService(catalog)
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI):
+        yield
+        catalog.close()
+
+    app = FastAPI(
+        title="sluice",
+        version="0.1.0",
+        summary="Chart requests in, grouped SQL pushed down to the engine, mark-ready tables out.",
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    app.state.catalog = catalog
+    app.state.service = service
+
+    # ---- errors -----------------------------------------------------------------------
+    app.add_exception_handler(RequestValidationError, validation_handler)
+
+    @app.exception_handler(PlanError)
+    async def _plan_error(request: Request, exc: PlanError) -> Response:
+        return problem_response(from_plan_error(exc), request.url.path)
+
+    @app.exception_handler(Problem)
+    async def _problem(request: Request, exc: Problem) -> Response:
+        return problem_response(exc, request.url.path)
+
+    @app.exception_handler(EngineUnavailable)
+    async def _unavailable(request: Request, exc: EngineUnavailable) -> Response:
+        return problem_response(Problem(503, "source-unavailable", "Source unavailable",
+                                        f"source {exc.source!r}: {exc.message}", source=exc.source,
+                                        headers={"Retry-After": "5"}), request.url.path)
+
+    @app.exception_handler(EngineError)
+    async def _engine_error(request: Request, exc: EngineError) -> Response:
+        log.error("engine error on %s: %s", exc.source, exc.message)
+        return problem_response(Problem(502, "engine-error", "The engine rejected the statement",
+                                        f"source {exc.source!r}: {exc.message}", source=exc.source),
+                                request.url.path)
+
+    @app.exception_handler(Exception)
+    async def _internal(request: Request, exc: Exception) -> Response:
+        log.exception("internal error")
+        return problem_response(Problem(500, "internal", "Internal error",
+                                        "sluice failed to answer; the error is logged"),
+                                request.url.path)
+
+    @app.middleware("http")
+    async def _limit_body(request: Request, call_next):
+        length = request.headers.get("content-length")
+        if length is not None and length.isdigit() and int(length) > settings.max_body_bytes:
+            return problem_response(Problem(413, "body-too-large", "Request body too large",
+                                            f"the body has {length} bytes; the limit is "
+                                            f"{settings.max_body_bytes}"), request.url.path)
+        return await call_next(request)
+
+    # ---- routes -----------------------------------------------------------------------
+    @app.post("/v1/chart", responses=_problem_responses(), tags=["charts"])
+    def chart(req: ChartRequest, request: Request) -> Response:
+        """Run a chart request and return the mark-ready table (JSON, or Arrow IPC stream
+        when the client accepts ``application/vnd.apache.arrow.stream``)."""
+        result = service.run(req)
+        t0 = time.perf_counter()
+        meta = dict(result.meta)
+        meta["cache"] = "miss"
+        if ARROW_STREAM in request.headers.get("accept", ""):
+            meta["timing_ms"] = result.timing
+            body = arrow_stream(result.table, meta)
+            return Response(body, media_type=ARROW_STREAM)
+        payload = service.to_json(result)
+        payload["cache"] = "miss"
+        timing = dict(result.timing)
+        timing["encode"] = round((time.perf_counter() - t0) * 1000.0, 3)
+        payload["timing_ms"] = timing
+        return JSONResponse(payload)
+
+    @app.post("/v1/sql", responses=_problem_responses(), tags=["charts"])
+    def plan_sql(req: ChartRequest,
+                 dialect: str | None = Query(None, description="Target dialect; default: the "
+                                             "source's own engine. One of: " + ", ".join(sorted(DIALECTS)))
+                 ) -> Response:
+        """Plan only: the SQL sluice would run, for ``dialect``."""
+        return JSONResponse(service.plan_sql(req, dialect))
+
+    @app.get("/v1/sources", tags=["sources"])
+    def sources() -> Response:
+        out = []
+        for name in catalog.names():
+            cfg = catalog.config(name)
+            out.append({"name": name, "engine": cfg.engine, "table": cfg.table})
+        return JSONResponse({"sources": out})
+
+    @app.get("/v1/sources/{name}", responses=_problem_responses(), tags=["sources"])
+    def source(name: str) -> Response:
+        try:
+            cfg = catalog.config(name)
+        except UnknownSource as e:
+            raise Problem(404, "unknown-source", "Unknown source", f"unknown source {name!r}",
+                          "", suggestions=nearest(name, e.known)) from None
+        entry = catalog.entry(name)
+        cols = [{"name": c.name, "type": c.sql_type, "kind": c.kind}
+                for c in entry.schema.columns.values()]
+        return JSONResponse({"name": name, "engine": cfg.engine, "table": cfg.table,
+                             "columns": cols, "row_count": entry.row_count})
+
+    @app.get("/healthz", tags=["operations"])
+    def healthz() -> Response:
+        return JSONResponse({"status": "ok"})
+
+    @app.get("/readyz", tags=["operations"])
+    def readyz() -> Response:
+        detail, ok = {}, True
+        for name in catalog.names():
+            try:
+                entry = catalog.entry(name)
+                detail[name] = {"ready": True, "row_count": entry.row_count}
+            except EngineError as e:
+                ok = False
+                detail[name] = {"ready": False, "error": e.message}
+        return JSONResponse({"ready": ok, "sources": detail}, status_code=200 if ok else 503)
+
+    return app
+
+
+def _lazy_app() -> FastAPI:
+    return create_app()
+
+
+app = _lazy_app()

@@ -1,0 +1,186 @@
+"""The one code path every route uses: plan -> execute -> shape the answer.
+
+Routes, the CLI and the benchmarks call ``ChartService``; nothing else talks to engines.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import Any
+
+import pyarrow as pa
+
+from app.catalog import Catalog, SourceEntry
+from app.encode import column_values, domain, instant_text, normalize_column, type_name
+from app.engines import Engine
+from planner.compile import INTERNAL, Plan, prepare
+from planner.dialects import DIALECTS, get_dialect
+from planner.errors import PlanError, pointer
+from planner.model import ChartRequest
+
+
+@dataclass
+class ChartResult:
+    plan: Plan
+    entry: SourceEntry
+    table: pa.Table  # user-visible columns only, normalised types
+    meta: dict[str, Any]
+    timing: dict[str, float] = field(default_factory=dict)
+
+
+def _ms(t0: float) -> float:
+    return round((time.perf_counter() - t0) * 1000.0, 3)
+
+
+class ChartService:
+    def __init__(self, catalog: Catalog) -> None:
+        self.catalog = catalog
+
+    # ---- planning ------------------------------------------------------------------
+    def _plan(self, req: ChartRequest, dialect_name: str | None = None) -> tuple[Plan, SourceEntry, Engine]:
+        from app.catalog import UnknownSource
+        from planner.errors import nearest
+
+        try:
+            self.catalog.config(req.source)
+        except UnknownSource as e:
+            sugg = nearest(req.source, e.known)
+            raise PlanError(pointer("source"), f"unknown source {req.source!r}; known sources: "
+                            f"{', '.join(e.known)}", slug="unknown-source", title="Unknown source",
+                            status=404, suggestions=sugg) from None
+        engine = self.catalog.engine(req.source)
+        entry = self.catalog.entry(req.source)
+        if dialect_name is None:
+            dialect_name = engine.dialect
+        if dialect_name not in DIALECTS:
+            raise PlanError("", f"unknown dialect {dialect_name!r}; use one of "
+                            f"{', '.join(sorted(DIALECTS))}", slug="unknown-dialect", status=400)
+        req = self._clamp(req)
+        return prepare(req, entry.schema, get_dialect(dialect_name)), entry, engine
+
+    def _clamp(self, req: ChartRequest) -> ChartRequest:
+        cap = self.catalog.settings.max_limit
+        if req.limit > cap:
+            raise PlanError(pointer("limit"), f"limit {req.limit} exceeds this server's cap "
+                            f"of {cap} rows", slug="limit-exceeded")
+        return req
+
+    def _extents(self, plan: Plan, engine: Engine) -> dict[str, Any] | None:
+        """Run the extents statement in the SOURCE's dialect (the values are dialect-free)."""
+        if plan.extents is None:
+            return None
+        native = get_dialect(engine.dialect)
+        return engine.fetch_row(native.render(plan.extents))
+
+    def plan_sql(self, req: ChartRequest, dialect_name: str | None) -> dict[str, Any]:
+        """SQL for ``dialect_name`` without running the chart (the extents statement, if any,
+        runs on the source so the main statement shows the real bin layout)."""
+        t0 = time.perf_counter()
+        plan, entry, engine = self._plan(req, dialect_name)
+        row = self._extents(plan, engine)
+        plan.finish(row)
+        sql = ([plan.extents_sql] if plan.extents is not None else []) + [plan.main_sql]
+        return {"dialect": plan.dialect.name, "sql": sql,
+                "bins": self._bins(plan), "timing_ms": {"plan": _ms(t0)}}
+
+    # ---- running -------------------------------------------------------------------
+    def run(self, req: ChartRequest) -> ChartResult:
+        timing: dict[str, float] = {}
+        t0 = time.perf_counter()
+        plan, entry, engine = self._plan(req)
+        timing["plan"] = _ms(t0)
+        t1 = time.perf_counter()
+        statements = []
+        row = None
+        if plan.extents is not None:
+            statements.append(plan.extents_sql)
+            row = engine.fetch_row(plan.extents_sql)
+        t2 = time.perf_counter()
+        plan.finish(row)
+        plan_more = _ms(t2)
+        statements.append(plan.main_sql)
+        raw = engine.execute(plan.main_sql)
+        extra = None
+        if raw.num_rows == 0:
+            statements.append(plan.count_sql())
+            extra = engine.fetch_row(statements[-1])
+        timing["execute"] = round(_ms(t1) - plan_more, 3)
+        timing["plan"] = round(timing["plan"] + plan_more, 3)
+        t3 = time.perf_counter()
+        table, meta = self._shape(plan, entry, raw, extra, statements)
+        timing["shape"] = _ms(t3)
+        return ChartResult(plan, entry, table, meta, timing)
+
+    def _bins(self, plan: Plan) -> dict[str, Any]:
+        out = plan.bins_meta()
+        tz = {k.channel if k.channel != "by" else f"by{k.path[-1]}": k.spec.tz for k in plan.keys}
+        for ch, b in out.items():
+            for key in ("start", "stop"):
+                if not isinstance(b.get(key), (int, float)) and b.get(key) is not None:
+                    b[key] = instant_text(b[key], tz.get(ch))
+        return out
+
+    def _shape(self, plan: Plan, entry: SourceEntry, raw: pa.Table, extra: dict[str, Any] | None,
+               statements: list[str]) -> tuple[pa.Table, dict[str, Any]]:
+        def first(name: str) -> Any:
+            if raw.num_rows and name in raw.column_names:
+                return raw.column(name)[0].as_py()
+            return None
+
+        if extra is not None:
+            matched = int(extra.get(f"{INTERNAL}matched") or 0)
+            outside = {k: int(extra.get(k.outside_flag) or 0) for k in plan.keys if k.has_limits}
+        else:
+            matched = int(first(f"{INTERNAL}matched") or 0)
+            outside = {k: int(first(f"{INTERNAL}out{k.index}") or 0) for k in plan.keys if k.has_limits}
+        groups = int(first(f"{INTERNAL}groups") or 0)
+
+        tz_of = {}
+        for k in plan.keys:
+            for n in k.names:
+                tz_of[n] = k.spec.tz
+        names = [c.name for c in plan.columns]
+        arrays = {n: normalize_column(raw.column(n)) for n in names}
+        table = pa.table(arrays)
+        columns = [{"name": c.name, "channel": c.channel, "role": c.role,
+                    "type": type_name(table.column(c.name).type)} for c in plan.columns]
+        domains: dict[str, Any] = {}
+        for c in plan.columns:
+            dom = domain(table.column(c.name), tz_of.get(c.name))
+            if dom is not None:
+                domains[c.name] = dom
+        bins = self._bins(plan)
+        for ch, b in bins.items():
+            domains.setdefault(ch, [b.get("start"), b.get("stop")])
+        truncated = groups > table.num_rows
+        stats = {
+            "source_rows": entry.row_count,
+            "matched_rows": matched,
+            "result_rows": table.num_rows,
+            "groups": max(groups, table.num_rows),
+            "truncated": truncated,
+            "statements": len(statements),
+        }
+        if outside:
+            stats["outside_limits"] = {(k.channel if k.channel != "by" else f"by{k.path[-1]}"): v
+                                       for k, v in outside.items()}
+        meta: dict[str, Any] = {
+            "columns": columns, "bins": bins, "domains": domains, "stats": stats,
+            "sql": statements, "dialect": plan.dialect.name,
+        }
+        if plan.approximate:
+            method, err = plan.dialect.approx_distinct
+            approx_cols = [m.name for m in plan.measures if m.internal in plan.approximate]
+            meta["approximate"] = True
+            meta["approximation"] = {"columns": approx_cols, "method": method,
+                                     "relative_standard_error": err}
+        return table, meta
+
+    def to_json(self, result: ChartResult) -> dict[str, Any]:
+        tz_of = {n: k.spec.tz for k in result.plan.keys for n in k.names}
+        data = {n: column_values(result.table.column(n), tz_of.get(n))
+                for n in result.table.column_names}
+        out = dict(result.meta)
+        out["data"] = data
+        return out

@@ -1,0 +1,1035 @@
+"""Request + source schema + dialect -> SQL statements.
+
+A chart is planned in two steps:
+
+1. ``prepare`` checks the request against the source schema (names, kinds, options) and, when
+   a bin layout depends on the data (``bins`` or ``rule`` without ``limits``), builds ONE
+   extents statement that gathers every statistic all such bins need (min, max, count, the
+   population standard deviation for Scott's rule, the quartiles for Freedman–Diaconis).
+2. ``Plan.finish(extents_row)`` fixes the bin layouts and builds the main statement: one
+   grouped SELECT (a chain of CTEs) that also carries, through window functions, the number
+   of matched rows, the rows outside explicit limits and the number of groups before LIMIT,
+   so a chart costs at most two statements.
+
+Main statement shape::
+
+    base     key expressions (bin index, truncated time, top-N fold), outside-limit flags,
+             measure inputs, over the filtered source rows
+    grouped  GROUP BY the keys and flags; aggregates and COUNT(*)
+    counted  + matched rows and outside-limit rows (window sums over all groups)
+    kept     groups inside the limits
+    [dense]  every bin x every combination of the other keys (empty_bins zero/null)
+    final    output columns (bin start/end), stack windows, group count, facet rank
+    SELECT * FROM final [WHERE rank <= cap] ORDER BY ... LIMIT n
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+import re
+import zoneinfo
+from dataclasses import dataclass, field
+from typing import Any
+
+from sqlglot import exp
+
+from planner import bins as binning
+from planner.dialects.base import Dialect
+from planner.errors import PlanError, Unsupported, nearest, pointer
+from planner.model import AnyOf, Channel, ChartRequest, NotOf, Predicate
+from planner.schema import ColumnInfo, SourceSchema
+
+#: Prefix of the planner's own columns in a result; the service strips them.
+INTERNAL = "_sluice_"
+MAX_DENSE_CELLS = 200_000
+NUMERIC_AGGS = {"sum", "avg", "median", "quantile", "stddev_samp", "stddev_pop",
+                "var_samp", "var_pop"}
+ORDERABLE_KINDS = {"integer", "double", "decimal", "string", "boolean", "timestamp",
+                   "timestamptz", "date"}
+
+
+@dataclass
+class Key:
+    """A grouping term of the request."""
+
+    index: int
+    path: tuple[str | int, ...]
+    channel: str
+    spec: Channel
+    col: ColumnInfo
+    mode: str  # plain | nbin | tbin | trunc | extract
+    tz: str
+    names: tuple[str, ...] = ()
+    # bin layout (filled by finish())
+    nbins: binning.NumericBins | None = None
+    tstep: binning.TimeStep | None = None
+    tstart: Any = None  # first bin's internal key value (epoch seconds or naive local datetime)
+    tcount: int | None = None
+    nlimits: tuple[float, float] | None = None
+    tlimits: tuple[dt.datetime, dt.datetime] | None = None
+
+    @property
+    def internal(self) -> str:
+        return f"{INTERNAL}k{self.index}"
+
+    @property
+    def outside_flag(self) -> str:
+        return f"{INTERNAL}o{self.index}"
+
+    @property
+    def binned(self) -> bool:
+        return self.mode in ("nbin", "tbin")
+
+    @property
+    def has_limits(self) -> bool:
+        return self.nlimits is not None or self.tlimits is not None
+
+    @property
+    def data_driven(self) -> bool:
+        b = self.spec.bin
+        return b is not None and b.limits is None and b.width is None
+
+
+@dataclass
+class Measure:
+    index: int
+    path: tuple[str | int, ...]
+    channel: str
+    spec: Channel
+    col: ColumnInfo | None
+    name: str = ""
+
+    @property
+    def internal(self) -> str:
+        return f"{INTERNAL}a{self.index}"
+
+
+@dataclass
+class OutputColumn:
+    name: str
+    channel: str
+    role: str  # key | bin_start | bin_end | measure | stack_start | stack_end
+    source: str | None = None  # source column name
+
+
+@dataclass
+class Plan:
+    request: ChartRequest
+    schema: SourceSchema
+    dialect: Dialect
+    keys: list[Key]
+    measures: list[Measure]
+    where: exp.Expression | None
+    extents: exp.Select | None = None
+    main: exp.Select | None = None
+    columns: list[OutputColumn] = field(default_factory=list)
+    approximate: list[str] = field(default_factory=list)
+    stack_measure: Measure | None = None
+
+    # ---- SQL text --------------------------------------------------------------------
+    @property
+    def extents_sql(self) -> str | None:
+        return self.dialect.render(self.extents) if self.extents is not None else None
+
+    @property
+    def main_sql(self) -> str:
+        assert self.main is not None, "finish() first"
+        return self.dialect.render(self.main)
+
+    def count_sql(self) -> str:
+        """Matched rows and outside-limit counts without grouping (used when the main
+        statement returns no rows, so its window totals are absent)."""
+        d = self.dialect
+        sel = [exp.alias_(exp.Count(this=exp.Star()), f"{INTERNAL}matched", quoted=True)]
+        for k in self.keys:
+            flag = _outside_expr(d, k)
+            if flag is not None:
+                sel.append(exp.alias_(exp.Sum(this=flag), k.outside_flag, quoted=True))
+        q = exp.select(*sel).from_(exp.alias_(d.table(self.schema.table), "s", quoted=True))
+        if self.where is not None:
+            q = q.where(self.where)
+        return d.render(q)
+
+    # ---- step 2 ----------------------------------------------------------------------
+    def finish(self, extents_row: dict[str, Any] | None = None) -> "Plan":
+        row = extents_row or {}
+        for k in self.keys:
+            if k.mode == "nbin":
+                _layout_numeric(k, row)
+            elif k.mode == "tbin":
+                _layout_time(k, row)
+        self.main = _main_statement(self)
+        return self
+
+    def bins_meta(self) -> dict[str, dict[str, Any]]:
+        """``bins`` of the response: the layout of every binned key, by channel name."""
+        out: dict[str, dict[str, Any]] = {}
+        for k in self.keys:
+            label = _channel_label(k)
+            if k.mode == "nbin" and k.nbins is not None:
+                b = k.nbins
+                out[label] = {"start": b.start, "stop": b.stop, "width": b.width,
+                              "count": b.count, "method": b.method}
+            elif k.mode == "tbin" and k.tstep is not None:
+                starts = _time_bin_starts(k)
+                first = _time_bin_instant(k, starts[0]) if starts else None
+                last = _time_bin_instant(k, _time_next(k, starts[-1])) if starts else None
+                out[label] = {"start": first, "stop": last, "step": k.tstep.iso,
+                              "count": len(starts), "method": "calendar"}
+        return out
+
+
+def _channel_label(k: Key) -> str:
+    return f"by{k.path[-1]}" if k.channel == "by" else k.channel
+
+
+# =====================================================================================
+# step 1: check the request against the schema
+# =====================================================================================
+
+def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect) -> Plan:
+    keys: list[Key] = []
+    measures: list[Measure] = []
+    for path, channel, ch in request.keyed_channels():
+        if ch.is_measure:
+            measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect))
+        else:
+            keys.append(_check_key(len(keys), path, channel, ch, schema, dialect))
+    where = _compile_where(request, schema, dialect)
+    plan = Plan(request, schema, dialect, keys, measures, where)
+    _check_options(plan)
+    _assign_names(plan)
+    plan.extents = _extents_statement(plan)
+    return plan
+
+
+def _resolve(name: str, schema: SourceSchema, ptr: str) -> ColumnInfo:
+    col = schema.column(name)
+    if col is None:
+        sugg = nearest(name, schema.columns)
+        hint = f"; did you mean {', '.join(repr(s) for s in sugg)}?" if sugg else ""
+        raise PlanError(ptr, f"unknown column {name!r} in source {schema.name!r}{hint}",
+                        slug="unknown-column", title="Unknown column", suggestions=sugg)
+    return col
+
+
+def _check_tz(tz: str | None, ptr: str) -> str:
+    if tz is None:
+        return "UTC"
+    if not re.fullmatch(r"[A-Za-z0-9_+\-/]{1,64}", tz):
+        raise PlanError(ptr, f"{tz!r} is not an IANA time zone name", slug="bad-time-zone")
+    try:
+        zoneinfo.ZoneInfo(tz)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):
+        raise PlanError(ptr, f"unknown time zone {tz!r} (use an IANA name such as "
+                        "'Europe/Berlin' or 'UTC')", slug="bad-time-zone") from None
+    return tz
+
+
+def _check_measure(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
+                   d: Dialect) -> Measure:
+    col = None
+    if ch.column is not None:
+        col = _resolve(ch.column, schema, pointer(*path, "column"))
+        if ch.agg in NUMERIC_AGGS and not col.is_number:
+            raise PlanError(pointer(*path, "agg"),
+                            f"{ch.agg} needs a number column; {col.name!r} is {col.kind}",
+                            slug="type-mismatch", title="Aggregate does not fit the column type")
+        if ch.agg in ("min", "max") and col.kind not in ORDERABLE_KINDS:
+            raise PlanError(pointer(*path, "agg"), f"{ch.agg} cannot order {col.kind} values",
+                            slug="type-mismatch", title="Aggregate does not fit the column type")
+    if ch.tz is not None:
+        raise PlanError(pointer(*path, "tz"), "tz applies to temporal keys, not to a measure")
+    feature = {"median": "median", "quantile": "quantile",
+               "approx_count_distinct": "approx_count_distinct",
+               "count_distinct": "count_distinct", "stddev_samp": "stddev",
+               "stddev_pop": "stddev", "var_samp": "stddev", "var_pop": "stddev"}.get(ch.agg)
+    if feature and not d.supports(feature):
+        raise Unsupported(pointer(*path, "agg"), d.name, f"{ch.agg}")
+    return Measure(i, path, channel, ch, col)
+
+
+def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
+               d: Dialect) -> Key:
+    assert ch.column is not None
+    col = _resolve(ch.column, schema, pointer(*path, "column"))
+    if col.kind == "other":
+        raise PlanError(pointer(*path, "column"),
+                        f"column {col.name!r} has type {col.sql_type}, which sluice cannot "
+                        "group by", slug="type-mismatch")
+    tz = _check_tz(ch.tz, pointer(*path, "tz"))
+    if ch.tz is not None and not col.is_temporal:
+        raise PlanError(pointer(*path, "tz"), f"tz applies to timestamps; {col.name!r} is {col.kind}",
+                        slug="type-mismatch")
+    if ch.tz is not None and ch.tz != "UTC" and not d.supports("tz"):
+        raise Unsupported(pointer(*path, "tz"), d.name, "time zone conversion")
+    if ch.top is not None and col.kind != "string":
+        raise PlanError(pointer(*path, "top"),
+                        f"top keeps the largest text categories; {col.name!r} is {col.kind}",
+                        slug="type-mismatch")
+    if ch.top is not None and not d.supports("window"):
+        raise Unsupported(pointer(*path, "top"), d.name, "top (needs window functions)")
+    if ch.trunc is not None:
+        if not col.is_temporal:
+            raise PlanError(pointer(*path, "trunc"),
+                            f"trunc needs a timestamp or date column; {col.name!r} is {col.kind}",
+                            slug="type-mismatch", title="Option does not fit the column type")
+        if ch.trunc == "week" and not d.supports("trunc_week"):
+            raise Unsupported(pointer(*path, "trunc"), d.name, "ISO week truncation")
+        return Key(i, path, channel, ch, col, "trunc", tz)
+    if ch.extract is not None:
+        if not col.is_temporal:
+            raise PlanError(pointer(*path, "extract"),
+                            f"extract needs a timestamp or date column; {col.name!r} is {col.kind}",
+                            slug="type-mismatch", title="Option does not fit the column type")
+        if not d.supports("extract"):
+            raise Unsupported(pointer(*path, "extract"), d.name, "date part extraction")
+        return Key(i, path, channel, ch, col, "extract", tz)
+    if ch.bin is not None:
+        b = ch.bin
+        bp = pointer(*path, "bin")
+        if col.is_number:
+            key = Key(i, path, channel, ch, col, "nbin", tz)
+            if b.limits is not None:
+                lo, hi = b.limits
+                if isinstance(lo, str) or isinstance(hi, str):
+                    raise PlanError(pointer(*path, "bin", "limits"),
+                                    f"limits on the number column {col.name!r} must be numbers",
+                                    slug="type-mismatch")
+                if not (math.isfinite(lo) and math.isfinite(hi)) or not lo < hi:
+                    raise PlanError(pointer(*path, "bin", "limits"),
+                                    "limits must be finite numbers [lo, hi] with lo < hi")
+                key.nlimits = (float(lo), float(hi))
+            return key
+        if col.is_temporal:
+            if b.width is not None or b.rule is not None:
+                what = "width" if b.width is not None else "rule"
+                raise PlanError(pointer(*path, "bin", what),
+                                f"{what} bins numbers; on the timestamp {col.name!r} use "
+                                "bins (a calendar step is chosen) or trunc", slug="type-mismatch")
+            key = Key(i, path, channel, ch, col, "tbin", tz)
+            if b.limits is not None:
+                lo_t = _parse_instant(b.limits[0], pointer(*path, "bin", "limits", 0))
+                hi_t = _parse_instant(b.limits[1], pointer(*path, "bin", "limits", 1))
+                if not lo_t < hi_t:
+                    raise PlanError(pointer(*path, "bin", "limits"), "limits need lo < hi")
+                key.tlimits = (lo_t, hi_t)
+            return key
+        raise PlanError(bp, f"bin needs a number or timestamp column; {col.name!r} is "
+                        f"{col.kind} (text and booleans group as categories without bin)",
+                        slug="type-mismatch", title="Option does not fit the column type")
+    return Key(i, path, channel, ch, col, "plain", tz)
+
+
+def _check_options(plan: Plan) -> None:
+    req, d = plan.request, plan.dialect
+    present = {k.channel for k in plan.keys} | {m.channel for m in plan.measures}
+    for i, s in enumerate(req.sort):
+        if s.channel not in present:
+            raise PlanError(pointer("sort", i, "channel"),
+                            f"sort names channel {s.channel!r}, which the request does not use "
+                            f"(it uses {', '.join(sorted(present))})")
+    if req.stack is not None:
+        if not d.supports("window"):
+            raise Unsupported(pointer("stack"), d.name, "stack (needs window functions)")
+        ch = req.channels
+        if ch.y is not None and ch.y.is_measure:
+            plan.stack_measure = next(m for m in plan.measures if m.channel == "y")
+        elif ch.x is not None and ch.x.is_measure:
+            plan.stack_measure = next(m for m in plan.measures if m.channel == "x")
+        else:
+            raise PlanError(pointer("stack"), "stack needs a measure (agg) on y or on x")
+        if plan.stack_measure.spec.agg not in NUMERIC_AGGS | {"count", "count_distinct",
+                                                              "approx_count_distinct"}:
+            raise PlanError(pointer("stack"), f"cannot stack {plan.stack_measure.spec.agg}")
+    if req.facet is not None and req.facet.max_groups is not None and not d.supports("window"):
+        raise Unsupported(pointer("facet", "max_groups"), d.name, "max_groups (window functions)")
+    if req.empty_bins != "omit" and not any(k.binned for k in plan.keys):
+        raise PlanError(pointer("empty_bins"), "empty_bins needs a binned key (a channel with bin)")
+    if req.empty_bins != "omit":
+        for k in plan.keys:
+            if k.binned and k.spec.bin is not None and k.spec.bin.width is not None \
+                    and k.spec.bin.limits is None:
+                raise PlanError(pointer(*k.path, "bin", "limits"),
+                                "empty_bins with a fixed width needs limits (the bins to emit)")
+    for m in plan.measures:
+        if m.spec.agg == "approx_count_distinct":
+            plan.approximate.append(m.internal)
+
+
+def _assign_names(plan: Plan) -> None:
+    taken: set[str] = set()
+
+    def claim(want: str, channel: str) -> str:
+        name = want
+        if name in taken or name.startswith(INTERNAL):
+            name = f"{channel}_{want}"
+        n = 2
+        base = name
+        while name in taken:
+            name = f"{base}_{n}"
+            n += 1
+        taken.add(name)
+        return name
+
+    # name in request order: x, y, color, size, shape, opacity, by[i], row, col
+    for it in sorted(plan.keys + plan.measures, key=lambda x: _path_rank(x.path)):
+        spec = it.spec
+        label = _channel_label(it) if isinstance(it, Key) else it.channel
+        if isinstance(it, Measure):
+            it.name = claim(spec.name or _measure_name(spec), label)
+            plan.columns.append(OutputColumn(it.name, it.channel, "measure", spec.column))
+        elif it.binned:
+            if spec.name:
+                names = (claim(f"{spec.name}_start", label), claim(f"{spec.name}_end", label))
+            else:
+                names = (claim(f"{label}_start", label), claim(f"{label}_end", label))
+            it.names = names
+            plan.columns.append(OutputColumn(names[0], it.channel, "bin_start", spec.column))
+            plan.columns.append(OutputColumn(names[1], it.channel, "bin_end", spec.column))
+        else:
+            want = spec.name or (f"{spec.column}_{spec.extract}" if it.mode == "extract"
+                                 else str(spec.column))
+            it.names = (claim(want, label),)
+            plan.columns.append(OutputColumn(it.names[0], it.channel, "key", spec.column))
+    if plan.stack_measure is not None:
+        m = plan.stack_measure
+        plan.columns.append(OutputColumn(claim(f"{m.name}_start", m.channel), m.channel,
+                                         "stack_start", m.spec.column))
+        plan.columns.append(OutputColumn(claim(f"{m.name}_end", m.channel), m.channel,
+                                         "stack_end", m.spec.column))
+
+
+def _path_rank(path: tuple) -> tuple:
+    order = {"x": 0, "y": 1, "color": 2, "size": 3, "shape": 4, "opacity": 5, "by": 6,
+             "row": 7, "col": 8}
+    return (order[path[1]], path[2] if len(path) > 2 else 0)
+
+
+def _measure_name(ch: Channel) -> str:
+    if ch.agg == "count" and ch.column is None:
+        return "count"
+    if ch.agg == "quantile":
+        q = ch.q if ch.q is not None else 0.5
+        pct = f"{q * 100:g}".replace(".", "_")
+        return f"p{pct}_{ch.column}"
+    return f"{ch.agg}_{ch.column}"
+
+
+# =====================================================================================
+# where
+# =====================================================================================
+
+def _parse_instant(value: Any, ptr: str) -> dt.datetime:
+    if not isinstance(value, str):
+        raise PlanError(ptr, f"expected an ISO 8601 timestamp string, got {value!r}",
+                        slug="type-mismatch")
+    text = value.strip()
+    if text.endswith("Z") or text.endswith("z"):
+        text = text[:-1] + "+00:00"
+    try:
+        if len(text) == 10:
+            t = dt.datetime.combine(dt.date.fromisoformat(text), dt.time())
+        else:
+            t = dt.datetime.fromisoformat(text)
+    except ValueError:
+        raise PlanError(ptr, f"{value!r} is not an ISO 8601 date or timestamp "
+                        "(e.g. '2026-01-01' or '2026-01-01T08:00:00Z')",
+                        slug="bad-value") from None
+    if t.tzinfo is None:
+        t = t.replace(tzinfo=dt.timezone.utc)
+    return t
+
+
+def _literal(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> exp.Expression:
+    if col.is_number:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise PlanError(ptr, f"{col.name!r} is a number column; {value!r} is not a number",
+                            slug="type-mismatch")
+        if isinstance(value, float) and not math.isfinite(value):
+            raise PlanError(ptr, "numbers must be finite", slug="bad-value")
+        return d.number(value)
+    if col.kind == "string":
+        if not isinstance(value, str):
+            raise PlanError(ptr, f"{col.name!r} is a text column; compare it with a string, "
+                            f"not {value!r}", slug="type-mismatch")
+        if "\x00" in value:
+            raise PlanError(ptr, "strings may not contain NUL characters", slug="bad-value")
+        return d.string(value)
+    if col.kind == "boolean":
+        if not isinstance(value, bool):
+            raise PlanError(ptr, f"{col.name!r} is a boolean column; use true or false",
+                            slug="type-mismatch")
+        return d.boolean(value)
+    if col.is_temporal:
+        return d.timestamp_literal(_parse_instant(value, ptr), col.kind)
+    raise PlanError(ptr, f"column {col.name!r} of type {col.sql_type} cannot be filtered",
+                    slug="type-mismatch")
+
+
+_COMPARE = {"eq": exp.EQ, "ne": exp.NEQ, "lt": exp.LT, "lte": exp.LTE, "gt": exp.GT,
+            "gte": exp.GTE}
+
+
+def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect) -> exp.Expression:
+    if isinstance(f, AnyOf):
+        parts = [_compile_filter(g, path + ("any", j), schema, d) for j, g in enumerate(f.any)]
+        return exp.Paren(this=exp.or_(*parts)) if len(parts) > 1 else parts[0]
+    if isinstance(f, NotOf):
+        return exp.Not(this=exp.Paren(this=_compile_filter(f.not_, path + ("not",), schema, d)))
+    assert isinstance(f, Predicate)
+    col = _resolve(f.column, schema, pointer(*path, "column"))
+    ref = d.column(col.name, "s")
+    terms: list[exp.Expression] = []
+    for op, value in f.operators():
+        ptr = pointer(*path, op)
+        if op in _COMPARE:
+            terms.append(_COMPARE[op](this=ref.copy(), expression=_literal(d, col, value, ptr)))
+        elif op in ("in", "not_in"):
+            if not value:
+                terms.append(exp.false() if op == "in" else exp.true())
+                continue
+            lits = [_literal(d, col, v, pointer(*path, op, j)) for j, v in enumerate(value)]
+            node = exp.In(this=ref.copy(), expressions=lits)
+            terms.append(node if op == "in" else exp.Not(this=node))
+        elif op == "is_null":
+            isnull = exp.Is(this=ref.copy(), expression=exp.Null())
+            terms.append(isnull if value else exp.Not(this=isnull))
+        elif op in ("contains", "starts_with"):
+            if col.kind != "string":
+                raise PlanError(ptr, f"{op} needs a text column; {col.name!r} is {col.kind}",
+                                slug="type-mismatch")
+            _literal(d, col, value, ptr)
+            fn = d.contains if op == "contains" else d.starts_with
+            terms.append(fn(ref.copy(), value))
+    return exp.Paren(this=exp.and_(*terms)) if len(terms) > 1 else terms[0]
+
+
+def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect) -> exp.Expression | None:
+    if not req.where:
+        return None
+    parts = [_compile_filter(f, ("where", i), schema, d) for i, f in enumerate(req.where)]
+    return exp.and_(*parts) if len(parts) > 1 else parts[0]
+
+
+# =====================================================================================
+# extents
+# =====================================================================================
+
+def _extents_statement(plan: Plan) -> exp.Select | None:
+    d = plan.dialect
+    sel: list[exp.Expression] = []
+    for k in plan.keys:
+        if not (k.binned and k.spec.bin is not None):
+            continue
+        b = k.spec.bin
+        ref = d.column(k.col.name, "s")
+        p = f"{INTERNAL}e{k.index}_"
+        if k.mode == "tbin":
+            if k.tlimits is None:
+                ep = d.epoch(ref, k.col.kind)
+                sel += [exp.alias_(exp.Min(this=ep), p + "min", quoted=True),
+                        exp.alias_(exp.Max(this=ep.copy()), p + "max", quoted=True)]
+            continue
+        if b.width is not None:
+            continue
+        if b.rule is None and k.nlimits is not None:
+            continue  # nice bins over explicit limits need no statistics
+        v: exp.Expression = d.double(ref)
+        if k.nlimits is not None:  # numpy filters to the range before applying a rule
+            lo, hi = k.nlimits
+            v = exp.Case(ifs=[exp.If(this=exp.Between(this=v.copy(), low=d.real(lo),
+                                                      high=d.real(hi)), true=v.copy())])
+        else:
+            sel += [exp.alias_(exp.Min(this=v.copy()), p + "min", quoted=True),
+                    exp.alias_(exp.Max(this=v.copy()), p + "max", quoted=True)]
+        if b.rule is not None:
+            sel.append(exp.alias_(exp.Count(this=v.copy()), p + "n", quoted=True))
+        if b.rule == "scott":
+            sel.append(exp.alias_(exp.StddevPop(this=v.copy()), p + "sd", quoted=True))
+        if b.rule == "fd":
+            sel.append(exp.alias_(d.quantile(v.copy(), 0.25), p + "q1", quoted=True))
+            sel.append(exp.alias_(d.quantile(v.copy(), 0.75), p + "q3", quoted=True))
+    if not sel:
+        return None
+    q = exp.select(*sel).from_(exp.alias_(d.table(plan.schema.table), "s", quoted=True))
+    if plan.where is not None:
+        q = q.where(plan.where.copy())
+    return q
+
+
+def _num(row: dict[str, Any], name: str) -> float | None:
+    v = row.get(name)
+    return None if v is None else float(v)
+
+
+def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
+    b = k.spec.bin
+    assert b is not None
+    p = f"{INTERNAL}e{k.index}_"
+    if b.width is not None:
+        lo, hi = k.nlimits if k.nlimits else (None, None)
+        k.nbins = binning.width_bins(b.width, b.origin or 0.0, lo, hi)
+        return
+    if k.nlimits is not None:
+        lo, hi = k.nlimits
+    else:
+        lo, hi = _num(row, p + "min"), _num(row, p + "max")
+        if lo is None or hi is None:  # no non-NULL values: a harmless placeholder layout
+            k.nbins = binning.NumericBins(0.0, 1.0, 1, b.rule or "nice")
+            return
+    if b.rule is not None:
+        n = int(row.get(p + "n") or 0)
+        q1, q3 = _num(row, p + "q1"), _num(row, p + "q3")
+        iqr = (q3 - q1) if q1 is not None and q3 is not None else None
+        k.nbins = binning.rule_bins(b.rule, n, lo, hi, _num(row, p + "sd"), iqr)
+    else:
+        k.nbins = binning.nice_bins(lo, hi, b.bins or 20)
+
+
+def _layout_time(k: Key, row: dict[str, Any]) -> None:
+    b = k.spec.bin
+    assert b is not None
+    p = f"{INTERNAL}e{k.index}_"
+    if k.tlimits is not None:
+        lo = k.tlimits[0].timestamp()
+        hi = k.tlimits[1].timestamp()
+    else:
+        lo, hi = _num(row, p + "min"), _num(row, p + "max")
+    if lo is None or hi is None:
+        lo = hi = 0.0
+    k.tstep = binning.time_step(hi - lo, b.bins or 20)
+    step = k.tstep
+    if step.is_fixed:
+        first = math.floor(lo / step.seconds) * step.seconds
+        last = math.floor(hi / step.seconds) * step.seconds
+        k.tstart = float(first)
+        k.tcount = int(round((last - first) / step.seconds)) + 1
+    else:
+        zone = zoneinfo.ZoneInfo(k.tz)
+        lo_local = dt.datetime.fromtimestamp(lo, dt.timezone.utc).astimezone(zone).replace(tzinfo=None)
+        hi_local = dt.datetime.fromtimestamp(hi, dt.timezone.utc).astimezone(zone).replace(tzinfo=None)
+        first_l = _trunc_local(lo_local, step.unit)
+        last_l = _trunc_local(hi_local, step.unit)
+        k.tstart = first_l
+        count, cur = 1, first_l
+        while cur < last_l and count <= MAX_DENSE_CELLS:
+            cur = _add_local(cur, step.unit, 1)
+            count += 1
+        k.tcount = count
+
+
+def _trunc_local(t: dt.datetime, unit: str) -> dt.datetime:
+    """Python twin of SQL date_trunc on a naive wall-clock time (ISO week)."""
+    if unit == "second":
+        return t.replace(microsecond=0)
+    if unit == "minute":
+        return t.replace(second=0, microsecond=0)
+    if unit == "hour":
+        return t.replace(minute=0, second=0, microsecond=0)
+    day = t.replace(hour=0, minute=0, second=0, microsecond=0)
+    if unit == "day":
+        return day
+    if unit == "week":
+        return day - dt.timedelta(days=day.weekday())
+    if unit == "month":
+        return day.replace(day=1)
+    if unit == "quarter":
+        return day.replace(day=1, month=(day.month - 1) // 3 * 3 + 1)
+    if unit == "year":
+        return day.replace(day=1, month=1)
+    raise ValueError(unit)
+
+
+def _add_local(t: dt.datetime, unit: str, n: int) -> dt.datetime:
+    if unit == "day":
+        return t + dt.timedelta(days=n)
+    if unit == "week":
+        return t + dt.timedelta(days=7 * n)
+    months = {"month": 1, "quarter": 3, "year": 12}[unit] * n
+    m = t.month - 1 + months
+    return t.replace(year=t.year + m // 12, month=m % 12 + 1)
+
+
+def _time_bin_starts(k: Key) -> list[Any]:
+    assert k.tstep is not None and k.tcount is not None
+    if k.tstep.is_fixed:
+        return [k.tstart + i * k.tstep.seconds for i in range(k.tcount)]
+    out, cur = [], k.tstart
+    for _ in range(k.tcount):
+        out.append(cur)
+        cur = _add_local(cur, k.tstep.unit, 1)
+    return out
+
+
+def _time_next(k: Key, start: Any) -> Any:
+    assert k.tstep is not None
+    if k.tstep.is_fixed:
+        return start + k.tstep.seconds
+    return _add_local(start, k.tstep.unit, 1)
+
+
+def _time_bin_instant(k: Key, v: Any) -> dt.datetime:
+    if isinstance(v, dt.datetime):
+        return v.replace(tzinfo=zoneinfo.ZoneInfo(k.tz)).astimezone(dt.timezone.utc)
+    return dt.datetime.fromtimestamp(v, dt.timezone.utc)
+
+
+# =====================================================================================
+# main statement
+# =====================================================================================
+
+def _ref(name: str, table: str | None = None) -> exp.Column:
+    return exp.Column(this=exp.to_identifier(name, quoted=True),
+                      table=exp.to_identifier(table, quoted=True) if table else None)
+
+
+def _outside_expr(d: Dialect, k: Key) -> exp.Expression | None:
+    """1 when the row's value lies outside the key's explicit limits, else 0 (NULL -> 0)."""
+    ref = d.column(k.col.name, "s")
+    if k.nlimits is not None:
+        lo, hi = k.nlimits
+        v = d.double(ref)
+        cond = exp.or_(exp.LT(this=v, expression=d.real(lo)),
+                       exp.GT(this=v.copy(), expression=d.real(hi)))
+    elif k.tlimits is not None:
+        lo_l = d.timestamp_literal(k.tlimits[0], k.col.kind)
+        hi_l = d.timestamp_literal(k.tlimits[1], k.col.kind)
+        cond = exp.or_(exp.LT(this=ref, expression=lo_l), exp.GT(this=ref.copy(), expression=hi_l))
+    else:
+        return None
+    return exp.Case(ifs=[exp.If(this=cond, true=exp.Literal.number(1))],
+                    default=exp.Literal.number(0))
+
+
+def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
+    """The internal grouping value of a key, computed per source row."""
+    ref = d.column(k.col.name, "s")
+    if k.mode == "plain":
+        if top_alias is None:
+            return ref
+        return exp.Case(
+            ifs=[exp.If(this=exp.Is(this=ref.copy(), expression=exp.Null()), true=exp.Null()),
+                 exp.If(this=exp.Not(this=exp.Is(this=_ref("v", top_alias), expression=exp.Null())),
+                        true=ref.copy())],
+            default=d.string(k.spec.other_label))
+    if k.mode == "trunc":
+        return d.trunc(k.spec.trunc, d.to_local(ref, k.col.kind, k.tz))
+    if k.mode == "extract":
+        return d.extract(k.spec.extract, d.to_local(ref, k.col.kind, k.tz))
+    if k.mode == "nbin":
+        b = k.nbins
+        assert b is not None
+        v = d.double(ref)
+        start, width = d.real(b.start), d.real(b.width)
+
+        def edge(i: exp.Expression) -> exp.Expression:
+            return exp.Add(this=start.copy(), expression=exp.Mul(this=exp.Paren(this=i),
+                                                                  expression=width.copy()))
+
+        i0 = d.floor(exp.Div(this=exp.Paren(this=exp.Sub(this=v.copy(), expression=start.copy())),
+                             expression=width.copy()))
+        # floating-point guard: move by one bin when the quotient fell on the wrong side of
+        # an edge, so every value obeys edge_i <= v < edge_(i+1) exactly.
+        idx = exp.Add(this=i0, expression=exp.Paren(this=exp.Case(ifs=[
+            exp.If(this=exp.GTE(this=v.copy(), expression=edge(exp.Add(
+                this=i0.copy(), expression=exp.Literal.number(1)))), true=exp.Literal.number(1)),
+            exp.If(this=exp.LT(this=v.copy(), expression=edge(i0.copy())),
+                   true=exp.Neg(this=exp.Literal.number(1)))],
+            default=exp.Literal.number(0))))
+        if b.count is not None:  # closed last bin; clamp float noise at the lower edge
+            top = d.number(b.count - 1)
+            idx = exp.Case(ifs=[exp.If(this=exp.GT(this=idx.copy(), expression=top),
+                                       true=top.copy()),
+                                exp.If(this=exp.LT(this=idx.copy(), expression=exp.Literal.number(0)),
+                                       true=exp.Literal.number(0))],
+                           default=idx)
+        return idx
+    if k.mode == "tbin":
+        step = k.tstep
+        assert step is not None
+        if step.is_fixed:
+            s = d.real(step.seconds)
+            return exp.Mul(this=d.floor(exp.Div(this=d.epoch(ref, k.col.kind), expression=s)),
+                           expression=s.copy())
+        return d.trunc(step.unit, d.to_local(ref, k.col.kind, k.tz))
+    raise AssertionError(k.mode)
+
+
+def _key_outputs(d: Dialect, k: Key, src: str | None) -> list[exp.Expression]:
+    """Output columns of a key, computed from its internal grouping value."""
+    v = _ref(k.internal, src)
+    if k.mode == "nbin":
+        b = k.nbins
+        assert b is not None
+        lo = exp.Add(this=d.real(b.start), expression=exp.Mul(this=v, expression=d.real(b.width)))
+        hi = exp.Add(this=d.real(b.start), expression=exp.Mul(
+            this=exp.Paren(this=exp.Add(this=v.copy(), expression=exp.Literal.number(1))),
+            expression=d.real(b.width)))
+        return [exp.alias_(lo, k.names[0], quoted=True), exp.alias_(hi, k.names[1], quoted=True)]
+    if k.mode == "tbin":
+        step = k.tstep
+        assert step is not None
+        if step.is_fixed:
+            lo = d.from_epoch(v)
+            hi = d.from_epoch(exp.Add(this=v.copy(), expression=d.real(step.seconds)))
+        else:
+            lo = d.from_local(v, k.tz)
+            hi = d.from_local(d.add_units(v.copy(), 1, step.unit), k.tz)
+        return [exp.alias_(lo, k.names[0], quoted=True), exp.alias_(hi, k.names[1], quoted=True)]
+    if k.mode == "trunc":
+        return [exp.alias_(d.from_local(v, k.tz), k.names[0], quoted=True)]
+    return [exp.alias_(v, k.names[0], quoted=True)]
+
+
+def _top_cte(plan: Plan, k: Key) -> exp.Select:
+    """Rank a text key's values by the chart's first measure (or row count)."""
+    d = plan.dialect
+    ref = d.column(k.col.name, "s")
+    if plan.measures:
+        m = plan.measures[0]
+        arg = d.column(m.col.name, "s") if m.col is not None else None
+        score = d.agg(m.spec.agg, arg, m.spec.q)
+    else:
+        score = exp.Count(this=exp.Star())
+    order = d.order(score, True, False) + d.order(ref.copy(), False, False)
+    rank = exp.Window(this=exp.RowNumber(), order=exp.Order(expressions=order))
+    q = (exp.select(exp.alias_(ref.copy(), "v", quoted=True), exp.alias_(rank, "r", quoted=True))
+         .from_(exp.alias_(d.table(plan.schema.table), "s", quoted=True))
+         .where(exp.Not(this=exp.Is(this=ref.copy(), expression=exp.Null())))
+         .group_by(ref.copy()))
+    if plan.where is not None:
+        q = q.where(plan.where.copy())
+    return q
+
+
+def _numbers_table(values: list[exp.Expression], name: str) -> exp.Expression:
+    """A derived table of literal rows (UNION ALL of SELECTs: valid on every target)."""
+    selects = [exp.select(exp.alias_(v, name, quoted=True)) for v in values]
+    node: exp.Expression = selects[0]
+    for s in selects[1:]:
+        node = exp.union(node, s, distinct=False)
+    return node
+
+
+def _bin_values(d: Dialect, k: Key) -> list[exp.Expression]:
+    if k.mode == "nbin":
+        assert k.nbins is not None and k.nbins.count is not None
+        return [d.real(i) for i in range(k.nbins.count)]
+    starts = _time_bin_starts(k)
+    if k.tstep is not None and k.tstep.is_fixed:
+        return [d.real(s) for s in starts]
+    return [exp.Cast(this=exp.Literal.string(s.strftime("%Y-%m-%d %H:%M:%S")),
+                     to=exp.DataType.build("TIMESTAMP")) for s in starts]
+
+
+def _main_statement(plan: Plan) -> exp.Select:
+    d, req = plan.dialect, plan.request
+    keys, measures = plan.keys, plan.measures
+    src = exp.alias_(d.table(plan.schema.table), "s", quoted=True)
+    ctes: list[tuple[str, exp.Expression]] = []
+
+    # ---- base ----
+    base = exp.select().from_(src)
+    for k in keys:
+        top_alias = None
+        if k.spec.top is not None:
+            rank_name = f"{INTERNAL}rank{k.index}"
+            ctes.append((rank_name, _top_cte(plan, k)))
+            top_alias = f"{INTERNAL}t{k.index}"
+            kept_vals = (exp.select(_ref("v")).from_(_table(rank_name))
+                         .where(exp.LTE(this=_ref("r"), expression=d.number(k.spec.top))))
+            base = base.join(exp.alias_(exp.Subquery(this=kept_vals), top_alias, quoted=True),
+                             on=exp.EQ(this=d.column(k.col.name, "s"),
+                                       expression=_ref("v", top_alias)),
+                             join_type="left")
+        base = base.select(exp.alias_(_key_expr(d, k, top_alias), k.internal, quoted=True))
+    flags = []
+    for k in keys:
+        flag = _outside_expr(d, k)
+        if flag is not None:
+            flags.append(k)
+            base = base.select(exp.alias_(flag, k.outside_flag, quoted=True))
+    for m in measures:
+        arg = d.column(m.col.name, "s") if m.col is not None else exp.Null()
+        base = base.select(exp.alias_(arg, f"{INTERNAL}m{m.index}", quoted=True))
+    if not keys and not measures:  # pragma: no cover - the model requires a channel
+        base = base.select(exp.Literal.number(1))
+    if plan.where is not None:
+        base = base.where(plan.where.copy())
+    ctes.append((f"{INTERNAL}base", base))
+
+    # ---- grouped ----
+    group_cols = [k.internal for k in keys] + [k.outside_flag for k in flags]
+    grouped = exp.select(*[_ref(c) for c in group_cols]).from_(_table(f"{INTERNAL}base"))
+    for m in measures:
+        arg = _ref(f"{INTERNAL}m{m.index}") if m.col is not None else None
+        grouped = grouped.select(exp.alias_(d.agg(m.spec.agg, arg, m.spec.q), m.internal, quoted=True))
+    grouped = grouped.select(exp.alias_(exp.Count(this=exp.Star()), f"{INTERNAL}n", quoted=True))
+    if group_cols:
+        grouped = grouped.group_by(*[_ref(c) for c in group_cols])
+    ctes.append((f"{INTERNAL}grouped", grouped))
+
+    # ---- counted / kept ----
+    over_all = lambda e: exp.Window(this=e)  # noqa: E731 - tiny local helper
+    counted = exp.select(exp.Star()).from_(_table(f"{INTERNAL}grouped"))
+    counted = counted.select(exp.alias_(over_all(exp.Sum(this=_ref(f"{INTERNAL}n"))),
+                                        f"{INTERNAL}matched", quoted=True))
+    for k in flags:
+        cnt = exp.Sum(this=exp.Case(ifs=[exp.If(
+            this=exp.EQ(this=_ref(k.outside_flag), expression=exp.Literal.number(1)),
+            true=_ref(f"{INTERNAL}n"))], default=exp.Literal.number(0)))
+        counted = counted.select(exp.alias_(over_all(cnt), f"{INTERNAL}out{k.index}", quoted=True))
+    ctes.append((f"{INTERNAL}counted", counted))
+    current = f"{INTERNAL}counted"
+    if flags:
+        kept = exp.select(exp.Star()).from_(_table(current)).where(exp.and_(*[
+            exp.EQ(this=_ref(k.outside_flag), expression=exp.Literal.number(0)) for k in flags]))
+        ctes.append((f"{INTERNAL}kept", kept))
+        current = f"{INTERNAL}kept"
+
+    # ---- dense (empty_bins) ----
+    if req.empty_bins != "omit":
+        current = _dense(plan, ctes, current, flags)
+
+    # ---- final ----
+    final = exp.select().from_(_table(current))
+    for k in keys:
+        final = final.select(*_key_outputs(d, k, None))
+    for m in measures:
+        final = final.select(exp.alias_(_ref(m.internal), m.name, quoted=True))
+    if plan.stack_measure is not None:
+        final = final.select(*_stack_columns(plan))
+    final = final.select(
+        exp.alias_(_ref(f"{INTERNAL}n"), f"{INTERNAL}n", quoted=True),
+        exp.alias_(over_all(exp.Max(this=_ref(f"{INTERNAL}matched"))), f"{INTERNAL}matched", quoted=True),
+        exp.alias_(over_all(exp.Count(this=exp.Star())), f"{INTERNAL}groups", quoted=True))
+    for k in flags:
+        final = final.select(exp.alias_(over_all(exp.Max(this=_ref(f"{INTERNAL}out{k.index}"))),
+                                        f"{INTERNAL}out{k.index}", quoted=True))
+    cap = req.facet.max_groups if req.facet is not None else None
+    if cap is not None:
+        facet_keys = [k for k in keys if k.channel in ("row", "col")]
+        rank = exp.Window(this=exp.RowNumber(),
+                          partition_by=[_ref(k.internal) for k in facet_keys] or None,
+                          order=exp.Order(expressions=_sort_terms(plan, internal=True)))
+        final = final.select(exp.alias_(rank, f"{INTERNAL}frank", quoted=True))
+    ctes.append((f"{INTERNAL}final", final))
+
+    outer = exp.select(exp.Star()).from_(_table(f"{INTERNAL}final"))
+    if cap is not None:
+        outer = outer.where(exp.LTE(this=_ref(f"{INTERNAL}frank"), expression=d.number(cap)))
+    outer = outer.order_by(*_sort_terms(plan, internal=False)) if keys or measures else outer
+    outer = outer.limit(d.number(req.limit))
+    for name, q in ctes:
+        outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q)
+    return outer
+
+
+def _table(name: str) -> exp.Table:
+    return exp.Table(this=exp.to_identifier(name, quoted=True))
+
+
+def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
+    d = plan.dialect
+    binned = [k for k in plan.keys if k.binned]
+    others = [k for k in plan.keys if not k.binned]
+    cells = 1
+    for k in binned:
+        cells *= (k.nbins.count if k.mode == "nbin" else k.tcount) or 1
+    if cells > MAX_DENSE_CELLS:
+        raise PlanError(pointer("empty_bins"), f"empty_bins would emit {cells} bins "
+                        f"(more than {MAX_DENSE_CELLS}); use fewer bins or tighter limits")
+    sources: list[exp.Expression] = []
+    for k in binned:
+        name = f"{INTERNAL}bins{k.index}"
+        ctes.append((name, _numbers_table(_bin_values(d, k), k.internal)))
+        sources.append(_table(name))
+    if others:
+        name = f"{INTERNAL}others"
+        ctes.append((name, exp.select(*[_ref(k.internal) for k in others]).distinct()
+                     .from_(_table(current))))
+        sources.append(_table(name))
+    q = exp.select().from_(sources[0])
+    for s in sources[1:]:
+        q = q.join(s, join_type="cross")
+    q = q.select(exp.Star())
+    gname = f"{INTERNAL}grid"
+    ctes.append((gname, q))
+    fill = exp.Literal.number(0) if plan.request.empty_bins == "zero" else exp.Null()
+    missing = exp.Is(this=_ref(f"{INTERNAL}n", "c"), expression=exp.Null())
+    dense = (exp.select(*[exp.alias_(_ref(k.internal, "g"), k.internal, quoted=True) for k in plan.keys])
+             .from_(exp.alias_(_table(gname), "g", quoted=True))
+             .join(exp.alias_(_table(current), "c", quoted=True),
+                   on=exp.and_(*[d.null_safe_eq(_ref(k.internal, "g"), _ref(k.internal, "c"))
+                                 for k in plan.keys]),
+                   join_type="left"))
+    for m in plan.measures:
+        dense = dense.select(exp.alias_(exp.Case(ifs=[exp.If(this=missing.copy(), true=fill.copy())],
+                                                 default=_ref(m.internal, "c")), m.internal, quoted=True))
+    dense = dense.select(
+        exp.alias_(exp.Coalesce(this=_ref(f"{INTERNAL}n", "c"), expressions=[exp.Literal.number(0)]),
+                   f"{INTERNAL}n", quoted=True),
+        exp.alias_(_ref(f"{INTERNAL}matched", "c"), f"{INTERNAL}matched", quoted=True))
+    for k in flags:
+        dense = dense.select(exp.alias_(_ref(f"{INTERNAL}out{k.index}", "c"),
+                                        f"{INTERNAL}out{k.index}", quoted=True))
+    name = f"{INTERNAL}dense"
+    ctes.append((name, dense))
+    return name
+
+
+def _stack_columns(plan: Plan) -> list[exp.Expression]:
+    d = plan.dialect
+    m = plan.stack_measure
+    assert m is not None
+    pos = "x" if m.channel == "y" else "y"
+    part_keys = [k for k in plan.keys if k.channel in (pos, "row", "col")]
+    pile_keys = [k for k in plan.keys if k not in part_keys]
+    partition = [_ref(k.internal) for k in part_keys] or None
+    order: list[exp.Ordered] = []
+    for k in pile_keys:
+        order += d.order(_ref(k.internal), False, True)
+    value = exp.Coalesce(this=d.double(_ref(m.internal)), expressions=[exp.Literal.number(0)])
+    running = exp.Window(
+        this=exp.Sum(this=value.copy()), partition_by=partition,
+        order=exp.Order(expressions=order) if order else None,
+        spec=exp.WindowSpec(kind="ROWS", start="UNBOUNDED", start_side="PRECEDING",
+                            end="CURRENT ROW"))
+    end: exp.Expression = running
+    start: exp.Expression = exp.Sub(this=running.copy(), expression=value.copy())
+    if plan.request.stack in ("fraction", "centered"):
+        total = exp.Window(this=exp.Sum(this=value.copy()),
+                           partition_by=[p.copy() for p in partition] if partition else None)
+        if plan.request.stack == "fraction":
+            denom = exp.Nullif(this=total, expression=exp.Literal.number(0))
+            end = exp.Div(this=end, expression=denom)
+            start = exp.Div(this=exp.Paren(this=start), expression=denom.copy())
+        else:
+            half = exp.Div(this=total, expression=exp.Literal.number(2))
+            end = exp.Sub(this=end, expression=half)
+            start = exp.Sub(this=exp.Paren(this=start), expression=half.copy())
+    names = [c.name for c in plan.columns if c.role in ("stack_start", "stack_end")]
+    return [exp.alias_(start, names[0], quoted=True), exp.alias_(end, names[1], quoted=True)]
+
+
+def _sort_terms(plan: Plan, internal: bool) -> list[exp.Ordered]:
+    """ORDER BY terms: the request's sort first, then every key ascending (NULLs last)."""
+    d = plan.dialect
+    by_channel: dict[str, exp.Expression] = {}
+    for k in plan.keys:
+        by_channel.setdefault(k.channel, _ref(k.internal) if internal else _ref(k.names[0]))
+    for m in plan.measures:
+        by_channel.setdefault(m.channel, _ref(m.internal) if internal else _ref(m.name))
+    terms: list[exp.Ordered] = []
+    used: set[str] = set()
+    for s in plan.request.sort:
+        terms += d.order(by_channel[s.channel].copy(), s.desc, False)
+        used.add(s.channel)
+    for k in plan.keys:
+        ref = _ref(k.internal) if internal else _ref(k.names[0])
+        if k.channel in used and k.channel != "by":
+            continue
+        terms += d.order(ref, False, False)
+    return terms

@@ -1,0 +1,200 @@
+"""The capability layer: how each construct the planner needs is written for one target.
+
+A dialect is mostly data (its sqlglot dialect name, a few flags, the set of features it
+cannot express) plus small methods that build sqlglot expressions for the constructs where
+targets differ. The compiler only ever calls these methods; it never assumes that sqlglot's
+generic transpile produces valid SQL for a target.
+
+Add a dialect: subclass ``Dialect`` in a new module, override what differs, register it in
+``planner.dialects.DIALECTS``. Where the target cannot express a construct faithfully, list
+the feature in ``unsupported`` so the request is refused with a clear 422.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import ClassVar
+
+from sqlglot import exp
+
+#: Features a dialect may refuse, with the words used in the error message.
+FEATURES: dict[str, str] = {
+    "median": "exact median",
+    "quantile": "exact quantile",
+    "approx_count_distinct": "approximate count distinct",
+    "count_distinct": "count distinct",
+    "stddev": "standard deviation / variance",
+    "tz": "time zone conversion",
+    "trunc_week": "ISO week truncation",
+    "extract": "date part extraction",
+    "window": "window functions (stack, top, facet caps)",
+    "nulls_order": "NULL ordering",
+    "grouping_sets": "GROUPING SETS",
+}
+
+
+class Dialect:
+    """Base: ANSI-ish SQL, overridden per target."""
+
+    name: ClassVar[str] = "ansi"
+    sqlglot: ClassVar[str] = ""  # sqlglot dialect name
+    unsupported: ClassVar[frozenset[str]] = frozenset()
+    #: True when ``ORDER BY x NULLS FIRST/LAST`` is accepted as written.
+    nulls_order_native: ClassVar[bool] = True
+    #: Approximate count distinct: (method, relative standard error) for the response.
+    approx_distinct: ClassVar[tuple[str, float | None]] = ("hyperloglog", None)
+
+    # --- rendering ------------------------------------------------------------------
+    def render(self, node: exp.Expression) -> str:
+        return node.sql(dialect=self.sqlglot or None, identify=True)
+
+    def supports(self, feature: str) -> bool:
+        return feature not in self.unsupported
+
+    # --- names and literals -----------------------------------------------------------
+    @staticmethod
+    def ident(name: str) -> exp.Identifier:
+        return exp.to_identifier(name, quoted=True)
+
+    def column(self, name: str, table: str | None = None) -> exp.Column:
+        return exp.Column(this=self.ident(name), table=self.ident(table) if table else None)
+
+    def table(self, parts: tuple[str, ...]) -> exp.Table:
+        parts = tuple(parts)
+        name = self.ident(parts[-1])
+        db = self.ident(parts[-2]) if len(parts) >= 2 else None
+        catalog = self.ident(parts[-3]) if len(parts) >= 3 else None
+        return exp.Table(this=name, db=db, catalog=catalog)
+
+    def number(self, v: float | int) -> exp.Expression:
+        if isinstance(v, bool):
+            raise TypeError("bool is not a number")
+        if isinstance(v, int):
+            lit = exp.Literal.number(str(abs(v)))
+        else:
+            lit = exp.Literal.number(repr(abs(float(v))))
+        return exp.Neg(this=lit) if v < 0 else lit
+
+    def real(self, v: float) -> exp.Expression:
+        """A float constant typed DOUBLE (a bare ``50.0`` is DECIMAL on several engines)."""
+        return self.double(self.number(float(v)))
+
+    def string(self, v: str) -> exp.Expression:
+        return exp.Literal.string(v)
+
+    def boolean(self, v: bool) -> exp.Expression:
+        return exp.Boolean(this=v)
+
+    def double(self, e: exp.Expression) -> exp.Expression:
+        return exp.Cast(this=e, to=exp.DataType.build("DOUBLE"))
+
+    def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
+        """An instant (aware, UTC) as a literal comparable with a column of ``kind``."""
+        utc = value.astimezone(dt.timezone.utc)
+        if kind == "date":
+            return exp.Cast(this=exp.Literal.string(utc.date().isoformat()),
+                            to=exp.DataType.build("DATE"))
+        text = utc.strftime("%Y-%m-%d %H:%M:%S.%f")
+        if kind == "timestamptz":
+            return exp.Cast(this=exp.Literal.string(text + "+00:00"),
+                            to=exp.DataType.build("TIMESTAMPTZ"))
+        return exp.Cast(this=exp.Literal.string(text), to=exp.DataType.build("TIMESTAMP"))
+
+    # --- arithmetic -----------------------------------------------------------------
+    def floor(self, e: exp.Expression) -> exp.Expression:
+        return exp.Floor(this=e)
+
+    # --- strings --------------------------------------------------------------------
+    def contains(self, col: exp.Expression, s: str) -> exp.Expression:
+        return exp.GT(this=exp.StrPosition(this=col, substr=self.string(s)),
+                      expression=exp.Literal.number(0))
+
+    def starts_with(self, col: exp.Expression, s: str) -> exp.Expression:
+        return exp.EQ(
+            this=exp.Substring(this=col, start=exp.Literal.number(1),
+                               length=exp.Literal.number(len(s))),
+            expression=self.string(s))
+
+    # --- time -----------------------------------------------------------------------
+    def to_local(self, e: exp.Expression, kind: str, tz: str) -> exp.Expression:
+        """Wall-clock time in ``tz`` (a naive timestamp) of a column value."""
+        raise NotImplementedError
+
+    def from_local(self, e: exp.Expression, tz: str) -> exp.Expression:
+        """The instant (timestamp with time zone) of a naive wall-clock time in ``tz``."""
+        raise NotImplementedError
+
+    def trunc(self, unit: str, naive: exp.Expression) -> exp.Expression:
+        """date_trunc of a naive timestamp; ``week`` is the ISO week (Monday)."""
+        return exp.TimestampTrunc(this=naive, unit=exp.Var(this=unit.upper()))
+
+    def add_units(self, naive: exp.Expression, n: int, unit: str) -> exp.Expression:
+        """naive + n calendar units (day, week, month, quarter, year)."""
+        if unit == "quarter":
+            n, unit = 3 * n, "month"
+        if unit == "week":
+            n, unit = 7 * n, "day"
+        return exp.Add(this=naive, expression=exp.Interval(
+            this=exp.Literal.string(str(n)), unit=exp.Var(this=unit.upper())))
+
+    def extract(self, field: str, naive: exp.Expression) -> exp.Expression:
+        return exp.Extract(this=exp.Var(this=field.upper()), expression=naive)
+
+    def epoch(self, e: exp.Expression, kind: str) -> exp.Expression:
+        """Seconds since 1970-01-01T00:00:00Z as a double (naive values read as UTC)."""
+        raise NotImplementedError
+
+    def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
+        """Timestamp with time zone for epoch seconds."""
+        raise NotImplementedError
+
+    # --- aggregates -----------------------------------------------------------------
+    def agg(self, name: str, arg: exp.Expression | None, q: float | None) -> exp.Expression:
+        if name == "count":
+            return exp.Count(this=arg if arg is not None else exp.Star())
+        if name == "count_distinct":
+            return exp.Count(this=exp.Distinct(expressions=[arg]))
+        if name == "approx_count_distinct":
+            return exp.ApproxDistinct(this=arg)
+        if name == "sum":
+            return exp.Sum(this=arg)
+        if name == "avg":
+            return exp.Avg(this=self.double(arg))
+        if name == "min":
+            return exp.Min(this=arg)
+        if name == "max":
+            return exp.Max(this=arg)
+        if name == "median":
+            return self.quantile(arg, 0.5)
+        if name == "quantile":
+            assert q is not None
+            return self.quantile(arg, q)
+        if name == "stddev_samp":
+            return exp.StddevSamp(this=self.double(arg))
+        if name == "stddev_pop":
+            return exp.StddevPop(this=self.double(arg))
+        if name == "var_samp":
+            return exp.VarianceSamp(this=self.double(arg))
+        if name == "var_pop":
+            return exp.VariancePop(this=self.double(arg))
+        raise ValueError(name)
+
+    def quantile(self, arg: exp.Expression, q: float) -> exp.Expression:
+        """Exact continuous quantile, Hyndman & Fan (1996) type 7 (linear interpolation)."""
+        return exp.WithinGroup(
+            this=exp.Anonymous(this="PERCENTILE_CONT", expressions=[self.number(q)]),
+            expression=exp.Order(expressions=[exp.Ordered(this=self.double(arg))]))
+
+    # --- ordering -------------------------------------------------------------------
+    def order(self, e: exp.Expression, desc: bool, nulls_first: bool) -> list[exp.Ordered]:
+        if self.nulls_order_native:
+            return [exp.Ordered(this=e, desc=desc, nulls_first=nulls_first)]
+        # Emulate: sort on "is null" first, then the value.
+        isnull = exp.Case(ifs=[exp.If(this=exp.Is(this=e, expression=exp.Null()),
+                                      true=exp.Literal.number(0 if nulls_first else 1))],
+                          default=exp.Literal.number(1 if nulls_first else 0))
+        return [exp.Ordered(this=isnull, nulls_first=False),
+                exp.Ordered(this=e, desc=desc, nulls_first=False)]
+
+    def null_safe_eq(self, a: exp.Expression, b: exp.Expression) -> exp.Expression:
+        return exp.NullSafeEQ(this=a, expression=b)

@@ -1,0 +1,56 @@
+"""DuckDB: the embedded default. TIMESTAMPTZ arithmetic uses DuckDB's ICU extension."""
+
+from __future__ import annotations
+
+from sqlglot import exp
+
+from planner.dialects.base import Dialect
+
+
+class DuckDB(Dialect):
+    name = "duckdb"
+    sqlglot = "duckdb"
+    # DuckDB's approx_count_distinct is a HyperLogLog sketch.
+    approx_distinct = ("hyperloglog", None)
+
+    def _utc(self, e: exp.Expression, kind: str) -> exp.Expression:
+        """Column value as TIMESTAMPTZ (naive timestamps and dates are read as UTC)."""
+        if kind == "timestamptz":
+            return e
+        if kind == "date":
+            e = exp.Cast(this=e, to=exp.DataType.build("TIMESTAMP"))
+        return exp.Anonymous(this="timezone", expressions=[exp.Literal.string("UTC"), e])
+
+    def to_local(self, e: exp.Expression, kind: str, tz: str) -> exp.Expression:
+        # timezone(tz, TIMESTAMPTZ) -> naive wall-clock TIMESTAMP in tz
+        return exp.Anonymous(this="timezone",
+                             expressions=[exp.Literal.string(tz), self._utc(e, kind)])
+
+    def from_local(self, e: exp.Expression, tz: str) -> exp.Expression:
+        # timezone(tz, TIMESTAMP) -> TIMESTAMPTZ of that wall-clock time in tz
+        return exp.Anonymous(this="timezone", expressions=[exp.Literal.string(tz), e])
+
+    def trunc(self, unit: str, naive: exp.Expression) -> exp.Expression:
+        # DuckDB's date_trunc('week', ...) is the ISO week (Monday).
+        return exp.Anonymous(this="date_trunc", expressions=[exp.Literal.string(unit), naive])
+
+    def extract(self, field: str, naive: exp.Expression) -> exp.Expression:
+        return exp.Anonymous(this="date_part", expressions=[exp.Literal.string(field), naive])
+
+    def epoch(self, e: exp.Expression, kind: str) -> exp.Expression:
+        return exp.Anonymous(this="epoch", expressions=[self._utc(e, kind)])
+
+    def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
+        return exp.Anonymous(this="to_timestamp", expressions=[seconds])
+
+    def quantile(self, arg: exp.Expression, q: float) -> exp.Expression:
+        # quantile_cont interpolates linearly: Hyndman & Fan type 7.
+        return exp.Anonymous(this="quantile_cont", expressions=[self.double(arg), self.number(q)])
+
+    def agg(self, name, arg, q):
+        if name == "approx_count_distinct":
+            return exp.Anonymous(this="approx_count_distinct", expressions=[arg])
+        return super().agg(name, arg, q)
+
+    def null_safe_eq(self, a: exp.Expression, b: exp.Expression) -> exp.Expression:
+        return exp.NullSafeEQ(this=a, expression=b)

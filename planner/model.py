@@ -1,0 +1,262 @@
+"""The chart request (DESIGN.md vocabulary), validated with pydantic v2.
+
+The JSON Schema of ``ChartRequest`` is published in the OpenAPI document. Type checks that
+need the source's schema (bin on text, avg of a string, unknown columns) happen later in
+``planner.compile``; this module checks the shape of the request on its own.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Annotated, Any, Literal, Union
+
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Discriminator,
+    Field,
+    Tag,
+    field_validator,
+    model_validator,
+)
+
+AggName = Literal[
+    "count", "count_distinct", "approx_count_distinct", "sum", "avg", "min", "max",
+    "median", "quantile", "stddev_samp", "stddev_pop", "var_samp", "var_pop",
+]
+TruncUnit = Literal["year", "quarter", "month", "week", "day", "hour", "minute", "second"]
+ExtractField = Literal[
+    "year", "quarter", "month", "week", "isoyear", "day", "dow", "isodow", "doy",
+    "hour", "minute", "second",
+]
+BinRule = Literal["sturges", "scott", "fd", "sqrt"]
+Scalar = Union[bool, int, float, str]  # bool first: JSON true must not become 1
+ChannelName = Literal["x", "y", "color", "size", "shape", "opacity", "row", "col"]
+
+MAX_BINS = 10_000
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", populate_by_name=True)
+
+
+class Bin(_Strict):
+    """How a number or timestamp key is binned. Exactly one of bins / width / rule."""
+
+    bins: Annotated[int, Field(ge=1, le=MAX_BINS)] | None = Field(
+        None, description="Target number of bins; the width is rounded to a nice number "
+        "(Heckbert 1990) or, on timestamps, to a calendar step.")
+    width: float | None = Field(None, gt=0, description="Bin width h (numbers only).")
+    origin: float | None = Field(None, description="Bin origin x0 (with width).")
+    rule: BinRule | None = Field(None, description="Bin-count rule (numbers only).")
+    limits: tuple[float | str, float | str] | None = Field(
+        None, description="[lo, hi]; rows outside are counted in stats.outside_limits.")
+
+    @field_validator("width", "origin")
+    @classmethod
+    def _finite(cls, v: float | None) -> float | None:
+        if v is not None and not math.isfinite(v):
+            raise ValueError("must be a finite number")
+        return v
+
+    @model_validator(mode="after")
+    def _one_method(self) -> "Bin":
+        chosen = [k for k in ("bins", "width", "rule") if getattr(self, k) is not None]
+        if len(chosen) > 1:
+            raise ValueError(f"give only one of bins, width, rule (got {', '.join(chosen)})")
+        if self.origin is not None and self.width is None:
+            raise ValueError("origin goes with width")
+        if not chosen:
+            self.bins = 20
+        return self
+
+
+class Channel(_Strict):
+    """A key (``column`` without ``agg``) or a measure (``agg``, with ``column`` as input)."""
+
+    column: str | None = Field(None, min_length=1, max_length=256)
+    agg: AggName | None = None
+    q: float | None = Field(None, ge=0, le=1, description="Quantile in [0, 1] for agg=quantile.")
+    bin: Bin | None = None
+    trunc: TruncUnit | None = None
+    extract: ExtractField | None = None
+    tz: str | None = Field(None, min_length=1, max_length=64, description="IANA time zone name.")
+    top: int | None = Field(None, ge=1, le=10_000, description="Keep the N largest groups.")
+    other_label: str = Field("(other)", max_length=256)
+    name: str | None = Field(None, min_length=1, max_length=128, description="Output column name.")
+
+    @model_validator(mode="after")
+    def _consistent(self) -> "Channel":
+        if self.agg is None:
+            if self.column is None:
+                raise ValueError("a channel needs a column (a key) or an agg (a measure)")
+            if self.q is not None:
+                raise ValueError("q goes with agg=quantile")
+        else:
+            key_opts = [k for k in ("bin", "trunc", "extract", "top") if getattr(self, k) is not None]
+            if key_opts:
+                raise ValueError(f"{', '.join(key_opts)} applies to keys, not to a measure (agg)")
+            if self.agg != "count" and self.column is None:
+                raise ValueError(f"agg {self.agg} needs a column")
+            if self.agg == "quantile" and self.q is None:
+                raise ValueError("agg quantile needs q (0..1)")
+            if self.agg != "quantile" and self.q is not None:
+                raise ValueError("q goes with agg=quantile")
+        given = [k for k in ("bin", "trunc", "extract") if getattr(self, k) is not None]
+        if len(given) > 1:
+            raise ValueError(f"use one of bin, trunc, extract (got {', '.join(given)})")
+        return self
+
+    @property
+    def is_measure(self) -> bool:
+        return self.agg is not None
+
+
+class Channels(_Strict):
+    x: Channel | None = None
+    y: Channel | None = None
+    color: Channel | None = None
+    size: Channel | None = None
+    shape: Channel | None = None
+    opacity: Channel | None = None
+    by: list[Channel] = Field(default_factory=list, max_length=16,
+                              description="Extra grouping keys with no visual channel.")
+
+    @model_validator(mode="after")
+    def _not_empty(self) -> "Channels":
+        if not self.by and all(getattr(self, c) is None for c in VISUAL_CHANNELS):
+            raise ValueError("at least one channel is needed")
+        return self
+
+
+VISUAL_CHANNELS = ("x", "y", "color", "size", "shape", "opacity")
+
+
+class Predicate(_Strict):
+    """One column, one or more operators; all must hold."""
+
+    column: str = Field(min_length=1, max_length=256)
+    eq: Scalar | None = None
+    ne: Scalar | None = None
+    lt: Scalar | None = None
+    lte: Scalar | None = None
+    gt: Scalar | None = None
+    gte: Scalar | None = None
+    in_: list[Scalar] | None = Field(None, alias="in", max_length=10_000)
+    not_in: list[Scalar] | None = Field(None, max_length=10_000)
+    is_null: bool | None = None
+    contains: str | None = Field(None, max_length=1024)
+    starts_with: str | None = Field(None, max_length=1024)
+
+    @model_validator(mode="after")
+    def _has_operator(self) -> "Predicate":
+        if not self.operators():
+            raise ValueError(
+                "a predicate needs at least one operator: eq, ne, lt, lte, gt, gte, in, "
+                "not_in, is_null, contains, starts_with")
+        return self
+
+    def operators(self) -> list[tuple[str, Any]]:
+        """(operator name as written in JSON, value) for every operator given."""
+        out = []
+        for field_name, info in type(self).model_fields.items():
+            if field_name == "column":
+                continue
+            v = getattr(self, field_name)
+            if v is not None:
+                out.append((info.alias or field_name, v))
+        return out
+
+
+class AnyOf(_Strict):
+    any: list["Filter"] = Field(min_length=1, max_length=256)
+
+
+class NotOf(_Strict):
+    not_: "Filter" = Field(alias="not")
+
+
+def _filter_tag(v: Any) -> str:
+    if isinstance(v, dict):
+        if "any" in v:
+            return "any"
+        if "not" in v:
+            return "not"
+        return "predicate"
+    if isinstance(v, AnyOf):
+        return "any"
+    if isinstance(v, NotOf):
+        return "not"
+    return "predicate"
+
+
+Filter = Annotated[
+    Union[
+        Annotated[Predicate, Tag("predicate")],
+        Annotated[AnyOf, Tag("any")],
+        Annotated[NotOf, Tag("not")],
+    ],
+    Discriminator(_filter_tag),
+]
+AnyOf.model_rebuild()
+NotOf.model_rebuild()
+
+#: Discriminator tags that pydantic inserts into error locations; stripped from pointers.
+FILTER_TAGS = frozenset({"predicate", "any", "not"})
+
+
+class Facet(_Strict):
+    row: Channel | None = None
+    col: Channel | None = None
+    max_groups: int | None = Field(None, ge=1, le=100_000,
+                                   description="At most this many result rows per facet cell.")
+
+    @model_validator(mode="after")
+    def _keys(self) -> "Facet":
+        if self.row is None and self.col is None:
+            raise ValueError("a facet needs row and/or col")
+        for nm in ("row", "col"):
+            ch = getattr(self, nm)
+            if ch is not None and ch.is_measure:
+                raise ValueError(f"facet {nm} must be a key (a column), not an agg")
+        return self
+
+
+class SortItem(_Strict):
+    channel: ChannelName
+    desc: bool = False
+
+
+class Reduce(_Strict):
+    method: Literal["m4"]
+    width_px: int = Field(ge=1, le=20_000)
+
+
+class ChartRequest(_Strict):
+    """A chart request: which columns sit on which channels, filtered, binned, faceted."""
+
+    source: str = Field(min_length=1, max_length=256)
+    channels: Channels
+    where: list[Filter] = Field(default_factory=list, max_length=256)
+    facet: Facet | None = None
+    stack: Literal["sum", "fraction", "centered"] | None = None
+    empty_bins: Literal["omit", "zero", "null"] = "omit"
+    sort: list[SortItem] = Field(default_factory=list, max_length=16)
+    limit: int = Field(10_000, ge=1, le=1_000_000)
+
+    def keyed_channels(self) -> list[tuple[tuple[str | int, ...], str, Channel]]:
+        """Every channel with its path in the request and its channel name, in order:
+        x, y, color, size, shape, opacity, by[i], facet row, facet col."""
+        out: list[tuple[tuple[str | int, ...], str, Channel]] = []
+        for nm in VISUAL_CHANNELS:
+            ch = getattr(self.channels, nm)
+            if ch is not None:
+                out.append((("channels", nm), nm, ch))
+        for i, ch in enumerate(self.channels.by):
+            out.append((("channels", "by", i), "by", ch))
+        if self.facet is not None:
+            for nm in ("row", "col"):
+                ch = getattr(self.facet, nm)
+                if ch is not None:
+                    out.append((("facet", nm), nm, ch))
+        return out
