@@ -1,0 +1,52 @@
+# sluice — the two commands a newcomer needs: `make serve` and `make test`.
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+PORT   ?= 8000
+HOST   ?= 127.0.0.1
+DEMO   ?= data/demo.duckdb
+ROWS   ?= 2000000
+PYTEST_ARGS ?=
+
+.PHONY: serve test demo install install-test services bench load fuzz clean help
+
+help:
+	@echo "make serve   build the venv and the demo data, serve on $(HOST):$(PORT) (PORT=... overrides)"
+	@echo "make test    build the venv with test extras, start PostgreSQL/MariaDB if needed, run the suite"
+	@echo "make demo    (re)build the demo DuckDB file ($(ROWS) rows; ROWS=... overrides)"
+	@echo "make bench   benchmarks (not tests); make load: bounded load run; make fuzz: deep API fuzzing"
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install -q --upgrade pip
+
+$(VENV)/.installed: pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install -q -e .
+	touch $@
+
+$(VENV)/.installed-test: pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install -q -e ".[test]"
+	touch $@ $(VENV)/.installed
+
+install: $(VENV)/.installed
+install-test: $(VENV)/.installed-test
+
+$(DEMO): | $(VENV)/.installed
+	@mkdir -p $(dir $(DEMO))
+	$(BIN)/sluice demo --rows $(ROWS) --out $(DEMO)
+
+demo: $(VENV)/.installed
+	@mkdir -p $(dir $(DEMO))
+	$(BIN)/sluice demo --rows $(ROWS) --out $(DEMO)
+
+serve: $(VENV)/.installed $(DEMO)
+	SLUICE_DEMO_PATH=$(DEMO) $(BIN)/uvicorn app.main:app --host $(HOST) --port $(PORT)
+
+services:
+	bash .ci/services.sh
+
+test: $(VENV)/.installed-test services
+	$(BIN)/python -m pytest -q -n 2 --dist loadfile $(PYTEST_ARGS)
+
+clean:
+	rm -rf $(VENV) .pytest_cache .hypothesis *.egg-info
