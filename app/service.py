@@ -114,7 +114,7 @@ class ChartService:
 
     def _bins(self, plan: Plan) -> dict[str, Any]:
         out = plan.bins_meta()
-        tz = {k.channel if k.channel != "by" else f"by{k.path[-1]}": k.spec.tz for k in plan.keys}
+        tz = {k.label: k.spec.tz for k in plan.keys}
         for ch, b in out.items():
             for key in ("start", "stop"):
                 if not isinstance(b.get(key), (int, float)) and b.get(key) is not None:
@@ -130,10 +130,11 @@ class ChartService:
 
         if extra is not None:
             matched = int(extra.get(f"{INTERNAL}matched") or 0)
-            outside = {k: int(extra.get(k.outside_flag) or 0) for k in plan.keys if k.has_limits}
+            outside = {k.label: int(extra.get(k.outside_flag) or 0) for k in plan.keys if k.has_limits}
         else:
             matched = int(first(f"{INTERNAL}matched") or 0)
-            outside = {k: int(first(f"{INTERNAL}out{k.index}") or 0) for k in plan.keys if k.has_limits}
+            outside = {k.label: int(first(f"{INTERNAL}out{k.index}") or 0)
+                       for k in plan.keys if k.has_limits}
         groups = int(first(f"{INTERNAL}groups") or 0)
 
         tz_of = {}
@@ -151,6 +152,17 @@ class ChartService:
             if dom is not None:
                 domains[c.name] = dom
         bins = self._bins(plan)
+        for k in plan.keys:  # width + origin without limits: the layout is what the data used
+            b = bins.get(k.label)
+            if k.mode == "nbin" and b is not None and b.get("count") is None:
+                lo = domains.get(k.names[0])
+                hi = domains.get(k.names[1])
+                if lo and hi:
+                    b["start"], b["stop"] = lo[0], hi[1]
+                    b["count"] = int(round((hi[1] - lo[0]) / b["width"]))
+                else:
+                    b["start"] = b["stop"] = None
+                    b["count"] = 0
         for ch, b in bins.items():
             domains.setdefault(ch, [b.get("start"), b.get("stop")])
         truncated = groups > table.num_rows
@@ -163,8 +175,7 @@ class ChartService:
             "statements": len(statements),
         }
         if outside:
-            stats["outside_limits"] = {(k.channel if k.channel != "by" else f"by{k.path[-1]}"): v
-                                       for k, v in outside.items()}
+            stats["outside_limits"] = outside
         meta: dict[str, Any] = {
             "columns": columns, "bins": bins, "domains": domains, "stats": stats,
             "sql": statements, "dialect": plan.dialect.name,

@@ -70,6 +70,11 @@ class Key:
     tlimits: tuple[dt.datetime, dt.datetime] | None = None
 
     @property
+    def label(self) -> str:
+        """Channel name in ``bins`` / ``stats``: x, y, ..., row, col, or by0, by1, ..."""
+        return f"by{self.path[-1]}" if self.channel == "by" else self.channel
+
+    @property
     def internal(self) -> str:
         return f"{INTERNAL}k{self.index}"
 
@@ -166,7 +171,7 @@ class Plan:
         """``bins`` of the response: the layout of every binned key, by channel name."""
         out: dict[str, dict[str, Any]] = {}
         for k in self.keys:
-            label = _channel_label(k)
+            label = k.label
             if k.mode == "nbin" and k.nbins is not None:
                 b = k.nbins
                 out[label] = {"start": b.start, "stop": b.stop, "width": b.width,
@@ -180,10 +185,6 @@ class Plan:
         return out
 
 
-def _channel_label(k: Key) -> str:
-    return f"by{k.path[-1]}" if k.channel == "by" else k.channel
-
-
 # =====================================================================================
 # step 1: check the request against the schema
 # =====================================================================================
@@ -192,6 +193,9 @@ def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect) -> Pl
     keys: list[Key] = []
     measures: list[Measure] = []
     for path, channel, ch in request.keyed_channels():
+        if ch.is_measure and channel in ("row", "col"):
+            raise PlanError(pointer(*path, "agg"), f"facet {channel} must be a key (a column), "
+                            "not a measure (agg)")
         if ch.is_measure:
             measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect))
         else:
@@ -376,7 +380,7 @@ def _assign_names(plan: Plan) -> None:
     # name in request order: x, y, color, size, shape, opacity, by[i], row, col
     for it in sorted(plan.keys + plan.measures, key=lambda x: _path_rank(x.path)):
         spec = it.spec
-        label = _channel_label(it) if isinstance(it, Key) else it.channel
+        label = it.label if isinstance(it, Key) else it.channel
         if isinstance(it, Measure):
             it.name = claim(spec.name or _measure_name(spec), label)
             plan.columns.append(OutputColumn(it.name, it.channel, "measure", spec.column))
@@ -715,7 +719,7 @@ def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
                         true=ref.copy())],
             default=d.string(k.spec.other_label))
     if k.mode == "trunc":
-        return d.trunc(k.spec.trunc, d.to_local(ref, k.col.kind, k.tz))
+        return _trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz)
     if k.mode == "extract":
         return d.extract(k.spec.extract, d.to_local(ref, k.col.kind, k.tz))
     if k.mode == "nbin":
@@ -757,6 +761,22 @@ def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
     raise AssertionError(k.mode)
 
 
+SUB_DAY_UNITS = ("hour", "minute", "second")
+
+
+def _trunc_key(d: Dialect, unit: str, ref: exp.Expression, kind: str, tz: str) -> exp.Expression:
+    """Grouping value of ``trunc``. Day and longer units truncate the wall-clock time in tz
+    (a naive timestamp, turned back into an instant on output). Hour and shorter units
+    subtract the wall-clock remainder from the instant instead, so the hour repeated when
+    clocks fall back stays two groups and half-hour offsets truncate correctly."""
+    local = d.to_local(ref, kind, tz)
+    if unit not in SUB_DAY_UNITS:
+        return d.trunc(unit, local)
+    remainder = exp.Sub(this=d.epoch(local, "timestamp"),
+                        expression=d.epoch(d.trunc(unit, local.copy()), "timestamp"))
+    return d.from_epoch(exp.Sub(this=d.epoch(ref.copy(), kind), expression=exp.Paren(this=remainder)))
+
+
 def _key_outputs(d: Dialect, k: Key, src: str | None) -> list[exp.Expression]:
     """Output columns of a key, computed from its internal grouping value."""
     v = _ref(k.internal, src)
@@ -779,6 +799,8 @@ def _key_outputs(d: Dialect, k: Key, src: str | None) -> list[exp.Expression]:
             hi = d.from_local(d.add_units(v.copy(), 1, step.unit), k.tz)
         return [exp.alias_(lo, k.names[0], quoted=True), exp.alias_(hi, k.names[1], quoted=True)]
     if k.mode == "trunc":
+        if k.spec.trunc in SUB_DAY_UNITS:
+            return [exp.alias_(v, k.names[0], quoted=True)]
         return [exp.alias_(d.from_local(v, k.tz), k.names[0], quoted=True)]
     return [exp.alias_(v, k.names[0], quoted=True)]
 
@@ -920,7 +942,9 @@ def _main_statement(plan: Plan) -> exp.Select:
     outer = exp.select(exp.Star()).from_(_table(f"{INTERNAL}final"))
     if cap is not None:
         outer = outer.where(exp.LTE(this=_ref(f"{INTERNAL}frank"), expression=d.number(cap)))
-    outer = outer.order_by(*_sort_terms(plan, internal=False)) if keys or measures else outer
+    terms = _sort_terms(plan, internal=False)
+    if terms:
+        outer = outer.order_by(*terms)
     outer = outer.limit(d.number(req.limit))
     for name, q in ctes:
         outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q)

@@ -14,6 +14,7 @@ from pydantic import (
     BaseModel,
     ConfigDict,
     Discriminator,
+    StrictBool,
     Field,
     Tag,
     field_validator,
@@ -144,7 +145,7 @@ class Predicate(_Strict):
     gte: Scalar | None = None
     in_: list[Scalar] | None = Field(None, alias="in", max_length=10_000)
     not_in: list[Scalar] | None = Field(None, max_length=10_000)
-    is_null: bool | None = None
+    is_null: StrictBool | None = None
     contains: str | None = Field(None, max_length=1024)
     starts_with: str | None = Field(None, max_length=1024)
 
@@ -215,16 +216,12 @@ class Facet(_Strict):
     def _keys(self) -> "Facet":
         if self.row is None and self.col is None:
             raise ValueError("a facet needs row and/or col")
-        for nm in ("row", "col"):
-            ch = getattr(self, nm)
-            if ch is not None and ch.is_measure:
-                raise ValueError(f"facet {nm} must be a key (a column), not an agg")
         return self
 
 
 class SortItem(_Strict):
     channel: ChannelName
-    desc: bool = False
+    desc: StrictBool = False
 
 
 class Reduce(_Strict):

@@ -174,7 +174,7 @@ class Dialect:
         if name == "stddev_pop":
             return exp.StddevPop(this=self.double(arg))
         if name == "var_samp":
-            return exp.VarianceSamp(this=self.double(arg))
+            return exp.Variance(this=self.double(arg))
         if name == "var_pop":
             return exp.VariancePop(this=self.double(arg))
         raise ValueError(name)
