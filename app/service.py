@@ -192,6 +192,7 @@ class ChartService:
         tz_of = {n: k.spec.tz for k in result.plan.keys for n in k.names}
         data = {n: column_values(result.table.column(n), tz_of.get(n))
                 for n in result.table.column_names}
-        out = dict(result.meta)
-        out["data"] = data
+        meta = result.meta
+        out = {"columns": meta["columns"], "data": data}
+        out.update((k, v) for k, v in meta.items() if k != "columns")
         return out
