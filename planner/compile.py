@@ -511,9 +511,13 @@ def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect) -> ex
 
 
 def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect) -> exp.Expression | None:
-    if not req.where:
-        return None
     parts = [_compile_filter(f, ("where", i), schema, d) for i, f in enumerate(req.where)]
+    if req.filter_sql is not None:  # allow-listed SQL text, rebuilt from the catalog
+        from planner.filter_sql import compile_filter_sql
+
+        parts.append(compile_filter_sql(req.filter_sql, schema, d))
+    if not parts:
+        return None
     return exp.and_(*parts) if len(parts) > 1 else parts[0]
 
 

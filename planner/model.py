@@ -240,6 +240,15 @@ class ChartRequest(_Strict):
     empty_bins: Literal["omit", "zero", "null"] = "omit"
     sort: list[SortItem] = Field(default_factory=list, max_length=16)
     limit: int = Field(10_000, ge=1, le=1_000_000)
+    filter_sql: str | None = Field(
+        None, min_length=1, max_length=4096,
+        description="An extra condition written as SQL (DuckDB-flavoured generic SQL), ANDed "
+        "with `where`. Only an allow-list is accepted: catalog columns, literals (numbers, "
+        "strings, true/false, NULL, DATE '...', TIMESTAMP '...'), comparisons, AND/OR/NOT, "
+        "IN (list), BETWEEN, IS [NOT] NULL, [I]LIKE, + - * / %, parentheses and the functions "
+        "lower, upper, trim, length, abs, round, floor, ceil, coalesce. Anything else is a "
+        "422 whose pointer is /filter_sql. The server may set a lower length cap.",
+        examples=["fee > 10 AND depot IN ('North Yard')"])
 
     def keyed_channels(self) -> list[tuple[tuple[str | int, ...], str, Channel]]:
         """Every channel with its path in the request and its channel name, in order:
