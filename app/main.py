@@ -3,25 +3,29 @@
 from __future__ import annotations
 
 import logging
+import sys
 import time
 from contextlib import asynccontextmanager
 from typing import Any
 
 from fastapi import FastAPI, Query, Request
 from fastapi.exceptions import RequestValidationError
-from starlette.responses import Response
+from starlette.responses import FileResponse, Response
+from starlette.staticfiles import StaticFiles
 
+from app import observability
 from app.catalog import Catalog, UnknownSource
 from app.encode import ARROW_STREAM, arrow_stream, dumps
 from app.engines import EngineError, EngineUnavailable
 from app.problems import PROBLEM_JSON, Problem, from_plan_error, problem_response, validation_handler
 from app.service import ChartService
-from app.settings import Settings, load_settings
+from app.settings import ConfigError, Settings, load_settings
 from planner.dialects import DIALECTS
 from planner.errors import PlanError, nearest
-from planner.model import ChartRequest
+from planner.model import BatchRequest, ChartRequest
 
 log = logging.getLogger("sluice")
+STATIC_DIR = __import__("pathlib").Path(__file__).with_name("static")
 
 
 class JSONResponse(Response):
@@ -57,6 +61,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.catalog = catalog
     app.state.service = service
+    metrics = app.state.metrics = observability.Metrics()  # one registry per app
+    metrics.declare_sources(catalog.names())
 
     # ---- errors -----------------------------------------------------------------------
     app.add_exception_handler(RequestValidationError, validation_handler)
@@ -104,6 +110,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         """Run a chart request and return the mark-ready table (JSON, or Arrow IPC stream
         when the client accepts ``application/vnd.apache.arrow.stream``)."""
         result = service.run(req)
+        observability.record_chart(req.source, result.meta, result.timing)
         t0 = time.perf_counter()
         meta = dict(result.meta)
         meta["cache"] = "miss"
@@ -118,12 +125,40 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         payload["timing_ms"] = timing
         return JSONResponse(payload)
 
+    @app.post("/v1/batch", responses=_problem_responses(), tags=["charts"])
+    def batch(req: BatchRequest) -> Response:
+        """Several charts on one source. Each result is the chart's answer, or its problem
+        document (pointer prefixed with ``/charts/<i>``); the batch itself answers 200."""
+        service.check_source(req.source)
+        results = []
+        for i, chart in enumerate(req.charts):
+            if chart.source is not None and chart.source != req.source:
+                results.append(Problem(422, "invalid-request", "Chart names another source",
+                                       f"a batch runs on one source ({req.source!r})",
+                                       f"/charts/{i}/source").body())
+                continue
+            full = ChartRequest.model_validate(
+                chart.model_dump(by_alias=True, exclude_none=True) | {"source": req.source})
+            try:
+                result = service.run(full)
+            except PlanError as e:
+                prob = from_plan_error(e)
+                prob.ptr = f"/charts/{i}{prob.ptr}" if prob.ptr is not None else f"/charts/{i}"
+                results.append(prob.body())
+                continue
+            payload = service.to_json(result)
+            payload["cache"] = "miss"
+            payload["timing_ms"] = result.timing
+            results.append(payload)
+        return JSONResponse({"source": req.source, "results": results})
+
     @app.post("/v1/sql", responses=_problem_responses(), tags=["charts"])
     def plan_sql(req: ChartRequest,
                  dialect: str | None = Query(None, description="Target dialect; default: the "
                                              "source's own engine. One of: " + ", ".join(sorted(DIALECTS)))
                  ) -> Response:
         """Plan only: the SQL sluice would run, for ``dialect``."""
+        observability.note_source(req.source)
         return JSONResponse(service.plan_sql(req, dialect))
 
     @app.get("/v1/sources", tags=["sources"])
@@ -149,25 +184,54 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @app.get("/healthz", tags=["operations"])
     def healthz() -> Response:
+        """Liveness: the process is up and answering (touches no source)."""
         return JSONResponse({"status": "ok"})
 
     @app.get("/readyz", tags=["operations"])
     def readyz() -> Response:
+        """Readiness: every configured source answers; 503 with per-source detail if not."""
         detail, ok = {}, True
         for name in catalog.names():
+            t0 = time.perf_counter()
+            engine = catalog.config(name).engine
             try:
                 entry = catalog.entry(name)
-                detail[name] = {"ready": True, "row_count": entry.row_count}
+                detail[name] = {"ready": True, "engine": engine, "row_count": entry.row_count,
+                                "columns": len(entry.schema.columns)}
             except EngineError as e:
                 ok = False
-                detail[name] = {"ready": False, "error": e.message}
+                detail[name] = {"ready": False, "engine": engine, "error": e.message}
+            except Exception as e:  # a probe must answer, whatever the engine raised
+                ok = False
+                detail[name] = {"ready": False, "engine": engine, "error": f"{type(e).__name__}: {e}"}
+            detail[name]["check_ms"] = round((time.perf_counter() - t0) * 1000.0, 3)
         return JSONResponse({"ready": ok, "sources": detail}, status_code=200 if ok else 503)
 
+    @app.get("/metrics", tags=["operations"], response_class=Response)
+    def metrics_text() -> Response:
+        """Prometheus text exposition of this app's metrics."""
+        body, ctype = metrics.render()
+        return Response(body, media_type=ctype)
+
+    # ---- preview page (app/static) ----------------------------------------------------
+    @app.get("/", include_in_schema=False)
+    def preview() -> Response:
+        return FileResponse(STATIC_DIR / "index.html", media_type="text/html")
+
+    app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
+
+    # outermost: times, counts and logs every request, 413s and 404s included
+    app.add_middleware(observability.ObservabilityMiddleware, metrics=metrics,
+                       log_requests=settings.request_log)
     return app
 
 
 def _lazy_app() -> FastAPI:
-    return create_app()
+    try:
+        return create_app()
+    except ConfigError as e:  # fail fast and readably under `uvicorn app.main:app`
+        print(f"sluice: config error: {e}", file=sys.stderr)
+        raise SystemExit(3) from None
 
 
 app = _lazy_app()

@@ -11,12 +11,12 @@ from typing import Any
 
 import pyarrow as pa
 
-from app.catalog import Catalog, SourceEntry
+from app.catalog import Catalog, SourceEntry, UnknownSource
 from app.encode import column_values, domain, instant_text, normalize_column, type_name
 from app.engines import Engine
 from planner.compile import INTERNAL, Plan, prepare
 from planner.dialects import DIALECTS, get_dialect
-from planner.errors import PlanError, pointer
+from planner.errors import PlanError, nearest, pointer
 from planner.model import ChartRequest
 
 
@@ -38,17 +38,17 @@ class ChartService:
         self.catalog = catalog
 
     # ---- planning ------------------------------------------------------------------
-    def _plan(self, req: ChartRequest, dialect_name: str | None = None) -> tuple[Plan, SourceEntry, Engine]:
-        from app.catalog import UnknownSource
-        from planner.errors import nearest
-
+    def check_source(self, name: str) -> None:
+        """404 (pointer /source) with the nearest names when ``name`` is not configured."""
         try:
-            self.catalog.config(req.source)
+            self.catalog.config(name)
         except UnknownSource as e:
-            sugg = nearest(req.source, e.known)
-            raise PlanError(pointer("source"), f"unknown source {req.source!r}; known sources: "
+            raise PlanError(pointer("source"), f"unknown source {name!r}; known sources: "
                             f"{', '.join(e.known)}", slug="unknown-source", title="Unknown source",
-                            status=404, suggestions=sugg) from None
+                            status=404, suggestions=nearest(name, e.known)) from None
+
+    def _plan(self, req: ChartRequest, dialect_name: str | None = None) -> tuple[Plan, SourceEntry, Engine]:
+        self.check_source(req.source)
         engine = self.catalog.engine(req.source)
         entry = self.catalog.entry(req.source)
         if dialect_name is None:

@@ -266,3 +266,16 @@ class ChartRequest(_Strict):
                 if ch is not None:
                     out.append((("facet", nm), nm, ch))
         return out
+
+
+class BatchChart(ChartRequest):
+    """A chart inside a batch: ``source`` comes from the batch."""
+
+    source: str | None = Field(None, min_length=1, max_length=256)  # type: ignore[assignment]
+
+
+class BatchRequest(_Strict):
+    """Several charts on one source, answered together (each answer or problem in order)."""
+
+    source: str = Field(min_length=1, max_length=256)
+    charts: list[BatchChart] = Field(min_length=1, max_length=32)
