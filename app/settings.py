@@ -9,6 +9,23 @@ With no config the service serves the demo DuckDB file that ``make serve`` build
 
 Relative paths are resolved against the config file's folder (or the working directory for
 the built-in default).
+
+Environment overrides (applied on top of the file, or of the built-in demo config):
+
+* ``SLUICE_<KEY>`` sets ``[server] <key>``, e.g. ``SLUICE_MAX_LIMIT=5000``;
+* ``SLUICE_<SECTION>__<KEY>[__<KEY>...]`` sets any key by its TOML path, ``__`` between
+  parts, e.g. ``SLUICE_SERVER__MAX_BODY_BYTES=2000000``,
+  ``SLUICE_SOURCES__DELIVERIES__PATH=/data/demo.duckdb``,
+  ``SLUICE_SOURCES__SALES__DSN=postgresql://...`` (a source named only in the environment
+  is created; it then needs ``ENGINE`` and ``TABLE`` too).
+
+Names are case-insensitive. Values are strings converted to the key's type. ``SLUICE_CONFIG``
+and ``SLUICE_DEMO_PATH`` are not overrides; other ``SLUICE_*`` names are left to the parts of
+sluice that read them, except near-misses of a valid override name, which are reported.
+
+Everything is validated before the service starts: a :class:`ConfigError` names the file (or
+the environment variable), the key, and the fix; an unknown key comes with the nearest valid
+one.
 """
 
 from __future__ import annotations
@@ -25,7 +42,16 @@ ENGINES = ("duckdb", "postgres", "mysql", "sqlite", "clickhouse", "spark", "trin
 
 
 class ConfigError(Exception):
-    """A config file the service cannot start with. The message names file, key and fix."""
+    """A config the service cannot start with. The message names file, key and fix.
+
+    ``file`` is the config file (or ``<built-in demo config>``), ``key`` the dotted TOML key
+    (``sources.deliveries.path``), ``env`` the environment variable the value came from, if any.
+    """
+
+    def __init__(self, message: str, *, file: str | None = None, key: str | None = None,
+                 env: str | None = None, fix: str | None = None) -> None:
+        super().__init__(message)
+        self.file, self.key, self.env, self.fix = file, key, env, fix
 
 
 @dataclass
@@ -42,70 +68,248 @@ class SourceConfig:
 class Settings:
     sources: dict[str, SourceConfig]
     config_path: str | None = None
+    # [server] keys: every field below (int, float, bool or str) is a valid [server] key and
+    # SLUICE_<NAME> override; add a field here to add a setting.
     max_limit: int = 100_000
     max_body_bytes: int = 1_000_000
+    request_log: bool = True  # one JSON log line per request on the "sluice.access" logger
 
     @property
     def source_names(self) -> list[str]:
         return sorted(self.sources)
 
 
-def _fail(path: str, key: str, msg: str) -> ConfigError:
-    return ConfigError(f"{path}: [{key}] {msg}")
+#: keys every source may carry; ``options`` is a free table passed to the engine unchecked
+SOURCE_KEYS = ("engine", "table", "path", "dsn", "options")
+#: engine options a source may carry at its top level (checked); anything else engine-specific
+#: goes under ``[sources.NAME.options]``. Engine authors: list your options here.
+ENGINE_OPTIONS: dict[str, tuple[str, ...]] = {
+    "duckdb": ("memory_limit", "threads"),
+}
+TOP_KEYS = ("sources", "server")
+#: environment variables that are not overrides
+ENV_RESERVED = ("SLUICE_CONFIG", "SLUICE_DEMO_PATH")
+ENV_PREFIX = "SLUICE_"
 
 
-def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | None = None) -> Settings:
+def _server_fields() -> dict[str, type]:
+    """[server] keys: the typed fields of Settings (other than sources/config_path)."""
+    import dataclasses
+    import typing
+
+    hints = typing.get_type_hints(Settings)
+    return {f.name: hints[f.name] for f in dataclasses.fields(Settings)
+            if f.name not in ("sources", "config_path") and hints[f.name] in (int, float, bool, str)}
+
+
+def _nearest_key(name: str, valid: list[str] | tuple[str, ...], cutoff: float = 0.5) -> str:
+    import difflib
+
+    lowered = {v.lower(): v for v in valid}
+    hits = difflib.get_close_matches(name.lower(), list(lowered), n=1, cutoff=cutoff)
+    return f"did you mean {lowered[hits[0]]!r}? " if hits else ""
+
+
+class _Ctx:
+    """Where values came from, so an error can name the file or the environment variable."""
+
+    def __init__(self, path: str, origins: dict[tuple[str, ...], str] | None = None) -> None:
+        self.path = path
+        self.origins = origins or {}
+
+    def fail(self, key: tuple[str, ...], msg: str, fix: str | None = None) -> ConfigError:
+        dotted = ".".join(key)
+        env = self.origins.get(key)
+        where = f"{self.path} (value from environment variable {env})" if env else self.path
+        text = f"{where}: [{dotted}] {msg}"
+        if fix:
+            text += f"; {fix}"
+        return ConfigError(text, file=self.path, key=dotted, env=env, fix=fix)
+
+
+def _type_word(t: type) -> str:
+    return {int: "an integer", float: "a number", bool: "true or false", str: "a string"}[t]
+
+
+def _coerce(ctx: _Ctx, key: tuple[str, ...], value: Any, t: type, example: str) -> Any:
+    """Check ``value`` is a ``t``; strings from the environment are converted."""
+    if key in ctx.origins and isinstance(value, str) and t is not str:
+        text = value.strip()
+        try:
+            if t is bool:
+                if text.lower() in ("1", "true", "yes", "on"):
+                    return True
+                if text.lower() in ("0", "false", "no", "off"):
+                    return False
+                raise ValueError(text)
+            return t(text)
+        except ValueError:
+            raise ctx.fail(key, f"is {value!r}, which is not {_type_word(t)}",
+                           f"set {ctx.origins[key]}={example}") from None
+    ok = isinstance(value, t) and not (t in (int, float) and isinstance(value, bool))
+    if t is float and isinstance(value, int) and not isinstance(value, bool):
+        return float(value)
+    if not ok:
+        raise ctx.fail(key, f"is {value!r} ({type(value).__name__}), not {_type_word(t)}",
+                       f"write {key[-1]} = {example}")
+    return value
+
+
+def _check_unknown(ctx: _Ctx, prefix: tuple[str, ...], got: dict[str, Any], valid: list[str] | tuple[str, ...],
+                   hint: str = "") -> None:
+    for k in got:
+        if k not in valid:
+            raise ctx.fail(prefix + (k,), "unknown key",
+                           f"{_nearest_key(k, valid)}valid keys here: {', '.join(valid)}{hint}")
+
+
+def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | None = None,
+                   origins: dict[tuple[str, ...], str] | None = None) -> Settings:
+    """Validate a parsed config and build Settings. Raises ConfigError naming file, key, fix."""
     base = base or Path.cwd()
+    ctx = _Ctx(path, origins)
+    _check_unknown(ctx, (), data, TOP_KEYS)
     raw_sources = data.get("sources")
     if not isinstance(raw_sources, dict) or not raw_sources:
-        raise _fail(path, "sources", "no sources: add a table like [sources.NAME] with "
-                    "engine, table and path or dsn")
+        raise ctx.fail(("sources",), "no sources", "add a table like [sources.NAME] with "
+                       "engine, table and path or dsn")
     sources: dict[str, SourceConfig] = {}
     for name, s in raw_sources.items():
-        key = f"sources.{name}"
+        key = ("sources", name)
         if not isinstance(s, dict):
-            raise _fail(path, key, "must be a table with engine, table and path or dsn")
+            raise ctx.fail(key, "must be a table with engine, table and path or dsn",
+                           f"write [sources.{name}] on its own line, then engine = ..., table = ...")
         engine = s.get("engine")
         if engine not in ENGINES:
-            raise _fail(path, f"{key}.engine", f"is {engine!r}; use one of {', '.join(ENGINES)}")
+            near = _nearest_key(str(engine), ENGINES) if isinstance(engine, str) else ""
+            raise ctx.fail(key + ("engine",), f"is {engine!r}" if engine is not None else "is missing",
+                           f"{near}use one of {', '.join(ENGINES)}")
+        valid = list(SOURCE_KEYS) + list(ENGINE_OPTIONS.get(engine, ()))
+        _check_unknown(ctx, key, s, valid,
+                       f" (an engine-specific option goes under [sources.{name}.options])")
         table = s.get("table")
-        if not isinstance(table, str) or not table:
-            raise _fail(path, f"{key}.table", "is missing: name the table (or schema.table) to chart")
+        if table is None or table == "":
+            raise ctx.fail(key + ("table",), "is missing", "name the table (or schema.table) to chart, "
+                           'e.g. table = "deliveries"')
+        table = _coerce(ctx, key + ("table",), table, str, '"deliveries"')
         src_path = s.get("path")
         if src_path is not None:
-            p = Path(src_path)
+            src_path = _coerce(ctx, key + ("path",), src_path, str, '"data/demo.duckdb"')
+            p = Path(src_path).expanduser()
             src_path = str(p if p.is_absolute() else (base / p))
         if engine in ("duckdb", "sqlite") and not src_path:
-            raise _fail(path, f"{key}.path", f"is missing: a {engine} source needs path = \"file\"")
-        known = {"engine", "table", "path", "dsn"}
+            raise ctx.fail(key + ("path",), "is missing", f'a {engine} source needs path = "FILE"')
+        dsn = s.get("dsn")
+        if dsn is not None:
+            dsn = _coerce(ctx, key + ("dsn",), dsn, str, '"postgresql://user@host/db"')
+        options = {k: v for k, v in s.items() if k not in SOURCE_KEYS}
+        extra = s.get("options", {})
+        if not isinstance(extra, dict):
+            raise ctx.fail(key + ("options",), "must be a table", f"write [sources.{name}.options]")
+        options.update(extra)
         sources[name] = SourceConfig(name=name, engine=engine, table=table, path=src_path,
-                                     dsn=s.get("dsn"),
-                                     options={k: v for k, v in s.items() if k not in known})
+                                     dsn=dsn, options=options)
     server = data.get("server", {})
+    if not isinstance(server, dict):
+        raise ctx.fail(("server",), "must be a table", "write [server] on its own line")
+    fields = _server_fields()
+    _check_unknown(ctx, ("server",), server, list(fields))
     st = Settings(sources=sources, config_path=path)
-    if "max_limit" in server:
-        st.max_limit = int(server["max_limit"])
-    if "max_body_bytes" in server:
-        st.max_body_bytes = int(server["max_body_bytes"])
+    for k, t in fields.items():
+        if k in server:
+            default = getattr(st, k)
+            example = str(default).lower() if t is bool else repr(default) if t is str else f"{default}"
+            v = _coerce(ctx, ("server", k), server[k], t, example)
+            if t in (int, float) and v <= 0:
+                raise ctx.fail(("server", k), f"is {v}; it must be positive", f"e.g. {k} = {default}")
+            setattr(st, k, v)
     return st
 
 
-def load_settings(path: str | os.PathLike[str] | None = None) -> Settings:
-    """Read the config named by ``path`` or ``SLUICE_CONFIG``; the demo source otherwise."""
+def _env_name_of(parts: tuple[str, ...]) -> str:
+    return ENV_PREFIX + "__".join(p.upper() for p in parts)
+
+
+def apply_env(data: dict[str, Any], environ: dict[str, str] | None = None
+              ) -> tuple[dict[str, Any], dict[tuple[str, ...], str]]:
+    """Overlay ``SLUICE_*`` overrides on a parsed config. Returns (new data, origins)."""
+    import copy
+
+    environ = dict(os.environ if environ is None else environ)
+    data = copy.deepcopy(data)
+    origins: dict[tuple[str, ...], str] = {}
+    fields = list(_server_fields())
+    shortcuts = {ENV_PREFIX + f.upper(): f for f in fields}
+    for var in sorted(environ):
+        if not var.upper().startswith(ENV_PREFIX) or var.upper() in ENV_RESERVED:
+            continue
+        value = environ[var]
+        upper = var.upper()
+        if upper in shortcuts:
+            parts: tuple[str, ...] = ("server", shortcuts[upper])
+        elif "__" in upper:
+            raw = [p.lower() for p in upper[len(ENV_PREFIX):].split("__")]
+            if any(not p for p in raw):
+                raise ConfigError(f"environment variable {var}: empty part between '__'",
+                                  env=var, fix="e.g. SLUICE_SOURCES__DELIVERIES__PATH=/data/demo.duckdb")
+            if raw[0] not in TOP_KEYS:
+                raise ConfigError(
+                    f"environment variable {var}: unknown section {raw[0]!r}; "
+                    f"{_nearest_key(raw[0], TOP_KEYS)}use SLUICE_SERVER__KEY or SLUICE_SOURCES__NAME__KEY",
+                    env=var, key=".".join(raw))
+            if raw[0] == "sources":
+                if len(raw) < 3:
+                    raise ConfigError(f"environment variable {var}: name the source and the key, e.g. "
+                                      "SLUICE_SOURCES__DELIVERIES__PATH", env=var)
+                srcs = data.setdefault("sources", {})
+                if not isinstance(srcs, dict):
+                    srcs = data["sources"] = {}
+                # match an existing source case-insensitively ('-' and '_' alike)
+                norm = {n.lower().replace("-", "_"): n for n in srcs}
+                raw[1] = norm.get(raw[1], raw[1])
+            parts = tuple(raw)
+        else:
+            valid = list(shortcuts) + ["SLUICE_SERVER__<KEY>", "SLUICE_SOURCES__<NAME>__<KEY>"]
+            # only a close miss is reported: other SLUICE_* names belong to other modules
+            near = _nearest_key(upper, list(shortcuts), cutoff=0.88)
+            if near:
+                raise ConfigError(f"environment variable {var}: not a sluice setting; {near}"
+                                  f"overrides: {', '.join(valid)}", env=var)
+            continue  # someone else's variable
+        node = data
+        for p in parts[:-1]:
+            nxt = node.get(p)
+            if not isinstance(nxt, dict):
+                nxt = node[p] = {}
+            node = nxt
+        node[parts[-1]] = value
+        origins[parts] = var
+    return data, origins
+
+
+def load_settings(path: str | os.PathLike[str] | None = None,
+                  environ: dict[str, str] | None = None) -> Settings:
+    """Read the config named by ``path`` or ``SLUICE_CONFIG`` (the demo source otherwise),
+    overlay ``SLUICE_*`` environment overrides and validate."""
+    env = os.environ if environ is None else environ
     if path is None:
-        path = os.environ.get("SLUICE_CONFIG") or None
+        path = env.get("SLUICE_CONFIG") or None
     if path is None:
-        demo = os.environ.get("SLUICE_DEMO_PATH", str(DEFAULT_DEMO))
-        return parse_settings({"sources": {"deliveries": {
-            "engine": "duckdb", "path": demo, "table": "deliveries"}}}, "<built-in demo config>")
+        demo = env.get("SLUICE_DEMO_PATH", str(DEFAULT_DEMO))
+        data, origins = apply_env({"sources": {"deliveries": {
+            "engine": "duckdb", "path": demo, "table": "deliveries"}}}, dict(env))
+        return parse_settings(data, "<built-in demo config>", origins=origins)
     p = Path(path)
     try:
         text = p.read_text(encoding="utf-8")
     except OSError as e:
         raise ConfigError(f"{p}: cannot read the config file ({e.strerror}); set SLUICE_CONFIG "
-                          "to an existing TOML file") from None
+                          "to an existing TOML file", file=str(p),
+                          fix="set SLUICE_CONFIG to an existing TOML file") from None
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
-        raise ConfigError(f"{p}: not valid TOML: {e}") from None
-    return parse_settings(data, str(p), p.resolve().parent)
+        raise ConfigError(f"{p}: not valid TOML: {e}", file=str(p),
+                          fix="fix the TOML syntax at the line and column shown") from None
+    data, origins = apply_env(data, dict(env))
+    return parse_settings(data, str(p), p.resolve().parent, origins)
