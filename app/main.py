@@ -146,6 +146,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                 prob.ptr = f"/charts/{i}{prob.ptr}" if prob.ptr is not None else f"/charts/{i}"
                 results.append(prob.body())
                 continue
+            observability.record_chart(req.source, result.meta, result.timing)
             payload = service.to_json(result)
             payload["cache"] = "miss"
             payload["timing_ms"] = result.timing
