@@ -1,4 +1,9 @@
-"""``sluice`` command line: serve, demo, plan, sources."""
+"""``sluice`` command line: serve, demo, plan, sources.
+
+Exit codes (tested in tests/test_cli.py): 0 ok, 1 unexpected failure (a bug, or the
+operating system refused: disk full, port taken), 2 usage (bad arguments, unreadable input
+file), 3 config error, 4 the request cannot be planned, 5 a source is unavailable.
+"""
 
 from __future__ import annotations
 
@@ -6,8 +11,39 @@ import argparse
 import json
 import os
 import sys
+import textwrap
 
 EXIT_OK, EXIT_USAGE, EXIT_CONFIG, EXIT_PLAN, EXIT_SOURCE = 0, 2, 3, 4, 5
+
+_EXIT_HELP = """exit codes:
+  0  ok
+  1  unexpected failure (a bug, or the system refused: disk full, port in use)
+  2  usage: bad arguments or an unreadable input file
+  3  config error (the message names the file, the key and the fix)
+  4  the chart request cannot be planned (the message gives its JSON Pointer)
+  5  a source is unavailable (cannot be opened or reached)"""
+
+_ENV_HELP = """environment:
+  SLUICE_CONFIG      TOML config file (default: serve the demo DuckDB file)
+  SLUICE_DEMO_PATH   demo file used without a config (default data/demo.duckdb)
+  SLUICE_<KEY>       override a [server] key, e.g. SLUICE_MAX_LIMIT=5000
+  SLUICE_SOURCES__<NAME>__<KEY>
+                     override a source key, e.g. SLUICE_SOURCES__DELIVERIES__PATH=/data/d.duckdb
+  PORT               default port for `sluice serve` (8000)"""
+
+
+def _para(text: str) -> str:
+    return textwrap.fill(text, 78)
+
+
+def _positive_int(text: str) -> int:
+    try:
+        n = int(text.replace("_", "").replace(",", ""))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"{text!r} must be at least 1")
+    return n
 
 
 def _cmd_serve(args: argparse.Namespace) -> int:
@@ -15,8 +51,10 @@ def _cmd_serve(args: argparse.Namespace) -> int:
 
     if args.config:
         os.environ["SLUICE_CONFIG"] = args.config
+    _load(args)  # validate before uvicorn starts: a bad config exits 3 with one readable line
+    # the app logs one JSON line per request itself, so uvicorn's access log is off
     uvicorn.run("app.main:app", host=args.host, port=args.port, workers=1,
-                log_level=args.log_level)
+                log_level=args.log_level, access_log=False)
     return EXIT_OK
 
 
@@ -48,11 +86,19 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     from planner.errors import PlanError
     from planner.model import ChartRequest
 
-    text = sys.stdin.read() if args.file == "-" else open(args.file, encoding="utf-8").read()
+    try:
+        text = sys.stdin.read() if args.file == "-" else open(args.file, encoding="utf-8").read()
+    except (OSError, UnicodeDecodeError) as e:
+        print(f"sluice plan: cannot read {args.file}: {getattr(e, 'strerror', None) or e}",
+              file=sys.stderr)
+        return EXIT_USAGE
     try:
         body = json.loads(text)
     except json.JSONDecodeError as e:
         print(f"sluice plan: not valid JSON: {e}", file=sys.stderr)
+        return EXIT_PLAN
+    if not isinstance(body, dict):
+        print("sluice plan: the chart request must be a JSON object", file=sys.stderr)
         return EXIT_PLAN
     if args.source:
         body["source"] = args.source
@@ -100,42 +146,94 @@ def _cmd_sources(args: argparse.Namespace) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    fmt = argparse.RawDescriptionHelpFormatter
     p = argparse.ArgumentParser(
-        prog="sluice",
-        description="Plan chart requests into grouped SQL and run them where the data lives.",
-        epilog="Exit codes: 0 ok, 2 usage, 3 config error, 4 request cannot be planned, "
-               "5 source unavailable.")
+        prog="sluice", formatter_class=fmt,
+        description=_para("Plan chart requests into grouped SQL and run them where the data lives."),
+        epilog="examples:\n"
+               "  sluice demo --rows 200000            build data/demo.duckdb\n"
+               "  sluice serve --port 8000             API, /docs and the preview page at /\n"
+               "  sluice sources --config sluice.toml  check every source answers\n"
+               "  sluice plan chart.json --dialect postgres\n\n"
+               f"{_ENV_HELP}\n\n{_EXIT_HELP}")
+    p.add_argument("--version", action="version", version=f"sluice {_version()}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    config_help = "TOML config file (default: $SLUICE_CONFIG, else the demo source)"
 
-    s = sub.add_parser("serve", help="serve the HTTP API")
-    s.add_argument("--host", default="127.0.0.1")
-    s.add_argument("--port", type=int, default=int(os.environ.get("PORT", "8000")))
-    s.add_argument("--config", help="TOML config (default: $SLUICE_CONFIG or the demo source)")
-    s.add_argument("--log-level", default="info")
+    s = sub.add_parser(
+        "serve", formatter_class=fmt, help="serve the HTTP API, /docs and the preview page",
+        description=_para("Serve the HTTP API (same app as `uvicorn app.main:app`). The config is "
+                    "validated first; a bad one exits with code 3 before anything listens."),
+        epilog="example:\n  sluice serve --host 0.0.0.0 --port 8080 --config /etc/sluice/sluice.toml"
+               f"\n\n{_EXIT_HELP}")
+    s.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1; "
+                   "0.0.0.0 for every interface)")
+    s.add_argument("--port", type=int, default=int(os.environ.get("PORT", "8000")),
+                   help="TCP port (default $PORT, else 8000)")
+    s.add_argument("--config", help=config_help, metavar="FILE")
+    s.add_argument("--log-level", default="info",
+                   choices=["critical", "error", "warning", "info", "debug"],
+                   help="uvicorn's log level (default info)")
     s.set_defaults(func=_cmd_serve)
 
-    d = sub.add_parser("demo", help="build the demo DuckDB file (fictional parcel deliveries)")
-    d.add_argument("--rows", type=int, default=2_000_000, help="rows to generate (default 2,000,000)")
-    d.add_argument("--out", default="data/demo.duckdb", help="output file (default data/demo.duckdb)")
+    d = sub.add_parser(
+        "demo", formatter_class=fmt,
+        help="build the demo DuckDB file (fictional parcel deliveries)",
+        description=_para("Build the deterministic demo DuckDB file: table `deliveries`, a fictional "
+                    "parcel-delivery network. The same --rows give the same data every time."),
+        epilog="example:\n  sluice demo --rows 50_000 --out /tmp/demo.duckdb"
+               f"\n\n{_EXIT_HELP}")
+    d.add_argument("--rows", type=_positive_int, default=2_000_000, metavar="N",
+                   help="rows to generate (default 2,000,000)")
+    d.add_argument("--out", default="data/demo.duckdb", metavar="PATH",
+                   help="output file, replaced atomically (default data/demo.duckdb)")
     d.add_argument("--quiet", action="store_true", help="no progress bar")
     d.set_defaults(func=_cmd_demo)
 
-    pl = sub.add_parser("plan", help="print the SQL for a chart request file ('-' = stdin)")
-    pl.add_argument("file", help="chart request JSON file, or - for stdin")
-    pl.add_argument("--source", help="override the request's source")
-    pl.add_argument("--dialect", help="target dialect (default: the source's engine)")
-    pl.add_argument("--config", help="TOML config (default: $SLUICE_CONFIG or the demo source)")
+    pl = sub.add_parser(
+        "plan", formatter_class=fmt,
+        help="print the SQL for a chart request file ('-' = stdin)",
+        description=_para("Print the SQL sluice would run for a chart request, each statement "
+                    "ending with ';'. Bin limits that come from the data are "
+                    "read from the source first, so the SQL shows the real bin layout."),
+        epilog="examples:\n"
+               "  sluice plan chart.json\n"
+               "  echo '{\"source\": \"deliveries\", \"channels\": {\"x\": {\"column\": \"depot\"}, "
+               "\"y\": {\"agg\": \"count\"}}}' \\\n"
+               "    | sluice plan - --dialect postgres"
+               f"\n\n{_EXIT_HELP}")
+    pl.add_argument("file", metavar="FILE", help="chart request JSON file, or - for stdin")
+    pl.add_argument("--source", metavar="NAME", help="override the request's source")
+    pl.add_argument("--dialect", metavar="D",
+                    help="target dialect (default: the source's own engine)")
+    pl.add_argument("--config", help=config_help, metavar="FILE")
     pl.set_defaults(func=_cmd_plan)
 
-    so = sub.add_parser("sources", help="list configured sources with row counts")
-    so.add_argument("--config", help="TOML config (default: $SLUICE_CONFIG or the demo source)")
+    so = sub.add_parser(
+        "sources", formatter_class=fmt, help="list configured sources with row counts",
+        description=_para("List each configured source as tab-separated name, engine, table, rows, "
+                    "columns; opening every one of them. Exits 5 if any is unavailable."),
+        epilog=_EXIT_HELP)
+    so.add_argument("--config", help=config_help, metavar="FILE")
     so.set_defaults(func=_cmd_sources)
     return p
 
 
+def _version() -> str:
+    try:
+        from importlib.metadata import version
+
+        return version("sluice")
+    except Exception:  # not installed (running from a checkout)
+        return "0+unknown"
+
+
 def main(argv: list[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
-    return int(args.func(args) or 0)
+    args = build_parser().parse_args(argv)  # usage errors exit 2 here
+    try:
+        return int(args.func(args) or 0)
+    except KeyboardInterrupt:
+        return 130
 
 
 if __name__ == "__main__":
