@@ -5,7 +5,7 @@ from __future__ import annotations
 import os
 import threading
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import duckdb
 import pyarrow as pa
@@ -23,12 +23,21 @@ class DuckDBEngine:
         if not self.path.exists():
             raise EngineUnavailable(cfg.name, f"DuckDB file {self.path} does not exist "
                                     "(run `make demo` or fix `path` in the config)")
-        config: dict[str, Any] = {}
+        # Read-only file, no file system / network access from SQL (read_csv, COPY TO, ATTACH,
+        # INSTALL ... are refused by DuckDB itself), no extension auto-loading, and the
+        # configuration locked once set, so no statement can loosen any of it.
+        config: dict[str, Any] = {"enable_external_access": "false",
+                                  "autoload_known_extensions": "false",
+                                  "autoinstall_known_extensions": "false"}
         for key in ("memory_limit", "threads"):
             if key in cfg.options:
                 config[key] = str(cfg.options[key])
         try:
             self._con = duckdb.connect(str(self.path), read_only=True, config=config)
+            # (several sources on one file share one database instance: lock it once)
+            if not self._con.execute("SELECT current_setting('lock_configuration')").fetchone()[0]:
+                self._con.execute("SET GLOBAL TimeZone = 'UTC'")
+                self._con.execute("SET GLOBAL lock_configuration = true")
         except duckdb.Error as e:
             raise EngineUnavailable(cfg.name, f"cannot open DuckDB file {self.path}: {e}") from None
         self._local = threading.local()
@@ -38,8 +47,7 @@ class DuckDBEngine:
     def _cursor(self) -> duckdb.DuckDBPyConnection:
         cur = getattr(self._local, "cur", None)
         if cur is None:
-            cur = self._con.cursor()
-            cur.execute("SET TimeZone = 'UTC'")
+            cur = self._con.cursor()  # TimeZone is UTC for every cursor (set globally above)
             self._local.cur = cur
             with self._lock:
                 self._cursors.append(cur)
@@ -74,6 +82,11 @@ class DuckDBEngine:
     def data_version(self) -> str:
         st = os.stat(self.path)
         return f"{st.st_ino}:{st.st_size}:{st.st_mtime_ns}"
+
+    def canceller(self) -> Callable[[], None]:
+        """Interrupts the statement the *calling* thread is about to run (statement timeouts:
+        ``app.limits`` calls it from a timer thread)."""
+        return self._cursor().interrupt
 
     def interrupt(self) -> None:
         for cur in list(self._cursors):
