@@ -294,6 +294,11 @@ def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
         b = ch.bin
         bp = pointer(*path, "bin")
         if col.is_number:
+            need = {"scott": "stddev", "fd": "quantile"}.get(b.rule or "")
+            if need and not d.supports(need):
+                what = "standard deviation" if need == "stddev" else "exact quantiles"
+                raise Unsupported(pointer(*path, "bin", "rule"), d.name,
+                                  f"bin rule {b.rule} (needs {what})")
             key = Key(i, path, channel, ch, col, "nbin", tz)
             if b.limits is not None:
                 lo, hi = b.limits
@@ -846,8 +851,7 @@ def _bin_values(d: Dialect, k: Key) -> list[exp.Expression]:
     starts = _time_bin_starts(k)
     if k.tstep is not None and k.tstep.is_fixed:
         return [d.real(s) for s in starts]
-    return [exp.Cast(this=exp.Literal.string(s.strftime("%Y-%m-%d %H:%M:%S")),
-                     to=exp.DataType.build("TIMESTAMP")) for s in starts]
+    return [d.local_literal(s) for s in starts]
 
 
 def _main_statement(plan: Plan) -> exp.Select:

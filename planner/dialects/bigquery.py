@@ -1,0 +1,96 @@
+"""BigQuery (generated only).
+
+DATETIME is the naive wall clock, TIMESTAMP the instant: ``DATETIME(ts, tz)`` /
+``TIMESTAMP(datetime, tz)`` convert; DATETIME_TRUNC(x, ISOWEEK) is the ISO week. BigQuery's
+PERCENTILE_CONT is an analytic (window) function only and APPROX_QUANTILES is approximate, so
+median / quantile are refused. approx_count_distinct is HyperLogLog++.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlglot import exp
+
+from planner.dialects.base import Dialect
+
+
+class BigQuery(Dialect):
+    name = "bigquery"
+    sqlglot = "bigquery"
+    checked = "golden"
+    unsupported = frozenset({"median", "quantile"})
+    approx_distinct = ("hyperloglog++", None)
+    notes = {
+        "approx_count_distinct": "APPROX_COUNT_DISTINCT (HLL++)",
+        "tz": "DATETIME(ts, tz) / TIMESTAMP(dt, tz)",
+        "trunc_week": "DATETIME_TRUNC(ISOWEEK)",
+        "extract": "EXTRACT (ISOWEEK, ISOYEAR)",
+        "null_safe_eq": "IS NOT DISTINCT FROM",
+        "text_match": "STRPOS / STARTS_WITH",
+        "division": "`/` is always FLOAT64",
+        "limit": "LIMIT",
+        "quoting": "`name`",
+    }
+
+    def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
+        utc = value.astimezone(dt.timezone.utc)
+        if kind == "date":
+            return self.cast(self.lit(utc.date().isoformat()), "DATE")
+        text = utc.strftime("%Y-%m-%d %H:%M:%S.%f")
+        if kind == "timestamptz":
+            return self.cast(self.lit(text + "+00:00"), "TIMESTAMP")
+        return self.cast(self.lit(text), "DATETIME")
+
+    def local_literal(self, value: dt.datetime) -> exp.Expression:
+        return self.cast(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")), "DATETIME")
+
+    def _instant(self, e, kind):
+        if kind == "timestamptz":
+            return e
+        return self.fn("TIMESTAMP", self.fn("DATETIME", e) if kind == "date" else e)
+
+    def to_local(self, e, kind, tz):
+        return self.fn("DATETIME", self._instant(e, kind), self.lit(tz))
+
+    def from_local(self, e, tz):
+        return self.fn("TIMESTAMP", e, self.lit(tz))
+
+    def trunc(self, unit, naive):
+        part = "ISOWEEK" if unit == "week" else unit.upper()
+        return self.fn("DATETIME_TRUNC", naive, self.var(part))
+
+    def add_units(self, naive, n, unit):
+        return self.fn("DATETIME_ADD", naive, exp.Interval(this=self.lit(n), unit=self.var(unit.upper())))
+
+    def extract(self, field, naive):
+        parts = {"year": "YEAR", "quarter": "QUARTER", "month": "MONTH", "week": "ISOWEEK",
+                 "isoyear": "ISOYEAR", "day": "DAY", "doy": "DAYOFYEAR", "hour": "HOUR",
+                 "minute": "MINUTE", "second": "SECOND"}
+        if field in parts:
+            return exp.Extract(this=self.var(parts[field]), expression=naive)
+        dow = exp.Extract(this=self.var("DAYOFWEEK"), expression=naive)  # Sunday = 1
+        if field == "dow":
+            return exp.Sub(this=dow, expression=self.lit(1))
+        if field == "isodow":
+            return exp.Add(this=self.fn("MOD", exp.Add(this=dow, expression=self.lit(5)), self.lit(7)),
+                           expression=self.lit(1))
+        raise ValueError(field)
+
+    def epoch(self, e, kind):
+        return exp.Div(this=self.fn("UNIX_MICROS", self._instant(e, kind)), expression=self.lit(1000000))
+
+    def from_epoch(self, seconds):
+        micros = self.cast(exp.Round(this=exp.Mul(this=seconds, expression=self.lit(1000000))), "INT64")
+        return self.fn("TIMESTAMP_MICROS", micros)
+
+    def contains(self, col, s):
+        return exp.GT(this=self.fn("STRPOS", col, self.string(s)), expression=self.lit(0))
+
+    def starts_with(self, col, s):
+        return self.fn("STARTS_WITH", col, self.string(s))
+
+    def agg(self, name, arg, q):
+        if name == "approx_count_distinct":
+            return self.fn("APPROX_COUNT_DISTINCT", arg)
+        return super().agg(name, arg, q)

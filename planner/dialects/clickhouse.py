@@ -1,0 +1,126 @@
+"""ClickHouse (checked live through chdb, the ClickHouse engine embedded).
+
+* A ClickHouse DateTime is always an instant. A "naive wall-clock time" is represented as a
+  ``DateTime64(6, 'UTC')`` whose UTC fields are the wall clock: the instant shifted by the
+  zone's offset at that instant (``timeZoneOffset``); back to an instant by parsing the
+  wall-clock text in the zone.
+* Truncation: toStartOf* / toMonday (ISO week), re-typed to DateTime64(6, 'UTC').
+* Exact type 7 quantiles: ``quantileExactInclusive`` (R7, linear interpolation).
+* Variance / standard deviation: the numerically stable ``*Stable`` variants.
+* approx_count_distinct: ``uniqCombined`` (HyperLogLog-based, ~1% error).
+* Outer joins fill missing columns with default values unless ``join_use_nulls = 1``: every
+  statement carries ``SETTINGS join_use_nulls = 1`` so unmatched rows read as NULL.
+* contains / starts_with: ``position`` / ``startsWith`` (byte-exact, case-sensitive).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlglot import exp
+
+from planner.dialects.base import Dialect
+
+
+class ClickHouse(Dialect):
+    name = "clickhouse"
+    sqlglot = "clickhouse"
+    approx_distinct = ("hyperloglog (uniqCombined)", 0.01)
+    notes = {
+        "quantile": "quantileExactInclusive",
+        "approx_count_distinct": "uniqCombined (HLL)",
+        "stddev": "varSampStable etc.",
+        "tz": "timeZoneOffset / parse in zone",
+        "trunc_week": "toMonday",
+        "extract": "toISOWeek, toDayOfWeek, ...",
+        "null_safe_eq": "IS NOT DISTINCT FROM",
+        "text_match": "position / startsWith",
+        "division": "`/` is always Float64",
+        "limit": "LIMIT (+ SETTINGS join_use_nulls = 1)",
+        "quoting": '"name"',
+    }
+
+    def render(self, node: exp.Expression) -> str:
+        if isinstance(node, exp.Select):
+            node = node.copy()
+            node.set("settings", [exp.EQ(this=exp.var("join_use_nulls"),
+                                         expression=exp.Literal.number(1))])
+        return node.sql(dialect=self.sqlglot, identify=True)
+
+    def _dt64(self, e: exp.Expression, tz: str = "UTC") -> exp.Expression:
+        return self.fn("toDateTime64", e, self.lit(6), self.lit(tz))
+
+    def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
+        utc = value.astimezone(dt.timezone.utc)
+        if kind == "date":
+            return self.fn("toDate32", self.lit(utc.date().isoformat()))
+        return self._dt64(self.lit(utc.strftime("%Y-%m-%d %H:%M:%S.%f")))
+
+    def local_literal(self, value: dt.datetime) -> exp.Expression:
+        return self._dt64(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")))
+
+    def to_local(self, e, kind, tz):
+        inst = self._dt64(e)
+        if tz == "UTC":
+            return inst
+        offset = self.fn("timeZoneOffset", self.fn("toTimeZone", inst.copy(), self.lit(tz)))
+        return self.fn("addSeconds", inst, offset)
+
+    def from_local(self, e, tz):
+        if tz == "UTC":
+            return e
+        return self._dt64(self.fn("toString", e), tz)
+
+    def trunc(self, unit, naive):
+        fns = {"second": "toStartOfSecond", "minute": "toStartOfMinute", "hour": "toStartOfHour",
+               "day": "toStartOfDay", "week": "toMonday", "month": "toStartOfMonth",
+               "quarter": "toStartOfQuarter", "year": "toStartOfYear"}
+        return self._dt64(self.fn(fns[unit], naive))
+
+    def add_units(self, naive, n, unit):
+        fns = {"day": "addDays", "week": "addWeeks", "month": "addMonths",
+               "quarter": "addQuarters", "year": "addYears"}
+        return self.fn(fns[unit], naive, self.lit(n))
+
+    def extract(self, field, naive):
+        fns = {"year": "toYear", "quarter": "toQuarter", "month": "toMonth", "week": "toISOWeek",
+               "isoyear": "toISOYear", "day": "toDayOfMonth", "isodow": "toDayOfWeek",
+               "doy": "toDayOfYear", "hour": "toHour", "minute": "toMinute", "second": "toSecond"}
+        if field == "dow":  # toDayOfWeek: Monday = 1 .. Sunday = 7
+            part = exp.Mod(this=self.fn("toDayOfWeek", naive), expression=self.lit(7))
+        else:
+            part = self.fn(fns[field], naive)
+        return self.fn("toInt64", part)
+
+    def epoch(self, e, kind):
+        micros = self.fn("toUnixTimestamp64Micro", self._dt64(e))
+        return exp.Div(this=self.fn("toFloat64", micros), expression=self.lit(1000000))
+
+    def from_epoch(self, seconds):
+        micros = self.fn("toInt64", self.fn("round", exp.Mul(this=seconds, expression=self.lit(1000000))))
+        return self.fn("fromUnixTimestamp64Micro", micros, self.lit("UTC"))
+
+    def double(self, e):
+        return self.fn("toFloat64", e)
+
+    def contains(self, col, s):
+        return exp.GT(this=self.fn("position", col, self.string(s)), expression=self.lit(0))
+
+    def starts_with(self, col, s):
+        return self.fn("startsWith", col, self.string(s))
+
+    def quantile(self, arg, q):
+        return exp.ParameterizedAgg(this="quantileExactInclusive", expressions=[self.number(q)],
+                                    params=[self.double(arg)])
+
+    def agg(self, name, arg, q):
+        stable = {"stddev_samp": "stddevSampStable", "stddev_pop": "stddevPopStable",
+                  "var_samp": "varSampStable", "var_pop": "varPopStable"}
+        if name in stable:
+            return self.fn(stable[name], self.double(arg))
+        if name == "approx_count_distinct":
+            return self.fn("uniqCombined", arg)
+        return super().agg(name, arg, q)
+
+    def null_safe_eq(self, a, b):
+        return exp.NullSafeEQ(this=a, expression=b)

@@ -1,0 +1,139 @@
+"""MySQL 8 / MariaDB 10.3+ (checked live on MariaDB).
+
+* Wall-clock times: CONVERT_TZ, which needs the server's time zone tables loaded
+  (``mysql_tzinfo_to_sql /usr/share/zoneinfo | mysql mysql``); the engine refuses a
+  statement that needs them when they are empty, since CONVERT_TZ would silently give NULL.
+* No date_trunc: built from DATE_FORMAT / WEEKDAY (ISO week = Monday) / MAKEDATE.
+* Epoch arithmetic with TIMESTAMPDIFF / TIMESTAMPADD in microseconds, independent of the
+  session time zone (naive DATETIME values are read as UTC).
+* No exact continuous percentile aggregate (MariaDB's PERCENTILE_CONT is a window function
+  only, MySQL has none): median, quantile and the Freedman–Diaconis rule are refused.
+* No NULLS FIRST/LAST: emulated with a CASE term.
+* contains / starts_with compare bytes (BINARY), so they are case- and accent-sensitive like
+  DuckDB whatever the column's collation. Grouping and eq/in follow the column's collation;
+  use a binary collation (utf8mb4_bin / utf8mb4_nopad_bin) for answers identical to DuckDB's.
+* approx_count_distinct is answered exactly (COUNT DISTINCT).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlglot import exp
+
+from planner.dialects.base import Dialect
+
+_EPOCH = "1970-01-01 00:00:00"
+
+
+class MySQL(Dialect):
+    name = "mysql"
+    sqlglot = "mysql"
+    unsupported = frozenset({"median", "quantile"})
+    nulls_order_native = False
+    approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
+    notes = {
+        "approx_count_distinct": "exact COUNT(DISTINCT)",
+        "tz": "CONVERT_TZ (needs tz tables)",
+        "trunc_week": "DATE - WEEKDAY days",
+        "extract": "YEAR(), WEEK(x, 3), WEEKDAY(), ...",
+        "null_safe_eq": "<=>",
+        "text_match": "binary INSTR / byte prefix",
+        "division": "operands cast to DOUBLE",
+        "limit": "LIMIT",
+        "quoting": "`name`",
+    }
+
+    def _dt(self, e: exp.Expression) -> exp.Expression:
+        return self.cast(e, "DATETIME(6)")
+
+    def local_literal(self, value: dt.datetime) -> exp.Expression:
+        return self._dt(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")))
+
+    def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
+        utc = value.astimezone(dt.timezone.utc)
+        if kind == "date":
+            return self.cast(self.lit(utc.date().isoformat()), "DATE")
+        return self._dt(self.lit(utc.strftime("%Y-%m-%d %H:%M:%S.%f")))
+
+    def to_local(self, e: exp.Expression, kind: str, tz: str) -> exp.Expression:
+        naive = self._dt(e) if kind == "date" else e
+        if tz == "UTC":
+            return naive
+        return self.fn("CONVERT_TZ", naive, self.lit("UTC"), self.lit(tz))
+
+    def from_local(self, e: exp.Expression, tz: str) -> exp.Expression:
+        if tz == "UTC":
+            return e
+        return self.fn("CONVERT_TZ", e, self.lit(tz), self.lit("UTC"))
+
+    def _fmt(self, e: exp.Expression, fmt: str) -> exp.Expression:
+        return self._dt(self.fn("DATE_FORMAT", e, self.lit(fmt)))
+
+    def trunc(self, unit: str, naive: exp.Expression) -> exp.Expression:
+        fmts = {"second": "%Y-%m-%d %H:%i:%s", "minute": "%Y-%m-%d %H:%i:00",
+                "hour": "%Y-%m-%d %H:00:00", "day": "%Y-%m-%d 00:00:00",
+                "month": "%Y-%m-01 00:00:00", "year": "%Y-01-01 00:00:00"}
+        if unit in fmts:
+            return self._fmt(naive, fmts[unit])
+        if unit == "week":  # ISO week: back to Monday (WEEKDAY: Monday = 0)
+            return self._dt(self.fn("DATE_SUB", self.fn("DATE", naive), exp.Interval(
+                this=self.fn("WEEKDAY", naive.copy()), unit=self.var("DAY"))))
+        if unit == "quarter":
+            year_start = self.fn("MAKEDATE", self.fn("YEAR", naive), self.lit(1))
+            months = exp.Mul(this=exp.Paren(this=exp.Sub(this=self.fn("QUARTER", naive.copy()),
+                                                         expression=self.lit(1))),
+                             expression=self.lit(3))
+            return self._dt(self.fn("DATE_ADD", year_start, exp.Interval(
+                this=months, unit=self.var("MONTH"))))
+        raise ValueError(unit)
+
+    def add_units(self, naive: exp.Expression, n: int, unit: str) -> exp.Expression:
+        if unit == "quarter":
+            n, unit = 3 * n, "month"
+        if unit == "week":
+            n, unit = 7 * n, "day"
+        return self.fn("DATE_ADD", naive, exp.Interval(this=self.lit(n), unit=self.var(unit.upper())))
+
+    def extract(self, field: str, naive: exp.Expression) -> exp.Expression:
+        simple = {"year": "YEAR", "quarter": "QUARTER", "month": "MONTH", "day": "DAYOFMONTH",
+                  "doy": "DAYOFYEAR", "hour": "HOUR", "minute": "MINUTE", "second": "SECOND"}
+        if field in simple:
+            part = self.fn(simple[field], naive)
+        elif field == "week":  # mode 3: ISO 8601 weeks (Monday first, week 1 has 4+ days)
+            part = self.fn("WEEK", naive, self.lit(3))
+        elif field == "isoyear":
+            part = exp.IntDiv(this=self.fn("YEARWEEK", naive, self.lit(3)), expression=self.lit(100))
+        elif field == "dow":  # DAYOFWEEK: Sunday = 1
+            part = exp.Sub(this=self.fn("DAYOFWEEK", naive), expression=self.lit(1))
+        elif field == "isodow":  # WEEKDAY: Monday = 0
+            part = exp.Add(this=self.fn("WEEKDAY", naive), expression=self.lit(1))
+        else:
+            raise ValueError(field)
+        return self.cast(part, "SIGNED")
+
+    def epoch(self, e: exp.Expression, kind: str) -> exp.Expression:
+        micros = self.fn("TIMESTAMPDIFF", self.var("MICROSECOND"), self._dt(self.lit(_EPOCH)), e)
+        return exp.Div(this=self.double(micros), expression=self.real(1e6))
+
+    def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
+        micros = self.cast(exp.Round(this=exp.Mul(this=seconds, expression=self.lit(1000000))),
+                           "SIGNED")
+        return self.fn("TIMESTAMPADD", self.var("MICROSECOND"), micros, self._dt(self.lit(_EPOCH)))
+
+    def contains(self, col: exp.Expression, s: str) -> exp.Expression:
+        return exp.GT(this=self.fn("INSTR", self.cast(col, "BINARY"), self.cast(self.string(s), "BINARY")),
+                      expression=self.lit(0))
+
+    def starts_with(self, col: exp.Expression, s: str) -> exp.Expression:
+        n = len(s.encode("utf-8"))
+        return exp.EQ(this=self.fn("LEFT", self.cast(col, "BINARY"), self.lit(n)),
+                      expression=self.cast(self.string(s), "BINARY"))
+
+    def agg(self, name, arg, q):
+        if name == "approx_count_distinct":
+            return exp.Count(this=exp.Distinct(expressions=[arg]))
+        return super().agg(name, arg, q)
+
+    def null_safe_eq(self, a: exp.Expression, b: exp.Expression) -> exp.Expression:
+        return exp.NullSafeEQ(this=a, expression=b)

@@ -1,0 +1,144 @@
+"""SQLite (checked live, stdlib sqlite3; needs SQLite >= 3.30 for NULLS FIRST/LAST and
+>= 3.25 for window functions).
+
+Storage convention for timestamps (SQLite has no timestamp type): a column declared
+``TIMESTAMP`` (or ``DATETIME``) holds UTC text ``YYYY-MM-DD HH:MM:SS`` with an optional
+fraction ``.SSS`` (SQLite's own ``strftime('%Y-%m-%d %H:%M:%f')``); a ``DATE`` column holds
+``YYYY-MM-DD``. Comparisons against such text are exact because literals are written in the
+same fixed-width form. Results come back as text and the service types them from the plan.
+
+SQLite has no time zone database: only UTC is accepted (``tz`` other than UTC -> 422). It has
+no percentile or standard deviation aggregates: median, quantile, stddev/variance and the
+Scott / Freedman–Diaconis rules are refused. approx_count_distinct is exact.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlglot import exp
+
+from planner.dialects.base import Dialect
+
+
+class SQLite(Dialect):
+    name = "sqlite"
+    sqlglot = "sqlite"
+    unsupported = frozenset({"median", "quantile", "stddev", "tz"})
+    approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
+    notes = {
+        "approx_count_distinct": "exact COUNT(DISTINCT)",
+        "trunc_week": "date(x, '-6 days', 'weekday 1')",
+        "extract": "strftime (ISO week built)",
+        "null_safe_eq": "IS",
+        "text_match": "INSTR / SUBSTR (case-sensitive)",
+        "division": "operands cast to REAL; FLOOR built from CAST",
+        "limit": "LIMIT",
+        "quoting": '"name"',
+    }
+
+    def double(self, e: exp.Expression) -> exp.Expression:
+        return exp.Cast(this=e, to=exp.DataType.build("DOUBLE"))
+
+    def floor(self, e: exp.Expression) -> exp.Expression:
+        # FLOOR needs the optional math functions; CAST truncates toward zero.
+        t = self.cast(e, "INTEGER")
+        return exp.Sub(this=t, expression=exp.Paren(this=exp.LT(this=e.copy(), expression=t.copy())))
+
+    def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
+        utc = value.astimezone(dt.timezone.utc)
+        if kind == "date":
+            return self.lit(utc.date().isoformat())
+        text = utc.strftime("%Y-%m-%d %H:%M:%S")
+        if utc.microsecond:
+            frac = f"{utc.microsecond:06d}"
+            text += "." + (frac[:3] if frac.endswith("000") else frac)
+        return self.lit(text)
+
+    def local_literal(self, value: dt.datetime) -> exp.Expression:
+        return self.lit(value.strftime("%Y-%m-%d %H:%M:%S"))
+
+    def _f(self, fmt: str, e: exp.Expression, *mods: str) -> exp.Expression:
+        return self.fn("strftime", self.lit(fmt), e, *[self.lit(m) for m in mods])
+
+    def _int(self, e: exp.Expression) -> exp.Expression:
+        return self.cast(e, "INTEGER")
+
+    def to_local(self, e, kind, tz):
+        if tz != "UTC":  # pragma: no cover - refused by the planner ("tz" unsupported)
+            raise ValueError("SQLite has no time zones")
+        return e
+
+    def from_local(self, e, tz):
+        return e
+
+    def _monday(self, naive):
+        return self.fn("date", naive, self.lit("-6 days"), self.lit("weekday 1"))
+
+    def trunc(self, unit, naive):
+        fmts = {"second": "%Y-%m-%d %H:%M:%S", "minute": "%Y-%m-%d %H:%M:00",
+                "hour": "%Y-%m-%d %H:00:00", "day": "%Y-%m-%d 00:00:00",
+                "month": "%Y-%m-01 00:00:00", "year": "%Y-01-01 00:00:00"}
+        if unit in fmts:
+            return self._f(fmts[unit], naive)
+        if unit == "week":
+            return exp.DPipe(this=self._monday(naive), expression=self.lit(" 00:00:00"))
+        if unit == "quarter":
+            month = self._int(self._f("%m", naive))
+            first = exp.Add(this=exp.Mul(this=exp.Paren(this=exp.IntDiv(
+                this=exp.Paren(this=exp.Sub(this=month, expression=self.lit(1))),
+                expression=self.lit(3))), expression=self.lit(3)), expression=self.lit(1))
+            return self.fn("printf", self.lit("%s-%02d-01 00:00:00"), self._f("%Y", naive.copy()),
+                           first)
+        raise ValueError(unit)
+
+    def add_units(self, naive, n, unit):
+        if unit == "quarter":
+            n, unit = 3 * n, "month"
+        if unit == "week":
+            n, unit = 7 * n, "day"
+        return self._f("%Y-%m-%d %H:%M:%S", naive, f"{n:+d} {unit}s")
+
+    def extract(self, field, naive):
+        fmts = {"year": "%Y", "month": "%m", "day": "%d", "doy": "%j", "hour": "%H",
+                "minute": "%M", "second": "%S", "dow": "%w"}
+        if field in fmts:
+            return self._int(self._f(fmts[field], naive))
+        if field == "quarter":
+            return exp.Add(this=exp.IntDiv(this=exp.Paren(this=exp.Sub(
+                this=self._int(self._f("%m", naive)), expression=self.lit(1))),
+                expression=self.lit(3)), expression=self.lit(1))
+        if field == "isodow":
+            return exp.Add(this=exp.Mod(this=exp.Paren(this=exp.Add(
+                this=self._int(self._f("%w", naive)), expression=self.lit(6))),
+                expression=self.lit(7)), expression=self.lit(1))
+        # ISO week and year: those of the Thursday of the ISO week.
+        thursday = self.fn("date", self._monday(naive), self.lit("+3 days"))
+        if field == "isoyear":
+            return self._int(self._f("%Y", thursday))
+        if field == "week":
+            return exp.Add(this=exp.IntDiv(this=exp.Paren(this=exp.Sub(
+                this=self._int(self._f("%j", thursday)), expression=self.lit(1))),
+                expression=self.lit(7)), expression=self.lit(1))
+        raise ValueError(field)
+
+    def epoch(self, e, kind):
+        # whole seconds plus milliseconds, both exact integers, then one division
+        secs = self._int(self._f("%s", e))
+        millis = exp.Mod(this=self._int(exp.Round(this=exp.Mul(
+            this=self.cast(self._f("%f", e.copy()), "REAL"), expression=self.lit(1000)))),
+            expression=self.lit(1000))
+        return exp.Div(this=self.double(exp.Add(this=exp.Mul(this=secs, expression=self.lit(1000)),
+                                                expression=millis)),
+                       expression=self.real(1000.0))
+
+    def from_epoch(self, seconds):
+        return self._f("%Y-%m-%d %H:%M:%f", seconds, "unixepoch")
+
+    def agg(self, name, arg, q):
+        if name == "approx_count_distinct":
+            return exp.Count(this=exp.Distinct(expressions=[arg]))
+        return super().agg(name, arg, q)
+
+    def null_safe_eq(self, a, b):
+        return exp.NullSafeEQ(this=a, expression=b)
