@@ -1,0 +1,273 @@
+"""Numeric histograms against outside references: numpy.histogram / histogram_bin_edges and an
+independent implementation of Heckbert's nice numbers written from the paper.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+# ---------------------------------------------------------------------------------------------
+# Reference nice numbers: Paul S. Heckbert, "Nice Numbers for Graph Labels", Graphics Gems
+# (Academic Press, 1990), pp. 61-63.  Written here from the paper's pseudo-code (from memory):
+#
+#   nicenum(x, round): exp = floor(log10 x); f = x / 10^exp
+#       round:     nf = 1 if f < 1.5, 2 if f < 3, 5 if f < 7, else 10
+#       not round: nf = 1 if f <= 1, 2 if f <= 2, 5 if f <= 5, else 10
+#       return nf * 10^exp
+#   loose_label(min, max, nticks):
+#       range = nicenum(max - min, false)
+#       d = nicenum(range / (nticks - 1), true)
+#       graphmin = floor(min / d) * d ; graphmax = ceil(max / d) * d
+#
+# A histogram with a target of N bins has N + 1 edges, i.e. nticks = N + 1, so the bin width
+# is d = nicenum(nicenum(max - min, false) / N, true) and the bins run from graphmin to
+# graphmax (which may give a few more or fewer bins than N: the target is only a target).
+# ---------------------------------------------------------------------------------------------
+
+
+def nicenum(x: float, round_: bool) -> float:
+    expv = math.floor(math.log10(x))
+    f = x / 10.0**expv
+    if round_:
+        nf = 1 if f < 1.5 else 2 if f < 3 else 5 if f < 7 else 10
+    else:
+        nf = 1 if f <= 1 else 2 if f <= 2 else 5 if f <= 5 else 10
+    return nf * 10.0**expv
+
+
+def heckbert_bins(lo: float, hi: float, n: int):
+    d = nicenum(nicenum(hi - lo, False) / n, True)
+    start = math.floor(lo / d) * d
+    stop = math.ceil(hi / d) * d
+    return start, stop, d, int(round((stop - start) / d))
+
+
+def test_reference_nicenum_worked_example():
+    # Heckbert's worked example (from memory): loose labelling of the data range 105..543 with
+    # 5 ticks gives labels 100, 200, ..., 600 (step 100).
+    start, stop, d, count = heckbert_bins(105, 543, 4)
+    assert (start, stop, d) == (100, 600, 100)  # reference: Heckbert 1990 worked example (from memory)
+    assert count == 5
+    assert nicenum(438, False) == 500 and nicenum(125, True) == 100  # reference: Heckbert's rules
+
+
+def _xs(rows, ch="x"):
+    return [(r[f"{ch}_start"], r[f"{ch}_end"], r["count"]) for r in rows]
+
+
+def _check_bins_meta(b, start, stop, width, count, method):
+    assert math.isclose(b["width"], width, rel_tol=1e-9), (b, width)
+    assert math.isclose(b["start"], start, rel_tol=1e-9, abs_tol=width * 1e-9), (b, start)
+    assert math.isclose(b["stop"], stop, rel_tol=1e-9, abs_tol=width * 1e-9), (b, stop)
+    assert b["count"] == count, (b, count)
+    assert b["method"] == method
+
+
+def _histogram_rows_match(rows, edges, counts_np, ch="x"):
+    """Non-NULL bin rows must be exactly numpy's non-empty bins (default empty_bins: omit)."""
+    width = edges[1] - edges[0]
+    got = {}
+    for s, e, c in _xs([r for r in rows if r[f"{ch}_start"] is not None], ch):
+        k = int(round((s - edges[0]) / width))
+        assert 0 <= k < len(edges) - 1, f"bin start {s} outside edges {edges[0]}..{edges[-1]}"
+        assert math.isclose(s, edges[k], rel_tol=1e-9, abs_tol=width * 1e-9), (s, edges[k])
+        assert math.isclose(e, edges[k + 1], rel_tol=1e-9, abs_tol=width * 1e-9), (e, edges[k + 1])
+        assert k not in got, f"bin {k} appears twice"
+        got[k] = c
+    want = {k: int(c) for k, c in enumerate(counts_np) if c}
+    assert got == want  # reference: numpy.histogram
+
+
+# ---------------------------------------------------------------------------------------------
+# {"bins": N} -> Heckbert nice width, limits from the data
+# ---------------------------------------------------------------------------------------------
+
+
+def test_bins_heckbert_worked_example_range(api, ref):
+    # ranges.a spans exactly 105..543: with 4 target bins the paper's labels are 100..600 step 100
+    resp = api.chart({"source": "ranges", "channels": {"x": {"column": "a", "bin": {"bins": 4}}, "y": {"agg": "count"}}})
+    _check_bins_meta(resp["bins"]["x"], 100, 600, 100, 5, "nice")  # reference: Heckbert 1990 worked example (from memory)
+    edges = np.arange(100, 601, 100, dtype=float)
+    counts, _ = np.histogram(ref.ranges["a"].to_numpy(), bins=edges)
+    _histogram_rows_match(api.rows(resp), edges, counts)  # reference: numpy.histogram
+
+
+NICE_CASES = [("a", 10), ("a", 20), ("b", 10), ("b", 7), ("c", 20), ("c", 3), ("d", 10), ("d", 25), ("e", 12)]
+
+
+@pytest.mark.parametrize("column,n", NICE_CASES, ids=[f"{c}-{n}" for c, n in NICE_CASES])
+def test_bins_nice_width_follows_heckbert(api, ref, column, n):
+    vals = ref.ranges[column].to_numpy()
+    lo, hi = float(vals.min()), float(vals.max())
+    start, stop, d, count = heckbert_bins(lo, hi, n)  # reference: Heckbert 1990 (independent implementation above)
+    resp = api.chart(
+        {"source": "ranges", "channels": {"x": {"column": column, "bin": {"bins": n}}, "y": {"agg": "count"}}}
+    )
+    _check_bins_meta(resp["bins"]["x"], start, stop, d, count, "nice")
+    edges = start + d * np.arange(count + 1)
+    counts, _ = np.histogram(vals, bins=edges)
+    assert counts.sum() == len(vals)
+    _histogram_rows_match(api.rows(resp), edges, counts)  # reference: numpy.histogram with the same edges
+    assert resp["domains"]["x"] == pytest.approx([start, stop], rel=1e-9, abs=d * 1e-9)
+
+
+def test_bins_default_is_20_target(api, ref):
+    vals = ref.t["x"].dropna().to_numpy()
+    start, stop, d, count = heckbert_bins(float(vals.min()), float(vals.max()), 20)  # reference: Heckbert 1990
+    resp = api.chart({"channels": {"x": {"column": "x", "bin": {}}, "y": {"agg": "count"}}})
+    _check_bins_meta(resp["bins"]["x"], start, stop, d, count, "nice")
+
+
+def test_bins_nice_on_column_with_nulls(api, ref):
+    vals = ref.t["x"].dropna().to_numpy()
+    start, stop, d, count = heckbert_bins(float(vals.min()), float(vals.max()), 15)  # reference: Heckbert 1990
+    resp = api.chart({"channels": {"x": {"column": "x", "bin": {"bins": 15}}, "y": {"agg": "count"}}})
+    _check_bins_meta(resp["bins"]["x"], start, stop, d, count, "nice")
+    edges = start + d * np.arange(count + 1)
+    counts, _ = np.histogram(vals, bins=edges)
+    rows = api.rows(resp)
+    _histogram_rows_match(rows, edges, counts)  # reference: numpy.histogram
+    null_rows = [r for r in rows if r["x_start"] is None]
+    # DEVELOPERS: a NULL key is its own group; its bin keys are both null
+    assert len(null_rows) == 1 and null_rows[0]["x_end"] is None
+    assert null_rows[0]["count"] == int(ref.t["x"].isna().sum())  # reference: pandas isna
+    assert rows[-1]["x_start"] is None  # NULLs last
+
+
+def test_bins_constant_column_does_not_fail(api, ref):
+    # Degenerate range (all values 7.0): the contract does not say which bin; a user expects a
+    # histogram whose bins hold every row, not an error.
+    resp = api.chart({"source": "ranges", "channels": {"x": {"column": "k", "bin": {"bins": 10}}, "y": {"agg": "count"}}})
+    rows = api.rows(resp)
+    assert sum(r["count"] for r in rows) == len(ref.ranges)
+    for r in rows:
+        assert r["x_start"] <= 7.0 <= r["x_end"]
+
+
+# ---------------------------------------------------------------------------------------------
+# {"width": h, "origin": x0} -> numpy.histogram with the same edges
+# ---------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("width,origin", [(5.0, 0.0), (2.5, 0.5), (7.0, -3.0), (10.0, 1000.0), (0.75, 0.1)])
+def test_width_origin_matches_numpy(api, ref, width, origin):
+    vals = ref.t["x"].dropna().to_numpy()
+    # bins are origin + k*width covering the data (limits from the data)
+    kmin = math.floor((vals.min() - origin) / width)
+    kmax = math.floor((vals.max() - origin) / width)  # max is not on an edge for this data
+    assert not math.isclose((vals.max() - origin) / width, round((vals.max() - origin) / width))
+    edges = origin + width * np.arange(kmin, kmax + 2)
+    resp = api.chart(
+        {"channels": {"x": {"column": "x", "bin": {"width": width, "origin": origin}}, "y": {"agg": "count"}}}
+    )
+    _check_bins_meta(resp["bins"]["x"], edges[0], edges[-1], width, len(edges) - 1, "width")
+    counts, _ = np.histogram(vals, bins=edges)
+    assert counts.sum() == len(vals)
+    _histogram_rows_match(api.rows(resp), edges, counts)  # reference: numpy.histogram with the same edges
+
+
+def test_width_without_origin_aligns_to_zero(api, ref):
+    # Textbook default origin x0 = 0 (a user expects edges at multiples of the width).
+    vals = ref.t["x"].dropna().to_numpy()
+    width = 4.0
+    edges = width * np.arange(math.floor(vals.min() / width), math.floor(vals.max() / width) + 2)
+    resp = api.chart({"channels": {"x": {"column": "x", "bin": {"width": width}}, "y": {"agg": "count"}}})
+    counts, _ = np.histogram(vals, bins=edges)
+    _histogram_rows_match(api.rows(resp), edges, counts)  # reference: numpy.histogram
+
+
+# ---------------------------------------------------------------------------------------------
+# explicit limits: outside rows counted, upper limit closed (numpy convention)
+# ---------------------------------------------------------------------------------------------
+
+
+def test_limits_outside_and_closed_last_bin(api, ref):
+    vals = ref.edges["v"].dropna().to_numpy()
+    resp = api.chart(
+        {
+            "source": "edges",
+            "channels": {"x": {"column": "v", "bin": {"width": 10, "origin": 0, "limits": [0, 100]}}, "y": {"agg": "count"}},
+        }
+    )
+    edges = np.arange(0, 101, 10, dtype=float)
+    counts, _ = np.histogram(vals, bins=edges)  # numpy ignores values outside [0, 100]
+    rows = api.rows(resp)
+    _histogram_rows_match(rows, edges, counts)  # reference: numpy.histogram
+    last = [r for r in rows if r["x_start"] == 90]
+    assert last and last[0]["count"] == 3  # 99.9, 100, 100: value == upper limit in last bin (numpy convention)
+    outside = int(((vals < 0) | (vals > 100)).sum())
+    assert outside == 2
+    assert resp["stats"]["outside_limits"]["x"] == outside  # reference: numpy mask outside [lo, hi]
+    # NULLs are never "outside": they are their own group
+    nulls = [r for r in rows if r["x_start"] is None]
+    assert len(nulls) == 1 and nulls[0]["count"] == int(ref.edges["v"].isna().sum())
+    _check_bins_meta(resp["bins"]["x"], 0, 100, 10, 10, "width")
+    assert resp["domains"]["x"] == [0, 100]
+
+
+def test_limits_with_nice_bins_on_main_table(api, ref):
+    vals = ref.t["x"].dropna().to_numpy()
+    resp = api.chart(
+        {"channels": {"x": {"column": "x", "bin": {"width": 5, "origin": 0, "limits": [30, 70]}}, "y": {"agg": "count"}}}
+    )
+    edges = np.arange(30, 71, 5, dtype=float)
+    counts, _ = np.histogram(vals, bins=edges)
+    _histogram_rows_match(api.rows(resp), edges, counts)  # reference: numpy.histogram
+    assert resp["stats"]["outside_limits"]["x"] == int(((vals < 30) | (vals > 70)).sum())  # reference: numpy mask
+    assert resp["stats"]["matched_rows"] == len(ref.t)
+
+
+# ---------------------------------------------------------------------------------------------
+# rules: sturges / scott / fd / sqrt == numpy.histogram_bin_edges
+# ---------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("rule", ["sturges", "scott", "fd", "sqrt"])
+@pytest.mark.parametrize("source,column", [("fixture", "x"), ("fixture", "w"), ("ranges", "d"), ("fixture", "n")])
+def test_rule_matches_numpy(api, ref, rule, source, column):
+    frame = ref.t if source == "fixture" else ref.ranges
+    vals = frame[column].dropna().to_numpy(dtype=float)
+    edges = np.histogram_bin_edges(vals, bins=rule)  # reference: numpy.histogram_bin_edges
+    counts, _ = np.histogram(vals, bins=rule)  # reference: numpy.histogram(bins=rule)
+    resp = api.chart({"source": source, "channels": {"x": {"column": column, "bin": {"rule": rule}}, "y": {"agg": "count"}}})
+    _check_bins_meta(resp["bins"]["x"], edges[0], edges[-1], edges[1] - edges[0], len(edges) - 1, rule)
+    _histogram_rows_match(api.rows(resp), edges, counts)
+
+
+@pytest.mark.parametrize("rule", ["sturges", "fd"])
+def test_rule_with_limits_matches_numpy_range(api, ref, rule):
+    # numpy computes the rule on the values inside `range` only.
+    vals = ref.t["x"].dropna().to_numpy()
+    edges = np.histogram_bin_edges(vals, bins=rule, range=(20.0, 80.0))  # reference: numpy.histogram_bin_edges(range=)
+    counts, _ = np.histogram(vals, bins=rule, range=(20.0, 80.0))
+    resp = api.chart(
+        {"channels": {"x": {"column": "x", "bin": {"rule": rule, "limits": [20, 80]}}, "y": {"agg": "count"}}}
+    )
+    _check_bins_meta(resp["bins"]["x"], 20.0, 80.0, edges[1] - edges[0], len(edges) - 1, rule)
+    _histogram_rows_match(api.rows(resp), edges, counts)
+    assert resp["stats"]["outside_limits"]["x"] == int(((vals < 20) | (vals > 80)).sum())
+
+
+def test_histogram_columns_metadata(api):
+    resp = api.chart({"channels": {"x": {"column": "x", "bin": {"bins": 10}}, "y": {"agg": "count"}}})
+    s, e = api.column(resp, "x_start"), api.column(resp, "x_end")
+    assert (s["role"], s["channel"], s["type"]) == ("bin_start", "x", "double")
+    assert (e["role"], e["channel"], e["type"]) == ("bin_end", "x", "double")
+    counts = [c for c in resp["data"]["count"] if c is not None]
+    assert resp["domains"]["count"] == [min(counts), max(counts)]
+
+
+def test_histogram_of_integer_column_with_width(api, ref):
+    vals = ref.t["n"].dropna().to_numpy(dtype=float)
+    resp = api.chart({"channels": {"x": {"column": "n", "bin": {"width": 10, "origin": 0}}, "y": {"agg": "count"}}})
+    # data max is 50, which is an edge: with limits from the data the last bin is [50, 60)
+    # or the closed [40, 50]; either way numpy.histogram on the response's own edges must agree.
+    b = resp["bins"]["x"]
+    edges = b["start"] + b["width"] * np.arange(b["count"] + 1)
+    assert b["start"] <= vals.min() and vals.max() <= b["stop"]
+    counts, _ = np.histogram(vals, bins=edges)
+    assert counts.sum() == len(vals)
+    _histogram_rows_match(api.rows(resp), edges, counts)  # reference: numpy.histogram
