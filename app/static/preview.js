@@ -1,0 +1,551 @@
+// sluice preview page. Plain JS, no build step, no network but this server.
+// Every drawn mark is one SVG element carrying data-mark (bar | cell | point) and data-row
+// (its row in the answer), so a test can count marks against stats.result_rows.
+"use strict";
+
+const SVG = "http://www.w3.org/2000/svg";
+const W = 760, H = 380, M = { top: 18, right: 18, bottom: 54, left: 64 };
+const PALETTE = ["#2f6f73", "#c7772b", "#5b5ea6", "#8a9a2b", "#b04a6b", "#3b8fc2", "#7a5a3a", "#6c6f75",
+                 "#d1a93b", "#4f9a6e"];
+const $ = (id) => document.getElementById(id);
+
+const EXAMPLES = {
+  "Histogram: distance (bars)": (s) => ({
+    source: s,
+    channels: { x: { column: "distance_km", bin: { bins: 30, limits: [0, 60] } }, y: { agg: "count" } },
+  }),
+  "Parcels per week by vehicle (lines)": (s) => ({
+    source: s,
+    channels: { x: { column: "delivered_at", trunc: "week" }, y: { agg: "count" },
+                color: { column: "vehicle", top: 3 } },
+    where: [{ column: "delivered_at", gte: "2025-03-01", lt: "2025-09-01" }],
+  }),
+  "Hour by weekday, local time (heat cells)": (s) => ({
+    source: s,
+    channels: { x: { column: "delivered_at", extract: "hour", tz: "Europe/Berlin" },
+                y: { column: "delivered_at", extract: "isodow", tz: "Europe/Berlin" },
+                color: { agg: "count" } },
+  }),
+  "Distance by weight (binned heat cells)": (s) => ({
+    source: s,
+    channels: { x: { column: "distance_km", bin: { bins: 20, limits: [0, 40] } },
+                y: { column: "weight_kg", bin: { bins: 12, limits: [0, 24] } },
+                color: { agg: "count" } },
+  }),
+  "Mean fee against mean distance per depot and vehicle (points)": (s) => ({
+    source: s,
+    channels: { x: { agg: "avg", column: "distance_km" }, y: { agg: "avg", column: "fee" },
+                color: { column: "vehicle" }, by: [{ column: "depot" }] },
+  }),
+  "Parcels per depot, stacked by vehicle (bars)": (s) => ({
+    source: s,
+    channels: { x: { column: "depot" }, y: { agg: "count" }, color: { column: "vehicle" } },
+    stack: "sum",
+    sort: [{ channel: "x" }],
+  }),
+};
+
+// ---- small helpers ------------------------------------------------------------------
+function el(name, attrs, parent) {
+  const n = document.createElementNS(SVG, name);
+  for (const [k, v] of Object.entries(attrs || {})) n.setAttribute(k, v);
+  if (parent) parent.appendChild(n);
+  return n;
+}
+function html(tag, text, cls) {
+  const n = document.createElement(tag);
+  if (text !== undefined && text !== null) n.textContent = text;
+  if (cls) n.className = cls;
+  return n;
+}
+const numFmt = new Intl.NumberFormat("en", { maximumFractionDigits: 3 });
+const compactFmt = new Intl.NumberFormat("en", { notation: "compact", maximumFractionDigits: 2 });
+function fmtNum(v) {
+  if (v === null || v === undefined) return "null";
+  if (typeof v !== "number") return String(v);
+  return Math.abs(v) >= 1e5 ? compactFmt.format(v) : numFmt.format(v);
+}
+function fmtValue(v, type) {
+  if (v === null || v === undefined) return "null";
+  if (type === "timestamp" || type === "date") return String(v).replace("T00:00:00Z", "").replace("T", " ");
+  if (typeof v === "number") return fmtNum(v);
+  return String(v);
+}
+function isTime(type) { return type === "timestamp" || type === "date"; }
+function isNum(type) { return type === "integer" || type === "double" || type === "decimal"; }
+function toNum(v, type) { return isTime(type) ? Date.parse(v) : Number(v); }
+
+// Heckbert-style nice step for about n ticks over [lo, hi]
+function niceStep(lo, hi, n) {
+  const span = Math.abs(hi - lo) || 1;
+  const raw = span / Math.max(1, n);
+  const mag = Math.pow(10, Math.floor(Math.log10(raw)));
+  const f = raw / mag;
+  return (f < 1.5 ? 1 : f < 3 ? 2 : f < 7 ? 5 : 10) * mag;
+}
+function niceTicks(lo, hi, n) {
+  const step = niceStep(lo, hi, n);
+  const out = [];
+  for (let v = Math.ceil(lo / step) * step; v <= hi + step * 1e-9; v += step) out.push(Math.abs(v) < step * 1e-9 ? 0 : v);
+  return out;
+}
+const DAY = 86400000;
+const TIME_STEPS = [1000, 60000, 3600000, 6 * 3600000, DAY, 7 * DAY, 30.44 * DAY, 91.3 * DAY, 365.25 * DAY];
+function timeTicks(lo, hi, n) {
+  const want = (hi - lo) / Math.max(1, n);
+  const step = TIME_STEPS.find((s) => s >= want) || TIME_STEPS[TIME_STEPS.length - 1];
+  const out = [];
+  const d = new Date(lo);
+  if (step >= 28 * DAY) {               // calendar months / quarters / years, UTC
+    const months = step > 300 * DAY ? 12 : step > 80 * DAY ? 3 : 1;
+    let t = Date.UTC(d.getUTCFullYear(), d.getUTCMonth(), 1);
+    let m = d.getUTCMonth();
+    while (t < lo) { m += 1; t = Date.UTC(d.getUTCFullYear(), m, 1); }
+    while (m % months) { m += 1; t = Date.UTC(d.getUTCFullYear(), m, 1); }
+    for (; t <= hi; m += months, t = Date.UTC(d.getUTCFullYear(), m, 1)) out.push(t);
+  } else {
+    for (let t = Math.ceil(lo / step) * step; t <= hi; t += step) out.push(t);
+  }
+  return { ticks: out, step };
+}
+function timeLabel(t, step) {
+  const iso = new Date(t).toISOString();
+  if (step >= 300 * DAY) return iso.slice(0, 4);
+  if (step >= 28 * DAY) return iso.slice(0, 7);
+  if (step >= DAY) return iso.slice(0, 10);
+  return iso.slice(5, 16).replace("T", " ");
+}
+
+// ---- reading the answer --------------------------------------------------------------
+// For each channel: {key, start, end, measure, stackStart, stackEnd} column descriptors.
+function channelsOf(resp) {
+  const ch = {};
+  for (const c of resp.columns) {
+    const slot = (ch[c.channel] = ch[c.channel] || {});
+    if (c.role === "key") slot.key = slot.key || c;
+    else if (c.role === "bin_start") slot.start = c;
+    else if (c.role === "bin_end") slot.end = c;
+    else if (c.role === "measure") slot.measure = slot.measure || c;
+    else if (c.role === "stack_start") slot.stackStart = c;
+    else if (c.role === "stack_end") slot.stackEnd = c;
+  }
+  return ch;
+}
+const isKey = (s) => s && (s.key || s.start);
+const isMeasure = (s) => s && s.measure && !s.key && !s.start;
+
+// A positional scale for a key channel: band (categories, small integer keys) or continuous
+// (bins, times, other numbers). Returns {kind, pos(row) -> [a, b] in pixels, ticks}.
+function keyScale(resp, slot, chName, lo, hi, nullsPlaced) {
+  const data = resp.data;
+  const keyCol = slot.start || slot.key;
+  const band = !slot.start && !isTime(keyCol.type) && !(isNum(keyCol.type) && new Set(data[keyCol.name]).size > 40);
+  if (!nullsPlaced && !band && data[keyCol.name].some((v) => v === null)) {
+    // a NULL key is its own group: it gets a slot of its own past the end of the axis
+    const dir = hi > lo ? 1 : -1, slotHi = hi, slotLo = hi - dir * 30;
+    const sc = keyScale(resp, slot, chName, lo, hi - dir * 44, true);
+    const inner = sc.pos;
+    sc.pos = (i) => (data[keyCol.name][i] === null ? [Math.min(slotLo, slotHi), Math.max(slotLo, slotHi)] : inner(i));
+    sc.ticks = sc.ticks.concat([{ at: (slotLo + slotHi) / 2, label: "null" }]);
+    return sc;
+  }
+  if (slot.start) {
+    const type = slot.start.type;
+    const b = (resp.bins || {})[chName] || {};
+    const dom = resp.domains[chName] || [b.start, b.stop];
+    const d0 = toNum(dom[0], type), d1 = toNum(dom[1], type);
+    const f = (v) => lo + ((toNum(v, type) - d0) / ((d1 - d0) || 1)) * (hi - lo);
+    const sc = {
+      kind: "continuous", type, d0, d1, f,
+      pos: (i) => {
+        const a = data[slot.start.name][i], z = data[slot.end.name][i];
+        return a === null ? null : [f(a), f(z)];
+      },
+    };
+    sc.ticks = continuousTicks(type, d0, d1, f, b, hi - lo);
+    return sc;
+  }
+  const c = slot.key;
+  const vals = data[c.name];
+  if (isTime(c.type) || (isNum(c.type) && new Set(vals).size > 40)) {
+    const dom = resp.domains[c.name] || [vals[0], vals[vals.length - 1]];
+    let d0 = toNum(dom[0], c.type), d1 = toNum(dom[1], c.type);
+    const pad = (d1 - d0) * 0.02 || 1;
+    d0 -= pad; d1 += pad;
+    const f = (v) => lo + ((toNum(v, c.type) - d0) / ((d1 - d0) || 1)) * (hi - lo);
+    const sc = { kind: "continuous", type: c.type, d0, d1, f, pos: (i) => (vals[i] === null ? null : [f(vals[i]), f(vals[i])]) };
+    sc.ticks = continuousTicks(c.type, d0, d1, f, null, hi - lo);
+    return sc;
+  }
+  // band: distinct values, numbers sorted, text in the answer's domain order
+  let cats = [];
+  if (isNum(c.type)) cats = [...new Set(vals)].sort((a, b) => (a === null) - (b === null) || a - b);
+  else {
+    const seen = new Set();
+    for (const v of (Array.isArray(resp.domains[c.name]) && !isNum(c.type) ? resp.domains[c.name] : []).concat(vals)) {
+      if (!seen.has(v)) { seen.add(v); cats.push(v); }
+    }
+  }
+  const bw = (hi - lo) / Math.max(1, cats.length);
+  const index = new Map(cats.map((v, k) => [v, k]));
+  const sc = {
+    kind: "band", cats, bw,
+    pos: (i) => { const k = index.get(vals[i]); return [lo + k * bw + bw * 0.1, lo + (k + 1) * bw - bw * 0.1]; },
+  };
+  const every = Math.ceil(cats.length / Math.max(1, Math.floor((Math.abs(hi - lo)) / (chName === "y" ? 18 : 46))));
+  sc.ticks = cats.map((v, k) => ({ at: lo + (k + 0.5) * bw, label: fmtValue(v, c.type), show: k % every === 0 }))
+    .filter((t) => t.show);
+  return sc;
+}
+function continuousTicks(type, d0, d1, f, bins, span) {
+  const n = Math.max(2, Math.floor(Math.abs(span) / 80));
+  if (isTime(type)) {
+    const { ticks, step } = timeTicks(d0, d1, n);
+    return ticks.map((t) => ({ at: f(new Date(t).toISOString()), label: timeLabel(t, step) }));
+  }
+  if (bins && bins.count && bins.count <= 12) {
+    const out = [];
+    for (let k = 0; k <= bins.count; k++) { const v = bins.start + k * bins.width; out.push({ at: f(v), label: fmtNum(v) }); }
+    return out;
+  }
+  return niceTicks(d0, d1, n).map((v) => ({ at: f(v), label: fmtNum(v) }));
+}
+function measureScale(resp, cols, lo, hi, zero) {
+  let d0 = zero ? 0 : Infinity, d1 = zero ? 0 : -Infinity;
+  for (const c of cols) for (const v of resp.data[c.name]) if (v !== null && Number.isFinite(v)) { d0 = Math.min(d0, v); d1 = Math.max(d1, v); }
+  if (!Number.isFinite(d0)) { d0 = 0; d1 = 1; }
+  if (d0 === d1) { d1 = d0 + 1; }
+  if (!zero) { const pad = (d1 - d0) * 0.05; d0 -= pad; d1 += pad; }
+  const step = niceStep(d0, d1, 6);
+  d1 = Math.ceil(d1 / step) * step;
+  if (d0 < 0 || !zero) d0 = Math.floor(d0 / step) * step;
+  const f = (v) => lo + ((v - d0) / (d1 - d0)) * (hi - lo);
+  return { f, ticks: niceTicks(d0, d1, 6).map((v) => ({ at: f(v), label: fmtNum(v) })) };
+}
+
+// ---- drawing -------------------------------------------------------------------------
+function axis(svg, ticks, horizontal, at, title) {
+  const g = el("g", { class: "axis" }, svg);
+  const grid = el("g", { class: "grid" }, svg);
+  svg.insertBefore(grid, svg.firstChild);
+  if (horizontal) {
+    el("line", { x1: M.left, x2: W - M.right, y1: at, y2: at }, g);
+    const rotate = ticks.length > 10 && ticks.some((t) => t.label.length > 4);
+    for (const t of ticks) {
+      el("line", { x1: t.at, x2: t.at, y1: at, y2: at + 4 }, g);
+      const tx = el("text", rotate ? { x: t.at, y: at + 8, "text-anchor": "end",
+        transform: `rotate(-35 ${t.at} ${at + 8})` } : { x: t.at, y: at + 16, "text-anchor": "middle" }, g);
+      tx.textContent = t.label;
+    }
+    if (title) { const tt = el("text", { class: "title", x: W - M.right, y: H - 6, "text-anchor": "end" }, svg); tt.textContent = title; }
+  } else {
+    el("line", { x1: at, x2: at, y1: M.top, y2: H - M.bottom }, g);
+    for (const t of ticks) {
+      el("line", { x1: at - 4, x2: at, y1: t.at, y2: t.at }, g);
+      el("line", { x1: M.left, x2: W - M.right, y1: t.at, y2: t.at }, grid);
+      const tx = el("text", { x: at - 7, y: t.at + 4, "text-anchor": "end" }, g);
+      tx.textContent = t.label;
+    }
+    if (title) { const tt = el("text", { class: "title", x: 4, y: 12 }, svg); tt.textContent = title; }
+  }
+}
+function colorOf(resp, ch) {
+  const slot = ch.color;
+  if (!slot) return { fill: () => PALETTE[0], legend: [] };
+  if (slot.measure && !slot.key && !slot.start) {   // sequential ramp for a measure
+    const vals = resp.data[slot.measure.name].filter((v) => v !== null);
+    const lo = Math.min(...vals), hi = Math.max(...vals);
+    const ramp = (t) => `hsl(184, ${30 + 30 * t}%, ${94 - 62 * t}%)`;
+    return {
+      fill: (i) => { const v = resp.data[slot.measure.name][i]; return v === null ? "#ddd" : ramp((v - lo) / ((hi - lo) || 1)); },
+      legend: [[ramp(0), `${slot.measure.name} ${fmtNum(lo)}`], [ramp(1), fmtNum(hi)]],
+    };
+  }
+  const c = slot.key || slot.start;
+  const vals = resp.data[c.name];
+  const dom = Array.isArray(resp.domains[c.name]) && !isNum(c.type) && !isTime(c.type) ? resp.domains[c.name] : [...new Set(vals)];
+  const idx = new Map(dom.map((v, k) => [v, k]));
+  for (const v of vals) if (!idx.has(v)) { idx.set(v, idx.size); dom.push(v); }
+  return {
+    fill: (i) => PALETTE[idx.get(vals[i]) % PALETTE.length],
+    index: (i) => idx.get(vals[i]), count: idx.size, column: c.name,
+    legend: dom.map((v, k) => [PALETTE[k % PALETTE.length], fmtValue(v, c.type)]),
+  };
+}
+function tip(node, resp, i) {
+  const t = el("title", {}, node);
+  t.textContent = resp.columns.map((c) => `${c.name}: ${fmtValue(resp.data[c.name][i], c.type)}`).join("\n");
+}
+
+function draw(resp, body) {
+  const svg = $("chart");
+  svg.replaceChildren();
+  svg.setAttribute("viewBox", `0 0 ${W} ${H}`);
+  const ch = channelsOf(resp);
+  const n = resp.stats ? resp.stats.result_rows : 0;
+  const color = colorOf(resp, ch);
+  const xr = [M.left, W - M.right], yr = [H - M.bottom, M.top];
+  let kind = "none";
+  const marks = el("g", { class: "marks" }, svg);
+
+  if (isKey(ch.x) && isKey(ch.y)) {
+    // heat cells: two keys, the colour is the measure
+    kind = "cell";
+    const xs = keyScale(resp, ch.x, "x", xr[0], xr[1]), ys = keyScale(resp, ch.y, "y", yr[0], yr[1]);
+    for (let i = 0; i < n; i++) {
+      const px = cellSpan(xs, i), py = cellSpan(ys, i);
+      if (!px || !py) continue;
+      tip(el("rect", { "data-mark": "cell", "data-row": i, x: Math.min(...px), y: Math.min(...py),
+        width: Math.max(1, Math.abs(px[1] - px[0])), height: Math.max(1, Math.abs(py[1] - py[0])),
+        fill: color.fill(i) }, marks), resp, i);
+    }
+    axis(svg, xs.ticks, true, H - M.bottom, labelOf(ch.x, "x", body));
+    axis(svg, ys.ticks, false, M.left, labelOf(ch.y, "y", body));
+  } else if (isMeasure(ch.x) && isMeasure(ch.y)) {
+    kind = "point";
+    const xs = measureScale(resp, [ch.x.measure], xr[0], xr[1], false);
+    const ys = measureScale(resp, [ch.y.measure], yr[0], yr[1], false);
+    for (let i = 0; i < n; i++) {
+      const vx = resp.data[ch.x.measure.name][i], vy = resp.data[ch.y.measure.name][i];
+      if (vx === null || vy === null) continue;
+      tip(el("circle", { "data-mark": "point", "data-row": i, cx: xs.f(vx), cy: ys.f(vy), r: 4,
+        fill: color.fill(i), "fill-opacity": 0.8, stroke: "#fff", "stroke-width": 0.8 }, marks), resp, i);
+    }
+    axis(svg, xs.ticks, true, H - M.bottom, ch.x.measure.name);
+    axis(svg, ys.ticks, false, M.left, ch.y.measure.name);
+  } else if (isKey(ch.x) && ch.y && ch.y.measure) {
+    const keyType = (ch.x.key || ch.x.start).type;
+    const stacked = ch.y.stackStart && ch.y.stackEnd;
+    const xs = keyScale(resp, ch.x, "x", xr[0], xr[1]);
+    const mcols = stacked ? [ch.y.stackStart, ch.y.stackEnd] : [ch.y.measure];
+    const ys = measureScale(resp, mcols, yr[0], yr[1], true);
+    const yv = (i) => resp.data[ch.y.measure.name][i];
+    if (isTime(keyType) && !ch.x.start && !stacked) {
+      kind = "point";  // a line through the rows of each colour, one point mark per row
+      drawLines(resp, ch, xs, ys, color, marks, n);
+    } else {
+      kind = "bar";
+      const dodge = !stacked && color.count > 1;
+      for (let i = 0; i < n; i++) {
+        let p = xs.pos(i);
+        const v = yv(i);
+        if (!p || v === null) continue;
+        if (dodge) { const w = (p[1] - p[0]) / color.count; p = [p[0] + w * color.index(i), p[0] + w * (color.index(i) + 1)]; }
+        const a = stacked ? resp.data[ch.y.stackStart.name][i] : 0, z = stacked ? resp.data[ch.y.stackEnd.name][i] : v;
+        const y0 = ys.f(a), y1 = ys.f(z);
+        const gap = xs.kind === "continuous" && !dodge ? 0.5 : 0;
+        tip(el("rect", { "data-mark": "bar", "data-row": i, x: Math.min(p[0], p[1]) + gap, y: Math.min(y0, y1),
+          width: Math.max(1, Math.abs(p[1] - p[0]) - 2 * gap), height: Math.max(0.5, Math.abs(y1 - y0)),
+          fill: color.fill(i) }, marks), resp, i);
+      }
+    }
+    axis(svg, xs.ticks, true, H - M.bottom, labelOf(ch.x, "x", body));
+    axis(svg, ys.ticks, false, M.left, ch.y.measure.name + (stacked ? ` (stacked: ${resp.stack || "sum"})` : ""));
+  }
+  const legend = $("legend");
+  legend.replaceChildren();
+  if (kind === "none") legend.append(html("span", "No drawing for this shape of answer (it needs x and y); the table below has it."));
+  for (const [c, label] of color.legend) { const s = html("span", label); const sw = html("i"); sw.style.background = c; s.prepend(sw); legend.append(s); }
+  if (ch.row || ch.col) legend.append(html("span", "Facet cells are drawn on top of one another; the table keeps them apart."));
+  return { kind, marks: marks.querySelectorAll("[data-mark]").length };
+}
+function cellSpan(sc, i) {
+  const p = sc.pos(i);
+  if (!p) return null;
+  if (sc.kind === "band") { const mid = (p[0] + p[1]) / 2, half = sc.bw / 2; return [mid - half + 0.5, mid + half - 0.5]; }
+  return p[0] === p[1] ? [p[0] - 3, p[0] + 3] : p;
+}
+function labelOf(slot, chName, body) {
+  if (slot.key) return slot.key.name;
+  // a binned key is named <channel>_start/_end; the request says which column it bins
+  const spec = body && body.channels && body.channels[chName];
+  return spec && spec.column ? `${spec.column} (binned)` : slot.start.name.replace(/_start$/, "");
+}
+function drawLines(resp, ch, xs, ys, color, marks, n) {
+  const series = new Map();
+  for (let i = 0; i < n; i++) {
+    const k = color.index ? color.index(i) : 0;
+    if (!series.has(k)) series.set(k, []);
+    series.get(k).push(i);
+  }
+  const yname = ch.y.measure.name;
+  for (const [k, rows] of series) {
+    const pts = rows.map((i) => ({ i, p: xs.pos(i), v: resp.data[yname][i] })).filter((o) => o.p && o.v !== null)
+      .sort((a, b) => a.p[0] - b.p[0]);
+    const linked = pts.filter((o) => resp.data[(ch.x.key || ch.x.start).name][o.i] !== null);
+    if (linked.length > 1) {
+      el("path", { "data-series": k, d: "M" + linked.map((o) => `${o.p[0].toFixed(1)},${ys.f(o.v).toFixed(1)}`).join("L"),
+        fill: "none", stroke: color.fill(rows[0]), "stroke-width": 1.6 }, marks);
+    }
+    for (const o of pts) {
+      tip(el("circle", { "data-mark": "point", "data-row": o.i, cx: o.p[0], cy: ys.f(o.v), r: 2.2, fill: color.fill(o.i) }, marks), resp, o.i);
+    }
+  }
+}
+
+// Line breaks before the main clauses, outside quoted names and strings (display only).
+function layoutSql(sql) {
+  const parts = sql.split(/('(?:[^']|'')*'|"(?:[^"]|"")*")/);
+  return parts.map((p, k) => (k % 2 ? p : p
+    .replace(/\s+(FROM|WHERE|GROUP BY|HAVING|QUALIFY|WINDOW|ORDER BY|LIMIT|UNION ALL|(?:LEFT |INNER |CROSS )?JOIN)\s+/g, "\n$1 ")
+    .replace(/\)\s*,\s*$/g, "),\n")
+    .replace(/^\s*AS\s*\(\s*SELECT\s+/g, " AS (\n  SELECT ")
+    .replace(/\)\s+SELECT\s+/g, ")\nSELECT ")))
+    .join("");
+}
+
+// ---- page ------------------------------------------------------------------------------
+function showTable(resp) {
+  const t = $("result");
+  t.replaceChildren();
+  const head = html("tr");
+  for (const c of resp.columns) { const th = html("th", c.name); th.append(html("small", `${c.role} · ${c.type}`)); head.append(th); }
+  t.append(head);
+  const n = resp.stats.result_rows, shown = Math.min(n, 500);
+  for (let i = 0; i < shown; i++) {
+    const tr = html("tr");
+    for (const c of resp.columns) tr.append(html("td", fmtValue(resp.data[c.name][i], c.type), isNum(c.type) ? "num" : ""));
+    t.append(tr);
+  }
+  if (shown < n) { const tr = html("tr"); const td = html("td", `… ${n - shown} more rows not shown`); td.colSpan = resp.columns.length; tr.append(td); t.append(tr); }
+}
+function valueAt(body, ptr) {
+  if (!ptr) return undefined;
+  let node = body;
+  for (const raw of ptr.split("/").slice(1)) {
+    const part = raw.replace(/~1/g, "/").replace(/~0/g, "~");
+    if (node === null || typeof node !== "object" || !(part in node)) return undefined;
+    node = node[part];
+  }
+  return node;
+}
+function showProblem(p, body) {
+  const box = $("problem");
+  box.replaceChildren();
+  box.hidden = false;
+  $("figure").hidden = true;
+  box.append(html("h3", `${p.title || "Error"} (${p.status || "?"})`));
+  const items = (p.errors && p.errors.length ? p.errors : p.pointer !== undefined ? [{ pointer: p.pointer, detail: p.detail }] : []);
+  if (!(items.length === 1 && items[0].detail === p.detail)) box.append(html("div", p.detail || ""));
+  if (items.length) {
+    const ul = html("ul");
+    for (const e of items) {
+      const li = html("li");
+      li.append("at ", Object.assign(html("code", e.pointer || "/"), { className: "pointer" }), ` — ${e.detail}`);
+      const v = valueAt(body, e.pointer);
+      if (v !== undefined && typeof v !== "object") li.append(html("span", ` (the request has ${JSON.stringify(v)} there)`, "muted"));
+      ul.append(li);
+    }
+    box.append(ul);
+  }
+  if (p.suggestions && p.suggestions.length) box.append(html("div", `Nearest valid names: ${p.suggestions.join(", ")}`));
+}
+function clearAnswer() {
+  $("problem").hidden = true;
+  $("figure").hidden = false;
+  $("chart").replaceChildren();
+  $("legend").replaceChildren();
+  $("sql").textContent = "";
+  $("result").replaceChildren();
+}
+
+async function run() {
+  const btn = $("run");
+  let body;
+  try { body = JSON.parse($("request").value); } catch (e) {
+    clearAnswer();
+    showProblem({ title: "Not valid JSON", status: "-", detail: String(e.message) }, null);
+    $("status").textContent = "The request is not valid JSON.";
+    return;
+  }
+  btn.disabled = true;
+  $("status").textContent = "Running…";
+  const t0 = performance.now();
+  try {
+    const r = await fetch("/v1/chart", { method: "POST", headers: { "Content-Type": "application/json", Accept: "application/json" },
+      body: JSON.stringify(body) });
+    const data = await r.json().catch(() => ({ title: "Unreadable answer", status: r.status, detail: r.statusText }));
+    clearAnswer();
+    if (!r.ok) {
+      showProblem(data, body);
+      $("status").textContent = `HTTP ${r.status} · request id ${r.headers.get("x-request-id") || "?"}`;
+      document.body.dataset.state = "problem";
+      return;
+    }
+    $("sql").textContent = (data.sql || []).map((s) => layoutSql(s.replace(/;?\s*$/, ";"))).join("\n\n");
+    showTable(data);
+    const drawn = draw(data, body);
+    const s = data.stats, tm = data.timing_ms || {};
+    $("status").textContent = `${fmtNum(s.result_rows)} rows from ${fmtNum(s.matched_rows)} matched of ${fmtNum(s.source_rows)}`
+      + (s.truncated ? " (truncated)" : "") + (data.approximate ? " · approximate" : "")
+      + ` · ${drawn.marks} ${drawn.kind === "none" ? "marks" : drawn.kind + " marks"}`
+      + ` · engine ${fmtNum(tm.execute)} ms · round trip ${fmtNum(performance.now() - t0)} ms · cache ${data.cache || "-"}`;
+    $("chart").dataset.resultRows = s.result_rows;
+    document.body.dataset.state = "done";
+  } catch (e) {
+    clearAnswer();
+    showProblem({ title: "Request failed", status: "-", detail: String(e) }, body);
+    document.body.dataset.state = "problem";
+  } finally {
+    btn.disabled = false;
+  }
+}
+
+async function loadSource(name) {
+  const info = $("source-info"), list = $("columns");
+  list.replaceChildren();
+  info.textContent = "";
+  const r = await fetch(`/v1/sources/${encodeURIComponent(name)}`);
+  const s = await r.json();
+  if (!r.ok) { info.textContent = s.detail || `HTTP ${r.status}`; return; }
+  info.textContent = `${s.engine} · table ${s.table} · ${fmtNum(s.row_count)} rows`;
+  for (const c of s.columns) {
+    const li = html("li", c.name);
+    li.title = c.type;
+    li.append(html("span", c.kind || c.type));
+    li.addEventListener("click", () => insertAtCursor(JSON.stringify(c.name)));
+    list.append(li);
+  }
+  try {   // keep the request on the chosen source
+    const body = JSON.parse($("request").value);
+    if (body.source !== name) { body.source = name; $("request").value = pretty(body); }
+  } catch (_) { /* leave a half-typed request alone */ }
+}
+function insertAtCursor(text) {
+  const ta = $("request");
+  const a = ta.selectionStart, z = ta.selectionEnd;
+  ta.value = ta.value.slice(0, a) + text + ta.value.slice(z);
+  ta.selectionStart = ta.selectionEnd = a + text.length;
+  ta.focus();
+}
+// two-space JSON with short arrays of plain values kept on one line
+function pretty(obj) {
+  return JSON.stringify(obj, null, 2).replace(/\[\s+([^\[\]{}]*?)\s+\]/g,
+    (m, inner) => (inner.length < 60 ? `[${inner.split(/,\s+/).join(", ")}]` : m));
+}
+function setExample(label) {
+  const src = $("source").value || "deliveries";
+  $("request").value = pretty(EXAMPLES[label](src));
+}
+
+async function init() {
+  const ex = $("examples");
+  for (const label of Object.keys(EXAMPLES)) ex.append(new Option(label, label));
+  ex.addEventListener("change", () => setExample(ex.value));
+  setExample(Object.keys(EXAMPLES)[0]);
+  $("run").addEventListener("click", run);
+  $("request").addEventListener("keydown", (e) => { if (e.key === "Enter" && (e.ctrlKey || e.metaKey)) { e.preventDefault(); run(); } });
+  const sel = $("source");
+  sel.addEventListener("change", () => loadSource(sel.value));
+  try {
+    const r = await fetch("/v1/sources");
+    const { sources } = await r.json();
+    for (const s of sources) sel.append(new Option(`${s.name} (${s.engine})`, s.name));
+    const pick = sources.find((s) => s.name === "deliveries") || sources[0];
+    if (pick) { sel.value = pick.name; await loadSource(pick.name); }
+  } catch (e) {
+    $("source-info").textContent = `Cannot list sources: ${e}`;
+  }
+  document.body.dataset.state = "ready";
+}
+init();

@@ -1,0 +1,207 @@
+"""The preview page at `/`, driven in headless Debian chromium against a real uvicorn server.
+
+Needs /usr/bin/chromium and /usr/bin/chromedriver (`make test` installs them when missing, see
+.ci/browser.sh); skipped with the reason otherwise. Screenshots go to tests/artifacts/.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import socket
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+REPO = Path(__file__).resolve().parents[1]
+ARTIFACTS = Path(__file__).with_name("artifacts")
+CHROMIUM = "/usr/bin/chromium"
+CHROMEDRIVER = "/usr/bin/chromedriver"
+
+webdriver = pytest.importorskip("selenium.webdriver")
+if not (os.path.exists(CHROMIUM) and os.path.exists(CHROMEDRIVER)):
+    pytest.skip("chromium/chromedriver not installed (apt-get install chromium chromium-driver)",
+                allow_module_level=True)
+
+from selenium.webdriver.common.by import By  # noqa: E402
+from selenium.webdriver.support.ui import Select, WebDriverWait  # noqa: E402
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture(scope="module")
+def server(tmp_path_factory):
+    import httpx
+
+    from app.demo import build_demo
+
+    root = tmp_path_factory.mktemp("browser")
+    build_demo(root / "demo.duckdb", rows=50_000, progress=False)
+    cfg = root / "sluice.toml"
+    cfg.write_text('[sources.deliveries]\nengine = "duckdb"\npath = "demo.duckdb"\ntable = "deliveries"\n')
+    port = _free_port()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("SLUICE_")}
+    env["SLUICE_CONFIG"] = str(cfg)
+    log = open(root / "server.log", "wb")
+    proc = subprocess.Popen([sys.executable, "-m", "uvicorn", "app.main:app", "--host", "127.0.0.1",
+                             "--port", str(port), "--no-access-log"],
+                            cwd=REPO, env=env, stdout=log, stderr=subprocess.STDOUT)
+    base = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.monotonic() + 30
+        while True:
+            assert proc.poll() is None, (root / "server.log").read_text()[-3000:]
+            try:
+                if httpx.get(base + "/healthz", timeout=1).status_code == 200:
+                    break
+            except httpx.HTTPError:
+                pass
+            assert time.monotonic() < deadline, "server did not answer /healthz within 30 s"
+            time.sleep(0.1)
+        yield base
+    finally:
+        proc.terminate()
+        try:
+            proc.wait(10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+        log.close()
+
+
+@pytest.fixture(scope="module")
+def browser(tmp_path_factory):
+    from selenium.webdriver.chrome.options import Options
+    from selenium.webdriver.chrome.service import Service
+
+    os.environ.setdefault("SE_OFFLINE", "true")  # never let Selenium Manager reach the network
+    opts = Options()
+    opts.binary_location = CHROMIUM
+    for flag in ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                 "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                 "--disable-dev-shm-usage", "--window-size=1300,1150",
+                 f"--user-data-dir={tmp_path_factory.mktemp('chromium-profile')}"):
+        opts.add_argument(flag)
+    driver = webdriver.Chrome(options=opts, service=Service(CHROMEDRIVER))
+    driver.set_page_load_timeout(30)
+    try:
+        yield driver
+    finally:
+        driver.quit()
+
+
+def wait_state(driver, state: str, timeout: float = 30) -> None:
+    WebDriverWait(driver, timeout).until(
+        lambda d: d.execute_script("return document.body.dataset.state") == state,
+        f"page did not reach state {state!r}")
+
+
+def run_request(driver, body: dict | None = None) -> dict:
+    """Put `body` in the textarea (or keep what is there), press Run, return the request sent."""
+    if body is not None:
+        driver.execute_script("document.getElementById('request').value = arguments[0]",
+                              json.dumps(body, indent=2))
+    driver.execute_script("document.body.dataset.state = 'running'")
+    driver.find_element(By.ID, "run").click()
+    WebDriverWait(driver, 30).until(
+        lambda d: d.execute_script("return document.body.dataset.state") in ("done", "problem"))
+    return json.loads(driver.find_element(By.ID, "request").get_property("value"))
+
+
+def answer(base: str, body: dict) -> dict:
+    import httpx
+
+    r = httpx.post(base + "/v1/chart", json=body, timeout=30)
+    assert r.status_code == 200, r.text
+    return r.json()
+
+
+def marks(driver) -> list:
+    return driver.find_elements(By.CSS_SELECTOR, "#chart [data-mark]")
+
+
+def shot(driver, name: str) -> Path:
+    ARTIFACTS.mkdir(exist_ok=True)
+    path = ARTIFACTS / name
+    driver.save_screenshot(str(path))
+    assert path.stat().st_size > 10_000
+    return path
+
+
+def test_page_loads_sources_and_columns(server, browser):
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    sel = Select(browser.find_element(By.ID, "source"))
+    assert sel.first_selected_option.get_attribute("value") == "deliveries"
+    cols = [li.text.split("\n")[0] for li in browser.find_elements(By.CSS_SELECTOR, "#columns li")]
+    assert {"distance_km", "delivered_at", "depot", "vehicle"} <= set(cols)
+    assert "50,000 rows" in browser.find_element(By.ID, "source-info").text
+    body = json.loads(browser.find_element(By.ID, "request").get_property("value"))
+    assert body["source"] == "deliveries"
+    # no request left this page for anywhere but our server
+    hosts = browser.execute_script(
+        "return performance.getEntriesByType('resource').map(e => new URL(e.name).host)")
+    assert set(hosts) <= {server.removeprefix("http://")}
+
+
+def test_run_default_request_draws_one_bar_per_row(server, browser):
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    body = run_request(browser)
+    expected = answer(server, body)
+    n = expected["stats"]["result_rows"]
+    assert n > 5
+    drawn = marks(browser)
+    assert len(drawn) == n
+    assert {m.get_attribute("data-mark") for m in drawn} == {"bar"}
+    assert int(browser.find_element(By.ID, "chart").get_attribute("data-result-rows")) == n
+    sql = browser.find_element(By.ID, "sql").text
+    # the page lays the SQL out on several lines; the words are the answer's, unchanged
+    assert "SELECT" in sql and "".join(sql.split()) == "".join(
+        "".join(s.rstrip(";") + ";" for s in expected["sql"]).split())
+    assert len(browser.find_elements(By.CSS_SELECTOR, "#result tr")) == n + 1
+    # bars sit inside the plot and have real widths
+    widths = [float(m.get_attribute("width")) for m in drawn]
+    assert min(widths) > 5
+    shot(browser, "preview_histogram.png")
+
+
+@pytest.mark.parametrize("label, kind, picture", [
+    ("Parcels per week by vehicle (lines)", "point", "preview_lines.png"),
+    ("Hour by weekday, local time (heat cells)", "cell", "preview_heat.png"),
+    ("Distance by weight (binned heat cells)", "cell", None),
+    ("Mean fee against mean distance per depot and vehicle (points)", "point", None),
+    ("Parcels per depot, stacked by vehicle (bars)", "bar", "preview_stacked.png"),
+])
+def test_examples_draw_as_many_marks_as_rows(server, browser, label, kind, picture):
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    Select(browser.find_element(By.ID, "examples")).select_by_visible_text(label)
+    body = run_request(browser)
+    n = answer(server, body)["stats"]["result_rows"]
+    drawn = marks(browser)
+    assert len(drawn) == n > 0
+    assert {m.get_attribute("data-mark") for m in drawn} == {kind}
+    if picture:
+        shot(browser, picture)
+
+
+def test_problem_shows_pointer_and_suggestions(server, browser):
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    run_request(browser, {"source": "deliveries",
+                          "channels": {"x": {"column": "distnce_km", "bin": {}}, "y": {"agg": "count"}}})
+    box = browser.find_element(By.ID, "problem")
+    assert box.is_displayed()
+    assert "/channels/x/column" in [c.text for c in box.find_elements(By.CSS_SELECTOR, "code.pointer")]
+    assert "distance_km" in box.text  # nearest valid name
+    assert '"distnce_km"' in box.text  # the offending value, found through the pointer
+    assert marks(browser) == []
+    shot(browser, "preview_problem.png")
