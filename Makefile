@@ -8,7 +8,7 @@ DEMO   ?= data/demo.duckdb
 ROWS   ?= 2000000
 PYTEST_ARGS ?=
 
-.PHONY: serve test demo install install-test services bench load fuzz clean help
+.PHONY: serve test demo install install-test services browser bench load fuzz clean help
 
 help:
 	@echo "make serve   build the venv and the demo data, serve on $(HOST):$(PORT) (PORT=... overrides)"
@@ -45,7 +45,10 @@ serve: $(VENV)/.installed $(DEMO)
 services:
 	bash .ci/services.sh
 
-test: $(VENV)/.installed-test services
+browser:  # Debian chromium + chromedriver for tests/test_browser.py, only when missing
+	bash .ci/browser.sh
+
+test: $(VENV)/.installed-test services browser
 	$(BIN)/python -m pytest -q -n 2 --dist loadfile $(PYTEST_ARGS)
 
 clean:
