@@ -13,7 +13,10 @@ import pyarrow as pa
 
 from app.catalog import Catalog, SourceEntry, UnknownSource
 from app.encode import column_values, domain, instant_text, normalize_column, type_name
+from app import auth
 from app.engines import Engine
+from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
+from app.engines.arrow import conform
 from planner.compile import INTERNAL, Plan, prepare
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, nearest, pointer
@@ -36,44 +39,60 @@ def _ms(t0: float) -> float:
 class ChartService:
     def __init__(self, catalog: Catalog) -> None:
         self.catalog = catalog
+        st = catalog.settings
+        self.limiter = Limiter(getattr(st, "limits", None) or Limits(),
+                               {n: c.options for n, c in st.sources.items()})
 
     # ---- planning ------------------------------------------------------------------
     def check_source(self, name: str) -> None:
-        """404 (pointer /source) with the nearest names when ``name`` is not configured."""
+        """404 (pointer /source) with the nearest names when ``name`` is not configured;
+        403 first when the caller's API key does not grant it (app.auth)."""
+        auth.require(name)
         try:
             self.catalog.config(name)
         except UnknownSource as e:
+            known = auth.filter_names(e.known)  # never name sources the key may not see
             raise PlanError(pointer("source"), f"unknown source {name!r}; known sources: "
-                            f"{', '.join(e.known)}", slug="unknown-source", title="Unknown source",
-                            status=404, suggestions=nearest(name, e.known)) from None
+                            f"{', '.join(known)}", slug="unknown-source", title="Unknown source",
+                            status=404, suggestions=nearest(name, known)) from None
 
     def _plan(self, req: ChartRequest, dialect_name: str | None = None) -> tuple[Plan, SourceEntry, Engine]:
         self.check_source(req.source)
-        engine = self.catalog.engine(req.source)
+        limits = self.limiter.of(req.source)
+        check_request(req, limits)  # [limits] caps, 422 with pointers
+        engine = self.limiter.guard(req.source, self.catalog.engine(req.source),
+                                    user_sql=req.filter_sql is not None)  # statement timeout
         entry = self.catalog.entry(req.source)
+        check_filter_sql(req, limits, entry.schema, get_dialect(engine.dialect))
         if dialect_name is None:
             dialect_name = engine.dialect
-        if dialect_name not in DIALECTS:
+        try:
+            dialect = get_dialect(dialect_name)
+        except KeyError:
             raise PlanError("", f"unknown dialect {dialect_name!r}; use one of "
-                            f"{', '.join(sorted(DIALECTS))}", slug="unknown-dialect", status=400)
+                            f"{', '.join(sorted(DIALECTS))}", slug="unknown-dialect", status=400) from None
         req = self._clamp(req)
-        return prepare(req, entry.schema, get_dialect(dialect_name)), entry, engine
+        return prepare(req, entry.schema, dialect), entry, engine
 
     def _clamp(self, req: ChartRequest) -> ChartRequest:
-        cap = self.catalog.settings.max_limit
-        if req.limit > cap:
-            raise PlanError(pointer("limit"), f"limit {req.limit} exceeds this server's cap "
-                            f"of {cap} rows", slug="limit-exceeded")
-        return req
+        return clamp_limit(req, self.catalog.settings.max_limit)
 
     def _extents(self, plan: Plan, engine: Engine) -> dict[str, Any] | None:
         """Run the extents statement in the SOURCE's dialect (the values are dialect-free)."""
         if plan.extents is None:
             return None
         native = get_dialect(engine.dialect)
-        return engine.fetch_row(native.render(plan.extents))
+        extents = plan.extents
+        if native is not plan.dialect:  # built from the target's constructs: rebuild natively
+            extents = prepare(plan.request, plan.schema, native).extents
+        return engine.fetch_row(native.render(extents)) if extents is not None else None
 
     def plan_sql(self, req: ChartRequest, dialect_name: str | None) -> dict[str, Any]:
+        self.check_source(req.source)
+        with self.limiter.admit(req.source):  # max_concurrent per source, else 503
+            return self._plan_sql(req, dialect_name)
+
+    def _plan_sql(self, req: ChartRequest, dialect_name: str | None) -> dict[str, Any]:
         """SQL for ``dialect_name`` without running the chart (the extents statement, if any,
         runs on the source so the main statement shows the real bin layout)."""
         t0 = time.perf_counter()
@@ -86,6 +105,11 @@ class ChartService:
 
     # ---- running -------------------------------------------------------------------
     def run(self, req: ChartRequest) -> ChartResult:
+        self.check_source(req.source)
+        with self.limiter.admit(req.source):  # max_concurrent per source, else 503
+            return self._run(req)
+
+    def _run(self, req: ChartRequest) -> ChartResult:
         timing: dict[str, float] = {}
         t0 = time.perf_counter()
         plan, entry, engine = self._plan(req)
@@ -123,6 +147,7 @@ class ChartService:
 
     def _shape(self, plan: Plan, entry: SourceEntry, raw: pa.Table, extra: dict[str, Any] | None,
                statements: list[str]) -> tuple[pa.Table, dict[str, Any]]:
+        raw = conform(raw, plan)  # engine representations (0/1, text times) -> plan kinds
         def first(name: str) -> Any:
             if raw.num_rows and name in raw.column_names:
                 return raw.column(name)[0].as_py()

@@ -1,0 +1,117 @@
+"""PostgreSQL engine: psycopg 3 with a psycopg_pool connection pool.
+
+Read-only at the session level: every connection starts with
+``-c default_transaction_read_only=on`` (so any write fails inside PostgreSQL), a
+``statement_timeout`` from the source option ``statement_timeout_ms`` (default 30000) and
+``TimeZone=UTC``. Options: ``pool_min`` (default 1), ``pool_max`` (default 4),
+``connect_timeout_s`` (default 10).
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from typing import Any
+
+import pyarrow as pa
+
+from app.engines.arrow import UTC_US, rows_to_table
+from app.engines.base import EngineError, EngineUnavailable
+from app.settings import SourceConfig
+
+# PostgreSQL type OIDs -> Arrow types (numeric is left to value inspection).
+_OID_TYPES: dict[int, pa.DataType] = {
+    16: pa.bool_(), 20: pa.int64(), 21: pa.int64(), 23: pa.int64(), 26: pa.int64(),
+    700: pa.float64(), 701: pa.float64(), 25: pa.string(), 1042: pa.string(),
+    1043: pa.string(), 19: pa.string(), 1114: UTC_US, 1184: UTC_US, 1082: pa.date32(),
+}
+
+
+class PostgresEngine:
+    dialect = "postgres"
+
+    def __init__(self, cfg: SourceConfig) -> None:
+        self.cfg = cfg
+        try:
+            import psycopg
+            from psycopg_pool import ConnectionPool
+        except ImportError:
+            raise EngineUnavailable(cfg.name, "the postgres engine needs psycopg and psycopg_pool "
+                                    "(pip install 'sluice[engines]')") from None
+        if not cfg.dsn:
+            raise EngineUnavailable(cfg.name, "a postgres source needs dsn = \"postgresql://...\"")
+        self._psycopg = psycopg
+        timeout = int(cfg.options.get("statement_timeout_ms", 30_000))
+        options = (f"-c default_transaction_read_only=on -c statement_timeout={timeout} "
+                   "-c TimeZone=UTC")
+        self.pool = ConnectionPool(
+            cfg.dsn, open=False, name=f"sluice-{cfg.name}",
+            min_size=int(cfg.options.get("pool_min", 1)),
+            max_size=int(cfg.options.get("pool_max", 4)),
+            kwargs={"options": options, "autocommit": True,
+                    "connect_timeout": int(cfg.options.get("connect_timeout_s", 10))})
+        try:
+            self.pool.open(wait=True, timeout=float(cfg.options.get("connect_timeout_s", 10)))
+        except Exception as e:  # noqa: BLE001 - PoolTimeout or OperationalError
+            self.pool.close()
+            raise EngineUnavailable(cfg.name, f"cannot connect to PostgreSQL: {e}") from None
+        self._version_lock = threading.Lock()
+        self._version: tuple[float, str] | None = None
+
+    def _run(self, sql: str, params: tuple | None = None) -> tuple[list[str], list[Any], list[tuple]]:
+        psycopg = self._psycopg
+        try:
+            with self.pool.connection() as conn:
+                cur = conn.execute(sql, params)
+                rows = cur.fetchall() if cur.description else []
+                desc = cur.description or []
+        except psycopg.OperationalError as e:
+            raise EngineUnavailable(self.cfg.name, f"PostgreSQL: {e}") from None
+        except psycopg.Error as e:
+            raise EngineError(self.cfg.name, f"PostgreSQL: {e}".strip()) from None
+        except Exception as e:  # noqa: BLE001 - pool timeout
+            raise EngineUnavailable(self.cfg.name, f"PostgreSQL: {e}") from None
+        return [d.name for d in desc], [d.type_code for d in desc], rows
+
+    def execute(self, sql: str) -> pa.Table:
+        names, oids, rows = self._run(sql)
+        return rows_to_table(names, rows, [_OID_TYPES.get(o) for o in oids])
+
+    def fetch_row(self, sql: str) -> dict[str, Any]:
+        names, _, rows = self._run(sql)
+        return dict(zip(names, rows[0])) if rows else {}
+
+    def split_table(self, table: str) -> tuple[str, ...]:
+        return tuple(table.split("."))
+
+    def _regclass_sql(self, table: tuple[str, ...]) -> tuple[str, tuple]:
+        if len(table) >= 2:
+            return "to_regclass(quote_ident(%s) || '.' || quote_ident(%s))", (table[-2], table[-1])
+        return "to_regclass(quote_ident(%s))", (table[-1],)
+
+    def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
+        reg, params = self._regclass_sql(table)
+        _, _, rows = self._run(
+            "SELECT a.attname, format_type(a.atttypid, a.atttypmod) FROM pg_attribute a "
+            f"WHERE a.attrelid = {reg} AND a.attnum > 0 AND NOT a.attisdropped "
+            "ORDER BY a.attnum", params)
+        return [(r[0], r[1]) for r in rows]
+
+    def data_version(self) -> str:
+        """Table statistics counters (inserts/updates/deletes, last analyse), re-read at most
+        once a second. PostgreSQL reports them with a short delay."""
+        now = time.monotonic()
+        cached = self._version
+        if cached is not None and now - cached[0] < 1.0:
+            return cached[1]
+        reg, params = self._regclass_sql(self.split_table(self.cfg.table))
+        _, _, rows = self._run(
+            "SELECT n_tup_ins, n_tup_upd, n_tup_del, n_live_tup, last_analyze, last_autoanalyze "
+            f"FROM pg_stat_all_tables WHERE relid = {reg}", params)
+        version = repr(rows[0]) if rows else "unknown"
+        with self._version_lock:
+            self._version = (now, version)
+        return version
+
+    def close(self) -> None:
+        self.pool.close()
