@@ -13,10 +13,11 @@ from fastapi.exceptions import RequestValidationError
 from starlette.responses import FileResponse, Response
 from starlette.staticfiles import StaticFiles
 
-from app import observability
+from app import auth, observability
 from app.catalog import Catalog, UnknownSource
 from app.encode import ARROW_STREAM, arrow_stream, dumps
 from app.engines import EngineError, EngineUnavailable
+from app.limits import BodyLimitMiddleware
 from app.problems import PROBLEM_JSON, Problem, from_plan_error, problem_response, validation_handler
 from app.service import ChartService
 from app.settings import ConfigError, Settings, load_settings
@@ -36,9 +37,12 @@ class JSONResponse(Response):
 
 
 def _problem_responses() -> dict[int | str, dict[str, Any]]:
-    desc = {400: "Malformed request", 404: "Unknown source", 413: "Body too large",
+    desc = {400: "Malformed request", 401: "No or bad API key (when keys are configured)",
+            403: "The API key is not granted this source", 404: "Unknown source",
+            413: "Body too large",
             422: "The request cannot be planned (the pointer names the field)",
-            503: "The source's engine is unavailable"}
+            503: "The source's engine is unavailable, or busy (Retry-After)",
+            504: "The statement ran past the source's statement_timeout_ms"}
     return {code: {"description": d, "content": {PROBLEM_JSON: {}}} for code, d in desc.items()}
 
 
@@ -95,14 +99,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                                         "sluice failed to answer; the error is logged"),
                                 request.url.path)
 
-    @app.middleware("http")
-    async def _limit_body(request: Request, call_next):
-        length = request.headers.get("content-length")
-        if length is not None and length.isdigit() and int(length) > settings.max_body_bytes:
-            return problem_response(Problem(413, "body-too-large", "Request body too large",
-                                            f"the body has {length} bytes; the limit is "
-                                            f"{settings.max_body_bytes}"), request.url.path)
-        return await call_next(request)
 
     # ---- routes -----------------------------------------------------------------------
     @app.post("/v1/chart", responses=_problem_responses(), tags=["charts"])
@@ -165,18 +161,19 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     @app.get("/v1/sources", tags=["sources"])
     def sources() -> Response:
         out = []
-        for name in catalog.names():
+        for name in auth.filter_names(catalog.names()):  # only the sources the key grants
             cfg = catalog.config(name)
             out.append({"name": name, "engine": cfg.engine, "table": cfg.table})
         return JSONResponse({"sources": out})
 
     @app.get("/v1/sources/{name}", responses=_problem_responses(), tags=["sources"])
     def source(name: str) -> Response:
+        auth.require(name, None)  # 403 before 404: names cannot be probed
         try:
             cfg = catalog.config(name)
         except UnknownSource as e:
             raise Problem(404, "unknown-source", "Unknown source", f"unknown source {name!r}",
-                          "", suggestions=nearest(name, e.known)) from None
+                          "", suggestions=nearest(name, auth.filter_names(e.known))) from None
         entry = catalog.entry(name)
         cols = [{"name": c.name, "type": c.sql_type, "kind": c.kind}
                 for c in entry.schema.columns.values()]
@@ -206,6 +203,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                 ok = False
                 detail[name] = {"ready": False, "engine": engine, "error": f"{type(e).__name__}: {e}"}
             detail[name]["check_ms"] = round((time.perf_counter() - t0) * 1000.0, 3)
+        detail = {k: v for k, v in detail.items() if auth.allowed(k)}  # no key: no names
         return JSONResponse({"ready": ok, "sources": detail}, status_code=200 if ok else 503)
 
     @app.get("/metrics", tags=["operations"], response_class=Response)
@@ -221,6 +219,15 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
 
+    # body cap (also chunked bodies), then API keys, then CORS (answers preflights itself)
+    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
+    app.add_middleware(auth.AuthMiddleware, keys=getattr(settings, "keys", None) or [])
+    if getattr(settings, "cors_origins", None):
+        from starlette.middleware.cors import CORSMiddleware
+
+        app.add_middleware(CORSMiddleware, allow_origins=settings.cors_origins,
+                           allow_methods=["GET", "POST"], max_age=600,
+                           allow_headers=["Authorization", "X-API-Key", "Content-Type", "Accept"])
     # outermost: times, counts and logs every request, 413s and 404s included
     app.add_middleware(observability.ObservabilityMiddleware, metrics=metrics,
                        log_requests=settings.request_log)

@@ -73,6 +73,11 @@ class Settings:
     max_limit: int = 100_000
     max_body_bytes: int = 1_000_000
     request_log: bool = True  # one JSON log line per request on the "sluice.access" logger
+    # not [server] scalars: [limits] (app.limits.Limits), [[keys]] (app.auth.ApiKey) and
+    # [server] cors_origins
+    limits: Any = None
+    keys: list = field(default_factory=list)
+    cors_origins: list = field(default_factory=list)
 
     @property
     def source_names(self) -> list[str]:
@@ -86,7 +91,9 @@ SOURCE_KEYS = ("engine", "table", "path", "dsn", "options")
 ENGINE_OPTIONS: dict[str, tuple[str, ...]] = {
     "duckdb": ("memory_limit", "threads"),
 }
-TOP_KEYS = ("sources", "server")
+TOP_KEYS = ("sources", "server", "limits", "keys")
+#: per-source overrides of [limits] (see app/limits.py)
+SOURCE_LIMIT_KEYS = ("statement_timeout_ms", "max_concurrent", "queue_wait_ms")
 #: environment variables that are not overrides
 ENV_RESERVED = ("SLUICE_CONFIG", "SLUICE_DEMO_PATH")
 ENV_PREFIX = "SLUICE_"
@@ -184,7 +191,7 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
             near = _nearest_key(str(engine), ENGINES) if isinstance(engine, str) else ""
             raise ctx.fail(key + ("engine",), f"is {engine!r}" if engine is not None else "is missing",
                            f"{near}use one of {', '.join(ENGINES)}")
-        valid = list(SOURCE_KEYS) + list(ENGINE_OPTIONS.get(engine, ()))
+        valid = list(SOURCE_KEYS) + list(ENGINE_OPTIONS.get(engine, ())) + list(SOURCE_LIMIT_KEYS)
         _check_unknown(ctx, key, s, valid,
                        f" (an engine-specific option goes under [sources.{name}.options])")
         table = s.get("table")
@@ -213,7 +220,7 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
     if not isinstance(server, dict):
         raise ctx.fail(("server",), "must be a table", "write [server] on its own line")
     fields = _server_fields()
-    _check_unknown(ctx, ("server",), server, list(fields))
+    _check_unknown(ctx, ("server",), server, list(fields) + ["cors_origins"])
     st = Settings(sources=sources, config_path=path)
     for k, t in fields.items():
         if k in server:
@@ -223,6 +230,14 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
             if t in (int, float) and v <= 0:
                 raise ctx.fail(("server", k), f"is {v}; it must be positive", f"e.g. {k} = {default}")
             setattr(st, k, v)
+    from app.auth import parse_cors, parse_keys  # (lazy: app.limits imports app.engines)
+    from app.limits import parse_limits, source_limits
+
+    st.limits = parse_limits(data.get("limits"), ctx.fail)
+    for name, src in sources.items():
+        source_limits(st.limits, src.options, name, ctx.fail)  # checked now, used per request
+    st.keys = parse_keys(data.get("keys"), sources, ctx.fail)
+    st.cors_origins = parse_cors(server.get("cors_origins"), ctx.fail)
     return st
 
 

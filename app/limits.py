@@ -1,0 +1,374 @@
+"""Limits: what one request may ask for and how much of a source it may hold.
+
+* request shape caps (``[limits]`` in the config): channels, ``by`` keys, filter predicates,
+  IN-list length, ``filter_sql`` length — refused with a 422 whose pointer names the part;
+* request body size, also for chunked bodies without ``Content-Length`` (ASGI middleware,
+  413);
+* a statement timeout per source (``statement_timeout_ms``): the statement is interrupted
+  from a timer thread (DuckDB: ``cursor.interrupt()`` through the engine's ``canceller()``)
+  and the request answers 504;
+* admission control per source (``max_concurrent`` requests running on it at once): beyond
+  it a request waits at most ``queue_wait_ms`` and then answers 503 with ``Retry-After``.
+
+The result group cap is the server's ``max_limit``: a request without ``limit`` gets
+``min(10000, max_limit)`` rows and ``stats.truncated`` says when groups were cut; an explicit
+``limit`` above the cap is a 422.
+
+Config::
+
+    [limits]
+    max_channels = 16            # keys + measures, counting by[] and facet row/col
+    max_by = 16
+    max_filters = 256            # predicates in where, nested any/not included
+    max_in_list = 10000          # values in one in / not_in (and IN lists in filter_sql)
+    max_filter_sql_chars = 4096
+    statement_timeout_ms = 30000 # 0: no timeout
+    max_concurrent = 8           # per source
+    queue_wait_ms = 0            # how long a request may wait for a slot
+
+    [sources.deliveries]
+    statement_timeout_ms = 5000  # per-source overrides of the last three
+    max_concurrent = 4
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import threading
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from typing import Any
+
+from app.engines.base import EngineError, EngineUnavailable
+from app.problems import PROBLEM_JSON, Problem
+from planner.errors import PlanError, pointer
+from planner.model import AnyOf, ChartRequest, NotOf, Predicate
+
+#: per-source keys (``[sources.NAME]``) that override the ``[limits]`` defaults
+SOURCE_LIMIT_KEYS = ("statement_timeout_ms", "max_concurrent", "queue_wait_ms")
+
+
+@dataclass
+class Limits:
+    max_channels: int = 16
+    max_by: int = 16
+    max_filters: int = 256
+    max_in_list: int = 10_000
+    max_filter_sql_chars: int = 4096
+    statement_timeout_ms: int = 30_000
+    max_concurrent: int = 8
+    queue_wait_ms: int = 0
+
+    @classmethod
+    def keys(cls) -> list[str]:
+        return [f.name for f in dataclasses.fields(cls)]
+
+
+def parse_limits(raw: Any, fail: Callable[[tuple[str, ...], str, str | None], Exception]) -> Limits:
+    """``[limits]`` table -> Limits. ``fail(key, message, fix)`` builds the ConfigError."""
+    out = Limits()
+    if raw is None:
+        return out
+    if not isinstance(raw, dict):
+        raise fail(("limits",), "must be a table", "write [limits] on its own line")
+    valid = Limits.keys()
+    for k, v in raw.items():
+        if k not in valid:
+            import difflib
+
+            near = difflib.get_close_matches(k, valid, n=1, cutoff=0.5)
+            raise fail(("limits", k), "unknown key",
+                       (f"did you mean {near[0]!r}? " if near else "") + f"valid keys: {', '.join(valid)}")
+        out_v = _int(v, ("limits", k), fail, allow_zero=k in ("statement_timeout_ms", "queue_wait_ms"))
+        setattr(out, k, out_v)
+    return out
+
+
+def _int(v: Any, key: tuple[str, ...], fail, allow_zero: bool) -> int:
+    if isinstance(v, str) and v.strip().isdigit():  # values from environment overrides
+        v = int(v.strip())
+    if isinstance(v, bool) or not isinstance(v, int) or v < 0 or (v == 0 and not allow_zero):
+        raise fail(key, f"is {v!r}; it must be a {'non-negative' if allow_zero else 'positive'} "
+                   "integer", f"e.g. {key[-1]} = {getattr(Limits(), key[-1], 1)}")
+    return v
+
+
+def source_limits(limits: Limits, options: dict[str, Any], source: str,
+                  fail: Callable[[tuple[str, ...], str, str | None], Exception] | None = None
+                  ) -> Limits:
+    """The limits of one source: ``[limits]`` with the source's own overrides."""
+    out = dataclasses.replace(limits)
+    for k in SOURCE_LIMIT_KEYS:
+        if k in options:
+            f = fail or (lambda key, msg, fix: ValueError(f"[{'.'.join(key)}] {msg}; {fix}"))
+            setattr(out, k, _int(options[k], ("sources", source, k), f,
+                                 allow_zero=k != "max_concurrent"))
+    return out
+
+
+# =====================================================================================
+# request shape
+# =====================================================================================
+
+def _too_many(ptr: str, what: str, n: int, cap: int, key: str) -> PlanError:
+    return PlanError(ptr, f"{what}: {n} given, this server allows at most {cap} "
+                     f"([limits] {key})", slug="limit-exceeded", title="Request exceeds a limit")
+
+
+def check_request(req: ChartRequest, limits: Limits) -> None:
+    """Shape caps that do not need the source's schema (422 with a pointer)."""
+    if len(req.channels.by) > limits.max_by:
+        raise _too_many(pointer("channels", "by", limits.max_by), "too many by keys",
+                        len(req.channels.by), limits.max_by, "max_by")
+    chans = req.keyed_channels()
+    if len(chans) > limits.max_channels:
+        path = chans[limits.max_channels][0]
+        raise _too_many(pointer(*path), "too many channels", len(chans), limits.max_channels,
+                        "max_channels")
+    count = 0
+
+    def walk(f: Any, path: tuple) -> None:
+        nonlocal count
+        if isinstance(f, AnyOf):
+            for j, g in enumerate(f.any):
+                walk(g, path + ("any", j))
+            return
+        if isinstance(f, NotOf):
+            walk(f.not_, path + ("not",))
+            return
+        assert isinstance(f, Predicate)
+        count += 1
+        if count > limits.max_filters:
+            raise _too_many(pointer(*path), "too many filter predicates", count,
+                            limits.max_filters, "max_filters")
+        for op in ("in", "not_in"):
+            values = getattr(f, "in_" if op == "in" else op)
+            if values is not None and len(values) > limits.max_in_list:
+                raise _too_many(pointer(*path, op), f"too many values in {op}", len(values),
+                                limits.max_in_list, "max_in_list")
+
+    for i, f in enumerate(req.where):
+        walk(f, ("where", i))
+    if req.filter_sql is not None and len(req.filter_sql) > limits.max_filter_sql_chars:
+        raise _too_many(pointer("filter_sql"), "filter_sql is too long (characters)",
+                        len(req.filter_sql), limits.max_filter_sql_chars, "max_filter_sql_chars")
+
+
+def check_filter_sql(req: ChartRequest, limits: Limits, schema: Any, dialect: Any) -> None:
+    """IN lists inside ``filter_sql`` obey ``max_in_list`` too (needs the schema to parse)."""
+    if req.filter_sql is None:
+        return
+    from planner.filter_sql import compile_filter_sql
+
+    compile_filter_sql(req.filter_sql, schema, dialect, max_chars=limits.max_filter_sql_chars,
+                       max_in_list=limits.max_in_list)
+
+
+def clamp_limit(req: ChartRequest, max_limit: int) -> ChartRequest:
+    """The result group cap: an unset ``limit`` becomes ``min(default, max_limit)``; an
+    explicit one above the cap is refused (422 at /limit)."""
+    if req.limit <= max_limit:
+        return req
+    if "limit" not in req.model_fields_set:
+        return req.model_copy(update={"limit": max_limit})
+    raise PlanError(pointer("limit"), f"limit {req.limit} exceeds this server's cap of "
+                    f"{max_limit} rows (leave limit out to get the first {max_limit})",
+                    slug="limit-exceeded", title="Request exceeds a limit")
+
+
+# =====================================================================================
+# admission control and statement timeouts
+# =====================================================================================
+
+class Overloaded(Problem):
+    def __init__(self, source: str, running: int, retry_after: int = 1) -> None:
+        super().__init__(503, "overloaded", "Source busy",
+                         f"source {source!r} is already running {running} queries (its "
+                         "max_concurrent); retry shortly", source=source,
+                         headers={"Retry-After": str(retry_after)})
+
+
+class StatementTimeout(Problem):
+    def __init__(self, source: str, ms: int) -> None:
+        super().__init__(504, "statement-timeout", "Statement timed out",
+                         f"source {source!r}: the statement ran longer than {ms} ms "
+                         "(statement_timeout_ms) and was cancelled; narrow the request "
+                         "(where, fewer bins or keys)", source=source)
+
+
+class _Slot:
+    def __init__(self, n: int) -> None:
+        self.sem = threading.BoundedSemaphore(n)
+        self.n = n
+
+
+class Limiter:
+    """Per-source admission (a semaphore each) and guarded engines (statement timeouts)."""
+
+    def __init__(self, limits: Limits, source_options: dict[str, dict[str, Any]]) -> None:
+        self.limits = limits
+        self._per_source = {name: source_limits(limits, opts, name)
+                            for name, opts in source_options.items()}
+        self._slots: dict[str, _Slot] = {}
+        self._lock = threading.Lock()
+
+    def of(self, source: str) -> Limits:
+        return self._per_source.get(source, self.limits)
+
+    def _slot(self, source: str) -> _Slot:
+        slot = self._slots.get(source)
+        if slot is None:
+            with self._lock:
+                slot = self._slots.setdefault(source, _Slot(self.of(source).max_concurrent))
+        return slot
+
+    def running(self, source: str) -> int:
+        slot = self._slots.get(source)
+        return 0 if slot is None else slot.n - slot.sem._value  # noqa: SLF001 - a gauge only
+
+    @contextlib.contextmanager
+    def admit(self, source: str) -> Iterator[None]:
+        """Hold one of the source's ``max_concurrent`` slots, or answer 503."""
+        slot = self._slot(source)
+        wait = self.of(source).queue_wait_ms / 1000.0
+        ok = slot.sem.acquire(timeout=wait) if wait > 0 else slot.sem.acquire(blocking=False)
+        if not ok:
+            raise Overloaded(source, slot.n)
+        try:
+            yield
+        finally:
+            slot.sem.release()
+
+    def guard(self, source: str, engine: Any, user_sql: bool = False) -> "GuardedEngine":
+        return GuardedEngine(engine, source, self.of(source).statement_timeout_ms, user_sql)
+
+
+class GuardedEngine:
+    """An engine whose statements are cancelled after ``timeout_ms`` (504), and whose
+    errors on a request with ``filter_sql`` are the filter's fault (422 at /filter_sql)."""
+
+    def __init__(self, engine: Any, source: str, timeout_ms: int, user_sql: bool) -> None:
+        self._engine, self._source, self._ms, self._user_sql = engine, source, timeout_ms, user_sql
+        self.dialect = engine.dialect
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._engine, name)
+
+    def _run(self, fn: Callable[[str], Any], sql: str) -> Any:
+        cancel = getattr(self._engine, "canceller", None)
+        if self._ms <= 0 or cancel is None:
+            return self._call(fn, sql, fired=None)
+        interrupt = cancel()
+        state = {"done": False, "fired": False}
+        lock = threading.Lock()
+
+        def fire() -> None:
+            with lock:
+                if state["done"]:
+                    return
+                state["fired"] = True
+            interrupt()
+
+        timer = threading.Timer(self._ms / 1000.0, fire)
+        timer.daemon = True
+        timer.start()
+        try:
+            return self._call(fn, sql, fired=state)
+        finally:
+            with lock:
+                state["done"] = True
+            timer.cancel()
+
+    def _call(self, fn: Callable[[str], Any], sql: str, fired: dict | None) -> Any:
+        try:
+            return fn(sql)
+        except EngineUnavailable:
+            raise
+        except EngineError as e:
+            if fired is not None and fired["fired"]:
+                raise StatementTimeout(self._source, self._ms) from None
+            if self._user_sql:
+                raise PlanError(pointer("filter_sql"), "the engine could not evaluate "
+                                f"filter_sql: {e.message.splitlines()[0][:300]}",
+                                slug="bad-filter-sql", title="filter_sql failed on the engine") from None
+            raise
+
+    def execute(self, sql: str) -> Any:
+        return self._run(self._engine.execute, sql)
+
+    def fetch_row(self, sql: str) -> Any:
+        return self._run(self._engine.fetch_row, sql)
+
+
+# =====================================================================================
+# body size (also chunked bodies without Content-Length)
+# =====================================================================================
+
+class BodyLimitMiddleware:
+    """413 for a request body over ``max_bytes``, whether or not it declares its length.
+
+    The body is read up front (it is at most ``max_bytes``, ~1 MB by default), then replayed
+    to the app, so a chunked upload that grows past the cap is cut off without ever reaching
+    the JSON parser."""
+
+    def __init__(self, app: Any, max_bytes: int) -> None:
+        self.app, self.max_bytes = app, max_bytes
+
+    async def __call__(self, scope: dict, receive: Callable, send: Callable) -> None:
+        if scope["type"] != "http" or scope.get("method") in ("GET", "HEAD", "OPTIONS"):
+            await self.app(scope, receive, send)
+            return
+        headers = {k.lower(): v for k, v in scope.get("headers", [])}
+        length = headers.get(b"content-length")
+        if length is not None:
+            try:
+                declared = int(length)
+            except ValueError:
+                declared = -1
+            if declared < 0:
+                await self._reject(scope, send, 400, "bad-request", "Malformed request",
+                                   "Content-Length is not a number")
+                return
+            if declared > self.max_bytes:
+                await self._too_large(scope, send, f"the body has {declared} bytes")
+                return
+        chunks: list[bytes] = []
+        size = 0
+        more = True
+        while more:
+            msg = await receive()
+            if msg["type"] == "http.disconnect":
+                return
+            body = msg.get("body", b"")
+            size += len(body)
+            if size > self.max_bytes:
+                await self._too_large(scope, send, f"the body has more than {self.max_bytes} bytes")
+                return
+            chunks.append(body)
+            more = msg.get("more_body", False)
+        replayed = False
+
+        async def replay() -> dict:
+            nonlocal replayed
+            if not replayed:
+                replayed = True
+                return {"type": "http.request", "body": b"".join(chunks), "more_body": False}
+            return await receive()
+
+        await self.app(scope, replay, send)
+
+    async def _too_large(self, scope: dict, send: Callable, what: str) -> None:
+        await self._reject(scope, send, 413, "body-too-large", "Request body too large",
+                           f"{what}; the limit is {self.max_bytes} (server max_body_bytes)")
+
+    async def _reject(self, scope: dict, send: Callable, status: int, slug: str, title: str,
+                      detail: str) -> None:
+        from app.encode import dumps
+
+        body = dumps(Problem(status, slug, title, detail).body(scope.get("path")))
+        await send({"type": "http.response.start", "status": status,
+                    "headers": [(b"content-type", PROBLEM_JSON.encode()),
+                                (b"content-length", str(len(body)).encode()),
+                                (b"connection", b"close")]})
+        await send({"type": "http.response.body", "body": body})
