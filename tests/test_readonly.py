@@ -152,13 +152,23 @@ def test_postgres_sessions_are_read_only():
         admin.execute("TRUNCATE sluice_ro_canary")
         admin.execute("INSERT INTO sluice_ro_canary VALUES (1)")
     eng = pg_engine.PostgresEngine(SourceConfig(name="pg", engine="postgres",
-                                                table="sluice_ro_canary", dsn=dsn))
+                                                table="sluice_ro_canary", dsn=dsn,
+                                                options={"pool_max": 1}))
     try:
         for stmt in ("INSERT INTO sluice_ro_canary VALUES (2)", "DELETE FROM sluice_ro_canary",
                      "CREATE TABLE sluice_ro_evil (i int)", "DROP TABLE sluice_ro_canary",
                      "SET default_transaction_read_only = off; INSERT INTO sluice_ro_canary VALUES (3)"):
             with pytest.raises(EngineError):
                 eng.execute(stmt)
+        # a SET in one statement must not unlock the next one (pooled connections are RESET)
+        for unlock in ("SET default_transaction_read_only = off",
+                       "SET SESSION CHARACTERISTICS AS TRANSACTION READ WRITE"):
+            try:
+                eng.execute(unlock)
+            except EngineError:
+                pass
+            with pytest.raises(EngineError):
+                eng.execute("INSERT INTO sluice_ro_canary VALUES (4)")
         assert eng.execute("SELECT count(*) AS n FROM sluice_ro_canary").to_pylist() == [{"n": 1}]
     finally:
         eng.close()

@@ -49,7 +49,10 @@ class PostgresEngine:
             min_size=int(cfg.options.get("pool_min", 1)),
             max_size=int(cfg.options.get("pool_max", 4)),
             kwargs={"options": options, "autocommit": True,
-                    "connect_timeout": int(cfg.options.get("connect_timeout_s", 10))})
+                    "connect_timeout": int(cfg.options.get("connect_timeout_s", 10))},
+            # a SET on a pooled connection (e.g. default_transaction_read_only = off) must not
+            # outlive its statement: RESET ALL restores the read-only start-up options
+            reset=lambda conn: conn.execute("RESET ALL"))
         try:
             self.pool.open(wait=True, timeout=float(cfg.options.get("connect_timeout_s", 10)))
         except Exception as e:  # noqa: BLE001 - PoolTimeout or OperationalError
