@@ -90,6 +90,9 @@ SOURCE_KEYS = ("engine", "table", "path", "dsn", "options")
 #: goes under ``[sources.NAME.options]``. Engine authors: list your options here.
 ENGINE_OPTIONS: dict[str, tuple[str, ...]] = {
     "duckdb": ("memory_limit", "threads"),
+    "postgres": ("pool_min", "pool_max", "connect_timeout_s"),
+    "mysql": ("connect_timeout_s",),
+    "spark": ("master", "shuffle_partitions"),
 }
 TOP_KEYS = ("sources", "server", "limits", "keys")
 #: per-source overrides of [limits] (see app/limits.py)
