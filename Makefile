@@ -51,5 +51,14 @@ browser:  # Debian chromium + chromedriver for tests/test_browser.py, only when 
 test: $(VENV)/.installed-test services browser
 	$(BIN)/python -m pytest -q -n 2 --dist loadfile $(PYTEST_ARGS)
 
+BENCH_ROWS ?= 10000000
+bench: $(VENV)/.installed-test  # benchmarks, not tests; bench/README.md says what is measured
+	BENCH_ROWS=$(BENCH_ROWS) $(BIN)/python bench/run.py
+
+LOAD_CLIENTS ?= 32
+LOAD_SECONDS ?= 60
+load: $(VENV)/.installed-test  # bounded load run against 127.0.0.1 (server started here)
+	LOAD_CLIENTS=$(LOAD_CLIENTS) LOAD_SECONDS=$(LOAD_SECONDS) BENCH_ROWS=$(BENCH_ROWS) $(BIN)/python bench/load.py
+
 clean:
 	rm -rf $(VENV) .pytest_cache .hypothesis *.egg-info
