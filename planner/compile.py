@@ -26,6 +26,7 @@ Main statement shape::
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import math
 import re
 import zoneinfo
@@ -67,6 +68,7 @@ class Key:
     tstart: Any = None  # first bin's internal key value (epoch seconds or naive local datetime)
     tcount: int | None = None
     nlimits: tuple[float, float] | None = None
+    vrange: tuple[float, float] | None = None  # values that land in the bins (limits or data)
     tlimits: tuple[dt.datetime, dt.datetime] | None = None
 
     @property
@@ -584,6 +586,7 @@ def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
     if b.width is not None:
         lo, hi = k.nlimits if k.nlimits else (None, None)
         k.nbins = binning.width_bins(b.width, b.origin or 0.0, lo, hi)
+        k.vrange = k.nlimits
         return
     if k.nlimits is not None:
         lo, hi = k.nlimits
@@ -592,6 +595,7 @@ def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
         if lo is None or hi is None:  # no non-NULL values: a harmless placeholder layout
             k.nbins = binning.NumericBins(0.0, 1.0, 1, b.rule or "nice")
             return
+    k.vrange = (lo, hi)
     if b.rule is not None:
         n = int(row.get(p + "n") or 0)
         q1, q3 = _num(row, p + "q1"), _num(row, p + "q3")
@@ -736,6 +740,18 @@ def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
         assert b is not None
         v = d.double(ref)
         start, width = d.real(b.start), d.real(b.width)
+        fast = _plain_floor_is_exact(b, k.vrange)
+        if fast is not None:
+            # floor((v - start) / width) already puts every value of the range where the
+            # guarded form below would (proved at plan time, see _plain_floor_is_exact);
+            # the guard doubled the cost of a 10M-row histogram.
+            q = v.copy() if b.start == 0.0 else exp.Paren(this=exp.Sub(this=v.copy(),
+                                                                       expression=start.copy()))
+            idx = d.floor(exp.Div(this=q, expression=width.copy()))
+            if fast:  # the closed last bin: values on the upper edge go into the last bin
+                idx = exp.Case(ifs=[exp.If(this=exp.GTE(this=v.copy(), expression=d.real(fast)),
+                                           true=d.number(b.count - 1))], default=idx)
+            return idx
 
         def edge(i: exp.Expression) -> exp.Expression:
             return exp.Add(this=start.copy(), expression=exp.Mul(this=exp.Paren(this=i),
@@ -773,6 +789,45 @@ def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
 SUB_DAY_UNITS = ("hour", "minute", "second")
 
 
+def _plain_floor_is_exact(b: binning.NumericBins, vrange: tuple[float, float] | None
+                          ) -> float | None:
+    """Whether the unguarded bin index ``floor((v - start) / width)`` (IEEE double arithmetic,
+    as the engine computes it) equals the guarded one -- ``i`` with
+    ``start + i*width <= v < start + (i+1)*width`` -- for every double ``v`` in ``vrange``.
+
+    The index is monotone in ``v``, so it is right on all of ``[edge_i, edge_(i+1))`` as soon
+    as it is right at ``edge_i`` and at the double just below ``edge_(i+1)``; 2 checks per bin.
+    Returns None (use the guarded form), 0.0 (plain floor is exact on the whole range) or the
+    upper edge ``edge_count`` when values equal to it occur and must go to the last bin.
+    """
+    if b.count is None or vrange is None:
+        return None
+    lo, hi = vrange
+    return _exact_layout(b.start, b.width, b.count, lo, hi)
+
+
+@functools.lru_cache(maxsize=4096)
+def _exact_layout(start: float, width: float, count: int, lo: float, hi: float) -> float | None:
+    def idx(v: float) -> int:
+        return math.floor((v - start) / width)
+
+    def edge(i: int) -> float:
+        return start + float(i) * width
+
+    if not (math.isfinite(start) and math.isfinite(width) and width > 0):
+        return None
+    if not lo >= edge(0):
+        return None
+    for i in range(count):
+        e0, e1 = edge(i), edge(i + 1)
+        if not e1 > e0 or idx(e0) != i or idx(math.nextafter(e1, -math.inf)) != i:
+            return None
+    top = edge(count)
+    if hi < top:
+        return 0.0
+    return top  # values in [edge_count, hi] go to the last bin, as the guarded form clamps
+
+
 def _trunc_key(d: Dialect, unit: str, ref: exp.Expression, kind: str, tz: str) -> exp.Expression:
     """Grouping value of ``trunc``. Day and longer units truncate the wall-clock time in tz
     (a naive timestamp, turned back into an instant on output). Hour and shorter units
@@ -781,6 +836,8 @@ def _trunc_key(d: Dialect, unit: str, ref: exp.Expression, kind: str, tz: str) -
     local = d.to_local(ref, kind, tz)
     if unit not in SUB_DAY_UNITS:
         return d.trunc(unit, local)
+    if tz == "UTC":  # no offsets, no repeated hours: truncate the wall clock (4x cheaper)
+        return d.from_local(d.trunc(unit, local), tz)
     remainder = exp.Sub(this=d.epoch(local, "timestamp"),
                         expression=d.epoch(d.trunc(unit, local.copy()), "timestamp"))
     return d.from_epoch(exp.Sub(this=d.epoch(ref.copy(), kind), expression=exp.Paren(this=remainder)))
