@@ -205,3 +205,22 @@ def test_problem_shows_pointer_and_suggestions(server, browser):
     assert '"distnce_km"' in box.text  # the offending value, found through the pointer
     assert marks(browser) == []
     shot(browser, "preview_problem.png")
+
+
+def test_rows_with_null_measures_still_get_a_mark(server, browser):
+    """empty_bins: "null" adds bins whose measure is null; each is drawn as a hollow mark."""
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    body = run_request(browser, {
+        "source": "deliveries",
+        "channels": {"x": {"column": "distance_km", "bin": {"width": 1, "limits": [0, 40]}},
+                     "y": {"agg": "avg", "column": "delay_min"}},
+        "where": [{"column": "vehicle", "eq": "bike"}],
+        "empty_bins": "null"})
+    data = answer(server, body)
+    nulls = sum(v is None for v in data["data"]["avg_delay_min"])
+    assert nulls > 0
+    drawn = marks(browser)
+    assert len(drawn) == data["stats"]["result_rows"]
+    assert len(browser.find_elements(By.CSS_SELECTOR, "#chart [data-null='true']")) == nulls
+    shot(browser, "preview_null_bins.png")

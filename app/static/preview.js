@@ -307,7 +307,10 @@ function draw(resp, body) {
     const ys = measureScale(resp, [ch.y.measure], yr[0], yr[1], false);
     for (let i = 0; i < n; i++) {
       const vx = resp.data[ch.x.measure.name][i], vy = resp.data[ch.y.measure.name][i];
-      if (vx === null || vy === null) continue;
+      if (vx === null || vy === null) {   // a null measure: a hollow mark on the axis
+        tip(nullMark("point", i, vx === null ? M.left : xs.f(vx), vy === null ? H - M.bottom : ys.f(vy), marks), resp, i);
+        continue;
+      }
       tip(el("circle", { "data-mark": "point", "data-row": i, cx: xs.f(vx), cy: ys.f(vy), r: 4,
         fill: color.fill(i), "fill-opacity": 0.8, stroke: "#fff", "stroke-width": 0.8 }, marks), resp, i);
     }
@@ -329,7 +332,8 @@ function draw(resp, body) {
       for (let i = 0; i < n; i++) {
         let p = xs.pos(i);
         const v = yv(i);
-        if (!p || v === null) continue;
+        if (!p) continue;
+        if (v === null) { tip(nullMark("bar", i, (p[0] + p[1]) / 2, ys.f(0), marks), resp, i); continue; }
         if (dodge) { const w = (p[1] - p[0]) / color.count; p = [p[0] + w * color.index(i), p[0] + w * (color.index(i) + 1)]; }
         const a = stacked ? resp.data[ch.y.stackStart.name][i] : 0, z = stacked ? resp.data[ch.y.stackEnd.name][i] : v;
         const y0 = ys.f(a), y1 = ys.f(z);
@@ -348,6 +352,11 @@ function draw(resp, body) {
   for (const [c, label] of color.legend) { const s = html("span", label); const sw = html("i"); sw.style.background = c; s.prepend(sw); legend.append(s); }
   if (ch.row || ch.col) legend.append(html("span", "Facet cells are drawn on top of one another; the table keeps them apart."));
   return { kind, marks: marks.querySelectorAll("[data-mark]").length };
+}
+// A row whose measure is null still gets its mark: a small hollow diamond, data-null="true".
+function nullMark(kind, i, x, y, parent) {
+  return el("path", { "data-mark": kind, "data-row": i, "data-null": "true",
+    d: `M${x - 4},${y}L${x},${y - 4}L${x + 4},${y}L${x},${y + 4}Z`, fill: "#fff", stroke: "#8a9098", "stroke-width": 1 }, parent);
 }
 function cellSpan(sc, i) {
   const p = sc.pos(i);
@@ -370,8 +379,9 @@ function drawLines(resp, ch, xs, ys, color, marks, n) {
   }
   const yname = ch.y.measure.name;
   for (const [k, rows] of series) {
-    const pts = rows.map((i) => ({ i, p: xs.pos(i), v: resp.data[yname][i] })).filter((o) => o.p && o.v !== null)
-      .sort((a, b) => a.p[0] - b.p[0]);
+    const all = rows.map((i) => ({ i, p: xs.pos(i), v: resp.data[yname][i] })).filter((o) => o.p);
+    for (const o of all) if (o.v === null) tip(nullMark("point", o.i, o.p[0], ys.f(0), marks), resp, o.i);
+    const pts = all.filter((o) => o.v !== null).sort((a, b) => a.p[0] - b.p[0]);
     const linked = pts.filter((o) => resp.data[(ch.x.key || ch.x.start).name][o.i] !== null);
     if (linked.length > 1) {
       el("path", { "data-series": k, d: "M" + linked.map((o) => `${o.p[0].toFixed(1)},${ys.f(o.v).toFixed(1)}`).join("L"),
