@@ -110,8 +110,9 @@ def conform_column(arr: pa.ChunkedArray, kind: str | None) -> pa.ChunkedArray:
             return _parse_text_timestamps(arr)
         if pa.types.is_null(t):
             return arr.cast(UTC_US)
-        if pa.types.is_timestamp(t) and t.tz not in (None, "UTC"):
-            return arr.cast(pa.timestamp(t.unit, tz="UTC"))
+        if pa.types.is_timestamp(t) and (t.tz not in (None, "UTC") or t.unit in ("s", "ms")):
+            # one representation: microseconds (like DuckDB), UTC (naive values are UTC)
+            return arr.cast(pa.timestamp("us" if t.unit in ("s", "ms") else t.unit, tz="UTC"))
         if pa.types.is_date(t):
             return arr.cast(pa.timestamp("us")).cast(UTC_US)
     if kind == "date" and (pa.types.is_string(t) or pa.types.is_large_string(t)):

@@ -104,6 +104,14 @@ class Dialect:
         return exp.Literal.number(v)
 
     @staticmethod
+    def paren(e: exp.Expression) -> exp.Expression:
+        """``(e)`` when e is an operator expression (ASTs built by hand carry no implicit
+        precedence: ``Mul(Add(a, b), c)`` would render as ``a + b * c``)."""
+        if isinstance(e, (exp.Binary, exp.Unary)) and not isinstance(e, exp.Paren):
+            return exp.Paren(this=e)
+        return e
+
+    @staticmethod
     def var(name: str) -> exp.Var:
         return exp.Var(this=name)
 

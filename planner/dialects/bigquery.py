@@ -81,7 +81,7 @@ class BigQuery(Dialect):
         return exp.Div(this=self.fn("UNIX_MICROS", self._instant(e, kind)), expression=self.lit(1000000))
 
     def from_epoch(self, seconds):
-        micros = self.cast(exp.Round(this=exp.Mul(this=seconds, expression=self.lit(1000000))), "INT64")
+        micros = self.cast(exp.Round(this=exp.Mul(this=self.paren(seconds), expression=self.lit(1000000))), "INT64")
         return self.fn("TIMESTAMP_MICROS", micros)
 
     def contains(self, col, s):

@@ -97,7 +97,7 @@ class ClickHouse(Dialect):
         return exp.Div(this=self.fn("toFloat64", micros), expression=self.lit(1000000))
 
     def from_epoch(self, seconds):
-        micros = self.fn("toInt64", self.fn("round", exp.Mul(this=seconds, expression=self.lit(1000000))))
+        micros = self.fn("toInt64", self.fn("round", exp.Mul(this=self.paren(seconds), expression=self.lit(1000000))))
         return self.fn("fromUnixTimestamp64Micro", micros, self.lit("UTC"))
 
     def double(self, e):

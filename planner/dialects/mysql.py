@@ -117,7 +117,7 @@ class MySQL(Dialect):
         return exp.Div(this=self.double(micros), expression=self.real(1e6))
 
     def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
-        micros = self.cast(exp.Round(this=exp.Mul(this=seconds, expression=self.lit(1000000))),
+        micros = self.cast(exp.Round(this=exp.Mul(this=self.paren(seconds), expression=self.lit(1000000))),
                            "SIGNED")
         return self.fn("TIMESTAMPADD", self.var("MICROSECOND"), micros, self._dt(self.lit(_EPOCH)))
 

@@ -44,6 +44,9 @@ class Postgres(Dialect):
                               zone=self.lit(tz))
 
     def from_local(self, e: exp.Expression, tz: str) -> exp.Expression:
+        # AT TIME ZONE binds tighter than +: parenthesise sums like "start + INTERVAL ..."
+        if not isinstance(e, (exp.Column, exp.Func, exp.Paren)):
+            e = exp.Paren(this=e)
         return exp.AtTimeZone(this=e, zone=self.lit(tz))
 
     def trunc(self, unit: str, naive: exp.Expression) -> exp.Expression:

@@ -60,7 +60,7 @@ class Redshift(Postgres):
 
     def from_epoch(self, seconds):
         return exp.Add(this=self.cast(self.lit("1970-01-01 00:00:00"), "TIMESTAMP"),
-                       expression=exp.Mul(this=seconds, expression=exp.Interval(
+                       expression=exp.Mul(this=self.paren(seconds), expression=exp.Interval(
                            this=self.lit("1"), unit=self.var("SECOND"))))
 
     def agg(self, name, arg, q):

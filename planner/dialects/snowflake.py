@@ -81,7 +81,7 @@ class Snowflake(Dialect):
         return exp.Div(this=self.double(micros), expression=self.lit(1000000))
 
     def from_epoch(self, seconds):
-        micros = self.bigint(exp.Round(this=exp.Mul(this=seconds, expression=self.lit(1000000))))
+        micros = self.bigint(exp.Round(this=exp.Mul(this=self.paren(seconds), expression=self.lit(1000000))))
         return self.fn("TO_TIMESTAMP_NTZ", micros, self.lit(6))
 
     def contains(self, col, s):

@@ -91,7 +91,7 @@ class Spark(Dialect):
         return exp.Div(this=self.double(micros), expression=self.real(1e6))
 
     def from_epoch(self, seconds):
-        micros = self.bigint(exp.Round(this=exp.Mul(this=seconds, expression=self.lit(1000000))))
+        micros = self.bigint(exp.Round(this=exp.Mul(this=self.paren(seconds), expression=self.lit(1000000))))
         return self.fn("timestamp_micros", micros)
 
     def contains(self, col, s):

@@ -2,10 +2,12 @@
 >= 3.25 for window functions).
 
 Storage convention for timestamps (SQLite has no timestamp type): a column declared
-``TIMESTAMP`` (or ``DATETIME``) holds UTC text ``YYYY-MM-DD HH:MM:SS`` with an optional
-fraction ``.SSS`` (SQLite's own ``strftime('%Y-%m-%d %H:%M:%f')``); a ``DATE`` column holds
-``YYYY-MM-DD``. Comparisons against such text are exact because literals are written in the
-same fixed-width form. Results come back as text and the service types them from the plan.
+``TIMESTAMP`` (or ``DATETIME``) holds UTC text in exactly the form
+``YYYY-MM-DD HH:MM:SS.SSS`` (SQLite's own ``strftime('%Y-%m-%d %H:%M:%f')``: always three
+fraction digits); a ``DATE`` column holds ``YYYY-MM-DD``. Filters compare that text with
+literals written in the same fixed-width form, so the comparison is exact (and can use an
+index); values stored in another form would compare wrongly. Results come back as text and
+the service types them from the plan.
 
 SQLite has no time zone database: only UTC is accepted (``tz`` other than UTC -> 422). It has
 no percentile or standard deviation aggregates: median, quantile, stddev/variance and the
@@ -42,18 +44,19 @@ class SQLite(Dialect):
 
     def floor(self, e: exp.Expression) -> exp.Expression:
         # FLOOR needs the optional math functions; CAST truncates toward zero.
+        e = self.paren(e)
         t = self.cast(e, "INTEGER")
-        return exp.Sub(this=t, expression=exp.Paren(this=exp.LT(this=e.copy(), expression=t.copy())))
+        return exp.Paren(this=exp.Sub(this=t, expression=exp.Paren(
+            this=exp.LT(this=e.copy(), expression=t.copy()))))
 
     def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
         utc = value.astimezone(dt.timezone.utc)
         if kind == "date":
             return self.lit(utc.date().isoformat())
-        text = utc.strftime("%Y-%m-%d %H:%M:%S")
-        if utc.microsecond:
-            frac = f"{utc.microsecond:06d}"
-            text += "." + (frac[:3] if frac.endswith("000") else frac)
-        return self.lit(text)
+        # the storage form (3 fraction digits); a sub-millisecond instant keeps 6 digits,
+        # which still orders correctly against the 3-digit stored text
+        frac = f"{utc.microsecond:06d}"
+        return self.lit(utc.strftime("%Y-%m-%d %H:%M:%S.") + (frac[:3] if frac.endswith("000") else frac))
 
     def local_literal(self, value: dt.datetime) -> exp.Expression:
         return self.lit(value.strftime("%Y-%m-%d %H:%M:%S"))
@@ -83,13 +86,14 @@ class SQLite(Dialect):
             return self._f(fmts[unit], naive)
         if unit == "week":
             return exp.DPipe(this=self._monday(naive), expression=self.lit(" 00:00:00"))
-        if unit == "quarter":
-            month = self._int(self._f("%m", naive))
-            first = exp.Add(this=exp.Mul(this=exp.Paren(this=exp.IntDiv(
-                this=exp.Paren(this=exp.Sub(this=month, expression=self.lit(1))),
-                expression=self.lit(3))), expression=self.lit(3)), expression=self.lit(1))
-            return self.fn("printf", self.lit("%s-%02d-01 00:00:00"), self._f("%Y", naive.copy()),
-                           first)
+        if unit == "quarter":  # back (month - 1) % 3 months from the month start (NULL-safe)
+            back = exp.Mod(this=exp.Paren(this=exp.Sub(this=self._int(self._f("%m", naive)),
+                                                        expression=self.lit(1))),
+                           expression=self.lit(3))
+            modifier = exp.DPipe(this=exp.DPipe(this=self.lit("-"), expression=self.paren(back)),
+                                 expression=self.lit(" months"))
+            day = self.fn("date", naive.copy(), self.lit("start of month"), modifier)
+            return exp.DPipe(this=day, expression=self.lit(" 00:00:00"))
         raise ValueError(unit)
 
     def add_units(self, naive, n, unit):

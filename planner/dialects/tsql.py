@@ -97,7 +97,7 @@ class TSQL(Dialect):
     def from_epoch(self, seconds):
         whole = self.bigint(exp.Floor(this=seconds))
         millis = self.cast(exp.Round(this=exp.Mul(this=exp.Paren(this=exp.Sub(
-            this=seconds.copy(), expression=exp.Floor(this=seconds.copy()))),
+            this=self.paren(seconds.copy()), expression=exp.Floor(this=seconds.copy()))),
             expression=self.lit(1000)), expressions=[self.lit(0)]), "INT")
         base = self.fn("DATEADD", self.var("second"), whole, self.cast(self.lit("1970-01-01"), "DATETIME2"))
         return self.fn("DATEADD", self.var("millisecond"), millis, base)

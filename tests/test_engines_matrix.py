@@ -1,0 +1,354 @@
+"""Cross-engine matrix: every feature of a chart request, on every live engine, must give
+DuckDB's answer on the same rows — or be refused with the 422 the capability table promises.
+
+Outside references: DuckDB's answer on the identical fixture rows (tests/engine_fixtures.py,
+generated deterministically in Python and loaded into each engine), and each engine itself
+(its own date, percentile and variance functions run the SQL). The code path is the real
+service: ``app.service.ChartService`` over a ``Settings`` with one source per engine.
+
+Comparison: columns (name, role, type), rows in the order returned (the order is fully
+determined by the request: sort terms, then every key ascending, NULLs last), floats within
+1e-9 relative, and the response's stats, bins and domains. approx_count_distinct is compared
+with the exact count distinct within 6% (DuckDB's sketch and the engines' sketches differ;
+engines without one answer exactly).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import importlib.util
+import math
+import sys
+from pathlib import Path
+
+import pytest
+
+from planner.dialects import get_dialect
+from planner.errors import PlanError
+from planner.model import ChartRequest
+
+
+def _load(name: str):
+    key = f"sluice_test_{name}"
+    if key in sys.modules:
+        return sys.modules[key]
+    spec = importlib.util.spec_from_file_location(key, Path(__file__).with_name(f"{name}.py"))
+    mod = importlib.util.module_from_spec(spec)
+    sys.modules[key] = mod
+    spec.loader.exec_module(mod)
+    return mod
+
+
+fx = _load("engine_fixtures")
+
+ENGINES = ["postgres", "mysql", "sqlite", "clickhouse", "spark"]
+BERLIN, NEW_YORK = "Europe/Berlin", "America/New_York"
+DST_WEEK = [{"column": "ts", "gte": "2026-10-22T00:00:00Z", "lt": "2026-10-29T00:00:00Z"}]
+
+
+def key(column, **kw):
+    return {"column": column, **kw}
+
+
+def agg(name, column=None, **kw):
+    d = {"agg": name, **kw}
+    if column is not None:
+        d["column"] = column
+    return d
+
+
+COUNT = agg("count")
+
+CASES: dict[str, dict] = {
+    # --- aggregates -------------------------------------------------------------------
+    "count_by_cat": {"channels": {"x": key("cat"), "y": COUNT}},
+    "count_distinct": {"channels": {"x": key("grp"), "y": agg("count_distinct", "k"),
+                                    "size": agg("count_distinct", "cat")}},
+    "approx_count_distinct": {"channels": {"x": key("grp"), "y": agg("approx_count_distinct", "k")}},
+    "sums": {"channels": {"x": key("cat"), "y": agg("sum", "n"), "size": agg("sum", "amount"),
+                          "opacity": agg("sum", "x")}},
+    "avg": {"channels": {"x": key("flag"), "y": agg("avg", "n"), "size": agg("avg", "amount"),
+                         "opacity": agg("avg", "x")}},
+    "min_max": {"channels": {"x": key("grp"), "y": agg("min", "x"), "size": agg("max", "ts"),
+                             "opacity": agg("min", "cat"), "shape": agg("max", "amount")}},
+    "median": {"channels": {"x": key("grp"), "y": agg("median", "x"), "size": agg("median", "n")}},
+    "quantile": {"channels": {"x": key("flag"), "y": agg("quantile", "x", q=0.9),
+                              "size": agg("quantile", "amount", q=0.25)}},
+    "variance": {"channels": {"x": key("grp"), "y": agg("stddev_samp", "x"),
+                              "size": agg("stddev_pop", "x"), "opacity": agg("var_samp", "n"),
+                              "shape": agg("var_pop", "amount")}},
+    "no_keys": {"channels": {"y": COUNT, "size": agg("sum", "n")}},
+    # --- numeric bins -------------------------------------------------------------------
+    "bin_nice": {"channels": {"x": key("x", bin={"bins": 20}), "y": COUNT}},
+    "bin_width_origin": {"channels": {"x": key("x", bin={"width": 7.5, "origin": 1}), "y": COUNT}},
+    "bin_sturges": {"channels": {"x": key("x", bin={"rule": "sturges"}), "y": COUNT}},
+    "bin_scott": {"channels": {"x": key("x", bin={"rule": "scott"}), "y": COUNT}},
+    "bin_fd": {"channels": {"x": key("x", bin={"rule": "fd"}), "y": COUNT}},
+    "bin_sqrt": {"channels": {"x": key("n", bin={"rule": "sqrt"}), "y": COUNT}},
+    "bin_limits": {"channels": {"x": key("x", bin={"bins": 10, "limits": [-20, 30]}),
+                                "y": agg("avg", "n")}},
+    "bin_int_empty_zero": {"channels": {"x": key("n", bin={"width": 10, "limits": [-60, 60]}),
+                                        "y": COUNT, "color": key("grp")},
+                           "empty_bins": "zero", "where": [{"column": "n", "gt": 0}]},
+    "bin_decimal": {"channels": {"x": key("amount", bin={"bins": 15}), "y": agg("sum", "amount")}},
+    "bin_2d": {"channels": {"x": key("x", bin={"bins": 8}), "y": key("n", bin={"bins": 5}),
+                            "color": COUNT}},
+    # --- time bins, trunc, extract ------------------------------------------------------
+    "tbin_year_utc": {"channels": {"x": key("ts", bin={"bins": 20}), "y": COUNT}},
+    "tbin_year_berlin": {"channels": {"x": key("ts", bin={"bins": 12}, tz=BERLIN), "y": COUNT}},
+    "tbin_limits_null": {"channels": {"x": key("ts", bin={"bins": 10, "limits": [
+        "2026-03-27T00:00:00Z", "2026-04-01T00:00:00Z"]}), "y": agg("sum", "x")},
+        "empty_bins": "null"},
+    "tbin_days_newyork": {"channels": {"x": key("tsn", bin={"bins": 30, "limits": [
+        "2026-10-28T00:00:00Z", "2026-11-04T00:00:00Z"]}, tz=NEW_YORK), "y": COUNT},
+        "empty_bins": "zero"},
+    "trunc_day_berlin": {"channels": {"x": key("ts", trunc="day", tz=BERLIN), "y": COUNT},
+                         "where": DST_WEEK},
+    "trunc_week_newyork": {"channels": {"x": key("ts", trunc="week", tz=NEW_YORK), "y": COUNT}},
+    "trunc_hour_berlin_fallback": {"channels": {"x": key("tsn", trunc="hour", tz=BERLIN), "y": COUNT},
+                                   "where": [{"column": "ts", "gte": "2026-10-24T20:00:00Z",
+                                              "lt": "2026-10-25T06:00:00Z"}]},
+    "trunc_month_quarter_year": {"channels": {"x": key("ts", trunc="month"), "color": key("ts", trunc="quarter"),
+                                              "by": [key("ts", trunc="year")], "y": COUNT}},
+    "trunc_week_naive_utc": {"channels": {"x": key("tsn", trunc="week"), "y": agg("max", "tsn")}},
+    "trunc_minute_second": {"channels": {"x": key("ts", trunc="minute"), "color": key("ts", trunc="second"),
+                                         "y": COUNT},
+                            "where": [{"column": "ts", "gte": "2026-03-29T00:00:00Z",
+                                       "lt": "2026-03-29T06:00:00Z"}]},
+    "extract_week_parts_berlin": {"channels": {"x": key("ts", extract="isodow", tz=BERLIN),
+                                               "color": key("ts", extract="dow", tz=BERLIN),
+                                               "by": [key("ts", extract="week", tz=BERLIN),
+                                                      key("ts", extract="isoyear", tz=BERLIN)],
+                                               "y": COUNT}},
+    "extract_calendar_utc": {"channels": {"x": key("ts", extract="month"),
+                                          "color": key("ts", extract="quarter"),
+                                          "by": [key("ts", extract="year"), key("ts", extract="doy")],
+                                          "y": COUNT}},
+    "extract_clock_newyork": {"channels": {"x": key("tsn", extract="hour", tz=NEW_YORK),
+                                           "color": key("ts", extract="day", tz=NEW_YORK),
+                                           "by": [key("ts", extract="minute"), key("ts", extract="second")],
+                                           "y": COUNT}, "where": DST_WEEK},
+    # --- where ---------------------------------------------------------------------------
+    "where_compare": {"channels": {"x": key("grp"), "y": COUNT},
+                      "where": [{"column": "n", "gte": -10, "lt": 25, "ne": 3},
+                                {"column": "x", "gt": -5.5, "lte": 40},
+                                {"column": "amount", "gte": 100.25}]},
+    "where_text_case_sensitive": {"channels": {"x": key("cat"), "y": COUNT},
+                                  "where": [{"any": [{"column": "cat", "eq": "alpha"},
+                                                     {"column": "cat", "contains": "Al"},
+                                                     {"column": "cat", "starts_with": "Zü"},
+                                                     {"column": "cat", "contains": "東"}]}]},
+    "where_in_not_in_null": {"channels": {"x": key("cat"), "color": key("flag"), "y": COUNT},
+                             "where": [{"column": "cat", "not_in": ["beta", "naïve"]},
+                                       {"column": "grp", "in": ["north", "east"]},
+                                       {"column": "flag", "is_null": False},
+                                       {"column": "k", "is_null": False}]},
+    "where_any_not": {"channels": {"x": key("grp"), "y": agg("sum", "n")},
+                      "where": [{"any": [{"column": "cat", "starts_with": "a"},
+                                         {"not": {"column": "n", "lt": 0}},
+                                         {"column": "x", "is_null": True}]},
+                                {"not": {"any": [{"column": "flag", "eq": True},
+                                                 {"column": "grp", "eq": "south"}]}}]},
+    "where_time_and_empty_in": {"channels": {"x": key("grp"), "y": COUNT},
+                                "where": [{"column": "ts", "gte": "2026-03-08T06:59:59.5Z",
+                                           "lt": "2026-03-29T01:00:00.250Z"},
+                                          {"column": "tsn", "lte": "2026-06-01"},
+                                          {"column": "cat", "not_in": []}]},
+    "where_no_rows": {"channels": {"x": key("x", bin={"bins": 10, "limits": [0, 10]}), "y": COUNT},
+                      "where": [{"column": "n", "gt": 1000}]},
+    # --- top, stack, facets, sort, limit --------------------------------------------------
+    "top_by_count": {"channels": {"x": key("k", top=5), "y": COUNT}},
+    "top_by_sum_label": {"channels": {"x": key("cat", top=3, other_label="rest"),
+                                      "y": agg("sum", "x")}},
+    "top_color_in_histogram": {"channels": {"x": key("x", bin={"bins": 6}),
+                                            "color": key("cat", top=2), "y": COUNT}},
+    "stack_sum": {"channels": {"x": key("x", bin={"bins": 8}), "color": key("cat"), "y": COUNT},
+                  "stack": "sum"},
+    "stack_fraction": {"channels": {"x": key("grp"), "color": key("flag"), "y": agg("sum", "x")},
+                       "stack": "fraction"},
+    "stack_centered_horizontal": {"channels": {"y": key("ts", trunc="month", tz=BERLIN),
+                                               "color": key("grp"), "x": agg("avg", "amount")},
+                                  "stack": "centered"},
+    "facets_max_groups": {"channels": {"x": key("cat"), "y": COUNT},
+                          "facet": {"row": key("grp"), "col": key("flag"), "max_groups": 3},
+                          "sort": [{"channel": "y", "desc": True}]},
+    "sort_limit_truncated": {"channels": {"x": key("k"), "y": agg("sum", "n")},
+                             "sort": [{"channel": "y", "desc": True}], "limit": 7},
+    "sort_key_desc_limit": {"channels": {"x": key("k"), "y": COUNT},
+                            "sort": [{"channel": "x", "desc": True}], "limit": 12},
+    "high_cardinality": {"channels": {"x": key("k"), "color": key("flag"), "y": agg("max", "x")}},
+}
+
+
+def features(body: dict) -> set[str]:
+    """Capability-table features a request needs (independent of the dialect code)."""
+    out: set[str] = set()
+    req = ChartRequest.model_validate({"source": "s", **body})
+    for _, _, ch in req.keyed_channels():
+        if ch.agg in ("median", "quantile"):
+            out.add(ch.agg)
+        if ch.agg in ("stddev_samp", "stddev_pop", "var_samp", "var_pop"):
+            out.add("stddev")
+        if ch.bin is not None and ch.bin.rule == "scott":
+            out.add("stddev")
+        if ch.bin is not None and ch.bin.rule == "fd":
+            out.add("quantile")
+        if ch.tz not in (None, "UTC"):
+            out.add("tz")
+        if ch.trunc == "week":
+            out.add("trunc_week")
+        if ch.extract is not None:
+            out.add("extract")
+        if ch.top is not None:
+            out.add("window")
+    if req.stack or (req.facet and req.facet.max_groups):
+        out.add("window")
+    return out
+
+
+# --- fixtures ---------------------------------------------------------------------------
+
+@pytest.fixture(scope="session")
+def engine_sources(tmp_path_factory):
+    root = tmp_path_factory.mktemp("engines")
+    rows = fx.make_rows()
+    table = fx.arrow_table(rows)
+    return {
+        "duckdb": fx.load_duckdb(root, table),
+        "postgres": fx.load_postgres(rows),
+        "mysql": fx.load_mysql(rows),
+        "sqlite": fx.load_sqlite(root, rows),
+        "clickhouse": fx.load_chdb(root, table),
+        "spark": fx.load_spark(root, table),
+    }
+
+
+@pytest.fixture(scope="session")
+def service(engine_sources):
+    """One ChartService over every engine; ONE SparkSession (local[2], 2 shuffle partitions,
+    no UI) for the whole test session."""
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    settings = parse_settings({"sources": engine_sources}, "<engine matrix>")
+    catalog = Catalog(settings)
+    yield ChartService(catalog)
+    catalog.close()
+
+
+_DUCK: dict[str, dict] = {}
+
+
+def answer(service, engine: str, body: dict) -> dict:
+    req = ChartRequest.model_validate({"source": engine, **body})
+    result = service.run(req)
+    out = service.to_json(result)
+    out.pop("timing_ms", None)
+    return out
+
+
+def duck(service, case: str) -> dict:
+    if case not in _DUCK:
+        _DUCK[case] = answer(service, "duckdb", CASES[case])
+    return _DUCK[case]
+
+
+# --- comparison ---------------------------------------------------------------------------
+
+def _same(a, b, rel: float) -> bool:
+    if a is None or b is None:
+        return a is None and b is None
+    if isinstance(a, bool) or isinstance(b, bool):
+        return a is b
+    if isinstance(a, (int, float)) and isinstance(b, (int, float)):
+        if isinstance(a, float) and math.isnan(a):
+            return isinstance(b, float) and math.isnan(b)
+        return math.isclose(a, b, rel_tol=rel, abs_tol=1e-9)
+    if isinstance(a, list) and isinstance(b, list):
+        return len(a) == len(b) and all(_same(x, y, rel) for x, y in zip(a, b))
+    return a == b
+
+
+def assert_same_answer(got: dict, want: dict, body: dict, engine: str) -> None:
+    cols = [(c["name"], c["role"], c["type"]) for c in got["columns"]]
+    want_cols = [(c["name"], c["role"], c["type"]) for c in want["columns"]]
+    assert cols == want_cols, f"{engine}: columns differ\n got  {cols}\n want {want_cols}"
+    approx: set[str] = set()
+    req = ChartRequest.model_validate({"source": "s", **body})
+    for _, _, ch in req.keyed_channels():
+        if ch.agg == "approx_count_distinct":
+            approx.add(f"approx_count_distinct_{ch.column}")
+    names = [c["name"] for c in got["columns"]]
+    n_got = len(got["data"][names[0]]) if names else 0
+    n_want = len(want["data"][names[0]]) if names else 0
+    assert n_got == n_want, f"{engine}: {n_got} rows, DuckDB {n_want}"
+    for name in names:
+        if name in approx:
+            continue
+        g, w = got["data"][name], want["data"][name]
+        bad = [i for i, (a, b) in enumerate(zip(g, w)) if not _same(a, b, 1e-9)]
+        assert not bad, (f"{engine}: column {name!r} differs at rows {bad[:5]}: "
+                         f"got {[g[i] for i in bad[:5]]}, DuckDB {[w[i] for i in bad[:5]]}")
+    for key_ in ("source_rows", "matched_rows", "result_rows", "groups", "truncated",
+                 "outside_limits"):
+        assert got["stats"].get(key_) == want["stats"].get(key_), \
+            f"{engine}: stats.{key_} {got['stats'].get(key_)} != DuckDB {want['stats'].get(key_)}"
+    assert _same(got["bins"], want["bins"], 1e-9) or got["bins"] == want["bins"], \
+        f"{engine}: bins {got['bins']} != DuckDB {want['bins']}"
+    for dname, dom in want["domains"].items():
+        if dname in approx:
+            continue
+        assert _same(got["domains"].get(dname), dom, 1e-9), \
+            f"{engine}: domains.{dname} {got['domains'].get(dname)} != DuckDB {dom}"
+    assert got.get("approximate", False) == want.get("approximate", False)
+
+
+# --- the matrix -----------------------------------------------------------------------------
+
+@pytest.mark.parametrize("case", list(CASES))
+@pytest.mark.parametrize("engine", ENGINES)
+def test_engine_matches_duckdb(service, engine: str, case: str):
+    body = CASES[case]
+    dialect = get_dialect(engine)
+    refused = sorted(f for f in features(body) if not dialect.supports(f))
+    if refused:
+        # The capability table promises a 422 "not supported on <dialect>: <feature>".
+        with pytest.raises(PlanError) as err:
+            answer(service, engine, body)
+        assert err.value.status == 422, err.value.detail
+        assert err.value.detail.startswith(f"not supported on {engine}: "), err.value.detail
+        assert err.value.slug == "unsupported"
+        return
+    want = duck(service, case)
+    got = answer(service, engine, body)
+    assert got["dialect"] == engine
+    assert_same_answer(got, want, body, engine)
+
+
+def test_duckdb_reference_is_not_trivial(service):
+    """Guard against comparing empty answers: the reference has rows for every case that
+    is meant to match rows."""
+    for case in CASES:
+        out = duck(service, case)
+        n = out["stats"]["result_rows"]
+        if case == "where_no_rows":
+            assert n == 0 and out["stats"]["matched_rows"] == 0
+        else:
+            assert n > 0, case
+
+
+def test_approx_count_distinct_close_to_exact(service):
+    """approx_count_distinct within 6% of the exact count on every engine (exact engines
+    answer exactly); every answer says it is approximate."""
+    exact = answer(service, "duckdb", {"channels": {"x": key("grp"),
+                                                    "y": agg("count_distinct", "k")}})
+    want = exact["data"]["count_distinct_k"]
+    for engine in ["duckdb"] + ENGINES:
+        got = answer(service, engine, CASES["approx_count_distinct"])
+        assert got.get("approximate") is True, engine
+        values = got["data"]["approx_count_distinct_k"]
+        for g, w in zip(values, want):
+            assert abs(g - w) <= 0.06 * w, f"{engine}: {g} vs exact {w}"
+            if get_dialect(engine).approx_distinct[1] == 0.0:  # answered exactly
+                assert g == w, f"{engine}: {g} vs exact {w}"
