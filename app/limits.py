@@ -286,7 +286,7 @@ class GuardedEngine:
         except EngineUnavailable:
             raise
         except EngineError as e:
-            if fired is not None and fired["fired"]:
+            if (fired is not None and fired["fired"]) or _server_timeout(e.message):
                 raise StatementTimeout(self._source, self._ms) from None
             if self._user_sql:
                 raise PlanError(pointer("filter_sql"), "the engine could not evaluate "
@@ -299,6 +299,14 @@ class GuardedEngine:
 
     def fetch_row(self, sql: str) -> Any:
         return self._run(self._engine.fetch_row, sql)
+
+
+def _server_timeout(message: str) -> bool:
+    """A timeout the server enforced itself (PostgreSQL ``statement_timeout``, MySQL
+    ``max_execution_time``)."""
+    low = message.lower()
+    return ("canceling statement due to statement timeout" in low
+            or "maximum statement execution time exceeded" in low)
 
 
 # =====================================================================================

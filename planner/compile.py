@@ -410,6 +410,30 @@ def _assign_names(plan: Plan) -> None:
                                          "stack_start", m.spec.column))
         plan.columns.append(OutputColumn(claim(f"{m.name}_end", m.channel), m.channel,
                                          "stack_end", m.spec.column))
+    _check_name_lengths(plan)
+
+
+#: identifier caps (bytes) of engines that silently CUT longer names (the answer would then
+#: lack the column); a dialect may set ``max_identifier_bytes`` itself
+_IDENT_BYTES = {"postgres": 63, "redshift": 127}
+
+
+def _check_name_lengths(plan: Plan) -> None:
+    d = plan.dialect
+    cap = getattr(d, "max_identifier_bytes", None) or _IDENT_BYTES.get(d.name)
+    if cap is None:
+        return
+    stack = [c.name for c in plan.columns if c.role in ("stack_start", "stack_end")]
+    items = [(k.path, k.spec, list(k.names)) for k in plan.keys]
+    items += [(m.path, m.spec, [m.name] + (stack if m is plan.stack_measure else []))
+              for m in plan.measures]
+    for path, spec, names in items:
+        for n in names:
+            if len(n.encode("utf-8")) > cap:
+                raise PlanError(pointer(*path, "name" if spec.name else "column"),
+                                f"output column name {n!r} is longer than the {cap} bytes "
+                                f"{d.name} keeps; give the channel a shorter name",
+                                slug="name-too-long")
 
 
 def _path_rank(path: tuple) -> tuple:

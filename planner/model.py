@@ -11,6 +11,7 @@ import math
 from typing import Annotated, Any, Literal, Union
 
 from pydantic import (
+    AfterValidator,
     BaseModel,
     ConfigDict,
     Discriminator,
@@ -35,6 +36,17 @@ Scalar = Union[bool, int, float, str]  # bool first: JSON true must not become 1
 ChannelName = Literal["x", "y", "color", "size", "shape", "opacity", "row", "col"]
 
 MAX_BINS = 10_000
+
+
+def _no_nul(v: str) -> str:
+    # NUL ends a C string: engines would cut the text (or fail) instead of using it as sent
+    if "\x00" in v:
+        raise ValueError("text may not contain NUL (\\u0000) characters")
+    return v
+
+
+#: request text (names, labels, values): any Unicode but NUL
+Text = Annotated[str, AfterValidator(_no_nul)]
 
 
 class _Strict(BaseModel):
@@ -75,16 +87,16 @@ class Bin(_Strict):
 class Channel(_Strict):
     """A key (``column`` without ``agg``) or a measure (``agg``, with ``column`` as input)."""
 
-    column: str | None = Field(None, min_length=1, max_length=256)
+    column: Text | None = Field(None, min_length=1, max_length=256)
     agg: AggName | None = None
     q: float | None = Field(None, ge=0, le=1, description="Quantile in [0, 1] for agg=quantile.")
     bin: Bin | None = None
     trunc: TruncUnit | None = None
     extract: ExtractField | None = None
-    tz: str | None = Field(None, min_length=1, max_length=64, description="IANA time zone name.")
+    tz: Text | None = Field(None, min_length=1, max_length=64, description="IANA time zone name.")
     top: int | None = Field(None, ge=1, le=10_000, description="Keep the N largest groups.")
-    other_label: str = Field("(other)", max_length=256)
-    name: str | None = Field(None, min_length=1, max_length=128, description="Output column name.")
+    other_label: Text = Field("(other)", max_length=256)
+    name: Text | None = Field(None, min_length=1, max_length=128, description="Output column name.")
 
     @model_validator(mode="after")
     def _consistent(self) -> "Channel":
@@ -136,7 +148,7 @@ VISUAL_CHANNELS = ("x", "y", "color", "size", "shape", "opacity")
 class Predicate(_Strict):
     """One column, one or more operators; all must hold."""
 
-    column: str = Field(min_length=1, max_length=256)
+    column: Text = Field(min_length=1, max_length=256)
     eq: Scalar | None = None
     ne: Scalar | None = None
     lt: Scalar | None = None
@@ -146,8 +158,8 @@ class Predicate(_Strict):
     in_: list[Scalar] | None = Field(None, alias="in", max_length=10_000)
     not_in: list[Scalar] | None = Field(None, max_length=10_000)
     is_null: StrictBool | None = None
-    contains: str | None = Field(None, max_length=1024)
-    starts_with: str | None = Field(None, max_length=1024)
+    contains: Text | None = Field(None, max_length=1024)
+    starts_with: Text | None = Field(None, max_length=1024)
 
     @model_validator(mode="after")
     def _has_operator(self) -> "Predicate":
@@ -232,7 +244,7 @@ class Reduce(_Strict):
 class ChartRequest(_Strict):
     """A chart request: which columns sit on which channels, filtered, binned, faceted."""
 
-    source: str = Field(min_length=1, max_length=256)
+    source: Text = Field(min_length=1, max_length=256)
     channels: Channels
     where: list[Filter] = Field(default_factory=list, max_length=256)
     facet: Facet | None = None
