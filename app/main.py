@@ -14,6 +14,7 @@ from starlette.responses import FileResponse, Response
 from starlette.staticfiles import StaticFiles
 
 from app import auth, observability
+from app.cache import Entry, ResultCache, canonical, open_json, stamp_json
 from app.catalog import Catalog, UnknownSource
 from app.encode import ARROW_STREAM, arrow_stream, dumps
 from app.engines import EngineError, EngineUnavailable
@@ -65,6 +66,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.catalog = catalog
     app.state.service = service
+    cache_cfg = getattr(settings, "cache", None) or {}
+    cache = app.state.cache = ResultCache(cache_cfg.get("max_bytes", 64 * 1024 * 1024),
+                                          cache_cfg.get("enabled", True))
     metrics = app.state.metrics = observability.Metrics()  # one registry per app
     metrics.declare_sources(catalog.names())
 
@@ -105,21 +109,41 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     def chart(req: ChartRequest, request: Request) -> Response:
         """Run a chart request and return the mark-ready table (JSON, or Arrow IPC stream
         when the client accepts ``application/vnd.apache.arrow.stream``)."""
-        result = service.run(req)
-        observability.record_chart(req.source, result.meta, result.timing)
-        t0 = time.perf_counter()
-        meta = dict(result.meta)
-        meta["cache"] = "miss"
-        if ARROW_STREAM in request.headers.get("accept", ""):
-            meta["timing_ms"] = result.timing
-            body = arrow_stream(result.table, meta)
-            return Response(body, media_type=ARROW_STREAM)
-        payload = service.to_json(result)
-        payload["cache"] = "miss"
-        timing = dict(result.timing)
-        timing["encode"] = round((time.perf_counter() - t0) * 1000.0, 3)
-        payload["timing_ms"] = timing
-        return JSONResponse(payload)
+        t_in = time.perf_counter()
+        service.check_source(req.source)  # auth before any cached answer
+        arrow = ARROW_STREAM in request.headers.get("accept", "")
+        lookup = "no-cache" not in request.headers.get("cache-control", "").lower()
+        key = None
+        if cache.enabled:
+            version = catalog.engine(req.source).data_version()
+            key = cache.key(canonical(req), version, "arrow" if arrow else "json")
+
+        def run() -> Entry:
+            result = service.run(req)
+            observability.record_chart(req.source, result.meta, result.timing)
+            t0 = time.perf_counter()
+            if arrow:  # kept as (table, meta): the metadata is re-stamped per answer
+                return _ArrowEntry(result.table, dict(result.meta), dict(result.timing))
+            payload = service.to_json(result)
+            payload.pop("cache", None)
+            payload.pop("timing_ms", None)
+            body = open_json(payload)
+            timing = dict(result.timing)
+            timing["encode"] = round((time.perf_counter() - t0) * 1000.0, 3)
+            return Entry(body, "application/json", timing)
+
+        if key is None:
+            entry, state = run(), "miss"
+        else:
+            entry, state = cache.compute(key, req.source, run, lookup=lookup)
+        timing = entry.timing if state == "miss" else {
+            "lookup": round((time.perf_counter() - t_in) * 1000.0, 3)}
+        if isinstance(entry, _ArrowEntry):
+            meta = dict(entry.meta)
+            meta["cache"] = state
+            meta["timing_ms"] = timing
+            return Response(arrow_stream(entry.table, meta), media_type=ARROW_STREAM)
+        return Response(stamp_json(entry.body, state, timing), media_type="application/json")
 
     @app.post("/v1/batch", responses=_problem_responses(), tags=["charts"])
     def batch(req: BatchRequest) -> Response:
@@ -232,6 +256,20 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_middleware(observability.ObservabilityMiddleware, metrics=metrics,
                        log_requests=settings.request_log)
     return app
+
+
+class _ArrowEntry(Entry):
+    """A cached Arrow answer: the table and its metadata, encoded per answer (cheap for the
+    few hundred rows of a chart) so ``cache`` and ``timing_ms`` are true for each one."""
+
+    def __init__(self, table: Any, meta: dict[str, Any], timing: dict[str, float]) -> None:
+        super().__init__(b"", ARROW_STREAM, timing)
+        self.table = table
+        self.meta = meta
+
+    @property
+    def nbytes(self) -> int:
+        return int(self.table.nbytes) + len(dumps(self.meta)) + 128
 
 
 def _lazy_app() -> FastAPI:

@@ -78,6 +78,8 @@ class Settings:
     limits: Any = None
     keys: list = field(default_factory=list)
     cors_origins: list = field(default_factory=list)
+    # [cache] (app.cache): enabled, max_bytes
+    cache: dict = field(default_factory=lambda: {"enabled": True, "max_bytes": 64 * 1024 * 1024})
 
     @property
     def source_names(self) -> list[str]:
@@ -94,7 +96,7 @@ ENGINE_OPTIONS: dict[str, tuple[str, ...]] = {
     "mysql": ("connect_timeout_s",),
     "spark": ("master", "shuffle_partitions"),
 }
-TOP_KEYS = ("sources", "server", "limits", "keys")
+TOP_KEYS = ("sources", "server", "limits", "keys", "cache")
 #: per-source overrides of [limits] (see app/limits.py)
 SOURCE_LIMIT_KEYS = ("statement_timeout_ms", "max_concurrent", "queue_wait_ms")
 #: environment variables that are not overrides
@@ -241,6 +243,18 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
         source_limits(st.limits, src.options, name, ctx.fail)  # checked now, used per request
     st.keys = parse_keys(data.get("keys"), sources, ctx.fail)
     st.cors_origins = parse_cors(server.get("cors_origins"), ctx.fail)
+    cache = data.get("cache", {})
+    if not isinstance(cache, dict):
+        raise ctx.fail(("cache",), "must be a table", "write [cache] on its own line")
+    _check_unknown(ctx, ("cache",), cache, ["enabled", "max_bytes"])
+    if "enabled" in cache:
+        st.cache["enabled"] = _coerce(ctx, ("cache", "enabled"), cache["enabled"], bool, "true")
+    if "max_bytes" in cache:
+        v = _coerce(ctx, ("cache", "max_bytes"), cache["max_bytes"], int, "67108864")
+        if v < 0:
+            raise ctx.fail(("cache", "max_bytes"), f"is {v}; it must be 0 or more",
+                           "e.g. max_bytes = 67108864 (64 MiB; 0 disables the cache)")
+        st.cache["max_bytes"] = v
     return st
 
 

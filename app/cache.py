@@ -1,0 +1,187 @@
+"""Result cache: encoded answers keyed by (canonical request, source data version).
+
+Why it looks like this:
+
+* **Key.** The canonical request is the validated model dumped as JSON with sorted keys
+  (``canonical``), so key order, whitespace and defaults written out or left implicit all map
+  to one entry. The second part is ``engine.data_version()``: file identity (inode, size,
+  mtime) for DuckDB, so a rebuilt file is never answered from old entries; a TTL bucket for
+  server engines (their module decides). The third part is the representation (``json`` /
+  ``arrow``), because what is cached is the encoded body.
+* **Encoded bytes.** A hit must cost ~nothing, so the JSON body is stored *without* its
+  ``cache`` and ``timing_ms`` members and these are appended on the way out (``stamp``): one
+  bytes concatenation, no re-encoding.
+* **LRU with a byte budget** (``[cache] max_bytes``, default 64 MiB): entries are charged their
+  body size plus key size; the least recently used go first. An answer larger than the whole
+  budget is not stored.
+* **Single flight.** Identical requests that arrive while the first is still running wait for
+  it and share its answer, so N concurrent identical requests run the engine once.
+
+Counters go to ``app.observability`` when that module is present (``hit``, ``miss``,
+``store``, ``evict``).
+"""
+
+from __future__ import annotations
+
+import threading
+from collections import OrderedDict
+from concurrent.futures import Future
+from dataclasses import dataclass
+from typing import Any, Callable
+
+import orjson
+
+try:  # issue 5's metrics; the cache works without them
+    from app import observability as _obs
+except Exception:  # noqa: BLE001 - optional
+    _obs = None
+
+DEFAULT_MAX_BYTES = 64 * 1024 * 1024
+
+
+def canonical(model: Any) -> bytes:
+    """Sorted JSON of a validated pydantic model (aliases as in the request)."""
+    return orjson.dumps(model.model_dump(mode="json", by_alias=True, exclude_none=True),
+                        option=orjson.OPT_SORT_KEYS)
+
+
+@dataclass
+class Entry:
+    body: bytes            # encoded answer; for JSON without its closing "}" stamp members
+    media_type: str
+    timing: dict[str, float]  # how long the original answer took (reported as timing_ms.original)
+    source: str = ""
+
+    @property
+    def nbytes(self) -> int:
+        return len(self.body) + 128
+
+
+def stamp_json(open_body: bytes, cache: str, timing: dict[str, float]) -> bytes:
+    """Close a JSON body cut before its last ``}`` with ``cache`` and ``timing_ms``."""
+    return b"".join((open_body, b',"cache":"', cache.encode(), b'","timing_ms":',
+                     orjson.dumps(timing), b"}"))
+
+
+def open_json(payload: dict[str, Any]) -> bytes:
+    """orjson body of ``payload`` minus its closing brace, ready for ``stamp_json``."""
+    body = orjson.dumps(payload, option=orjson.OPT_SERIALIZE_NUMPY)
+    return body[:-1]
+
+
+class ResultCache:
+    def __init__(self, max_bytes: int = DEFAULT_MAX_BYTES, enabled: bool = True) -> None:
+        self.max_bytes = int(max_bytes)
+        self.enabled = bool(enabled) and self.max_bytes > 0
+        self._entries: OrderedDict[tuple, Entry] = OrderedDict()
+        self._bytes = 0
+        self._lock = threading.Lock()
+        self._inflight: dict[tuple, Future] = {}
+        self.hits = self.misses = self.stores = self.evictions = self.coalesced = 0
+
+    # ---- keys ----------------------------------------------------------------------------
+    @staticmethod
+    def key(canonical_request: bytes, data_version: str, variant: str = "json") -> tuple:
+        return (canonical_request, data_version, variant)
+
+    # ---- LRU -----------------------------------------------------------------------------
+    @property
+    def nbytes(self) -> int:
+        return self._bytes
+
+    def __len__(self) -> int:
+        return len(self._entries)
+
+    def get(self, key: tuple) -> Entry | None:
+        if not self.enabled:
+            return None
+        with self._lock:
+            e = self._entries.get(key)
+            if e is not None:
+                self._entries.move_to_end(key)
+                self.hits += 1
+        if e is not None:
+            self._event(e.source, "hit")
+        return e
+
+    def put(self, key: tuple, entry: Entry) -> None:
+        if not self.enabled:
+            return
+        size = entry.nbytes + len(key[0]) + len(key[1])
+        if size > self.max_bytes:
+            return
+        evicted = []
+        with self._lock:
+            old = self._entries.pop(key, None)
+            if old is not None:
+                self._bytes -= old.nbytes + len(key[0]) + len(key[1])
+            self._entries[key] = entry
+            self._bytes += size
+            self.stores += 1
+            while self._bytes > self.max_bytes and self._entries:
+                k, e = self._entries.popitem(last=False)
+                self._bytes -= e.nbytes + len(k[0]) + len(k[1])
+                self.evictions += 1
+                evicted.append(e.source)
+        self._event(entry.source, "store")
+        for src in evicted:
+            self._event(src, "evict")
+
+    def clear(self) -> None:
+        with self._lock:
+            self._entries.clear()
+            self._bytes = 0
+
+    # ---- single flight -------------------------------------------------------------------
+    def compute(self, key: tuple, source: str, fn: Callable[[], Entry],
+                lookup: bool = True) -> tuple[Entry, str]:
+        """The cached entry (``"hit"``) or ``fn()``'s (``"miss"``); concurrent callers with
+        the same key wait for the one running and share its entry (reported as a hit: they
+        did not run the engine). ``lookup=False`` (``Cache-Control: no-cache``) skips the
+        lookup and the sharing, runs ``fn`` and refreshes the entry."""
+        if not self.enabled:
+            return fn(), "miss"
+        if lookup:
+            e = self.get(key)
+            if e is not None:
+                return e, "hit"
+            with self._lock:
+                fut = self._inflight.get(key)
+                leader = fut is None
+                if leader:
+                    fut = self._inflight[key] = Future()
+            if not leader:
+                with self._lock:
+                    self.coalesced += 1
+                e = fut.result()
+                self._event(source, "hit")
+                return e, "hit"
+        else:
+            fut = None
+        with self._lock:
+            self.misses += 1
+        self._event(source, "miss")
+        try:
+            e = fn()
+            e.source = source
+            self.put(key, e)  # stored before the flight ends: no gap for a second run
+        except BaseException as exc:
+            if fut is not None:
+                fut.set_exception(exc)
+                with self._lock:
+                    self._inflight.pop(key, None)
+            raise
+        if fut is not None:
+            fut.set_result(e)
+            with self._lock:
+                self._inflight.pop(key, None)
+        return e, "miss"
+
+    @staticmethod
+    def _event(source: str, event: str) -> None:
+        if _obs is None:
+            return
+        try:
+            _obs.CACHE_EVENTS.labels(source, event).inc()
+        except Exception:  # noqa: BLE001 - metrics must never break an answer
+            pass
