@@ -6,6 +6,8 @@ Needs /usr/bin/chromium and /usr/bin/chromedriver (`make test` installs them whe
 
 from __future__ import annotations
 
+import contextlib
+import hashlib
 import json
 import os
 import shutil
@@ -37,16 +39,13 @@ def _free_port() -> int:
         return s.getsockname()[1]
 
 
-@pytest.fixture(scope="module")
-def server(tmp_path_factory):
+@contextlib.contextmanager
+def serving(root: Path, config_text: str):
+    """uvicorn on a free 127.0.0.1 port with `config_text` as SLUICE_CONFIG; yields the base URL."""
     import httpx
 
-    from app.demo import build_demo
-
-    root = tmp_path_factory.mktemp("browser")
-    build_demo(root / "demo.duckdb", rows=50_000, progress=False)
     cfg = root / "sluice.toml"
-    cfg.write_text('[sources.deliveries]\nengine = "duckdb"\npath = "demo.duckdb"\ntable = "deliveries"\n')
+    cfg.write_text(config_text)
     port = _free_port()
     env = {k: v for k, v in os.environ.items() if not k.startswith("SLUICE_")}
     env["SLUICE_CONFIG"] = str(cfg)
@@ -74,6 +73,24 @@ def server(tmp_path_factory):
         except subprocess.TimeoutExpired:
             proc.kill()
         log.close()
+
+
+DEMO_SOURCE = '[sources.deliveries]\nengine = "duckdb"\npath = "{db}"\ntable = "deliveries"\n'
+
+
+@pytest.fixture(scope="module")
+def demo_db(tmp_path_factory) -> Path:
+    from app.demo import build_demo
+
+    db = tmp_path_factory.mktemp("browser") / "demo.duckdb"
+    build_demo(db, rows=50_000, progress=False)
+    return db
+
+
+@pytest.fixture(scope="module")
+def server(demo_db):
+    with serving(demo_db.parent, DEMO_SOURCE.format(db=demo_db)) as base:
+        yield base
 
 
 @pytest.fixture(scope="module")
@@ -224,3 +241,25 @@ def test_rows_with_null_measures_still_get_a_mark(server, browser):
     assert len(drawn) == data["stats"]["result_rows"]
     assert len(browser.find_elements(By.CSS_SELECTOR, "#chart [data-null='true']")) == nulls
     shot(browser, "preview_null_bins.png")
+
+
+def test_api_key_asked_for_when_the_server_wants_one(demo_db, browser, tmp_path):
+    key = "preview-test-key-0123456789"
+    cfg = DEMO_SOURCE.format(db=demo_db) + (
+        f'\n[[keys]]\nname = "preview"\nhash = "sha256:{hashlib.sha256(key.encode()).hexdigest()}"\n'
+        'sources = ["deliveries"]\n')
+    with serving(tmp_path, cfg) as base:
+        browser.get(base + "/")  # the page itself is open
+        wait_state(browser, "ready")
+        assert browser.find_element(By.ID, "key-box").get_attribute("open") is not None  # 401 opened it
+        assert browser.find_elements(By.CSS_SELECTOR, "#source option") == []
+        field = browser.find_element(By.ID, "apikey")
+        field.send_keys(key)
+        browser.execute_script("arguments[0].dispatchEvent(new Event('change'))", field)
+        WebDriverWait(browser, 20).until(
+            lambda d: len(d.find_elements(By.CSS_SELECTOR, "#columns li")) > 5)
+        body = run_request(browser)
+        import httpx
+
+        r = httpx.post(base + "/v1/chart", json=body, headers={"X-API-Key": key}, timeout=30)
+        assert len(marks(browser)) == r.json()["stats"]["result_rows"] > 0

@@ -405,6 +405,13 @@ function layoutSql(sql) {
 }
 
 // ---- page ------------------------------------------------------------------------------
+function headers(extra) {
+  const key = $("apikey").value.trim();
+  return Object.assign(key ? { "X-API-Key": key } : {}, extra || {});
+}
+function askForKey(status) {
+  if (status === 401) { $("key-box").open = true; $("apikey").focus(); }
+}
 function showTable(resp) {
   const t = $("result");
   t.replaceChildren();
@@ -472,11 +479,12 @@ async function run() {
   $("status").textContent = "Running…";
   const t0 = performance.now();
   try {
-    const r = await fetch("/v1/chart", { method: "POST", headers: { "Content-Type": "application/json", Accept: "application/json" },
+    const r = await fetch("/v1/chart", { method: "POST", headers: headers({ "Content-Type": "application/json", Accept: "application/json" }),
       body: JSON.stringify(body) });
     const data = await r.json().catch(() => ({ title: "Unreadable answer", status: r.status, detail: r.statusText }));
     clearAnswer();
     if (!r.ok) {
+      askForKey(r.status);
       showProblem(data, body);
       $("status").textContent = `HTTP ${r.status} · request id ${r.headers.get("x-request-id") || "?"}`;
       document.body.dataset.state = "problem";
@@ -505,9 +513,9 @@ async function loadSource(name) {
   const info = $("source-info"), list = $("columns");
   list.replaceChildren();
   info.textContent = "";
-  const r = await fetch(`/v1/sources/${encodeURIComponent(name)}`);
+  const r = await fetch(`/v1/sources/${encodeURIComponent(name)}`, { headers: headers() });
   const s = await r.json();
-  if (!r.ok) { info.textContent = s.detail || `HTTP ${r.status}`; return; }
+  if (!r.ok) { askForKey(r.status); info.textContent = s.detail || `HTTP ${r.status}`; return; }
   info.textContent = `${s.engine} · table ${s.table} · ${fmtNum(s.row_count)} rows`;
   for (const c of s.columns) {
     const li = html("li", c.name);
@@ -547,15 +555,26 @@ async function init() {
   $("request").addEventListener("keydown", (e) => { if (e.key === "Enter" && (e.ctrlKey || e.metaKey)) { e.preventDefault(); run(); } });
   const sel = $("source");
   sel.addEventListener("change", () => loadSource(sel.value));
+  const keyInput = $("apikey");
+  keyInput.value = sessionStorage.getItem("sluice-api-key") || "";
+  keyInput.addEventListener("change", () => { sessionStorage.setItem("sluice-api-key", keyInput.value.trim()); loadSources(); });
+  await loadSources();
+  document.body.dataset.state = "ready";
+}
+async function loadSources() {
+  const sel = $("source");
+  const previous = sel.value;
+  sel.replaceChildren();
   try {
-    const r = await fetch("/v1/sources");
-    const { sources } = await r.json();
+    const r = await fetch("/v1/sources", { headers: headers() });
+    const answer = await r.json();
+    if (!r.ok) { askForKey(r.status); $("source-info").textContent = answer.detail || `HTTP ${r.status}`; return; }
+    const { sources } = answer;
     for (const s of sources) sel.append(new Option(`${s.name} (${s.engine})`, s.name));
-    const pick = sources.find((s) => s.name === "deliveries") || sources[0];
+    const pick = sources.find((s) => s.name === previous) || sources.find((s) => s.name === "deliveries") || sources[0];
     if (pick) { sel.value = pick.name; await loadSource(pick.name); }
   } catch (e) {
     $("source-info").textContent = `Cannot list sources: ${e}`;
   }
-  document.body.dataset.state = "ready";
 }
 init();
