@@ -330,3 +330,31 @@ def test_compose_init_sql_on_local_postgres():
         if not had_role:
             admin.execute("DROP ROLE IF EXISTS sluice_reader")
         admin.close()
+
+
+def test_build_context_filter_keeps_what_the_image_copies(containerfile):
+    """deploy/Containerfile.dockerignore: everything out, then back in what COPY needs."""
+    import fnmatch
+
+    rules = [ln.strip() for ln in (DEPLOY / "Containerfile.dockerignore").read_text().splitlines()
+             if ln.strip() and not ln.startswith("#")]
+
+    def kept(path: str) -> bool:
+        keep = True
+        for r in rules:
+            neg = r.startswith("!")
+            pat = r[1:] if neg else r
+            if fnmatch.fnmatch(path, pat) or fnmatch.fnmatch(path, pat.replace("/**", "/*")):
+                keep = neg
+        return keep
+
+    for k, a in containerfile["all"]:
+        if k == "COPY" and "--from" not in a:
+            *sources, _ = shlex.split(a)
+            for s in sources:
+                p = REPO / s
+                files = [p] if p.is_file() else [f for f in p.rglob("*") if f.is_file()
+                                                 and "__pycache__" not in f.parts]
+                for f in files:
+                    assert kept(f.relative_to(REPO).as_posix()), f
+    assert not kept(".venv/bin/python") and not kept("data/demo.duckdb")
