@@ -314,6 +314,12 @@ def apply_env(data: dict[str, Any], environ: dict[str, str] | None = None
             if not isinstance(nxt, dict):
                 nxt = node[p] = {}
             node = nxt
+        if value.lstrip().startswith("["):  # a list: TOML array syntax, e.g. ["a", "b"]
+            try:
+                value = tomllib.loads(f"v = {value}")["v"]
+            except tomllib.TOMLDecodeError as e:
+                raise ConfigError(f"environment variable {var}: not a TOML array ({e}); "
+                                  'write it like ["a", "b"]', env=var, key=".".join(parts)) from None
         node[parts[-1]] = value
         origins[parts] = var
     return data, origins

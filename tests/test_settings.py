@@ -142,3 +142,10 @@ def test_uvicorn_fails_fast_with_a_readable_message(tmp_path):
     assert proc.returncode == 3
     assert "Traceback" not in proc.stderr
     assert f"sluice: config error: {bad}: [sources.d.paht] unknown key; did you mean 'path'?" in proc.stderr
+
+
+def test_env_list_values_use_toml_array_syntax():
+    st = load_settings(environ={"SLUICE_SERVER__CORS_ORIGINS": '["https://dash.example.org"]'})
+    assert st.cors_origins == ["https://dash.example.org"]
+    e = error_of(load_settings, environ={"SLUICE_SERVER__CORS_ORIGINS": '["unclosed'})
+    assert "SLUICE_SERVER__CORS_ORIGINS" in str(e) and "TOML array" in str(e)
