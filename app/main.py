@@ -6,6 +6,7 @@ import logging
 import sys
 import time
 from contextlib import asynccontextmanager
+from pathlib import Path
 from typing import Any
 
 from fastapi import FastAPI, Query, Request
@@ -27,7 +28,7 @@ from planner.errors import PlanError, nearest
 from planner.model import BatchRequest, ChartRequest
 
 log = logging.getLogger("sluice")
-STATIC_DIR = __import__("pathlib").Path(__file__).with_name("static")
+STATIC_DIR = Path(__file__).with_name("static")  # the preview page (app/static)
 
 
 class JSONResponse(Response):
