@@ -32,6 +32,73 @@ class ChartResult:
     timing: dict[str, float] = field(default_factory=dict)
 
 
+class PlanCache:
+    """Planning without re-planning: the SQL of a request is a pure function of (canonical
+    request, dialect, source data version, extents row), so sqlglot builds and renders it
+    once and later requests reuse the text.
+
+    * ``prepared``: the checked, never-finished Plan per (request, dialect, version) --
+      shared read-only (only its extents SQL is used);
+    * ``extents_row``: the extents statement's answer per (source, version, SQL): a data-driven
+      bin costs ONE statement once its extents are known for this data version (the row is
+      exact for that version, like the catalog's row count);
+    * ``finished``: the finished Plan and its main SQL text per (request key, extents row),
+      read-only once built.
+
+    Plain dicts bounded by ``max_entries`` (oldest dropped): a miss only costs planning.
+    """
+
+    def __init__(self, max_entries: int = 2048) -> None:
+        self.max_entries = max_entries
+        self._prepared: dict[tuple, Plan] = {}
+        self._extents: dict[tuple, dict[str, Any]] = {}
+        self._finished: dict[tuple, tuple[Plan, str]] = {}
+
+    def _put(self, d: dict, key: Any, value: Any) -> None:
+        if len(d) >= self.max_entries:
+            try:
+                d.pop(next(iter(d)))
+            except (StopIteration, KeyError, RuntimeError):
+                pass
+        d[key] = value
+
+    def prepared(self, req: ChartRequest, entry: SourceEntry, dialect: Any) -> Plan:
+        from app.cache import canonical
+
+        key = (canonical(req), dialect.name, entry.schema.name, entry.version)
+        plan = self._prepared.get(key)
+        if plan is None:
+            plan = prepare(req, entry.schema, dialect)
+            plan._sluice_key = key  # type: ignore[attr-defined]
+            plan._sluice_extents_sql = plan.extents_sql  # type: ignore[attr-defined]
+            self._put(self._prepared, key, plan)
+        return plan
+
+    @staticmethod
+    def extents_sql(template: Plan) -> str | None:
+        try:
+            return template._sluice_extents_sql  # type: ignore[attr-defined]
+        except AttributeError:
+            return template.extents_sql
+
+    def extents_row(self, entry: SourceEntry, sql: str) -> dict[str, Any] | None:
+        return self._extents.get((entry.schema.name, entry.version, sql))
+
+    def remember_extents(self, entry: SourceEntry, sql: str, row: dict[str, Any]) -> None:
+        self._put(self._extents, (entry.schema.name, entry.version, sql), row)
+
+    def finished(self, template: Plan, entry: SourceEntry, row: dict[str, Any] | None
+                 ) -> tuple[Plan, str]:
+        rkey = tuple(sorted((row or {}).items(), key=lambda kv: kv[0]))
+        key = (getattr(template, "_sluice_key", id(template)), rkey)
+        hit = self._finished.get(key)
+        if hit is None:
+            plan = prepare(template.request, entry.schema, template.dialect).finish(row)
+            hit = (plan, plan.main_sql)
+            self._put(self._finished, key, hit)
+        return hit
+
+
 def _ms(t0: float) -> float:
     return round((time.perf_counter() - t0) * 1000.0, 3)
 
@@ -39,6 +106,7 @@ def _ms(t0: float) -> float:
 class ChartService:
     def __init__(self, catalog: Catalog) -> None:
         self.catalog = catalog
+        self._plans = PlanCache()
         st = catalog.settings
         self.limiter = Limiter(getattr(st, "limits", None) or Limits(),
                                {n: c.options for n, c in st.sources.items()})
@@ -56,7 +124,8 @@ class ChartService:
                             f"{', '.join(known)}", slug="unknown-source", title="Unknown source",
                             status=404, suggestions=nearest(name, known)) from None
 
-    def _plan(self, req: ChartRequest, dialect_name: str | None = None) -> tuple[Plan, SourceEntry, Engine]:
+    def _plan(self, req: ChartRequest, dialect_name: str | None = None,
+              cached: bool = False) -> tuple[Plan, SourceEntry, Engine]:
         self.check_source(req.source)
         limits = self.limiter.of(req.source)
         check_request(req, limits)  # [limits] caps, 422 with pointers
@@ -72,6 +141,8 @@ class ChartService:
             raise PlanError("", f"unknown dialect {dialect_name!r}; use one of "
                             f"{', '.join(sorted(DIALECTS))}", slug="unknown-dialect", status=400) from None
         req = self._clamp(req)
+        if cached:  # a shared, never-finished plan: see _run
+            return self._plans.prepared(req, entry, dialect), entry, engine
         return prepare(req, entry.schema, dialect), entry, engine
 
     def _clamp(self, req: ChartRequest) -> ChartRequest:
@@ -112,19 +183,23 @@ class ChartService:
     def _run(self, req: ChartRequest) -> ChartResult:
         timing: dict[str, float] = {}
         t0 = time.perf_counter()
-        plan, entry, engine = self._plan(req)
+        template, entry, engine = self._plan(req, cached=True)
         timing["plan"] = _ms(t0)
         t1 = time.perf_counter()
         statements = []
         row = None
-        if plan.extents is not None:
-            statements.append(plan.extents_sql)
-            row = engine.fetch_row(plan.extents_sql)
+        extents_sql = self._plans.extents_sql(template)
+        if extents_sql is not None:
+            row = self._plans.extents_row(entry, extents_sql)
+            if row is None:  # not known for this data version yet: one more statement
+                statements.append(extents_sql)
+                row = engine.fetch_row(extents_sql)
+                self._plans.remember_extents(entry, extents_sql, row)
         t2 = time.perf_counter()
-        plan.finish(row)
+        plan, main_sql = self._plans.finished(template, entry, row)
         plan_more = _ms(t2)
-        statements.append(plan.main_sql)
-        raw = engine.execute(plan.main_sql)
+        statements.append(main_sql)
+        raw = engine.execute(main_sql)
         extra = None
         if raw.num_rows == 0:
             statements.append(plan.count_sql())

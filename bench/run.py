@@ -146,7 +146,16 @@ def wait_port(port: int, proc: subprocess.Popen, timeout: float = 60.0) -> None:
     raise SystemExit(f"server on port {port} did not start")
 
 
+def port_free(port: int) -> None:
+    try:
+        with socket.create_connection(("127.0.0.1", port), timeout=0.2):
+            raise SystemExit(f"port {port} is in use: stop that server or set BENCH_PORT")
+    except OSError:
+        pass
+
+
 def start_service(cfg: Path) -> subprocess.Popen:
+    port_free(PORT)
     env = dict(os.environ, SLUICE_CONFIG=str(cfg))
     # The service logs one line per request: keep them out of the progress display.
     logf = open(DATA / "service.log", "ab")
@@ -206,8 +215,24 @@ def main() -> int:
     threads = os.cpu_count() or 1
     log(f"rows={ROWS:,} runs={RUNS} naive_http_rows={NAIVE_HTTP_ROWS:,} cpus={threads}")
 
-    svc = start_service(cfg)
-    rows_srv = None if skip_naive else start_rows_server(db, walk)
+    svc = rows_srv = None
+    try:
+        svc = start_service(cfg)
+        if not skip_naive:
+            port_free(ROWS_PORT)
+            rows_srv = start_rows_server(db, walk)
+        return _measure(cases, cfg, svc, rows_srv, skip_naive)
+    finally:
+        for proc in (svc, rows_srv):
+            if proc is not None and proc.poll() is None:
+                proc.terminate()
+                try:
+                    proc.wait(10)
+                except subprocess.TimeoutExpired:
+                    proc.kill()
+
+
+def _measure(cases, cfg, svc, rows_srv, skip_naive) -> int:
     # The in-process paths share the DuckDB instance of an in-process ChartService (used for
     # the planning timings): DuckDB allows one configuration per file per process.
     from app.catalog import Catalog
@@ -253,12 +278,20 @@ def main() -> int:
         plan_ms: dict[str, float] = {}
         for case, *_ in prepared:
             req = ChartRequest.model_validate(case.request)
-            plan_fn = getattr(service, "plan_only", None)
+            cache = getattr(service, "_plans", None)
             samples = []
             for i in range(200):
                 t0 = time.perf_counter()
-                if plan_fn is not None:
-                    plan_fn(req)
+                if cache is not None:  # the service's planning path: request -> SQL text
+                    template, entry, engine = service._plan(req, cached=True)
+                    ext = cache.extents_sql(template)
+                    row = None
+                    if ext is not None:
+                        row = cache.extents_row(entry, ext)
+                        if row is None:
+                            row = engine.fetch_row(ext)
+                            cache.remember_extents(entry, ext, row)
+                    cache.finished(template, entry, row)
                 else:  # before the planning cache existed: prepare + finish + render
                     plan, entry, engine = service._plan(req)
                     row = None
@@ -293,7 +326,10 @@ def main() -> int:
                 assert resp.status_code == 200, resp.text[:300]
                 times[case.name]["service"].append(ms)
                 sizes[case.name]["response_bytes"] = len(resp.content)
-                sizes[case.name]["statements"] = resp.json()["stats"].get("statements")
+                answer = resp.json()
+                sizes[case.name]["statements"] = answer["stats"].get("statements")
+                sizes[case.name].setdefault("plan_http", []).append(
+                    answer.get("timing_ms", {}).get("plan", float("nan")))
 
                 if not skip_naive:
                     cols = ", ".join(f'"{x}"' for x in case.cols)
@@ -342,6 +378,7 @@ def main() -> int:
                 "limit_ms": round(t["limit"], 2),
                 "service_ms": round(t["service"], 2),
                 "plan_ms": round(plan_ms[case.name], 4),
+                "plan_ms_in_service": round(statistics.median(sizes[case.name]["plan_http"]), 3),
                 "cached_ms": round(cached[case.name], 3),
                 "cached_state": cached[case.name + ":state"],
                 "response_bytes": sizes[case.name].get("response_bytes"),
@@ -369,13 +406,6 @@ def main() -> int:
     finally:
         http.close()
         rows_http.close()
-        for proc in (svc, rows_srv):
-            if proc is not None:
-                proc.terminate()
-                try:
-                    proc.wait(10)
-                except subprocess.TimeoutExpired:
-                    proc.kill()
 
     ok = [r for r in results.values() if "service_ms" in r]
     summary = {
