@@ -193,8 +193,8 @@ def test_run_default_request_draws_one_bar_per_row(server, browser):
 @pytest.mark.parametrize("label, kind, picture", [
     ("Parcels per week by vehicle (lines)", "point", "preview_lines.png"),
     ("Hour by weekday, local time (heat cells)", "cell", "preview_heat.png"),
-    ("Distance by weight (binned heat cells)", "cell", None),
-    ("Mean fee against mean distance per depot and vehicle (points)", "point", None),
+    ("Distance by weight (binned heat cells)", "cell", "preview_heat_binned.png"),
+    ("Mean fee against mean distance per depot and vehicle (points)", "point", "preview_points.png"),
     ("Parcels per depot, stacked by vehicle (bars)", "bar", "preview_stacked.png"),
 ])
 def test_examples_draw_as_many_marks_as_rows(server, browser, label, kind, picture):

@@ -215,10 +215,12 @@ function measureScale(resp, cols, lo, hi, zero) {
   for (const c of cols) for (const v of resp.data[c.name]) if (v !== null && Number.isFinite(v)) { d0 = Math.min(d0, v); d1 = Math.max(d1, v); }
   if (!Number.isFinite(d0)) { d0 = 0; d1 = 1; }
   if (d0 === d1) { d1 = d0 + 1; }
+  const nonNegative = d0 >= 0;
   if (!zero) { const pad = (d1 - d0) * 0.05; d0 -= pad; d1 += pad; }
   const step = niceStep(d0, d1, 6);
   d1 = Math.ceil(d1 / step) * step;
   if (d0 < 0 || !zero) d0 = Math.floor(d0 / step) * step;
+  if (nonNegative && d0 < 0) d0 = 0;  // padding never invents negative values
   const f = (v) => lo + ((v - d0) / (d1 - d0)) * (hi - lo);
   return { f, ticks: niceTicks(d0, d1, 6).map((v) => ({ at: f(v), label: fmtNum(v) })) };
 }
