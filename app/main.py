@@ -99,9 +99,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @app.exception_handler(Exception)
     async def _internal(request: Request, exc: Exception) -> Response:
-        log.exception("internal error")
+        rid = observability.request_id_of(request.scope)
+        log.exception("internal error (request_id %s)", rid)
         return problem_response(Problem(500, "internal", "Internal error",
-                                        "sluice failed to answer; the error is logged"),
+                                        "sluice failed to answer; the error is logged",
+                                        request_id=rid,
+                                        headers={"X-Request-ID": rid} if rid else None),
                                 request.url.path)
 
 

@@ -107,6 +107,17 @@ def current_metrics() -> Metrics:
     return info.metrics if info is not None else DEFAULT
 
 
+def request_id_of(scope: dict[str, Any]) -> str | None:
+    """The request id, also where the middleware's context is gone (the 500 handler runs
+    outside it, in Starlette's ServerErrorMiddleware)."""
+    state = scope.get("state")
+    rid = state.get("request_id") if isinstance(state, dict) else None
+    if rid is None:
+        info = _current.get()
+        rid = info.request_id if info is not None else None
+    return rid
+
+
 def note_source(name: str) -> None:
     """Tell the request log which source this request used."""
     info = _current.get()
@@ -195,6 +206,11 @@ class ObservabilityMiddleware:
         rid = incoming if incoming is not None and _ID_OK.match(incoming) else uuid.uuid4().hex
         info = RequestInfo(rid, self.metrics)
         token = _current.set(info)
+        state = scope.get("state")
+        if isinstance(state, dict):  # for handlers that run outside this context (500s)
+            state["request_id"] = rid
+        else:
+            scope["state"] = {"request_id": rid}
         status = 500
         t0 = time.perf_counter()
         self.metrics.in_flight.inc()

@@ -166,3 +166,22 @@ def test_request_log_can_be_switched_off(demo_db, access_lines):
     with TestClient(app) as c:
         c.get("/healthz")
     assert access_lines == []
+
+
+def test_unhandled_error_is_a_500_with_the_request_id(demo_db, access_lines):
+    app = make_app(demo_db)
+
+    @app.get("/_boom")
+    def _boom() -> dict:
+        raise RuntimeError("boom")
+
+    with TestClient(app, raise_server_exceptions=False) as c:
+        r = c.get("/_boom", headers={"X-Request-ID": "oops-1"})
+        s = samples(c.get("/metrics").text)
+    assert r.status_code == 500
+    assert r.headers["x-request-id"] == "oops-1" and r.json()["request_id"] == "oops-1"
+    assert "RuntimeError" not in r.text  # the details stay in the log
+    line = next(x for x in access_lines if x["path"] == "/_boom")
+    assert line["status"] == 500 and line["request_id"] == "oops-1"
+    assert s[("sluice_http_request_duration_seconds_count",
+              (("method", "GET"), ("route", "/_boom"), ("status", "500")))] == 1
