@@ -193,6 +193,9 @@ class ObservabilityMiddleware:
         self.app = app
         self.metrics = metrics
         self.log = access_logger() if log_requests else None
+        if log_requests:
+            # one line per request: ours (JSON, with request id and source), not uvicorn's too
+            logging.getLogger("uvicorn.access").disabled = True
 
     async def __call__(self, scope: dict[str, Any], receive: Any, send: Any) -> None:
         if scope["type"] != "http":

@@ -185,3 +185,46 @@ def test_unhandled_error_is_a_500_with_the_request_id(demo_db, access_lines):
     assert line["status"] == 500 and line["request_id"] == "oops-1"
     assert s[("sluice_http_request_duration_seconds_count",
               (("method", "GET"), ("route", "/_boom"), ("status", "500")))] == 1
+
+
+def test_plain_uvicorn_writes_only_our_json_lines(demo_db, tmp_path):
+    """`uvicorn app.main:app` (access log on by default) still logs one line per request."""
+    import os
+    import socket
+    import subprocess
+    import sys
+    import time
+
+    import httpx
+
+    cfg = tmp_path / "sluice.toml"
+    cfg.write_text(f'[sources.deliveries]\nengine = "duckdb"\npath = "{demo_db}"\ntable = "deliveries"\n')
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    env = {k: v for k, v in os.environ.items() if not k.startswith("SLUICE_")}
+    env["SLUICE_CONFIG"] = str(cfg)
+    log = tmp_path / "out.log"
+    with open(log, "wb") as fh:
+        proc = subprocess.Popen([sys.executable, "-m", "uvicorn", "app.main:app", "--port", str(port)],
+                                cwd=Path(__file__).resolve().parents[1], env=env, stdout=fh,
+                                stderr=subprocess.STDOUT)
+        try:
+            deadline = time.monotonic() + 20
+            while True:
+                try:
+                    httpx.get(f"http://127.0.0.1:{port}/healthz", timeout=1, headers={"X-Request-ID": "u-1"})
+                    break
+                except httpx.HTTPError:
+                    assert proc.poll() is None and time.monotonic() < deadline, log.read_text()
+                    time.sleep(0.1)
+            httpx.post(f"http://127.0.0.1:{port}/v1/chart", json=HIST, timeout=10)
+        finally:
+            proc.terminate()
+            proc.wait(10)
+    lines = log.read_text().splitlines()
+    ours = [json.loads(x) for x in lines if x.startswith("{")]
+    assert [(x["method"], x["path"], x["status"]) for x in ours] == [
+        ("GET", "/healthz", 200), ("POST", "/v1/chart", 200)]
+    assert ours[0]["request_id"] == "u-1" and ours[1]["source"] == "deliveries"
+    assert not any('"GET /healthz HTTP/1.1"' in x for x in lines)  # no uvicorn access line
