@@ -280,6 +280,11 @@ class ChartService:
             "columns": columns, "bins": bins, "domains": domains, "stats": stats,
             "sql": statements, "dialect": plan.dialect.name,
         }
+        if plan.request.reduce is not None:  # M4: say the answer is a reduced line
+            from planner import m4
+
+            meta["reduced"] = m4.response_meta(plan, plan.reduced_row,
+                                               m4.layout(plan.reduced_row)[2])
         if plan.approximate:
             method, err = plan.dialect.approx_distinct
             approx_cols = [m.name for m in plan.measures if m.internal in plan.approximate]

@@ -133,6 +133,7 @@ class Plan:
     columns: list[OutputColumn] = field(default_factory=list)
     approximate: list[str] = field(default_factory=list)
     stack_measure: Measure | None = None
+    reduced_row: dict[str, Any] | None = None  # extents of an M4 reduction (planner/m4.py)
 
     # ---- SQL text --------------------------------------------------------------------
     @property
@@ -161,6 +162,12 @@ class Plan:
     # ---- step 2 ----------------------------------------------------------------------
     def finish(self, extents_row: dict[str, Any] | None = None) -> "Plan":
         row = extents_row or {}
+        if self.request.reduce is not None:  # M4 line reduction: planner/m4.py
+            from planner import m4
+
+            self.reduced_row = row
+            self.main = m4.main_statement(self, row)
+            return self
         for k in self.keys:
             if k.mode == "nbin":
                 _layout_numeric(k, row)
@@ -206,6 +213,12 @@ def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect) -> Pl
     plan = Plan(request, schema, dialect, keys, measures, where)
     _check_options(plan)
     _assign_names(plan)
+    if request.reduce is not None:  # M4 line reduction: planner/m4.py
+        from planner import m4
+
+        m4.check(plan)
+        plan.extents = m4.extents_statement(plan)
+        return plan
     plan.extents = _extents_statement(plan)
     return plan
 

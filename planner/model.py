@@ -252,6 +252,10 @@ class ChartRequest(_Strict):
     empty_bins: Literal["omit", "zero", "null"] = "omit"
     sort: list[SortItem] = Field(default_factory=list, max_length=16)
     limit: int = Field(10_000, ge=1, le=1_000_000)
+    reduce: Reduce | None = Field(
+        None, description="Line reduction: {\"method\": \"m4\", \"width_px\": W} answers at most "
+        "4*W raw points (x, y) that draw the same pixels as the whole series (Jugel et al., "
+        "M4, PVLDB 7(10), 2014); channels x (number/timestamp column) and y (number column).")
     filter_sql: str | None = Field(
         None, min_length=1, max_length=4096,
         description="An extra condition written as SQL (DuckDB-flavoured generic SQL), ANDed "
