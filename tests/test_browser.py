@@ -263,3 +263,20 @@ def test_api_key_asked_for_when_the_server_wants_one(demo_db, browser, tmp_path)
 
         r = httpx.post(base + "/v1/chart", json=body, headers={"X-API-Key": key}, timeout=30)
         assert len(marks(browser)) == r.json()["stats"]["result_rows"] > 0
+
+
+@pytest.mark.parametrize("channels, extra", [
+    ({"y": {"column": "depot"}, "x": {"agg": "count"}, "color": {"column": "region"}}, {"stack": "sum"}),
+    ({"y": {"column": "vehicle"}, "x": {"agg": "avg", "column": "fee"}}, {}),
+    ({"x": {"agg": "count"}}, {}),
+    ({"color": {"column": "region"}, "size": {"agg": "sum", "column": "fee"}}, {}),
+    ({"x": {"column": "distance_km", "bin": {"bins": 8}}, "y": {"agg": "count"}}, {"facet": {"row": {"column": "region"}}}),
+])
+def test_other_shapes_still_draw_one_mark_per_row(server, browser, channels, extra, request):
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    body = run_request(browser, {"source": "deliveries", "channels": channels, **extra})
+    assert browser.execute_script("return document.body.dataset.state") == "done"
+    n = answer(server, body)["stats"]["result_rows"]
+    assert len(marks(browser)) == n > 0
+    shot(browser, f"preview_shape_{request.node.callspec.indices['channels']}.png")

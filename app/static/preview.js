@@ -4,7 +4,7 @@
 "use strict";
 
 const SVG = "http://www.w3.org/2000/svg";
-const W = 760, H = 380, M = { top: 18, right: 18, bottom: 54, left: 64 };
+const W = 760, H = 380, M = { top: 18, right: 18, bottom: 54, left: 64 };  // left: set per drawing
 const PALETTE = ["#2f6f73", "#c7772b", "#5b5ea6", "#8a9a2b", "#b04a6b", "#3b8fc2", "#7a5a3a", "#6c6f75",
                  "#d1a93b", "#4f9a6e"];
 const $ = (id) => document.getElementById(id);
@@ -60,15 +60,20 @@ function html(tag, text, cls) {
 }
 const numFmt = new Intl.NumberFormat("en", { maximumFractionDigits: 3 });
 const compactFmt = new Intl.NumberFormat("en", { notation: "compact", maximumFractionDigits: 2 });
-function fmtNum(v) {
+const exactFmt = new Intl.NumberFormat("en", { maximumFractionDigits: 6 });
+function fmtNum(v) {   // counts and timings in prose
   if (v === null || v === undefined) return "null";
   if (typeof v !== "number") return String(v);
-  return Math.abs(v) >= 1e5 ? compactFmt.format(v) : numFmt.format(v);
+  return numFmt.format(v);
 }
-function fmtValue(v, type) {
+function tickLabels(values) {  // one style per axis: compact only when the axis is large
+  const big = Math.max(...values.map((v) => Math.abs(v))) >= 1e5;
+  return values.map((v) => (big ? compactFmt.format(v) : numFmt.format(v)));
+}
+function fmtValue(v, type) {   // table cells and tooltips: full numbers, up to 6 decimals
   if (v === null || v === undefined) return "null";
   if (type === "timestamp" || type === "date") return String(v).replace("T00:00:00Z", "").replace("T", " ");
-  if (typeof v === "number") return fmtNum(v);
+  if (typeof v === "number") return exactFmt.format(v);
   return String(v);
 }
 function isTime(type) { return type === "timestamp" || type === "date"; }
@@ -205,10 +210,14 @@ function continuousTicks(type, d0, d1, f, bins, span) {
   }
   if (bins && bins.count && bins.count <= 12) {
     const out = [];
-    for (let k = 0; k <= bins.count; k++) { const v = bins.start + k * bins.width; out.push({ at: f(v), label: fmtNum(v) }); }
+    const vals = [];
+    for (let k = 0; k <= bins.count; k++) vals.push(bins.start + k * bins.width);
+    const labels = tickLabels(vals);
+    for (let k = 0; k <= bins.count; k++) out.push({ at: f(vals[k]), label: labels[k] });
     return out;
   }
-  return niceTicks(d0, d1, n).map((v) => ({ at: f(v), label: fmtNum(v) }));
+  const vals = niceTicks(d0, d1, n), labels = tickLabels(vals);
+  return vals.map((v, k) => ({ at: f(v), label: labels[k] }));
 }
 function measureScale(resp, cols, lo, hi, zero) {
   let d0 = zero ? 0 : Infinity, d1 = zero ? 0 : -Infinity;
@@ -222,7 +231,8 @@ function measureScale(resp, cols, lo, hi, zero) {
   if (d0 < 0 || !zero) d0 = Math.floor(d0 / step) * step;
   if (nonNegative && d0 < 0) d0 = 0;  // padding never invents negative values
   const f = (v) => lo + ((v - d0) / (d1 - d0)) * (hi - lo);
-  return { f, ticks: niceTicks(d0, d1, 6).map((v) => ({ at: f(v), label: fmtNum(v) })) };
+  const vals = niceTicks(d0, d1, 6), labels = tickLabels(vals);
+  return { f, ticks: vals.map((v, k) => ({ at: f(v), label: labels[k] })) };
 }
 
 // ---- drawing -------------------------------------------------------------------------
@@ -285,6 +295,10 @@ function draw(resp, body) {
   svg.setAttribute("viewBox", `0 0 ${W} ${H}`);
   const ch = channelsOf(resp);
   const n = resp.stats ? resp.stats.result_rows : 0;
+  // room on the left for the y labels: category names can be long
+  const yKey = ch.y && ch.y.key;
+  const longest = yKey ? Math.max(4, ...resp.data[yKey.name].map((v) => fmtValue(v, yKey.type).length)) : 6;
+  M.left = Math.round(Math.min(180, Math.max(64, 16 + 6.6 * longest)));
   const color = colorOf(resp, ch);
   const xr = [M.left, W - M.right], yr = [H - M.bottom, M.top];
   let kind = "none";
@@ -347,10 +361,52 @@ function draw(resp, body) {
     }
     axis(svg, xs.ticks, true, H - M.bottom, labelOf(ch.x, "x", body));
     axis(svg, ys.ticks, false, M.left, ch.y.measure.name + (stacked ? ` (stacked: ${resp.stack || "sum"})` : ""));
+  } else if (isKey(ch.y) && ch.x && ch.x.measure) {
+    // horizontal bars: the key on y, the measure (maybe stacked) along x
+    kind = "bar";
+    const stacked = ch.x.stackStart && ch.x.stackEnd;
+    let ys = keyScale(resp, ch.y, "y", yr[0], yr[1]);
+    if (ys.kind === "band") ys = keyScale(resp, ch.y, "y", yr[1], yr[0]);  // categories read top-down
+    const xs = measureScale(resp, stacked ? [ch.x.stackStart, ch.x.stackEnd] : [ch.x.measure], xr[0], xr[1], true);
+    const dodge = !stacked && color.count > 1;
+    for (let i = 0; i < n; i++) {
+      let p = ys.pos(i);
+      const v = resp.data[ch.x.measure.name][i];
+      if (!p) continue;
+      if (v === null) { tip(nullMark("bar", i, xs.f(0), (p[0] + p[1]) / 2, marks), resp, i); continue; }
+      if (dodge) { const w = (p[1] - p[0]) / color.count; p = [p[0] + w * color.index(i), p[0] + w * (color.index(i) + 1)]; }
+      const a = stacked ? resp.data[ch.x.stackStart.name][i] : 0, z = stacked ? resp.data[ch.x.stackEnd.name][i] : v;
+      const x0 = xs.f(a), x1 = xs.f(z);
+      tip(el("rect", { "data-mark": "bar", "data-row": i, x: Math.min(x0, x1), y: Math.min(p[0], p[1]),
+        width: Math.max(0.5, Math.abs(x1 - x0)), height: Math.max(1, Math.abs(p[1] - p[0])), fill: color.fill(i) }, marks), resp, i);
+    }
+    axis(svg, xs.ticks, true, H - M.bottom, ch.x.measure.name);
+    axis(svg, ys.ticks, false, M.left, labelOf(ch.y, "y", body));
+  } else {
+    // any other shape (one channel only, facets without x/y...): one bar per row, in row order
+    const m = resp.columns.find((c) => c.role === "measure");
+    if (m) {
+      kind = "bar";
+      const keys = resp.columns.filter((c) => c.role === "key" || c.role === "bin_start");
+      const label = (i) => keys.map((c) => fmtValue(resp.data[c.name][i], c.type)).join(" · ") || `row ${i + 1}`;
+      const bw = (xr[1] - xr[0]) / Math.max(1, n);
+      const ys = measureScale(resp, [m], yr[0], yr[1], true);
+      for (let i = 0; i < n; i++) {
+        const v = resp.data[m.name][i], x = xr[0] + i * bw;
+        if (v === null) { tip(nullMark("bar", i, x + bw / 2, ys.f(0), marks), resp, i); continue; }
+        const y0 = ys.f(0), y1 = ys.f(v);
+        tip(el("rect", { "data-mark": "bar", "data-row": i, x: x + bw * 0.1, y: Math.min(y0, y1), width: Math.max(1, bw * 0.8),
+          height: Math.max(0.5, Math.abs(y1 - y0)), fill: color.fill(i) }, marks), resp, i);
+      }
+      const every = Math.ceil(n / Math.max(1, Math.floor((xr[1] - xr[0]) / 60)));
+      axis(svg, [...Array(n).keys()].filter((i) => i % every === 0).map((i) => ({ at: xr[0] + (i + 0.5) * bw, label: label(i) })),
+        true, H - M.bottom, "rows in answer order");
+      axis(svg, ys.ticks, false, M.left, m.name);
+    }
   }
   const legend = $("legend");
   legend.replaceChildren();
-  if (kind === "none") legend.append(html("span", "No drawing for this shape of answer (it needs x and y); the table below has it."));
+  if (kind === "none") legend.append(html("span", "No drawing for an answer without a measure; the table below has it."));
   for (const [c, label] of color.legend) { const s = html("span", label); const sw = html("i"); sw.style.background = c; s.prepend(sw); legend.append(s); }
   if (ch.row || ch.col) legend.append(html("span", "Facet cells are drawn on top of one another; the table keeps them apart."));
   return { kind, marks: marks.querySelectorAll("[data-mark]").length };
