@@ -80,6 +80,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     async def _plan_error(request: Request, exc: PlanError) -> Response:
         return problem_response(from_plan_error(exc), request.url.path)
 
+    from starlette.exceptions import HTTPException as _HTTPException
+
+    @app.exception_handler(_HTTPException)
+    async def _http_error(request: Request, exc: _HTTPException) -> Response:
+        # unknown route (404), wrong method (405), undecodable body (400): problem+json too
+        slug = {400: "bad-request", 404: "not-found", 405: "method-not-allowed"}.get(
+            exc.status_code, "http-error")
+        return problem_response(Problem(exc.status_code, slug, str(exc.detail), str(exc.detail),
+                                        headers=dict(exc.headers or {})), request.url.path)
+
     @app.exception_handler(Problem)
     async def _problem(request: Request, exc: Problem) -> Response:
         return problem_response(exc, request.url.path)
