@@ -168,11 +168,23 @@ def _now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z")
 
 
+class _StderrHandler(logging.StreamHandler):
+    """Writes to whatever ``sys.stderr`` is at the time (test runners swap it)."""
+
+    @property  # type: ignore[override]
+    def stream(self):  # noqa: ANN201
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value) -> None:  # noqa: ANN001
+        pass
+
+
 def access_logger() -> logging.Logger:
     """The request logger; writes one JSON object per line to stderr unless already set up."""
     log = logging.getLogger(ACCESS_LOGGER)
     if not log.handlers:
-        handler = logging.StreamHandler(sys.stderr)
+        handler = _StderrHandler()
         handler.setFormatter(_JSONLineFormatter())
         log.addHandler(handler)
         log.setLevel(logging.INFO)
