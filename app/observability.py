@@ -27,17 +27,17 @@ matched the request's filters), ``rows_returned_total{source}``.
 
 from __future__ import annotations
 
-import json
 import logging
+import os
 import re
 import sys
 import time
-import uuid
 from contextvars import ContextVar
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from typing import Any
 
+import orjson
 from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 
 ACCESS_LOGGER = "sluice.access"
@@ -158,10 +158,10 @@ def record_chart(source: str, meta: dict[str, Any], timing: dict[str, float] | N
 class _JSONLineFormatter(logging.Formatter):
     def format(self, record: logging.LogRecord) -> str:
         fields = getattr(record, "fields", None)
-        if isinstance(fields, dict):
-            return json.dumps(fields, separators=(",", ":"), default=str)
-        return json.dumps({"ts": _now(), "level": record.levelname.lower(), "logger": record.name,
-                           "msg": record.getMessage()}, separators=(",", ":"))
+        if not isinstance(fields, dict):
+            fields = {"ts": _now(), "level": record.levelname.lower(), "logger": record.name,
+                      "msg": record.getMessage()}
+        return orjson.dumps(fields, default=str).decode()
 
 
 def _now() -> str:
@@ -218,7 +218,7 @@ class ObservabilityMiddleware:
             if k == b"x-request-id":
                 incoming = v.decode("latin-1")
                 break
-        rid = incoming if incoming is not None and _ID_OK.match(incoming) else uuid.uuid4().hex
+        rid = incoming if incoming is not None and _ID_OK.match(incoming) else os.urandom(16).hex()
         info = RequestInfo(rid, self.metrics)
         token = _current.set(info)
         state = scope.get("state")
