@@ -5,7 +5,10 @@ The source is a catalog table (``table = "db.name"``) or, with ``path``, a Parqu
 folder registered as a temporary view named ``table``. Read-only: the engine only ever runs
 single SELECT / WITH statements (anything else is refused before it reaches Spark) and
 never writes. The session time zone is UTC (the SQL relies on it). Options: ``master``
-(default ``local[2]``), ``shuffle_partitions`` (default 2), ``statement_timeout_ms``.
+(default ``local[2]``), ``shuffle_partitions`` (default 2), ``statement_timeout_ms`` and,
+under ``[sources.NAME.options]``, ``java_options`` for the local driver JVM and a
+``spark_conf`` table of Spark settings (the test suite turns adaptive execution and
+whole-stage code generation off: they cost more than they save on small local data).
 """
 
 from __future__ import annotations
@@ -26,7 +29,8 @@ _SESSION_LOCK = threading.Lock()
 _READ = re.compile(r"^\s*(SELECT|WITH)\b", re.IGNORECASE)
 
 
-def spark_session(master: str = "local[2]", shuffle_partitions: int = 2, remote: str | None = None):
+def spark_session(master: str = "local[2]", shuffle_partitions: int = 2, remote: str | None = None,
+                  java_options: str | None = None, conf: dict[str, Any] | None = None):
     """The process's one SparkSession (created on first use)."""
     global _SESSION
     with _SESSION_LOCK:
@@ -44,6 +48,10 @@ def spark_session(master: str = "local[2]", shuffle_partitions: int = 2, remote:
                      .config("spark.default.parallelism", str(shuffle_partitions))
                      .config("spark.driver.memory", "1g")
                      .config("spark.sql.execution.arrow.pyspark.enabled", "true"))
+                if java_options:  # e.g. "-XX:TieredStopAtLevel=1" for short-lived local JVMs
+                    b = b.config("spark.driver.extraJavaOptions", java_options)
+            for k, v in (conf or {}).items():
+                b = b.config(str(k), str(v).lower() if isinstance(v, bool) else str(v))
             b = b.config("spark.sql.session.timeZone", "UTC")
             _SESSION = b.getOrCreate()
             if not remote:
@@ -64,7 +72,9 @@ class SparkEngine:
         remote = cfg.dsn if cfg.dsn and cfg.dsn.startswith("sc://") else None
         try:
             self.spark = spark_session(str(cfg.options.get("master", "local[2]")),
-                                       int(cfg.options.get("shuffle_partitions", 2)), remote)
+                                       int(cfg.options.get("shuffle_partitions", 2)), remote,
+                                       cfg.options.get("java_options"),
+                                       cfg.options.get("spark_conf"))
             self.spark.conf.set("spark.sql.session.timeZone", "UTC")
         except Exception as e:  # noqa: BLE001 - Java gateway / connect errors
             raise EngineUnavailable(cfg.name, f"cannot start Spark: {e}") from None
