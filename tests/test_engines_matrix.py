@@ -211,17 +211,67 @@ def features(body: dict) -> set[str]:
 
 # --- fixtures ---------------------------------------------------------------------------
 
+def chdb_http_shim(path: str) -> str:
+    """A local HTTP endpoint speaking ClickHouse's HTTP interface, answered by the real
+    ClickHouse engine (the chdb session on ``path``): the body is the query, the answer its
+    ``ArrowStream`` bytes or the engine's error text with status 500. It checks that the
+    client asks for read-only execution, a time limit and Arrow output."""
+    import threading
+    from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+    from urllib.parse import parse_qs, urlparse
+
+    lock = threading.Lock()
+
+    class Handler(BaseHTTPRequestHandler):
+        def log_message(self, *args):  # quiet
+            pass
+
+        def do_POST(self):
+            from app.engines.clickhouse import ChdbEngine
+            from app.settings import SourceConfig
+
+            params = {k: v[0] for k, v in parse_qs(urlparse(self.path).query).items()}
+            sql = self.rfile.read(int(self.headers.get("Content-Length", 0))).decode("utf-8")
+            if params.get("readonly") != "2" or params.get("default_format") != "ArrowStream" \
+                    or "max_execution_time" not in params:
+                self.send_response(400)
+                self.end_headers()
+                self.wfile.write(b"shim: expected readonly=2, default_format=ArrowStream")
+                return
+            with lock:
+                sess = ChdbEngine._sessions.get(path)
+                if sess is None:
+                    ChdbEngine(SourceConfig(name="shim", engine="clickhouse", table="t", path=path))
+                    sess = ChdbEngine._sessions[path]
+                try:
+                    body = sess.query(sql, "ArrowStream").bytes()
+                    status = 200
+                except Exception as e:  # noqa: BLE001 - the engine's error text, like ClickHouse
+                    body, status = str(e).encode("utf-8"), 500
+            self.send_response(status)
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+    server = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    return f"http://127.0.0.1:{server.server_address[1]}/"
+
+
 @pytest.fixture(scope="session")
 def engine_sources(tmp_path_factory):
     root = tmp_path_factory.mktemp("engines")
     rows = fx.make_rows()
     table = fx.arrow_table(rows)
+    chdb = fx.load_chdb(root, table)
     return {
         "duckdb": fx.load_duckdb(root, table),
         "postgres": fx.load_postgres(rows),
         "mysql": fx.load_mysql(rows),
         "sqlite": fx.load_sqlite(root, rows),
-        "clickhouse": fx.load_chdb(root, table),
+        "clickhouse": chdb,
+        "clickhouse_http": {"engine": "clickhouse", "dsn": chdb_http_shim(chdb["path"]),
+                            "table": chdb["table"], "statement_timeout_ms": 20000},
         "spark": fx.load_spark(root, table),
     }
 
@@ -310,20 +360,21 @@ def assert_same_answer(got: dict, want: dict, body: dict, engine: str) -> None:
 # --- the matrix -----------------------------------------------------------------------------
 
 def check_case(service, engine: str, case: str) -> None:
+    """``engine`` is the source name (the engine kind, or clickhouse_http)."""
     body = CASES[case]
-    dialect = get_dialect(engine)
+    dialect = get_dialect(engine.removesuffix("_http"))
     refused = sorted(f for f in features(body) if not dialect.supports(f))
     if refused:
         # The capability table promises a 422 "not supported on <dialect>: <feature>".
         with pytest.raises(PlanError) as err:
             answer(service, engine, body)
         assert err.value.status == 422, err.value.detail
-        assert err.value.detail.startswith(f"not supported on {engine}: "), err.value.detail
+        assert err.value.detail.startswith(f"not supported on {dialect.name}: "), err.value.detail
         assert err.value.slug == "unsupported"
         return
     want = duck(service, case)
     got = answer(service, engine, body)
-    assert got["dialect"] == engine
+    assert got["dialect"] == dialect.name
     assert_same_answer(got, want, body, engine)
 
 
@@ -333,8 +384,9 @@ def test_spark_matches_duckdb_every_case(service):
     failures = []
     try:
         check_approx(service, "spark")
+        check_read_only(service, "spark")
     except AssertionError as e:
-        failures.append(f"approx_count_distinct vs exact: {e}")
+        failures.append(f"approx_count_distinct vs exact / read-only: {e}")
     for case in CASES:
         try:
             check_case(service, "spark", case)
@@ -347,6 +399,54 @@ def test_spark_matches_duckdb_every_case(service):
 @pytest.mark.parametrize("engine", PER_CASE)
 def test_engine_matches_duckdb(service, engine: str, case: str):
     check_case(service, engine, case)
+
+
+WRITES = {
+    "postgres": "CREATE TABLE {schema}.sluice_write_probe (a int)",
+    "mysql": "CREATE TABLE sluice_write_probe (a INT)",
+    "sqlite": "CREATE TABLE sluice_write_probe (a INTEGER)",
+    "clickhouse": "CREATE TABLE sluice_test.sluice_write_probe (a Int32) ENGINE = Memory",
+    "clickhouse_http": "INSERT INTO sluice_test.t (id) VALUES (1)",
+    "spark": "CREATE TABLE sluice_write_probe (a INT)",
+}
+
+
+def check_read_only(service, engine: str) -> None:
+    """Every source is opened read-only: a write statement fails inside the engine (or, for
+    Spark, is refused before it reaches Spark), and the row count is unchanged."""
+    from app.engines import EngineError
+
+    eng = service.catalog.engine(engine)
+    table = service.catalog.config(engine).table
+    before = service.catalog.entry(engine).row_count
+    with pytest.raises(EngineError):
+        eng.execute(WRITES[engine].format(schema=table.split(".")[0]))
+    assert eng.fetch_row(f"SELECT COUNT(*) AS n FROM {table}")["n"] == before
+
+
+@pytest.mark.parametrize("engine", [e for e in WRITES if e != "spark"])
+def test_engine_is_read_only(service, engine: str):
+    check_read_only(service, engine)
+
+
+HTTP_CASES = ["count_by_cat", "quantile", "bin_fd", "tbin_year_berlin", "trunc_week_newyork",
+              "where_text_case_sensitive", "top_by_sum_label", "stack_fraction",
+              "facets_max_groups", "where_no_rows", "min_max"]
+
+
+@pytest.mark.parametrize("case", HTTP_CASES)
+def test_clickhouse_over_http_matches_duckdb(service, case: str):
+    """The ClickHouse HTTP client (urllib, FORMAT ArrowStream) against ClickHouse's engine."""
+    check_case(service, "clickhouse_http", case)
+
+
+def test_clickhouse_http_errors_are_engine_errors(service):
+    from app.engines import EngineError
+
+    eng = service.catalog.engine("clickhouse_http")
+    with pytest.raises(EngineError) as err:
+        eng.execute("SELECT no_such_column FROM sluice_test.t")
+    assert "no_such_column" in err.value.message
 
 
 def test_duckdb_reference_is_not_trivial(service):
