@@ -481,3 +481,52 @@ def check_approx(service, engine: str) -> None:
 @pytest.mark.parametrize("engine", ["duckdb"] + PER_CASE)
 def test_approx_count_distinct_close_to_exact(service, engine):
     check_approx(service, engine)
+
+
+@pytest.mark.parametrize("engine,sleep", [("postgres", "SELECT pg_sleep(3)"),
+                                          ("mysql", "SELECT SLEEP(3) AS s")])
+def test_server_statement_time_limit(engine_sources, engine: str, sleep: str):
+    """``statement_timeout_ms`` is enforced by the server itself (PostgreSQL
+    statement_timeout, MariaDB max_statement_time), and the message is the one app.limits
+    recognises as a timeout (504)."""
+    import time
+
+    from app.engines import EngineError, open_engine
+    from app.limits import _server_timeout
+    from app.settings import SourceConfig
+
+    src = dict(engine_sources[engine])
+    cfg = SourceConfig(name=engine, engine=engine, table=src["table"], dsn=src["dsn"],
+                       options={"statement_timeout_ms": 300})
+    eng = open_engine(cfg)
+    try:
+        t0 = time.monotonic()
+        with pytest.raises(EngineError) as err:
+            eng.execute(sleep)
+        assert time.monotonic() - t0 < 2.5
+        assert _server_timeout(err.value.message), err.value.message
+    finally:
+        eng.close()
+
+
+@pytest.mark.parametrize("engine", ["postgres", "mysql", "sqlite"])
+def test_canceller_stops_a_running_statement(service, engine: str):
+    """The canceller app.limits fires from a timer thread stops the calling thread's
+    statement."""
+    import threading
+    import time
+
+    from app.engines import EngineError
+
+    eng = service.catalog.engine(engine)
+    slow = {"postgres": "SELECT pg_sleep(3)", "mysql": "SELECT SLEEP(3) AS s",
+            "sqlite": "WITH RECURSIVE c(i) AS (SELECT 1 UNION ALL SELECT i + 1 FROM c "
+                      "WHERE i < 100000000) SELECT COUNT(*) FROM c"}[engine]
+    cancel = eng.canceller()
+    timer = threading.Timer(0.3, cancel)
+    timer.start()
+    t0 = time.monotonic()
+    with pytest.raises(EngineError):
+        eng.execute(slow)
+    timer.cancel()
+    assert time.monotonic() - t0 < 2.5

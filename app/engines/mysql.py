@@ -105,6 +105,9 @@ class MySQLEngine:
                 desc = cur.description or []
         except pymysql.err.OperationalError as e:
             code = e.args[0] if e.args else 0
+            if code in (1969, 3024, 1317):  # MariaDB / MySQL statement time limit, KILL QUERY
+                raise EngineError(self.cfg.name, "MySQL/MariaDB: maximum statement execution "
+                                  f"time exceeded ({e.args[-1]})") from None
             if code in (2003, 2006, 2013):  # cannot connect / gone away / lost
                 self._local.conn = None
                 raise EngineUnavailable(self.cfg.name, f"MySQL/MariaDB: {e}") from None
@@ -141,6 +144,22 @@ class MySQLEngine:
             "SELECT create_time, update_time, table_rows FROM information_schema.tables "
             f"WHERE table_schema = {schema_sql} AND table_name = %s", params)
         return repr(rows[0]) if rows else "unknown"
+
+    def canceller(self):
+        """Stops the statement the *calling* thread runs next (statement timeouts):
+        ``KILL QUERY`` on the session, sent over a separate connection."""
+        conn = self._conn()
+        thread_id = conn.thread_id()
+
+        def cancel() -> None:
+            try:
+                other = self._pymysql.connect(**self._connect_args)
+                with other.cursor() as cur:
+                    cur.execute(f"KILL QUERY {int(thread_id)}")
+                other.close()
+            except self._pymysql.Error:
+                pass
+        return cancel
 
     def close(self) -> None:
         with self._lock:

@@ -60,14 +60,19 @@ class PostgresEngine:
             raise EngineUnavailable(cfg.name, f"cannot connect to PostgreSQL: {e}") from None
         self._version_lock = threading.Lock()
         self._version: tuple[float, str] | None = None
+        self._active: dict[int, Any] = {}  # thread id -> connection running a statement
 
     def _run(self, sql: str, params: tuple | None = None) -> tuple[list[str], list[Any], list[tuple]]:
         psycopg = self._psycopg
         try:
             with self.pool.connection() as conn:
-                cur = conn.execute(sql, params)
-                rows = cur.fetchall() if cur.description else []
-                desc = cur.description or []
+                self._active[threading.get_ident()] = conn
+                try:
+                    cur = conn.execute(sql, params)
+                    rows = cur.fetchall() if cur.description else []
+                    desc = cur.description or []
+                finally:
+                    self._active.pop(threading.get_ident(), None)
         except psycopg.OperationalError as e:
             raise EngineUnavailable(self.cfg.name, f"PostgreSQL: {e}") from None
         except psycopg.Error as e:
@@ -115,6 +120,20 @@ class PostgresEngine:
         with self._version_lock:
             self._version = (now, version)
         return version
+
+    def canceller(self):
+        """Cancels the statement the *calling* thread runs next (``app.limits`` statement
+        timeouts call it from a timer thread): PostgreSQL's cancel request."""
+        ident = threading.get_ident()
+
+        def cancel() -> None:
+            conn = self._active.get(ident)
+            if conn is not None:
+                try:
+                    conn.cancel()
+                except Exception:  # noqa: BLE001 - finished meanwhile
+                    pass
+        return cancel
 
     def close(self) -> None:
         self.pool.close()

@@ -61,8 +61,8 @@ class SQLiteEngine:
             names = [d[0] for d in cur.description or []]
         except sqlite3.OperationalError as e:
             if "interrupted" in str(e):
-                raise EngineError(self.cfg.name, f"SQLite: statement exceeded "
-                                  f"{self._timeout_s:g} s and was interrupted") from None
+                raise EngineError(self.cfg.name, "SQLite: interrupted (maximum statement "
+                                  "execution time exceeded)") from None
             raise EngineError(self.cfg.name, f"SQLite: {e}") from None
         except sqlite3.Error as e:
             raise EngineError(self.cfg.name, f"SQLite: {e}") from None
@@ -94,6 +94,10 @@ class SQLiteEngine:
             except OSError:
                 pass
         return "|".join(parts)
+
+    def canceller(self):
+        """Interrupts the statement the *calling* thread runs next (statement timeouts)."""
+        return self._conn().interrupt
 
     def close(self) -> None:
         with self._lock:
