@@ -40,3 +40,8 @@ class Engine(Protocol):
         """Changes whenever the data may have changed (cache key part)."""
 
     def close(self) -> None: ...
+
+    # Optional: ``canceller() -> Callable[[], None]`` returns a function that stops the
+    # statement the calling thread runs next (app.limits fires it from a timer thread for
+    # statement timeouts). duckdb, postgres, mysql and sqlite provide it; spark and
+    # clickhouse enforce ``statement_timeout_ms`` themselves.
