@@ -19,8 +19,8 @@ from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_l
 from app.engines.arrow import conform
 from planner.compile import INTERNAL, Plan, prepare
 from planner.dialects import DIALECTS, get_dialect
-from planner.errors import PlanError, nearest, pointer
-from planner.model import ChartRequest
+from planner.errors import PlanError, Unsupported, nearest, pointer
+from planner.model import VISUAL_CHANNELS, ChartRequest
 
 
 @dataclass
@@ -99,6 +99,25 @@ class PlanCache:
         return hit
 
 
+def _extents_only(req: ChartRequest) -> ChartRequest:
+    """The request's keys (same order, so the same extents names) and filters without what
+    only the chart needs (time zones, top, measures, stack): bin extents depend on neither."""
+    def strip(ch):
+        if ch is None:
+            return None
+        if ch.is_measure:
+            return ch.model_copy(update={"agg": "count", "column": None, "q": None})
+        return ch.model_copy(update={"tz": None, "top": None})
+
+    ch = req.channels
+    channels = ch.model_copy(update={**{n: strip(getattr(ch, n)) for n in VISUAL_CHANNELS},
+                                     "by": [strip(c) for c in ch.by]})
+    facet = None if req.facet is None else req.facet.model_copy(update={
+        "row": strip(req.facet.row), "col": strip(req.facet.col), "max_groups": None})
+    return req.model_copy(update={"channels": channels, "facet": facet, "stack": None,
+                                  "sort": [], "empty_bins": "omit"})
+
+
 def _ms(t0: float) -> float:
     return round((time.perf_counter() - t0) * 1000.0, 3)
 
@@ -155,7 +174,10 @@ class ChartService:
         native = get_dialect(engine.dialect)
         extents = plan.extents
         if native is not plan.dialect:  # built from the target's constructs: rebuild natively
-            extents = prepare(plan.request, plan.schema, native).extents
+            try:
+                extents = prepare(plan.request, plan.schema, native).extents
+            except Unsupported:  # e.g. tz on a SQLite source: extents need none of it
+                extents = prepare(_extents_only(plan.request), plan.schema, native).extents
         return engine.fetch_row(native.render(extents)) if extents is not None else None
 
     def plan_sql(self, req: ChartRequest, dialect_name: str | None) -> dict[str, Any]:

@@ -530,3 +530,20 @@ def test_canceller_stops_a_running_statement(service, engine: str):
         eng.execute(slow)
     timer.cancel()
     assert time.monotonic() - t0 < 2.5
+
+
+def test_plan_for_another_dialect_runs_extents_natively(service):
+    """/v1/sql?dialect=postgres on a SQLite source: the bin extents run on SQLite (which has
+    no time zones) and the PostgreSQL statement shows the same bin layout as planning for
+    PostgreSQL's own source."""
+    body = {"channels": {"x": key("ts", bin={"bins": 12}, tz=BERLIN), "y": COUNT,
+                         "color": key("x", bin={"rule": "sturges"})}}
+    via_sqlite = service.plan_sql(ChartRequest.model_validate({"source": "sqlite", **body}), "postgres")
+    native = service.plan_sql(ChartRequest.model_validate({"source": "postgres", **body}), "postgres")
+    assert via_sqlite["dialect"] == "postgres"
+    assert via_sqlite["bins"] == native["bins"]
+    main = via_sqlite["sql"][-1]
+    assert "AT TIME ZONE 'Europe/Berlin'" in main
+    import sqlglot
+
+    sqlglot.parse_one(main, read="postgres")
