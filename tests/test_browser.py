@@ -195,6 +195,7 @@ def test_run_default_request_draws_one_bar_per_row(server, browser):
     ("Hour by weekday, local time (heat cells)", "cell", "preview_heat.png"),
     ("Distance by weight (binned heat cells)", "cell", "preview_heat_binned.png"),
     ("Mean fee against mean distance per depot and vehicle (points)", "point", "preview_points.png"),
+    ("Delay of every June parcel, M4-reduced to 700 px (line)", "point", "preview_m4.png"),
     ("Parcels per depot, stacked by vehicle (bars)", "bar", "preview_stacked.png"),
 ])
 def test_examples_draw_as_many_marks_as_rows(server, browser, label, kind, picture):

@@ -37,6 +37,12 @@ const EXAMPLES = {
     channels: { x: { agg: "avg", column: "distance_km" }, y: { agg: "avg", column: "fee" },
                 color: { column: "vehicle" }, by: [{ column: "depot" }] },
   }),
+  "Delay of every June parcel, M4-reduced to 700 px (line)": (s) => ({
+    source: s,
+    channels: { x: { column: "delivered_at" }, y: { column: "delay_min" } },
+    where: [{ column: "delivered_at", gte: "2025-06-01", lt: "2025-07-01" }],
+    reduce: { method: "m4", width_px: 700 },
+  }),
   "Parcels per depot, stacked by vehicle (bars)": (s) => ({
     source: s,
     channels: { x: { column: "depot" }, y: { agg: "count" }, color: { column: "vehicle" } },
@@ -77,6 +83,7 @@ function fmtValue(v, type) {   // table cells and tooltips: full numbers, up to 
   return String(v);
 }
 function isTime(type) { return type === "timestamp" || type === "date"; }
+function isText(type) { return type === "string" || type === "boolean"; }
 function isNum(type) { return type === "integer" || type === "double" || type === "decimal"; }
 function toNum(v, type) { return isTime(type) ? Date.parse(v) : Number(v); }
 
@@ -304,7 +311,32 @@ function draw(resp, body) {
   let kind = "none";
   const marks = el("g", { class: "marks" }, svg);
 
-  if (isKey(ch.x) && isKey(ch.y)) {
+  const hasMeasure = resp.columns.some((c) => c.role === "measure");
+  if (ch.x && ch.x.key && ch.y && ch.y.key && !hasMeasure && (resp.reduced || (!isText(ch.x.key.type) && isNum(ch.y.key.type)))) {
+    // a raw (or M4-reduced) line: x and y are both plain values, rows come ordered by x
+    kind = "point";
+    const lin = (c, lo, hi) => {
+      const dom = resp.domains[c.name] || [];
+      let d0 = toNum(dom[0], c.type), d1 = toNum(dom[1], c.type);
+      if (!(d1 > d0)) { d0 -= 1; d1 += 1; }
+      const f = (v) => lo + ((toNum(v, c.type) - d0) / (d1 - d0)) * (hi - lo);
+      return { f, ticks: continuousTicks(c.type, d0, d1, f, null, hi - lo) };
+    };
+    const xs = lin(ch.x.key, xr[0], xr[1]), ys = lin(ch.y.key, yr[0], yr[1]);
+    const X = resp.data[ch.x.key.name], Y = resp.data[ch.y.key.name];
+    const pts = [];
+    for (let i = 0; i < n; i++) {
+      if (X[i] === null || Y[i] === null) { tip(nullMark("point", i, M.left, H - M.bottom, marks), resp, i); continue; }
+      pts.push([xs.f(X[i]), ys.f(Y[i]), i]);
+    }
+    if (pts.length > 1) {
+      el("path", { "data-series": 0, d: "M" + pts.map((p) => `${p[0].toFixed(1)},${p[1].toFixed(1)}`).join("L"),
+        fill: "none", stroke: PALETTE[0], "stroke-width": 1, "stroke-linejoin": "round" }, marks);
+    }
+    for (const [x, y, i] of pts) tip(el("circle", { "data-mark": "point", "data-row": i, cx: x, cy: y, r: 1.3, fill: PALETTE[0] }, marks), resp, i);
+    axis(svg, xs.ticks, true, H - M.bottom, ch.x.key.name);
+    axis(svg, ys.ticks, false, M.left, ch.y.key.name + (resp.reduced ? ` (${resp.reduced.method} of ${fmtNum(resp.reduced.input_rows)} rows)` : ""));
+  } else if (isKey(ch.x) && isKey(ch.y)) {
     // heat cells: two keys, the colour is the measure
     kind = "cell";
     const xs = keyScale(resp, ch.x, "x", xr[0], xr[1]), ys = keyScale(resp, ch.y, "y", yr[0], yr[1]);
@@ -554,7 +586,7 @@ async function run() {
     const s = data.stats, tm = data.timing_ms || {};
     $("status").textContent = `${fmtNum(s.result_rows)} rows from ${fmtNum(s.matched_rows)} matched of ${fmtNum(s.source_rows)}`
       + (s.truncated ? " (truncated)" : "") + (data.approximate ? " · approximate" : "")
-      + ` · ${drawn.marks} ${drawn.kind === "none" ? "marks" : drawn.kind + " marks"}`
+      + ` · ${fmtNum(drawn.marks)} ${drawn.kind === "none" ? "marks" : drawn.kind + " marks"}`
       + ` · engine ${fmtNum(tm.execute)} ms · round trip ${fmtNum(performance.now() - t0)} ms · cache ${data.cache || "-"}`;
     $("chart").dataset.resultRows = s.result_rows;
     document.body.dataset.state = "done";
