@@ -8,7 +8,7 @@ timestamps on both sides of the 2026 daylight-saving changes in Europe/Berlin (2
 
 Storage per engine (all hold the same values):
 
-* DuckDB file: ``ts TIMESTAMPTZ``, ``tsn TIMESTAMP`` (naive, read as UTC).
+* DuckDB file: ``ts TIMESTAMPTZ``, ``tsn TIMESTAMP`` (naive, read as UTC), ``day DATE``.
 * PostgreSQL db ``test``, schema ``sluice_test_<worker>`` (dropped and recreated):
   ``timestamptz`` / ``timestamp``; text columns ``COLLATE "C"`` (code-point order like DuckDB).
 * MariaDB db ``test``, table ``sluice_engines_<worker>``: ``DATETIME(3)`` for both times
@@ -47,7 +47,7 @@ GROUPS = ["north", "south", "east"]
 DST_UTC = [dt.datetime(2026, 3, 8, 7, tzinfo=UTC), dt.datetime(2026, 3, 29, 1, tzinfo=UTC),
            dt.datetime(2026, 10, 25, 1, tzinfo=UTC), dt.datetime(2026, 11, 1, 6, tzinfo=UTC)]
 
-COLUMNS = ["id", "cat", "grp", "k", "n", "x", "amount", "flag", "ts", "tsn"]
+COLUMNS = ["id", "cat", "grp", "k", "n", "x", "amount", "flag", "ts", "tsn", "day"]
 
 
 def worker() -> str:
@@ -79,6 +79,7 @@ def make_rows() -> list[dict]:
             "flag": None if i % 19 == 6 else (rng.random() < 0.4),
             "ts": None if i % 41 == 8 else ts,
             "tsn": None if i % 43 == 10 else ts.replace(tzinfo=None),
+            "day": None if i % 37 == 12 else ts.date(),
         })
     return rows
 
@@ -95,6 +96,7 @@ def arrow_table(rows: list[dict]) -> pa.Table:
         "flag": pa.array([r["flag"] for r in rows], pa.bool_()),
         "ts": pa.array([r["ts"] for r in rows], pa.timestamp("ms", tz="UTC")),
         "tsn": pa.array([r["tsn"] for r in rows], pa.timestamp("ms")),
+        "day": pa.array([r["day"] for r in rows], pa.date32()),
     })
 
 
@@ -106,8 +108,8 @@ def load_duckdb(root: Path, table: pa.Table) -> dict:
     con.execute("SET TimeZone = 'UTC'")
     con.register("src", table)
     con.execute("CREATE TABLE t AS SELECT id, cat, grp, k, n, x, CAST(amount AS DECIMAL(12,2)) "
-                "AS amount, flag, CAST(ts AS TIMESTAMPTZ) AS ts, CAST(tsn AS TIMESTAMP) AS tsn "
-                "FROM src")
+                "AS amount, flag, CAST(ts AS TIMESTAMPTZ) AS ts, CAST(tsn AS TIMESTAMP) AS tsn, "
+                "CAST(day AS DATE) AS day FROM src")
     con.close()
     return {"engine": "duckdb", "path": str(path), "table": "t"}
 
@@ -121,7 +123,7 @@ def load_postgres(rows: list[dict]) -> dict:
         conn.execute(f'CREATE SCHEMA "{schema}"')
         conn.execute(f'''CREATE TABLE "{schema}".t (id bigint, cat text COLLATE "C",
             grp text COLLATE "C", k text COLLATE "C", n integer, x double precision,
-            amount numeric(12,2), flag boolean, ts timestamptz, tsn timestamp)''')
+            amount numeric(12,2), flag boolean, ts timestamptz, tsn timestamp, day date)''')
         with conn.cursor().copy(f'COPY "{schema}".t ({", ".join(COLUMNS)}) FROM STDIN') as cp:
             for r in rows:
                 cp.write_row([r[c] for c in COLUMNS])
@@ -161,7 +163,7 @@ def load_mysql(rows: list[dict]) -> dict:
         cur.execute(f"DROP TABLE IF EXISTS `{name}`")
         cur.execute(f"""CREATE TABLE `{name}` (id BIGINT, cat VARCHAR(64), grp VARCHAR(16),
             k VARCHAR(16), n INT, x DOUBLE, amount DECIMAL(12,2), flag BOOLEAN,
-            ts DATETIME(3), tsn DATETIME(3))
+            ts DATETIME(3), tsn DATETIME(3), day DATE)
             CHARACTER SET utf8mb4 COLLATE utf8mb4_nopad_bin""")
         def conv(r):
             out = [r[c] for c in COLUMNS]
@@ -186,11 +188,12 @@ def load_sqlite(root: Path, rows: list[dict]) -> dict:
     path = root / "engines.sqlite"
     conn = sqlite3.connect(path)
     conn.execute("""CREATE TABLE t (id INTEGER, cat TEXT, grp TEXT, k TEXT, n INTEGER, x REAL,
-        amount DECIMAL(12,2), flag BOOLEAN, ts TIMESTAMP, tsn TIMESTAMP)""")
-    conn.executemany("INSERT INTO t VALUES (?,?,?,?,?,?,?,?,?,?)", [
+        amount DECIMAL(12,2), flag BOOLEAN, ts TIMESTAMP, tsn TIMESTAMP, day DATE)""")
+    conn.executemany("INSERT INTO t VALUES (?,?,?,?,?,?,?,?,?,?,?)", [
         (r["id"], r["cat"], r["grp"], r["k"], r["n"], r["x"],
          None if r["amount"] is None else float(r["amount"]),
-         None if r["flag"] is None else int(r["flag"]), sqlite_time(r["ts"]), sqlite_time(r["tsn"]))
+         None if r["flag"] is None else int(r["flag"]), sqlite_time(r["ts"]), sqlite_time(r["tsn"]),
+         None if r["day"] is None else r["day"].isoformat())
         for r in rows])
     conn.commit()
     conn.close()
@@ -208,7 +211,8 @@ def load_chdb(root: Path, table: pa.Table) -> dict:
     s.query("DROP TABLE IF EXISTS sluice_test.t")
     s.query("""CREATE TABLE sluice_test.t (id Int64, cat Nullable(String), grp Nullable(String),
         k Nullable(String), n Nullable(Int32), x Nullable(Float64), amount Nullable(Decimal(12, 2)),
-        flag Nullable(Bool), ts Nullable(DateTime64(3, 'UTC')), tsn Nullable(DateTime64(3, 'UTC')))
+        flag Nullable(Bool), ts Nullable(DateTime64(3, 'UTC')), tsn Nullable(DateTime64(3, 'UTC')),
+        day Nullable(Date32))
         ENGINE = MergeTree ORDER BY id""")
     s.query(f"INSERT INTO sluice_test.t SELECT * FROM file('{parquet}', Parquet)")
     s.close()

@@ -131,6 +131,11 @@ CASES: dict[str, dict] = {
                                            "color": key("ts", extract="day", tz=NEW_YORK),
                                            "by": [key("ts", extract="minute"), key("ts", extract="second")],
                                            "y": COUNT}, "where": DST_WEEK},
+    "date_column": {"channels": {"x": key("day", trunc="week"), "color": key("day", extract="isodow"),
+                                 "y": agg("max", "day"), "size": agg("min", "day")},
+                    "where": [{"column": "day", "gte": "2026-03-01", "lt": "2026-05-01"}]},
+    "date_bins_tz": {"channels": {"x": key("day", bin={"bins": 12}, tz=NEW_YORK), "y": COUNT,
+                                  "color": key("day", trunc="month", tz=BERLIN)}},
     # --- where ---------------------------------------------------------------------------
     "where_compare": {"channels": {"x": key("grp"), "y": COUNT},
                       "where": [{"column": "n", "gte": -10, "lt": 25, "ne": 3},
