@@ -39,7 +39,7 @@ def rows(request: Request) -> Response:
     limit = int(q.get("limit", "0")) or None
     key = (table, where)
     if key not in _COUNTS:
-        _COUNTS[key] = cur.sql(f"SELECT count(*) FROM {table}{where_sql}").fetchone()[0]
+        _COUNTS[key] = cur.sql(f"SELECT count(*) FROM {table}{where_sql}").fetchall()[0][0]
     sql = f"SELECT {', '.join(chr(34) + c + chr(34) for c in cols)} FROM {table}{where_sql}"
     if limit:
         sql += f" LIMIT {limit}"

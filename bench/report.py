@@ -1,0 +1,72 @@
+"""Render bench/results.json (and bench/load.json) as the Markdown tables of RESULTS.md.
+
+    python bench/report.py [results.json] [load.json]
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+
+
+def fmt(v, nd=1):
+    if v is None:
+        return "-"
+    if isinstance(v, float):
+        return f"{v:,.{nd}f}"
+    return f"{v:,}" if isinstance(v, int) else str(v)
+
+
+def table(res: dict) -> str:
+    lines = [
+        "| case | limit ms | service ms | service/limit | naive in-proc ms | naive/service | "
+        "naive HTTP ms | naive HTTP/service | plan ms (p50) | cached ms (p50) | response B | "
+        "raw B | response/raw % | statements cold/warm | (a)==(b) |",
+        "|" + "---|" * 15,
+    ]
+    for name, r in res["cases"].items():
+        if "service_ms" not in r:
+            lines.append(f"| {name} | error: {r.get('error', '')[:60]} |" + " |" * 13)
+            continue
+        lines.append("| " + " | ".join([
+            f"{name} ({r['title']})", fmt(r["limit_ms"]), fmt(r["service_ms"]),
+            fmt(r["service_over_limit"], 3), fmt(r.get("naive_inproc_ms")),
+            fmt(r.get("naive_inproc_over_service"), 1), fmt(r.get("naive_http_ms")),
+            fmt(r.get("naive_http_over_service"), 1), fmt(r.get("plan_ms_in_service", r["plan_ms"]), 3),
+            fmt(r["cached_ms"], 2), fmt(r["response_bytes"]), fmt(r.get("raw_bytes")),
+            fmt(r.get("response_over_raw_pct"), 4),
+            f"{r['statements_cold']}/{r['statements']}", "yes" if r["sanity_equal"] else "NO",
+        ]) + " |")
+    return "\n".join(lines)
+
+
+def load_table(load: dict) -> str:
+    lines = ["| phase | connections | seconds | requests | requests/s | p50 ms | p99 ms | errors |",
+             "|---|---|---|---|---|---|---|---|"]
+    for phase, p in load["phases"].items():
+        secs = load["seconds"] if phase == "cached" else load.get("uncached_seconds")
+        lines.append(f"| {phase} | {load['clients']} | {secs} | {fmt(p['requests'])} | "
+                     f"{fmt(p['requests_per_s'])} | {fmt(p['p50_ms'], 2)} | {fmt(p['p99_ms'], 2)} | "
+                     f"{p['errors']} |")
+    return "\n".join(lines)
+
+
+def main() -> None:
+    res_path = Path(sys.argv[1]) if len(sys.argv) > 1 else HERE / "results.json"
+    res = json.loads(res_path.read_text())
+    print(f"date {res['date']}, rows {res['rows']:,}, runs {res['runs']}, machine {res['machine']}")
+    print()
+    print(table(res))
+    print()
+    print("summary:", json.dumps(res["summary"]))
+    load_path = Path(sys.argv[2]) if len(sys.argv) > 2 else HERE / "load.json"
+    if load_path.exists():
+        print()
+        print(load_table(json.loads(load_path.read_text())))
+
+
+if __name__ == "__main__":
+    main()
