@@ -504,7 +504,7 @@ def _literal(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> exp.Expressio
                             f"not {value!r}", slug="type-mismatch")
         if "\x00" in value:
             raise PlanError(ptr, "strings may not contain NUL characters", slug="bad-value")
-        return d.string(value)
+        return d.text_literal(value)
     if col.kind == "boolean":
         if not isinstance(value, bool):
             raise PlanError(ptr, f"{col.name!r} is a boolean column; use true or false",
@@ -1140,7 +1140,12 @@ def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
     sources: list[exp.Expression] = []
     for k in binned:
         name = f"{INTERNAL}bins{k.index}"
-        ctes.append((name, _numbers_table(_bin_values(d, k), k.internal)))
+        # every bin of the layout, plus the values the data has outside it (the NULL
+        # group): UNION removes the duplicates, so a NULL key keeps its own row.
+        present = exp.select(_ref(k.internal)).from_(_table(current)).where(
+            exp.Is(this=_ref(k.internal), expression=exp.Null()))
+        ctes.append((name, exp.union(_numbers_table(_bin_values(d, k), k.internal), present,
+                                     distinct=True)))
         sources.append(_table(name))
     if others:
         name = f"{INTERNAL}others"

@@ -552,3 +552,43 @@ def test_plan_for_another_dialect_runs_extents_natively(service):
     import sqlglot
 
     sqlglot.parse_one(main, read="postgres")
+
+
+def test_mysql_text_filters_compare_bytes_on_a_ci_collation(engine_sources):
+    """On a case- and accent-insensitive MariaDB collation, every text filter still means
+    what it means in DuckDB (reference: Python's own str comparisons on the same values)."""
+    import pymysql
+
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    values = ["alpha", "Alpha", "ALPHA", "Zurich", "Zürich", "a", "a ", "b"]
+    name = f"sluice_ci_{fx.worker()}"
+    conn = pymysql.connect(host="127.0.0.1", user="root", password="", database="test",
+                           charset="utf8mb4", autocommit=True)
+    with conn.cursor() as cur:
+        cur.execute(f"DROP TABLE IF EXISTS `{name}`")
+        cur.execute(f"CREATE TABLE `{name}` (s VARCHAR(16)) CHARACTER SET utf8mb4 "
+                    "COLLATE utf8mb4_general_ci")
+        cur.executemany(f"INSERT INTO `{name}` VALUES (%s)", [(v,) for v in values])
+    conn.close()
+    svc = ChartService(Catalog(parse_settings({"sources": {"ci": {
+        "engine": "mysql", "dsn": fx.MYSQL_DSN, "table": f"test.{name}"}}}, "<ci>")))
+    checks = [
+        ({"column": "s", "eq": "alpha"}, lambda v: v == "alpha"),
+        ({"column": "s", "ne": "alpha"}, lambda v: v != "alpha"),
+        ({"column": "s", "in": ["Zürich", "a"]}, lambda v: v in ("Zürich", "a")),
+        ({"column": "s", "not_in": ["zurich"]}, lambda v: v != "zurich"),
+        ({"column": "s", "lt": "a"}, lambda v: v < "a"),
+        ({"column": "s", "contains": "LPH"}, lambda v: "LPH" in v),
+        ({"column": "s", "starts_with": "Zu"}, lambda v: v.startswith("Zu")),
+    ]
+    try:
+        for pred, fn in checks:
+            req = ChartRequest.model_validate({"source": "ci", "channels": {"y": COUNT},
+                                               "where": [pred]})
+            got = svc.to_json(svc.run(req))["data"]["count"][0]
+            assert got == sum(1 for v in values if fn(v)), pred
+    finally:
+        svc.catalog.close()

@@ -152,6 +152,10 @@ class Dialect:
     def string(self, v: str) -> exp.Expression:
         return exp.Literal.string(v)
 
+    def text_literal(self, v: str) -> exp.Expression:
+        """A string compared with a text column in ``where`` (eq, ne, lt.., in, not_in)."""
+        return self.string(v)
+
     def local_literal(self, value: dt.datetime) -> exp.Expression:
         """A naive wall-clock time as the dialect's naive timestamp value (the type that
         ``to_local`` / ``trunc`` produce), e.g. a calendar bin start in empty_bins grids."""

@@ -9,9 +9,10 @@
 * No exact continuous percentile aggregate (MariaDB's PERCENTILE_CONT is a window function
   only, MySQL has none): median, quantile and the Freedman–Diaconis rule are refused.
 * No NULLS FIRST/LAST: emulated with a CASE term.
-* contains / starts_with compare bytes (BINARY), so they are case- and accent-sensitive like
-  DuckDB whatever the column's collation. Grouping and eq/in follow the column's collation;
-  use a binary collation (utf8mb4_bin / utf8mb4_nopad_bin) for answers identical to DuckDB's.
+* Filters on text (eq, ne, lt.., in, not_in, contains, starts_with) compare bytes (a BINARY
+  operand), so they are case- and accent-sensitive like DuckDB whatever the column's
+  collation. Grouping and ordering follow the column's collation: use a binary collation
+  (utf8mb4_bin / utf8mb4_nopad_bin) for groups identical to DuckDB's.
 * approx_count_distinct is answered exactly (COUNT DISTINCT).
 """
 
@@ -38,11 +39,16 @@ class MySQL(Dialect):
         "trunc_week": "DATE - WEEKDAY days",
         "extract": "YEAR(), WEEK(x, 3), WEEKDAY(), ...",
         "null_safe_eq": "<=>",
-        "text_match": "binary INSTR / byte prefix",
+        "text_match": "BINARY operands (every text filter)",
         "division": "operands cast to DOUBLE",
         "limit": "LIMIT",
         "quoting": "`name`",
     }
+
+    def text_literal(self, v: str) -> exp.Expression:
+        # A binary operand makes MySQL compare bytes: no case/accent folding, no PAD SPACE,
+        # whatever the column's collation (DuckDB compares bytes too).
+        return self.cast(self.string(v), "BINARY")
 
     def _dt(self, e: exp.Expression) -> exp.Expression:
         return self.cast(e, "DATETIME(6)")
