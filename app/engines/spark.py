@@ -31,7 +31,8 @@ _READ = re.compile(r"^\s*(SELECT|WITH)\b", re.IGNORECASE)
 
 def spark_session(master: str = "local[2]", shuffle_partitions: int = 2, remote: str | None = None,
                   java_options: str | None = None, conf: dict[str, Any] | None = None):
-    """The process's one SparkSession (created on first use)."""
+    """The process's one SparkSession, created on first use: the first Spark source's
+    settings (master, remote, JVM options, conf) are the ones that count."""
     global _SESSION
     with _SESSION_LOCK:
         if _SESSION is None:
