@@ -208,6 +208,24 @@ def test_empty_bins_zero_emits_every_bin(api, ref):
     assert resp["bins"]["x"]["count"] == 60
 
 
+def test_empty_bins_keep_the_null_group(api, ref):
+    """empty_bins must not lose the NULL-key group (found by the preview-page browser test)."""
+    resp = api.chart(
+        {
+            "channels": {"x": {"column": "x", "bin": {"width": 10, "origin": 0, "limits": [-100, 200]}},
+                         "y": {"agg": "count"}},
+            "empty_bins": "zero",
+        }
+    )
+    rows = api.rows(resp)
+    nulls = [r for r in rows if r["x_start"] is None]
+    # reference: pandas isna() count of the same column
+    assert len(nulls) == 1 and nulls[0]["count"] == int(ref.t["x"].isna().sum())
+    # every row is in some group: the counts add up to the matched rows (pandas len)
+    assert sum(r["count"] for r in rows) + resp["stats"]["outside_limits"]["x"] == len(ref.t)
+    assert resp["stats"]["matched_rows"] == len(ref.t)
+
+
 def test_empty_bins_zero_per_other_key(api, ref):
     resp = api.chart(
         {
