@@ -20,7 +20,7 @@ from app.engines.arrow import conform
 from planner.compile import INTERNAL, Plan, prepare
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
-from planner.model import VISUAL_CHANNELS, ChartRequest
+from planner.model import MAX_BINS, VISUAL_CHANNELS, ChartRequest
 
 
 @dataclass
@@ -281,7 +281,14 @@ class ChartService:
                 hi = domains.get(k.names[1])
                 if lo and hi:
                     b["start"], b["stop"] = lo[0], hi[1]
-                    b["count"] = int(round((hi[1] - lo[0]) / b["width"]))
+                    count = (hi[1] - lo[0]) / b["width"]
+                    if not count <= MAX_BINS:  # (also NaN / infinity)
+                        raise PlanError(pointer(*k.path, "bin", "width"),
+                                        f"width {b['width']:g} over the data range "
+                                        f"[{lo[0]:g}, {hi[1]:g}] makes {count:.3g} bins; at most "
+                                        f"{MAX_BINS}: use a larger width or limits",
+                                        slug="too-many-bins")
+                    b["count"] = int(round(count))
                 else:
                     b["start"] = b["stop"] = None
                     b["count"] = 0

@@ -38,7 +38,7 @@ from sqlglot import exp
 from planner import bins as binning
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
-from planner.model import AnyOf, Channel, ChartRequest, NotOf, Predicate
+from planner.model import MAX_BINS, AnyOf, Channel, ChartRequest, NotOf, Predicate
 from planner.schema import ColumnInfo, SourceSchema
 
 #: Prefix of the planner's own columns in a result; the service strips them.
@@ -321,7 +321,8 @@ def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
                     raise PlanError(pointer(*path, "bin", "limits"),
                                     f"limits on the number column {col.name!r} must be numbers",
                                     slug="type-mismatch")
-                if not (math.isfinite(lo) and math.isfinite(hi)) or not lo < hi:
+                if not (math.isfinite(lo) and math.isfinite(hi) and math.isfinite(hi - lo)) \
+                        or not lo < hi:
                     raise PlanError(pointer(*path, "bin", "limits"),
                                     "limits must be finite numbers [lo, hi] with lo < hi")
                 key.nlimits = (float(lo), float(hi))
@@ -622,6 +623,13 @@ def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
     p = f"{INTERNAL}e{k.index}_"
     if b.width is not None:
         lo, hi = k.nlimits if k.nlimits else (None, None)
+        o = b.origin or 0.0
+        if lo is not None and hi is not None and not (
+                (hi - lo) / b.width <= MAX_BINS and math.isfinite((lo - o) / b.width)
+                and math.isfinite((hi - o) / b.width)):
+            raise PlanError(pointer(*k.path, "bin", "width"),
+                            f"width {b.width:g} over the limits makes {(hi - lo) / b.width:.3g} "
+                            f"bins; at most {MAX_BINS}: use a larger width", slug="too-many-bins")
         k.nbins = binning.width_bins(b.width, b.origin or 0.0, lo, hi)
         k.vrange = k.nlimits
         return
