@@ -60,5 +60,10 @@ LOAD_SECONDS ?= 60
 load: $(VENV)/.installed-test  # bounded load run against 127.0.0.1 (server started here)
 	LOAD_CLIENTS=$(LOAD_CLIENTS) LOAD_SECONDS=$(LOAD_SECONDS) BENCH_ROWS=$(BENCH_ROWS) $(BIN)/python bench/load.py
 
+FUZZ_SCALE ?= 8
+fuzz: $(VENV)/.installed-test  # deep API fuzzing: FUZZ_SCALE x the make-test cases (8: ~19,000)
+	SLUICE_FUZZ_SCALE=$(FUZZ_SCALE) $(BIN)/python -m pytest -q -n 2 --dist loadfile -p no:cacheprovider \
+		tests/test_fuzz.py tests/test_fuzz_routes.py tests/test_fuzz_mutations.py $(PYTEST_ARGS)
+
 clean:
 	rm -rf $(VENV) .pytest_cache .hypothesis *.egg-info
