@@ -22,18 +22,19 @@ def fmt(v, nd=1):
 
 def table(res: dict) -> str:
     lines = [
-        "| case | limit ms | service ms | service/limit | naive in-proc ms | naive/service | "
+        "| case | limit ms | service ms | service/limit | paired | best | naive in-proc ms | naive/service | "
         "naive HTTP ms | naive HTTP/service | plan ms (p50) | cached ms (p50) | response B | "
         "raw B | response/raw % | statements cold/warm | (a)==(b) |",
-        "|" + "---|" * 15,
+        "|" + "---|" * 17,
     ]
     for name, r in res["cases"].items():
         if "service_ms" not in r:
-            lines.append(f"| {name} | error: {r.get('error', '')[:60]} |" + " |" * 13)
+            lines.append(f"| {name} | error: {r.get('error', '')[:60]} |" + " |" * 15)
             continue
         lines.append("| " + " | ".join([
             f"{name} ({r['title']})", fmt(r["limit_ms"]), fmt(r["service_ms"]),
-            fmt(r["service_over_limit"], 3), fmt(r.get("naive_inproc_ms")),
+            fmt(r["service_over_limit"], 3), fmt(r.get("service_over_limit_paired"), 3),
+            fmt(r.get("service_over_limit_best"), 3), fmt(r.get("naive_inproc_ms")),
             fmt(r.get("naive_inproc_over_service"), 1), fmt(r.get("naive_http_ms")),
             fmt(r.get("naive_http_over_service"), 1), fmt(r.get("plan_ms_in_service", r["plan_ms"]), 3),
             fmt(r["cached_ms"], 2), fmt(r["response_bytes"]), fmt(r.get("raw_bytes")),
