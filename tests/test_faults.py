@@ -1,0 +1,297 @@
+"""Faults: a warehouse that is down at start-up or goes down mid-run answers 503 problem+json
+naming the source, and the service recovers by itself when it comes back; a missing or
+corrupt DuckDB file is a clear 503 naming the file; shutdown (SIGTERM) drains a slow request
+already running.
+
+PostgreSQL here is a THROWAWAY cluster this test creates (initdb + pg_ctl on a free loopback
+port in a temporary folder, run as the ``postgres`` OS user when the tests run as root); the
+machine's shared server on 5432 is never touched.
+"""
+
+from __future__ import annotations
+
+import glob
+import importlib.util
+import json
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import threading
+import time
+import urllib.request
+from pathlib import Path
+
+import pytest
+
+
+def _fixture_module():
+    name = "sluice_test_fuzz_fixture"
+    if name not in sys.modules:
+        spec = importlib.util.spec_from_file_location(
+            name, Path(__file__).with_name("test_fuzz_fixture.py"))
+        mod = importlib.util.module_from_spec(spec)
+        sys.modules[name] = mod
+        spec.loader.exec_module(mod)
+    return sys.modules[name]
+
+
+fx = _fixture_module()
+BODY = {"channels": {"x": {"column": "depot"}, "y": {"agg": "count"}}}
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+# =====================================================================================
+# a throwaway PostgreSQL cluster
+# =====================================================================================
+
+class Cluster:
+    def __init__(self, root: Path) -> None:
+        bins = sorted(glob.glob("/usr/lib/postgresql/*/bin"))
+        if not bins or not os.path.exists(os.path.join(bins[-1], "initdb")):
+            pytest.skip("PostgreSQL server binaries (initdb, pg_ctl) are not installed")
+        self.bin = bins[-1]
+        self.root = root
+        self.data = root / "data"
+        self.port = _free_port()
+        self.as_user: list[str] = []
+        if os.geteuid() == 0:  # initdb refuses root: run the cluster as the postgres user
+            if shutil.which("runuser") is None:
+                pytest.skip("running as root without runuser: cannot start a throwaway cluster")
+            self.as_user = ["runuser", "-u", "postgres", "--"]
+            shutil.chown(root, "postgres")
+            os.chmod(root, 0o700)
+        self._run("initdb", "-D", str(self.data), "-A", "trust", "-U", "postgres", "--no-sync")
+
+    def _run(self, tool: str, *args: str, check: bool = True) -> subprocess.CompletedProcess:
+        return subprocess.run(self.as_user + [os.path.join(self.bin, tool), *args],
+                              capture_output=True, text=True, check=check, timeout=120)
+
+    @property
+    def dsn(self) -> str:
+        return f"postgresql://postgres@127.0.0.1:{self.port}/postgres"
+
+    def start(self) -> None:
+        self._run("pg_ctl", "-D", str(self.data), "-w", "-t", "60", "-l", str(self.root / "log"),
+                  "-o", f"-p {self.port} -k {self.root} -c listen_addresses=127.0.0.1 -c fsync=off",
+                  "start")
+
+    def stop(self) -> None:
+        self._run("pg_ctl", "-D", str(self.data), "-w", "-t", "60", "-m", "fast", "stop", check=False)
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    try:
+        import psycopg  # noqa: F401
+        from app.engines import postgres  # noqa: F401
+    except ImportError as e:
+        pytest.skip(f"postgres engine not available: {e}")
+    import tempfile
+
+    # (not under pytest's tmp dirs: those are root-only, the cluster runs as postgres)
+    root = Path(tempfile.mkdtemp(prefix="sluice-pgfault-"))
+    try:
+        c = Cluster(root)
+    except BaseException:
+        shutil.rmtree(root, ignore_errors=True)
+        raise
+    c.start()
+    try:
+        import psycopg
+
+        df = fx.frame()
+        with psycopg.connect(c.dsn, autocommit=True) as con:
+            con.execute("CREATE TABLE deliveries (id bigint, depot text)")
+            with con.cursor() as cur:
+                with cur.copy("COPY deliveries FROM STDIN") as cp:
+                    for r in df.itertuples(index=False):
+                        cp.write_row((int(r.id), r.depot))
+        yield c
+    finally:
+        c.stop()
+        shutil.rmtree(root, ignore_errors=True)
+
+
+def _pg_client(cluster, tmp_path):
+    from fastapi.testclient import TestClient
+
+    from app.main import create_app
+    from app.settings import load_settings
+
+    cfg = tmp_path / "sluice.toml"
+    cfg.write_text(f'[sources.warehouse]\nengine = "postgres"\ndsn = "{cluster.dsn}"\n'
+                   'table = "deliveries"\nconnect_timeout_s = 2\n'
+                   "[server]\nrequest_log = false\n[cache]\nenabled = false\n")
+    return TestClient(create_app(load_settings(cfg, environ={})), raise_server_exceptions=False)
+
+
+def _chart(c):
+    return c.post("/v1/chart", json={"source": "warehouse", **BODY})
+
+
+def _assert_unavailable(r, source):
+    assert r.status_code == 503, (r.status_code, r.text[:400])
+    assert r.headers["content-type"].startswith("application/problem+json")
+    p = r.json()
+    assert p.get("source") == source and source in p["detail"], p
+    assert "retry-after" in r.headers
+
+
+def _until_ok(c, seconds=30.0):
+    deadline = time.monotonic() + seconds
+    r = None
+    while time.monotonic() < deadline:
+        r = _chart(c)
+        if r.status_code == 200:
+            return r
+        assert r.status_code == 503, (r.status_code, r.text[:300])  # never a 500 meanwhile
+        time.sleep(0.3)
+    raise AssertionError(f"no recovery within {seconds} s: {r.status_code if r else None}")
+
+
+def test_warehouse_down_at_startup_then_up(cluster, tmp_path):
+    cluster.stop()
+    try:
+        with _pg_client(cluster, tmp_path) as c:  # the service starts without its warehouse
+            assert c.get("/healthz").status_code == 200
+            _assert_unavailable(_chart(c), "warehouse")
+            assert c.get("/readyz").status_code == 503
+            cluster.start()
+            r = _until_ok(c)
+            assert r.json()["stats"]["source_rows"] == fx.N
+            assert c.get("/readyz").status_code == 200
+    finally:
+        cluster.start() if not _port_open(cluster.port) else None
+
+
+def test_warehouse_down_mid_run_then_back(cluster, tmp_path):
+    with _pg_client(cluster, tmp_path) as c:
+        assert _chart(c).status_code == 200
+        cluster.stop()
+        try:
+            for _ in range(3):  # every answer while it is down: 503 naming the source
+                _assert_unavailable(_chart(c), "warehouse")
+            assert c.get("/healthz").status_code == 200  # the service itself stays up
+        finally:
+            cluster.start()
+        r = _until_ok(c)
+        assert r.json()["data"]["count"] and sum(r.json()["data"]["count"]) == fx.N
+
+
+def _port_open(port: int) -> bool:
+    with socket.socket() as s:
+        s.settimeout(0.5)
+        return s.connect_ex(("127.0.0.1", port)) == 0
+
+
+# =====================================================================================
+# DuckDB files
+# =====================================================================================
+
+def _duck_client(tmp_path, path: Path):
+    from fastapi.testclient import TestClient
+
+    from app.main import create_app
+    from app.settings import load_settings
+
+    cfg = tmp_path / "sluice.toml"
+    cfg.write_text(fx.config(path) + "[server]\nrequest_log = false\n")
+    return TestClient(create_app(load_settings(cfg, environ={})), raise_server_exceptions=False)
+
+
+def test_missing_duckdb_file_is_a_clear_503_and_recovers(tmp_path):
+    path = tmp_path / "later.duckdb"
+    with _duck_client(tmp_path, path) as c:
+        r = _chart_duck(c)
+        _assert_unavailable(r, "deliveries")
+        assert str(path) in r.json()["detail"] and "does not exist" in r.json()["detail"]
+        assert c.get("/readyz").status_code == 503
+        fx.build_duckdb(path)  # the file appears: the next request works
+        assert _chart_duck(c).status_code == 200
+
+
+@pytest.mark.parametrize("content", [b"", b"not a database at all" * 100, b"\x00" * 8192,
+                                     b"DUCK" + os.urandom(20000)])
+def test_corrupt_duckdb_file_is_a_clear_503(tmp_path, content):
+    path = tmp_path / "corrupt.duckdb"
+    path.write_bytes(content)
+    with _duck_client(tmp_path, path) as c:
+        r = _chart_duck(c)
+        _assert_unavailable(r, "deliveries")
+        assert str(path) in r.json()["detail"]
+        assert c.get("/healthz").status_code == 200
+
+
+def _chart_duck(c):
+    return c.post("/v1/chart", json={"source": "deliveries", **BODY})
+
+
+# =====================================================================================
+# graceful shutdown
+# =====================================================================================
+
+def test_sigterm_drains_a_slow_request(tmp_path):
+    import duckdb
+
+    db = tmp_path / "slow.duckdb"
+    con = duckdb.connect(str(db))
+    con.execute("CREATE TABLE n AS SELECT range AS i FROM range(1500)")
+    con.execute("CREATE VIEW slow AS SELECT (x.i * 7 + y.i) % 1000 AS a, x.i * y.i AS b FROM n x, n y")
+    con.close()
+    cfg = tmp_path / "sluice.toml"
+    cfg.write_text(f'[sources.slow]\nengine = "duckdb"\npath = "{db}"\ntable = "slow"\nthreads = 1\n'
+                   "statement_timeout_ms = 120000\n[server]\nrequest_log = false\n"
+                   "[cache]\nenabled = false\n")
+    port = _free_port()
+    env = {**os.environ, "SLUICE_CONFIG": str(cfg)}
+    proc = subprocess.Popen([sys.executable, "-m", "uvicorn", "app.main:app", "--host", "127.0.0.1",
+                             "--port", str(port)], cwd=Path(__file__).resolve().parents[1], env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
+    try:
+        deadline = time.monotonic() + 60
+        while not _port_open(port):
+            assert proc.poll() is None, proc.stdout.read().decode()[-2000:]
+            assert time.monotonic() < deadline, "uvicorn did not start"
+            time.sleep(0.2)
+        result: dict = {}
+
+        def slow():
+            body = json.dumps({"source": "slow", "channels": {"x": {"column": "a"},
+                                                              "y": {"agg": "count_distinct", "column": "b"}}})
+            req = urllib.request.Request(f"http://127.0.0.1:{port}/v1/chart", data=body.encode(),
+                                         headers={"content-type": "application/json"})
+            t0 = time.monotonic()
+            try:
+                with urllib.request.urlopen(req, timeout=120) as resp:
+                    result["status"] = resp.status
+                    result["body"] = json.loads(resp.read())
+            except Exception as e:  # noqa: BLE001 - recorded, asserted below
+                result["error"] = repr(e)
+            result["seconds"] = time.monotonic() - t0
+
+        t = threading.Thread(target=slow)
+        t.start()
+        time.sleep(0.7)  # the request is in flight (the query takes seconds)
+        assert "status" not in result and "error" not in result, result
+        proc.send_signal(signal.SIGTERM)
+        t.join(150)
+        assert result.get("status") == 200, result
+        assert len(result["body"]["data"]["a"]) == 1000
+        # then the server exits by itself (recent uvicorn re-raises the signal it handled,
+        # so the status is SIGTERM's, -15, after the graceful shutdown)
+        assert proc.wait(60) in (0, -signal.SIGTERM)
+        out = proc.stdout.read().decode()
+        assert "Finished server process" in out or "Shutting down" in out, out[-1500:]
+        assert not _port_open(port)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
