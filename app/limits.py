@@ -283,11 +283,11 @@ class GuardedEngine:
     def _call(self, fn: Callable[[str], Any], sql: str, fired: dict | None) -> Any:
         try:
             return fn(sql)
-        except EngineUnavailable:
-            raise
         except EngineError as e:
-            if (fired is not None and fired["fired"]) or _server_timeout(e.message):
+            if (fired is not None and fired["fired"]) or server_timeout(e.message):
                 raise StatementTimeout(self._source, self._ms) from None
+            if isinstance(e, EngineUnavailable):
+                raise
             if self._user_sql:
                 raise PlanError(pointer("filter_sql"), "the engine could not evaluate "
                                 f"filter_sql: {e.message.splitlines()[0][:300]}",
@@ -301,7 +301,7 @@ class GuardedEngine:
         return self._run(self._engine.fetch_row, sql)
 
 
-def _server_timeout(message: str) -> bool:
+def server_timeout(message: str) -> bool:
     """A timeout the server enforced itself (PostgreSQL ``statement_timeout``, MySQL
     ``max_execution_time``)."""
     low = message.lower()

@@ -19,7 +19,7 @@ from app.cache import Entry, ResultCache, canonical, open_json, stamp_json
 from app.catalog import Catalog, UnknownSource
 from app.encode import ARROW_STREAM, arrow_stream, dumps
 from app.engines import EngineError, EngineUnavailable
-from app.limits import BodyLimitMiddleware
+from app.limits import BodyLimitMiddleware, server_timeout
 from app.problems import PROBLEM_JSON, Problem, from_plan_error, problem_response, validation_handler
 from app.service import ChartService
 from app.settings import ConfigError, Settings, load_settings
@@ -96,6 +96,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @app.exception_handler(EngineUnavailable)
     async def _unavailable(request: Request, exc: EngineUnavailable) -> Response:
+        if server_timeout(exc.message):  # the server's own statement_timeout (app.limits)
+            return problem_response(Problem(504, "statement-timeout", "Statement timed out",
+                                            f"source {exc.source!r}: {exc.message}",
+                                            source=exc.source), request.url.path)
         return problem_response(Problem(503, "source-unavailable", "Source unavailable",
                                         f"source {exc.source!r}: {exc.message}", source=exc.source,
                                         headers={"Retry-After": "5"}), request.url.path)

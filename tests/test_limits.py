@@ -224,3 +224,42 @@ def test_duckdb_memory_limit_and_threads_from_config(db, tmp_path):
         eng = c.app.state.catalog.engine("deliveries")
         row = eng.fetch_row("SELECT current_setting('threads') AS t, current_setting('memory_limit') AS m")
         assert row["t"] == 1 and row["m"].startswith("244")  # 256 MB = 244.1 MiB
+
+
+def test_postgres_statement_timeout_is_504(tmp_path):
+    """PostgreSQL enforces the source's statement_timeout_ms itself; the answer is the same
+    504 problem+json (checked on the machine's server with a throwaway view)."""
+    why = fx.postgres_up()
+    if why is not None:
+        pytest.skip(f"PostgreSQL is not reachable on 127.0.0.1:5432: {why}")
+    try:
+        from app.engines import postgres  # noqa: F401
+    except ImportError:
+        pytest.skip("app/engines/postgres.py is not there")
+    import os
+
+    import psycopg
+    from fastapi.testclient import TestClient
+
+    from app.main import create_app
+    from app.settings import load_settings
+
+    view = f"sluice_slow_{os.getpid()}"
+    with psycopg.connect(fx.PG_DSN, autocommit=True) as con:
+        con.execute(f'CREATE OR REPLACE VIEW "{view}" AS SELECT (x * 7 + y) % 1000 AS a, x * y AS b '
+                    "FROM generate_series(1, 30000) x, generate_series(1, 30000) y")
+    try:
+        cfg = tmp_path / "s.toml"
+        cfg.write_text(f'[sources.slowpg]\nengine = "postgres"\ndsn = "{fx.PG_DSN}"\ntable = "{view}"\n'
+                       "statement_timeout_ms = 300\n[server]\nrequest_log = false\n"
+                       "[cache]\nenabled = false\n")
+        with TestClient(create_app(load_settings(cfg, environ={})), raise_server_exceptions=False) as c:
+            t0 = time.monotonic()
+            r = c.post("/v1/chart", json={"source": "slowpg", "channels": {
+                "x": {"column": "a"}, "y": {"agg": "count_distinct", "column": "b"}}})
+            assert time.monotonic() - t0 < 20
+            p = _problem(r, 504)
+            assert p["source"] == "slowpg"
+    finally:
+        with psycopg.connect(fx.PG_DSN, autocommit=True) as con:
+            con.execute(f'DROP VIEW IF EXISTS "{view}"')
