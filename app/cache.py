@@ -24,6 +24,7 @@ Counters go to ``app.observability`` when that module is present (``hit``, ``mis
 from __future__ import annotations
 
 import threading
+import time
 from collections import OrderedDict
 from concurrent.futures import Future
 from dataclasses import dataclass
@@ -37,6 +38,24 @@ except Exception:  # noqa: BLE001 - optional
     _obs = None
 
 DEFAULT_MAX_BYTES = 64 * 1024 * 1024
+DEFAULT_TTL_S = 60.0
+#: engines whose data_version() is the identity of local files: exact, no TTL needed
+FILE_ENGINES = frozenset({"duckdb", "sqlite"})
+
+
+def source_version(engine_kind: str, engine: Any, ttl_s: float = DEFAULT_TTL_S,
+                   now: float | None = None) -> str:
+    """The data-version part of a cache key. File engines: ``engine.data_version()`` (file
+    identity) alone. Server engines: their own version (statistics counters, where they
+    have one, may lag or miss changes) plus a time bucket of ``ttl_s`` seconds, so no
+    answer outlives ``[cache] ttl_s`` (0 disables caching for server sources)."""
+    version = engine.data_version()
+    if engine_kind in FILE_ENGINES:
+        return version
+    if ttl_s <= 0:
+        return f"{version}|nocache|{time.time_ns()}"
+    t = time.time() if now is None else now
+    return f"{version}|ttl{ttl_s:g}:{int(t // ttl_s)}"
 
 
 def canonical(model: Any) -> bytes:

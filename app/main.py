@@ -15,7 +15,7 @@ from starlette.responses import FileResponse, Response
 from starlette.staticfiles import StaticFiles
 
 from app import auth, observability
-from app.cache import Entry, ResultCache, canonical, open_json, stamp_json
+from app.cache import Entry, ResultCache, canonical, open_json, source_version, stamp_json
 from app.catalog import Catalog, UnknownSource
 from app.encode import ARROW_STREAM, arrow_stream, dumps
 from app.engines import EngineError, EngineUnavailable
@@ -133,7 +133,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         lookup = "no-cache" not in request.headers.get("cache-control", "").lower()
         key = None
         if cache.enabled:
-            version = catalog.engine(req.source).data_version()
+            version = source_version(catalog.config(req.source).engine, catalog.engine(req.source),
+                                     float(cache_cfg.get("ttl_s", 60.0)))
             key = cache.key(canonical(req), version, "arrow" if arrow else "json")
 
         def run() -> Entry:

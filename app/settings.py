@@ -79,7 +79,8 @@ class Settings:
     keys: list = field(default_factory=list)
     cors_origins: list = field(default_factory=list)
     # [cache] (app.cache): enabled, max_bytes
-    cache: dict = field(default_factory=lambda: {"enabled": True, "max_bytes": 64 * 1024 * 1024})
+    cache: dict = field(default_factory=lambda: {"enabled": True, "max_bytes": 64 * 1024 * 1024,
+                                                 "ttl_s": 60.0})
 
     @property
     def source_names(self) -> list[str]:
@@ -246,7 +247,13 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
     cache = data.get("cache", {})
     if not isinstance(cache, dict):
         raise ctx.fail(("cache",), "must be a table", "write [cache] on its own line")
-    _check_unknown(ctx, ("cache",), cache, ["enabled", "max_bytes"])
+    _check_unknown(ctx, ("cache",), cache, ["enabled", "max_bytes", "ttl_s"])
+    if "ttl_s" in cache:
+        v = _coerce(ctx, ("cache", "ttl_s"), cache["ttl_s"], float, "60")
+        if v < 0:
+            raise ctx.fail(("cache", "ttl_s"), f"is {v}; it must be 0 or more",
+                           "e.g. ttl_s = 60 (server sources; 0: never cache them)")
+        st.cache["ttl_s"] = float(v)
     if "enabled" in cache:
         st.cache["enabled"] = _coerce(ctx, ("cache", "enabled"), cache["enabled"], bool, "true")
     if "max_bytes" in cache:

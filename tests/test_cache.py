@@ -202,3 +202,35 @@ def test_canonical_sorted_and_stable():
                                                   "x": {"column": "v", "bin": {"bins": 10}}},
                                      "source": "t"})
     assert canonical(a) == canonical(b)
+
+
+class _Engine:
+    def __init__(self, v: str) -> None:
+        self.v = v
+
+    def data_version(self) -> str:
+        return self.v
+
+
+def test_server_sources_expire_after_the_ttl():
+    from app.cache import source_version
+
+    eng = _Engine("stats:1")
+    a = source_version("postgres", eng, 60, now=1000.0)
+    assert source_version("postgres", eng, 60, now=1019.0) == a  # same bucket
+    assert source_version("postgres", eng, 60, now=1021.0) != a  # the TTL has passed
+    eng.v = "stats:2"
+    assert source_version("postgres", eng, 60, now=1000.0) != a  # the data changed
+    # file engines: the file identity alone, no expiry
+    f = _Engine("ino:size:mtime")
+    assert source_version("duckdb", f, 60, now=0.0) == source_version("duckdb", f, 60, now=1e9)
+    # ttl_s = 0: never the same key twice
+    assert source_version("mysql", eng, 0) != source_version("mysql", eng, 0)
+
+
+def test_ttl_setting_is_read(tmp_path):
+    db = tmp_path / "t.duckdb"
+    _make_db(db, 10)
+    cfg = tmp_path / "sluice.toml"
+    cfg.write_text(f'[sources.t]\nengine = "duckdb"\npath = "{db}"\ntable = "t"\n\n[cache]\nttl_s = 5\n')
+    assert load_settings(cfg).cache["ttl_s"] == 5.0
