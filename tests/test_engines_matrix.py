@@ -434,6 +434,16 @@ def test_engine_is_read_only(service, engine: str):
     check_read_only(service, engine)
 
 
+def test_mysql_session_itself_is_read_only(service):
+    """Below the engine's SELECT-only guard, the MariaDB session refuses writes too."""
+    import pymysql
+
+    eng = service.catalog.engine("mysql")
+    conn = eng._conn()  # the engine's own session (SET SESSION TRANSACTION READ ONLY)
+    with conn.cursor() as cur, pytest.raises(pymysql.err.OperationalError, match="READ ONLY"):
+        cur.execute("CREATE TABLE sluice_write_probe (a INT)")
+
+
 HTTP_CASES = ["count_by_cat", "quantile", "bin_fd", "tbin_year_berlin", "trunc_week_newyork",
               "where_text_case_sensitive", "top_by_sum_label", "stack_fraction",
               "facets_max_groups", "where_no_rows", "min_max"]
@@ -497,7 +507,7 @@ def test_server_statement_time_limit(engine_sources, engine: str, sleep: str):
     import time
 
     from app.engines import EngineError, open_engine
-    from app.limits import _server_timeout
+    from app.limits import server_timeout
     from app.settings import SourceConfig
 
     src = dict(engine_sources[engine])
@@ -509,7 +519,7 @@ def test_server_statement_time_limit(engine_sources, engine: str, sleep: str):
         with pytest.raises(EngineError) as err:
             eng.execute(sleep)
         assert time.monotonic() - t0 < 2.5
-        assert _server_timeout(err.value.message), err.value.message
+        assert server_timeout(err.value.message), err.value.message
     finally:
         eng.close()
 

@@ -1,7 +1,8 @@
 """MySQL 8 / MariaDB engine (pymysql), one connection per worker thread.
 
 Every session starts with ``SET SESSION TRANSACTION READ ONLY`` (writes fail inside the
-server), ``time_zone = '+00:00'`` (TIMESTAMP columns read as UTC) and a statement time limit
+server; only SELECT / WITH statements are sent, so no later SET can undo it; pymysql sends
+one statement at a time), ``time_zone = '+00:00'`` (TIMESTAMP columns read as UTC) and a statement time limit
 from the source option ``statement_timeout_ms`` (default 30000): ``max_statement_time``
 (seconds) on MariaDB, ``max_execution_time`` (milliseconds) on MySQL.
 
@@ -11,6 +12,7 @@ from the source option ``statement_timeout_ms`` (default 30000): ``max_statement
 from __future__ import annotations
 
 import os
+import re
 import threading
 from typing import Any
 from urllib.parse import unquote, urlparse
@@ -27,6 +29,9 @@ _FIELD_TYPES: dict[int, pa.DataType] = {
     4: pa.float64(), 5: pa.float64(), 7: UTC_US, 12: UTC_US, 10: pa.date32(),
     253: pa.string(), 254: pa.string(), 15: pa.string(),
 }
+
+
+_READ = re.compile(r"^\s*(SELECT|WITH)\b", re.IGNORECASE)
 
 
 class MySQLEngine:
@@ -92,6 +97,8 @@ class MySQLEngine:
         return conn
 
     def _run(self, sql: str, params: tuple | None = None):
+        if not _READ.match(sql):  # a later SET could undo the session's READ ONLY
+            raise EngineError(self.cfg.name, "the mysql engine runs single SELECT statements only")
         if "CONVERT_TZ(" in sql and not self.tz_tables:
             raise EngineError(self.cfg.name, "the server's time zone tables are empty, so "
                               "CONVERT_TZ would answer NULL: load them with "
