@@ -284,10 +284,12 @@ class GuardedEngine:
         try:
             return fn(sql)
         except EngineError as e:
-            if (fired is not None and fired["fired"]) or server_timeout(e.message):
+            if server_timeout(e.message):
                 raise StatementTimeout(self._source, self._ms) from None
             if isinstance(e, EngineUnavailable):
-                raise
+                raise  # the warehouse is down (even if the timer fired meanwhile): 503
+            if fired is not None and fired["fired"]:
+                raise StatementTimeout(self._source, self._ms) from None
             if self._user_sql:
                 raise PlanError(pointer("filter_sql"), "the engine could not evaluate "
                                 f"filter_sql: {e.message.splitlines()[0][:300]}",

@@ -243,7 +243,7 @@ def test_sigterm_drains_a_slow_request(tmp_path):
 
     db = tmp_path / "slow.duckdb"
     con = duckdb.connect(str(db))
-    con.execute("CREATE TABLE n AS SELECT range AS i FROM range(1500)")
+    con.execute("CREATE TABLE n AS SELECT range AS i FROM range(5000)")  # seconds of work
     con.execute("CREATE VIEW slow AS SELECT (x.i * 7 + y.i) % 1000 AS a, x.i * y.i AS b FROM n x, n y")
     con.close()
     cfg = tmp_path / "sluice.toml"
