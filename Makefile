@@ -58,6 +58,7 @@ bench: $(VENV)/.installed-test  # benchmarks, not tests; bench/README.md says wh
 LOAD_CLIENTS ?= 32
 LOAD_SECONDS ?= 60
 load: $(VENV)/.installed-test  # bounded load run against 127.0.0.1 (server started here)
+	@command -v wrk >/dev/null || { apt-get update -qq && apt-get install -y -qq wrk; }
 	LOAD_CLIENTS=$(LOAD_CLIENTS) LOAD_SECONDS=$(LOAD_SECONDS) BENCH_ROWS=$(BENCH_ROWS) $(BIN)/python bench/load.py
 
 FUZZ_SCALE ?= 8
