@@ -61,6 +61,11 @@ class Dialect:
     unsupported: ClassVar[frozenset[str]] = frozenset()
     #: True when ``ORDER BY x NULLS FIRST/LAST`` is accepted as written.
     nulls_order_native: ClassVar[bool] = True
+    #: Typed timestamp literals: the type of an instant, the text that names UTC after the
+    #: wall-clock digits, and the type of a naive wall-clock time.
+    instant_type: ClassVar[str] = "TIMESTAMPTZ"
+    instant_suffix: ClassVar[str] = "+00:00"
+    naive_type: ClassVar[str] = "TIMESTAMP"
     #: Approximate count distinct: (method, relative standard error) for the response.
     approx_distinct: ClassVar[tuple[str, float | None]] = ("hyperloglog", None)
     #: How the target's engine is checked: "live" (a real engine in the test suite) or
@@ -159,8 +164,7 @@ class Dialect:
     def local_literal(self, value: dt.datetime) -> exp.Expression:
         """A naive wall-clock time as the dialect's naive timestamp value (the type that
         ``to_local`` / ``trunc`` produce), e.g. a calendar bin start in empty_bins grids."""
-        return exp.Cast(this=exp.Literal.string(value.strftime("%Y-%m-%d %H:%M:%S")),
-                        to=exp.DataType.build("TIMESTAMP"))
+        return self.cast(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")), self.naive_type)
 
     def boolean(self, v: bool) -> exp.Expression:
         return exp.Boolean(this=v)
@@ -169,16 +173,15 @@ class Dialect:
         return exp.Cast(this=e, to=exp.DataType.build("DOUBLE"))
 
     def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
-        """An instant (aware, UTC) as a literal comparable with a column of ``kind``."""
+        """An instant (aware, UTC) as a literal comparable with a column of ``kind``: typed
+        with ``instant_type`` (text + ``instant_suffix`` names UTC) or ``naive_type``."""
         utc = value.astimezone(dt.timezone.utc)
         if kind == "date":
-            return exp.Cast(this=exp.Literal.string(utc.date().isoformat()),
-                            to=exp.DataType.build("DATE"))
+            return self.cast(self.lit(utc.date().isoformat()), "DATE")
         text = utc.strftime("%Y-%m-%d %H:%M:%S.%f")
         if kind == "timestamptz":
-            return exp.Cast(this=exp.Literal.string(text + "+00:00"),
-                            to=exp.DataType.build("TIMESTAMPTZ"))
-        return exp.Cast(this=exp.Literal.string(text), to=exp.DataType.build("TIMESTAMP"))
+            return self.cast(self.lit(text + self.instant_suffix), self.instant_type)
+        return self.cast(self.lit(text), self.naive_type)
 
     # --- arithmetic -----------------------------------------------------------------
     def floor(self, e: exp.Expression) -> exp.Expression:

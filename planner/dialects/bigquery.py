@@ -18,6 +18,8 @@ from planner.dialects.base import Dialect
 class BigQuery(Dialect):
     name = "bigquery"
     sqlglot = "bigquery"
+    instant_type = "TIMESTAMP"
+    naive_type = "DATETIME"
     checked = "golden"
     unsupported = frozenset({"median", "quantile"})
     approx_distinct = ("hyperloglog++", None)
@@ -32,18 +34,6 @@ class BigQuery(Dialect):
         "limit": "LIMIT",
         "quoting": "`name`",
     }
-
-    def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
-        utc = value.astimezone(dt.timezone.utc)
-        if kind == "date":
-            return self.cast(self.lit(utc.date().isoformat()), "DATE")
-        text = utc.strftime("%Y-%m-%d %H:%M:%S.%f")
-        if kind == "timestamptz":
-            return self.cast(self.lit(text + "+00:00"), "TIMESTAMP")
-        return self.cast(self.lit(text), "DATETIME")
-
-    def local_literal(self, value: dt.datetime) -> exp.Expression:
-        return self.cast(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")), "DATETIME")
 
     def _instant(self, e, kind):
         if kind == "timestamptz":

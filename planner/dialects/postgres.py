@@ -67,9 +67,6 @@ class Postgres(Dialect):
     def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
         return self.fn("TO_TIMESTAMP", seconds)
 
-    def timestamp_literal(self, value, kind):
-        return super().timestamp_literal(value, kind)
-
     def contains(self, col: exp.Expression, s: str) -> exp.Expression:
         return exp.GT(this=self.fn("STRPOS", col, self.string(s)), expression=self.lit(0))
 

@@ -18,6 +18,9 @@ from planner.dialects.base import Dialect
 class Snowflake(Dialect):
     name = "snowflake"
     sqlglot = "snowflake"
+    instant_type = "TIMESTAMP_TZ"
+    instant_suffix = " +00:00"
+    naive_type = "TIMESTAMP_NTZ"
     checked = "golden"
     approx_distinct = ("hyperloglog", 0.016)
     notes = {
@@ -32,18 +35,6 @@ class Snowflake(Dialect):
         "limit": "LIMIT",
         "quoting": '"name"',
     }
-
-    def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
-        utc = value.astimezone(dt.timezone.utc)
-        if kind == "date":
-            return self.cast(self.lit(utc.date().isoformat()), "DATE")
-        text = utc.strftime("%Y-%m-%d %H:%M:%S.%f")
-        if kind == "timestamptz":
-            return self.cast(self.lit(text + " +00:00"), "TIMESTAMP_TZ")
-        return self.cast(self.lit(text), "TIMESTAMP_NTZ")
-
-    def local_literal(self, value: dt.datetime) -> exp.Expression:
-        return self.cast(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")), "TIMESTAMP_NTZ")
 
     def to_local(self, e, kind, tz):
         if kind == "timestamptz":

@@ -17,6 +17,9 @@ from planner.dialects.base import Dialect
 class Trino(Dialect):
     name = "trino"
     sqlglot = "trino"
+    instant_type = "TIMESTAMP(6) WITH TIME ZONE"
+    instant_suffix = " UTC"
+    naive_type = "TIMESTAMP(6)"
     checked = "golden"
     unsupported = frozenset({"median", "quantile"})
     approx_distinct = ("hyperloglog", 0.023)
@@ -31,18 +34,6 @@ class Trino(Dialect):
         "limit": "LIMIT",
         "quoting": '"name"',
     }
-
-    def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
-        utc = value.astimezone(dt.timezone.utc)
-        if kind == "date":
-            return self.cast(self.lit(utc.date().isoformat()), "DATE")
-        text = utc.strftime("%Y-%m-%d %H:%M:%S.%f")
-        if kind == "timestamptz":
-            return self.cast(self.lit(text + " UTC"), "TIMESTAMP(6) WITH TIME ZONE")
-        return self.cast(self.lit(text), "TIMESTAMP(6)")
-
-    def local_literal(self, value: dt.datetime) -> exp.Expression:
-        return self.cast(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")), "TIMESTAMP(6)")
 
     def _instant(self, e, kind):
         if kind == "timestamptz":
