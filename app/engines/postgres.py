@@ -58,6 +58,9 @@ class PostgresEngine:
         except Exception as e:  # noqa: BLE001 - PoolTimeout or OperationalError
             self.pool.close()
             raise EngineUnavailable(cfg.name, f"cannot connect to PostgreSQL: {e}") from None
+        # waiting for a pooled connection is bounded like connecting: a down server answers
+        # 503 after connect_timeout_s instead of the pool's default 30 s
+        self._wait_s = float(cfg.options.get("connect_timeout_s", 10))
         self._version_lock = threading.Lock()
         self._version: tuple[float, str] | None = None
         self._active: dict[int, Any] = {}  # thread id -> connection running a statement
@@ -65,7 +68,7 @@ class PostgresEngine:
     def _run(self, sql: str, params: tuple | None = None) -> tuple[list[str], list[Any], list[tuple]]:
         psycopg = self._psycopg
         try:
-            with self.pool.connection() as conn:
+            with self.pool.connection(timeout=self._wait_s) as conn:
                 self._active[threading.get_ident()] = conn
                 try:
                     cur = conn.execute(sql, params)
