@@ -129,20 +129,37 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         when the client accepts ``application/vnd.apache.arrow.stream``)."""
         t_in = time.perf_counter()
         service.check_source(req.source)  # auth before any cached answer
-        arrow = ARROW_STREAM in request.headers.get("accept", "")
         lookup = "no-cache" not in request.headers.get("cache-control", "").lower()
-        key = None
-        if cache.enabled:
-            version = source_version(catalog.config(req.source).engine, catalog.engine(req.source),
-                                     float(cache_cfg.get("ttl_s", 60.0)))
-            key = cache.key(canonical(req), version, "arrow" if arrow else "json")
+        if ARROW_STREAM not in request.headers.get("accept", ""):
+            return Response(json_answer(req, lookup, t_in), media_type="application/json")
 
+        def run() -> Entry:  # kept as (table, meta): the metadata is re-stamped per answer
+            result = service.run(req)
+            observability.record_chart(req.source, result.meta, result.timing)
+            return _ArrowEntry(result.table, dict(result.meta), dict(result.timing))
+
+        entry, state = cached(req, "arrow", run, lookup)
+        meta = dict(entry.meta)
+        meta["cache"] = state
+        meta["timing_ms"] = entry.timing if state == "miss" else {
+            "lookup": round((time.perf_counter() - t_in) * 1000.0, 3)}
+        return Response(arrow_stream(entry.table, meta), media_type=ARROW_STREAM)
+
+    def cached(req: ChartRequest, fmt: str, run, lookup: bool) -> tuple[Entry, str]:
+        """The cached answer for ``req`` in ``fmt`` (single-flight), or ``run()``'s."""
+        if not cache.enabled:
+            return run(), "miss"
+        version = source_version(catalog.config(req.source).engine, catalog.engine(req.source),
+                                 float(cache_cfg.get("ttl_s", 60.0)))
+        return cache.compute(cache.key(canonical(req), version, fmt), req.source, run,
+                             lookup=lookup)
+
+    def json_answer(req: ChartRequest, lookup: bool, t_in: float) -> bytes:
+        """The JSON answer bytes, from the cache when it has them (chart and batch routes)."""
         def run() -> Entry:
             result = service.run(req)
             observability.record_chart(req.source, result.meta, result.timing)
             t0 = time.perf_counter()
-            if arrow:  # kept as (table, meta): the metadata is re-stamped per answer
-                return _ArrowEntry(result.table, dict(result.meta), dict(result.timing))
             payload = service.to_json(result)
             payload.pop("cache", None)
             payload.pop("timing_ms", None)
@@ -151,46 +168,35 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             timing["encode"] = round((time.perf_counter() - t0) * 1000.0, 3)
             return Entry(body, "application/json", timing)
 
-        if key is None:
-            entry, state = run(), "miss"
-        else:
-            entry, state = cache.compute(key, req.source, run, lookup=lookup)
+        entry, state = cached(req, "json", run, lookup)
         timing = entry.timing if state == "miss" else {
             "lookup": round((time.perf_counter() - t_in) * 1000.0, 3)}
-        if isinstance(entry, _ArrowEntry):
-            meta = dict(entry.meta)
-            meta["cache"] = state
-            meta["timing_ms"] = timing
-            return Response(arrow_stream(entry.table, meta), media_type=ARROW_STREAM)
-        return Response(stamp_json(entry.body, state, timing), media_type="application/json")
+        return stamp_json(entry.body, state, timing)
 
     @app.post("/v1/batch", responses=_problem_responses(), tags=["charts"])
     def batch(req: BatchRequest) -> Response:
-        """Several charts on one source. Each result is the chart's answer, or its problem
-        document (pointer prefixed with ``/charts/<i>``); the batch itself answers 200."""
+        """Several charts on one source. Each result is the chart's answer (cached like
+        /v1/chart), or its problem document (pointer prefixed with ``/charts/<i>``); the
+        batch itself answers 200."""
         service.check_source(req.source)
         results = []
         for i, chart in enumerate(req.charts):
             if chart.source is not None and chart.source != req.source:
-                results.append(Problem(422, "invalid-request", "Chart names another source",
-                                       f"a batch runs on one source ({req.source!r})",
-                                       f"/charts/{i}/source").body())
+                results.append(dumps(Problem(422, "invalid-request", "Chart names another source",
+                                             f"a batch runs on one source ({req.source!r})",
+                                             f"/charts/{i}/source").body()))
                 continue
             full = ChartRequest.model_validate(
                 chart.model_dump(by_alias=True, exclude_none=True) | {"source": req.source})
             try:
-                result = service.run(full)
+                results.append(json_answer(full, True, time.perf_counter()))
             except PlanError as e:
                 prob = from_plan_error(e)
                 prob.ptr = f"/charts/{i}{prob.ptr}" if prob.ptr is not None else f"/charts/{i}"
-                results.append(prob.body())
-                continue
-            observability.record_chart(req.source, result.meta, result.timing)
-            payload = service.to_json(result)
-            payload["cache"] = "miss"
-            payload["timing_ms"] = result.timing
-            results.append(payload)
-        return JSONResponse({"source": req.source, "results": results})
+                results.append(dumps(prob.body()))
+        # the answers are already encoded (and may come from the cache): splice the bytes
+        head = dumps({"source": req.source})[:-1] + b',"results":['
+        return Response(head + b",".join(results) + b"]}", media_type="application/json")
 
     @app.post("/v1/sql", responses=_problem_responses(), tags=["charts"])
     def plan_sql(req: ChartRequest,

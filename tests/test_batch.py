@@ -55,3 +55,16 @@ def test_batch_unknown_source_is_404(client):
     r = client.post("/v1/batch", json={"source": "nope", "charts": [{"channels": {"x": {"column": "cat"}}}]})
     assert r.status_code == 404
     assert r.json()["pointer"] == "/source"
+
+
+def test_batch_charts_share_the_result_cache(client):
+    """A chart answered once (alone or in a batch) is a cache hit the next time, with the
+    same data; the reference is the first, computed answer."""
+    chart = {"channels": {"x": {"column": "label"}, "y": {"agg": "avg", "column": "w"}},
+             "where": [{"column": "grp2", "ne": "zzz-not-there"}]}
+    first = client.post("/v1/chart", json={"source": "fixture", **chart}).json()
+    r = client.post("/v1/batch", json={"source": "fixture", "charts": [chart, chart]})
+    assert r.status_code == 200
+    res = r.json()["results"]
+    assert [x["cache"] for x in res] == ["hit", "hit"]
+    assert res[0]["data"] == first["data"] and res[0]["stats"] == first["stats"]
