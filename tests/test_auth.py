@@ -3,25 +3,12 @@ open probes, CORS allow-list."""
 
 from __future__ import annotations
 
-import importlib.util
-import sys
-from pathlib import Path
 
 import pytest
 
 
-def _fixture_module():
-    name = "sluice_test_fuzz_fixture"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(
-            name, Path(__file__).with_name("test_fuzz_fixture.py"))
-        mod = importlib.util.module_from_spec(spec)
-        sys.modules[name] = mod
-        spec.loader.exec_module(mod)
-    return sys.modules[name]
-
-
-fx = _fixture_module()
+# pytest puts tests/ on sys.path (no __init__.py, default import mode)
+import test_fuzz_fixture as fx  # noqa: E402
 KEY_A = "k-deliveries-0123456789abcdef"
 KEY_ALL = "k-everything-fedcba9876543210"
 KEY_SALTED = "a passphrase someone chose"

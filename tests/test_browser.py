@@ -10,7 +10,6 @@ import contextlib
 import hashlib
 import json
 import os
-import shutil
 import socket
 import subprocess
 import sys

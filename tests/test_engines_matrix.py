@@ -15,7 +15,6 @@ engines without one answer exactly).
 
 from __future__ import annotations
 
-import datetime as dt
 import importlib.util
 import math
 import sys

@@ -11,7 +11,6 @@ machine's shared server on 5432 is never touched.
 from __future__ import annotations
 
 import glob
-import importlib.util
 import json
 import os
 import shutil
@@ -27,18 +26,8 @@ from pathlib import Path
 import pytest
 
 
-def _fixture_module():
-    name = "sluice_test_fuzz_fixture"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(
-            name, Path(__file__).with_name("test_fuzz_fixture.py"))
-        mod = importlib.util.module_from_spec(spec)
-        sys.modules[name] = mod
-        spec.loader.exec_module(mod)
-    return sys.modules[name]
-
-
-fx = _fixture_module()
+# pytest puts tests/ on sys.path (no __init__.py, default import mode)
+import test_fuzz_fixture as fx  # noqa: E402
 BODY = {"channels": {"x": {"column": "depot"}, "y": {"agg": "count"}}}
 
 

@@ -14,10 +14,7 @@ case and status counts per operation to FILE.
 
 from __future__ import annotations
 
-import importlib.util
 import os
-import sys
-from pathlib import Path
 
 import pytest
 
@@ -27,18 +24,8 @@ from hypothesis import strategies as st  # noqa: E402
 from schemathesis import GenerationMode  # noqa: E402
 
 
-def _fixture_module():
-    name = "sluice_test_fuzz_fixture"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(
-            name, Path(__file__).with_name("test_fuzz_fixture.py"))
-        mod = importlib.util.module_from_spec(spec)
-        sys.modules[name] = mod
-        spec.loader.exec_module(mod)
-    return sys.modules[name]
-
-
-fx = _fixture_module()
+# pytest puts tests/ on sys.path (no __init__.py, default import mode)
+import test_fuzz_fixture as fx  # noqa: E402
 SCALE = max(1, int(os.environ.get("SLUICE_FUZZ_SCALE", "1")))
 COLUMNS = ["id", "depot", "vehicle", "region", "fee", "distance_km", "weight", "express",
            "delivered_at"]

@@ -11,29 +11,16 @@ Property: no 5xx, every 4xx is problem+json. ``make test``: 1,000 cases; ``make 
 from __future__ import annotations
 
 import copy
-import importlib.util
 import json
 import os
-import sys
-from pathlib import Path
 
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 
-def _fixture_module():
-    name = "sluice_test_fuzz_fixture"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(
-            name, Path(__file__).with_name("test_fuzz_fixture.py"))
-        mod = importlib.util.module_from_spec(spec)
-        sys.modules[name] = mod
-        spec.loader.exec_module(mod)
-    return sys.modules[name]
-
-
-fx = _fixture_module()
+# pytest puts tests/ on sys.path (no __init__.py, default import mode)
+import test_fuzz_fixture as fx  # noqa: E402
 SCALE = max(1, int(os.environ.get("SLUICE_FUZZ_SCALE", "1")))
 
 SEEDS = [

@@ -8,10 +8,7 @@ whole filter is true), and groups with ``dropna=False`` (a NULL key is its own g
 
 from __future__ import annotations
 
-import importlib.util
 import math
-import sys
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -20,18 +17,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 
-def _fixture_module():
-    name = "sluice_test_fuzz_fixture"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(
-            name, Path(__file__).with_name("test_fuzz_fixture.py"))
-        mod = importlib.util.module_from_spec(spec)
-        sys.modules[name] = mod
-        spec.loader.exec_module(mod)
-    return sys.modules[name]
-
-
-fx = _fixture_module()
+# pytest puts tests/ on sys.path (no __init__.py, default import mode)
+import test_fuzz_fixture as fx  # noqa: E402
 KEYS = ["depot", "vehicle", "region", "express"]
 DEPOTS = fx.DEPOTS + ["Nowhere"]
 

@@ -8,7 +8,6 @@ median / quantile are refused. approx_count_distinct is HyperLogLog++.
 
 from __future__ import annotations
 
-import datetime as dt
 
 from sqlglot import exp
 

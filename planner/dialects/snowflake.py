@@ -8,7 +8,6 @@ PERCENTILE_CONT WITHIN GROUP is an aggregate here (type 7).
 
 from __future__ import annotations
 
-import datetime as dt
 
 from sqlglot import exp
 

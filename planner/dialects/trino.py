@@ -7,7 +7,6 @@ ISO week. Trino has only approx_percentile, so exact median / quantile are refus
 
 from __future__ import annotations
 
-import datetime as dt
 
 from sqlglot import exp
 
