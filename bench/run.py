@@ -28,14 +28,12 @@ import socket
 import statistics
 import subprocess
 import sys
-import threading
 import time
 from pathlib import Path
 from typing import Any
 
 import duckdb
 import httpx
-import numpy as np
 import orjson
 import pyarrow as pa
 
