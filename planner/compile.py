@@ -92,11 +92,6 @@ class Key:
     def has_limits(self) -> bool:
         return self.nlimits is not None or self.tlimits is not None
 
-    @property
-    def data_driven(self) -> bool:
-        b = self.spec.bin
-        return b is not None and b.limits is None and b.width is None
-
 
 @dataclass
 class Measure:
@@ -888,9 +883,9 @@ def _trunc_key(d: Dialect, unit: str, ref: exp.Expression, kind: str, tz: str) -
     return d.from_epoch(exp.Sub(this=d.epoch(ref.copy(), kind), expression=exp.Paren(this=remainder)))
 
 
-def _key_outputs(d: Dialect, k: Key, src: str | None) -> list[exp.Expression]:
+def _key_outputs(d: Dialect, k: Key) -> list[exp.Expression]:
     """Output columns of a key, computed from its internal grouping value."""
-    v = _ref(k.internal, src)
+    v = _ref(k.internal)
     if k.mode == "nbin":
         b = k.nbins
         assert b is not None
@@ -1039,7 +1034,7 @@ def _main_statement(plan: Plan) -> exp.Select:
     # ---- final ----
     final = exp.select().from_(_table(current))
     for k in keys:
-        final = final.select(*_key_outputs(d, k, None))
+        final = final.select(*_key_outputs(d, k))
     for m in measures:
         final = final.select(exp.alias_(_ref(m.internal), m.name, quoted=True))
     if plan.stack_measure is not None:
