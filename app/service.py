@@ -50,7 +50,7 @@ class PlanCache:
 
     def __init__(self, max_entries: int = 2048) -> None:
         self.max_entries = max_entries
-        self._prepared: dict[tuple, Plan] = {}
+        self._prepared: dict[tuple, Prepared] = {}
         self._extents: dict[tuple, dict[str, Any]] = {}
         self._finished: dict[tuple, tuple[Plan, str]] = {}
 
@@ -62,24 +62,16 @@ class PlanCache:
                 pass
         d[key] = value
 
-    def prepared(self, req: ChartRequest, entry: SourceEntry, dialect: Any) -> Plan:
+    def prepared(self, req: ChartRequest, entry: SourceEntry, dialect: Any) -> "Prepared":
         from app.cache import canonical
 
         key = (canonical(req), dialect.name, entry.schema.name, entry.version)
-        plan = self._prepared.get(key)
-        if plan is None:
+        prep = self._prepared.get(key)
+        if prep is None:
             plan = prepare(req, entry.schema, dialect)
-            plan._sluice_key = key  # type: ignore[attr-defined]
-            plan._sluice_extents_sql = plan.extents_sql  # type: ignore[attr-defined]
-            self._put(self._prepared, key, plan)
-        return plan
-
-    @staticmethod
-    def extents_sql(template: Plan) -> str | None:
-        try:
-            return template._sluice_extents_sql  # type: ignore[attr-defined]
-        except AttributeError:
-            return template.extents_sql
+            prep = Prepared(plan, key, plan.extents_sql)
+            self._put(self._prepared, key, prep)
+        return prep
 
     def extents_row(self, entry: SourceEntry, sql: str) -> dict[str, Any] | None:
         return self._extents.get((entry.schema.name, entry.version, sql))
@@ -87,16 +79,25 @@ class PlanCache:
     def remember_extents(self, entry: SourceEntry, sql: str, row: dict[str, Any]) -> None:
         self._put(self._extents, (entry.schema.name, entry.version, sql), row)
 
-    def finished(self, template: Plan, entry: SourceEntry, row: dict[str, Any] | None
+    def finished(self, prep: "Prepared", entry: SourceEntry, row: dict[str, Any] | None
                  ) -> tuple[Plan, str]:
-        rkey = tuple(sorted((row or {}).items(), key=lambda kv: kv[0]))
-        key = (getattr(template, "_sluice_key", id(template)), rkey)
+        key = (prep.key, tuple(sorted((row or {}).items(), key=lambda kv: kv[0])))
         hit = self._finished.get(key)
         if hit is None:
-            plan = prepare(template.request, entry.schema, template.dialect).finish(row)
+            plan = prepare(prep.plan.request, entry.schema, prep.plan.dialect).finish(row)
             hit = (plan, plan.main_sql)
             self._put(self._finished, key, hit)
         return hit
+
+
+@dataclass(frozen=True)
+class Prepared:
+    """A checked, never-finished plan shared between requests (read-only), its cache key
+    and its rendered extents statement."""
+
+    plan: Plan
+    key: tuple
+    extents_sql: str | None
 
 
 def _extents_only(req: ChartRequest) -> ChartRequest:
@@ -144,7 +145,7 @@ class ChartService:
                             status=404, suggestions=nearest(name, known)) from None
 
     def _plan(self, req: ChartRequest, dialect_name: str | None = None,
-              cached: bool = False) -> tuple[Plan, SourceEntry, Engine]:
+              cached: bool = False) -> tuple[Any, SourceEntry, Engine]:
         self.check_source(req.source)
         limits = self.limiter.of(req.source)
         check_request(req, limits)  # [limits] caps, 422 with pointers
@@ -160,7 +161,7 @@ class ChartService:
             raise PlanError("", f"unknown dialect {dialect_name!r}; use one of "
                             f"{', '.join(sorted(DIALECTS))}", slug="unknown-dialect", status=400) from None
         req = self._clamp(req)
-        if cached:  # a shared, never-finished plan: see _run
+        if cached:  # a shared, never-finished plan (Prepared): see _run
             return self._plans.prepared(req, entry, dialect), entry, engine
         return prepare(req, entry.schema, dialect), entry, engine
 
@@ -205,12 +206,12 @@ class ChartService:
     def _run(self, req: ChartRequest) -> ChartResult:
         timing: dict[str, float] = {}
         t0 = time.perf_counter()
-        template, entry, engine = self._plan(req, cached=True)
+        prep, entry, engine = self._plan(req, cached=True)
         timing["plan"] = _ms(t0)
         t1 = time.perf_counter()
         statements = []
         row = None
-        extents_sql = self._plans.extents_sql(template)
+        extents_sql = prep.extents_sql
         if extents_sql is not None:
             row = self._plans.extents_row(entry, extents_sql)
             if row is None:  # not known for this data version yet: one more statement
@@ -218,7 +219,7 @@ class ChartService:
                 row = engine.fetch_row(extents_sql)
                 self._plans.remember_extents(entry, extents_sql, row)
         t2 = time.perf_counter()
-        plan, main_sql = self._plans.finished(template, entry, row)
+        plan, main_sql = self._plans.finished(prep, entry, row)
         plan_more = _ms(t2)
         statements.append(main_sql)
         raw = engine.execute(main_sql)
