@@ -20,6 +20,21 @@ class EngineUnavailable(EngineError):
     """The engine cannot be reached or opened (HTTP 503)."""
 
 
+class EngineBase:
+    """What most engines share: table names split on dots, and one row read from the Arrow
+    answer of ``execute`` (engines whose driver returns Python rows override ``fetch_row``)."""
+
+    def execute(self, sql: str) -> pa.Table:  # pragma: no cover - every engine defines it
+        raise NotImplementedError
+
+    def fetch_row(self, sql: str) -> dict[str, Any]:
+        t = self.execute(sql)
+        return {n: c[0].as_py() for n, c in zip(t.column_names, t.columns)} if t.num_rows else {}
+
+    def split_table(self, table: str) -> tuple[str, ...]:
+        return tuple(table.split("."))
+
+
 class Engine(Protocol):
     #: planner dialect name used to render SQL for this engine
     dialect: str

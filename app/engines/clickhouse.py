@@ -22,7 +22,7 @@ from typing import Any
 import pyarrow as pa
 from sqlglot import exp
 
-from app.engines.base import EngineError, EngineUnavailable
+from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
 
 
@@ -30,7 +30,7 @@ def _quote(v: str) -> str:
     return exp.Literal.string(v).sql(dialect="clickhouse")
 
 
-class _ClickHouseBase:
+class _ClickHouseBase(EngineBase):
     dialect = "clickhouse"
     cfg: SourceConfig
 
@@ -40,12 +40,6 @@ class _ClickHouseBase:
     def execute(self, sql: str) -> pa.Table:
         return self._query(sql)
 
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        t = self._query(sql)
-        return {n: c[0].as_py() for n, c in zip(t.column_names, t.columns)} if t.num_rows else {}
-
-    def split_table(self, table: str) -> tuple[str, ...]:
-        return tuple(table.split("."))
 
     def _where(self, table: tuple[str, ...]) -> str:
         db = _quote(table[-2]) if len(table) >= 2 else "currentDatabase()"

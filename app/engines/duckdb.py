@@ -10,11 +10,11 @@ from typing import Any, Callable
 import duckdb
 import pyarrow as pa
 
-from app.engines.base import EngineError, EngineUnavailable
+from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
 
 
-class DuckDBEngine:
+class DuckDBEngine(EngineBase):
     dialect = "duckdb"
 
     def __init__(self, cfg: SourceConfig) -> None:
@@ -59,12 +59,6 @@ class DuckDBEngine:
         except duckdb.Error as e:
             raise EngineError(self.cfg.name, str(e)) from None
 
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        t = self.execute(sql)
-        return {name: col[0].as_py() for name, col in zip(t.column_names, t.columns)} if t.num_rows else {}
-
-    def split_table(self, table: str) -> tuple[str, ...]:
-        return tuple(table.split("."))
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
         name = table[-1]

@@ -20,7 +20,7 @@ from urllib.parse import unquote, urlparse
 import pyarrow as pa
 
 from app.engines.arrow import UTC_US, rows_to_table
-from app.engines.base import EngineError, EngineUnavailable
+from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
 
 # pymysql FIELD_TYPE codes -> Arrow types (DECIMAL and TINY are left to value inspection).
@@ -34,7 +34,7 @@ _FIELD_TYPES: dict[int, pa.DataType] = {
 _READ = re.compile(r"^\s*(SELECT|WITH)\b", re.IGNORECASE)
 
 
-class MySQLEngine:
+class MySQLEngine(EngineBase):
     dialect = "mysql"
 
     def __init__(self, cfg: SourceConfig) -> None:
@@ -130,9 +130,6 @@ class MySQLEngine:
     def fetch_row(self, sql: str) -> dict[str, Any]:
         names, _, rows = self._run(sql)
         return dict(zip(names, rows[0])) if rows else {}
-
-    def split_table(self, table: str) -> tuple[str, ...]:
-        return tuple(table.split("."))
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
         schema_sql = "%s" if len(table) >= 2 else "DATABASE()"

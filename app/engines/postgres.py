@@ -16,7 +16,7 @@ from typing import Any
 import pyarrow as pa
 
 from app.engines.arrow import UTC_US, rows_to_table
-from app.engines.base import EngineError, EngineUnavailable
+from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
 
 # PostgreSQL type OIDs -> Arrow types (numeric is left to value inspection).
@@ -27,7 +27,7 @@ _OID_TYPES: dict[int, pa.DataType] = {
 }
 
 
-class PostgresEngine:
+class PostgresEngine(EngineBase):
     dialect = "postgres"
 
     def __init__(self, cfg: SourceConfig) -> None:
@@ -91,9 +91,6 @@ class PostgresEngine:
     def fetch_row(self, sql: str) -> dict[str, Any]:
         names, _, rows = self._run(sql)
         return dict(zip(names, rows[0])) if rows else {}
-
-    def split_table(self, table: str) -> tuple[str, ...]:
-        return tuple(table.split("."))
 
     def _regclass_sql(self, table: tuple[str, ...]) -> tuple[str, tuple]:
         if len(table) >= 2:

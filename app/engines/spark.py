@@ -21,7 +21,7 @@ from typing import Any
 
 import pyarrow as pa
 
-from app.engines.base import EngineError, EngineUnavailable
+from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
 
 _SESSION: Any = None
@@ -60,7 +60,7 @@ def spark_session(master: str = "local[2]", shuffle_partitions: int = 2, remote:
         return _SESSION
 
 
-class SparkEngine:
+class SparkEngine(EngineBase):
     dialect = "spark"
 
     def __init__(self, cfg: SourceConfig) -> None:
@@ -118,12 +118,6 @@ class SparkEngine:
             if timer is not None:
                 timer.cancel()
 
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        t = self.execute(sql)
-        return {n: c[0].as_py() for n, c in zip(t.column_names, t.columns)} if t.num_rows else {}
-
-    def split_table(self, table: str) -> tuple[str, ...]:
-        return tuple(table.split("."))
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
         try:

@@ -19,11 +19,11 @@ from urllib.parse import quote
 import pyarrow as pa
 
 from app.engines.arrow import rows_to_table
-from app.engines.base import EngineError, EngineUnavailable
+from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
 
 
-class SQLiteEngine:
+class SQLiteEngine(EngineBase):
     dialect = "sqlite"
 
     def __init__(self, cfg: SourceConfig) -> None:

@@ -17,7 +17,7 @@ from urllib.parse import parse_qsl, unquote, urlparse
 import pyarrow as pa
 
 from app.engines.arrow import rows_to_table
-from app.engines.base import EngineError, EngineUnavailable
+from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
 
 _READ = re.compile(r"^\s*(SELECT|WITH)\b", re.IGNORECASE)
@@ -33,7 +33,7 @@ def _need(cfg: SourceConfig, module: str, extra: str):
                                 f"library: pip install 'sluice[{extra}]'") from None
 
 
-class _DbApiEngine:
+class _DbApiEngine(EngineBase):
     dialect = ""
     cfg: SourceConfig
     _conn: Any
@@ -60,9 +60,6 @@ class _DbApiEngine:
     def fetch_row(self, sql: str) -> dict[str, Any]:
         names, rows = self._run(sql)
         return dict(zip(names, rows[0])) if rows else {}
-
-    def split_table(self, table: str) -> tuple[str, ...]:
-        return tuple(table.split("."))
 
     def data_version(self) -> str:
         return "unversioned"  # warehouses: results are cached by time only
@@ -142,7 +139,7 @@ class SnowflakeEngine(_DbApiEngine):
         return [(r[0], r[1]) for r in rows]
 
 
-class BigQueryEngine:
+class BigQueryEngine(EngineBase):
     """``dsn = "bigquery://project"``; credentials from the environment (ADC)."""
 
     dialect = "bigquery"
@@ -168,12 +165,6 @@ class BigQueryEngine:
         except Exception as e:  # noqa: BLE001
             raise EngineError(self.cfg.name, f"bigquery: {e}") from None
 
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        t = self.execute(sql)
-        return {n: c[0].as_py() for n, c in zip(t.column_names, t.columns)} if t.num_rows else {}
-
-    def split_table(self, table: str) -> tuple[str, ...]:
-        return tuple(table.split("."))
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
         try:
