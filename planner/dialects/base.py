@@ -238,6 +238,8 @@ class Dialect:
         if name == "count_distinct":
             return exp.Count(this=exp.Distinct(expressions=[arg]))
         if name == "approx_count_distinct":
+            if self.approx_distinct[0].startswith("exact"):  # no sketch here: answer exactly
+                return exp.Count(this=exp.Distinct(expressions=[arg]))
             return exp.ApproxDistinct(this=arg)
         if name == "sum":
             return exp.Sum(this=arg)

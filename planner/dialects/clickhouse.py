@@ -121,6 +121,3 @@ class ClickHouse(Dialect):
         if name == "approx_count_distinct":
             return self.fn("uniqCombined", arg)
         return super().agg(name, arg, q)
-
-    def null_safe_eq(self, a, b):
-        return exp.NullSafeEQ(this=a, expression=b)

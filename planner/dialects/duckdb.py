@@ -72,6 +72,3 @@ class DuckDB(Dialect):
         if name == "approx_count_distinct":
             return exp.Anonymous(this="approx_count_distinct", expressions=[arg])
         return super().agg(name, arg, q)
-
-    def null_safe_eq(self, a: exp.Expression, b: exp.Expression) -> exp.Expression:
-        return exp.NullSafeEQ(this=a, expression=b)

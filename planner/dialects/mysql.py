@@ -135,11 +135,3 @@ class MySQL(Dialect):
         n = len(s.encode("utf-8"))
         return exp.EQ(this=self.fn("LEFT", self.cast(col, "BINARY"), self.lit(n)),
                       expression=self.cast(self.string(s), "BINARY"))
-
-    def agg(self, name, arg, q):
-        if name == "approx_count_distinct":
-            return exp.Count(this=exp.Distinct(expressions=[arg]))
-        return super().agg(name, arg, q)
-
-    def null_safe_eq(self, a: exp.Expression, b: exp.Expression) -> exp.Expression:
-        return exp.NullSafeEQ(this=a, expression=b)

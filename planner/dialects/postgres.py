@@ -72,11 +72,3 @@ class Postgres(Dialect):
 
     def starts_with(self, col: exp.Expression, s: str) -> exp.Expression:
         return exp.EQ(this=self.fn("LEFT", col, self.lit(len(s))), expression=self.string(s))
-
-    def agg(self, name, arg, q):
-        if name == "approx_count_distinct":
-            return exp.Count(this=exp.Distinct(expressions=[arg]))
-        return super().agg(name, arg, q)
-
-    def null_safe_eq(self, a: exp.Expression, b: exp.Expression) -> exp.Expression:
-        return exp.NullSafeEQ(this=a, expression=b)

@@ -108,8 +108,6 @@ class Spark(Dialect):
             return self.fn("approx_count_distinct", arg)
         return super().agg(name, arg, q)
 
-    def null_safe_eq(self, a, b):
-        return exp.NullSafeEQ(this=a, expression=b)
 
 
 class Databricks(Spark):

@@ -138,11 +138,3 @@ class SQLite(Dialect):
 
     def from_epoch(self, seconds):
         return self._f("%Y-%m-%d %H:%M:%f", seconds, "unixepoch")
-
-    def agg(self, name, arg, q):
-        if name == "approx_count_distinct":
-            return exp.Count(this=exp.Distinct(expressions=[arg]))
-        return super().agg(name, arg, q)
-
-    def null_safe_eq(self, a, b):
-        return exp.NullSafeEQ(this=a, expression=b)
