@@ -53,7 +53,7 @@ def _hist_hand(meta):
     return f"""
 WITH g AS (SELECT {_bin_sql('distance_km', s, w, n, stop)} AS k, count(*) AS n
            FROM deliveries GROUP BY k)
-SELECT {s!r} + k * {w!r} AS x_start, {s!r} + (k + 1) * {w!r} AS x_end, n AS count
+SELECT {s!r} + k * {w!r} AS x_lo, {s!r} + (k + 1) * {w!r} AS x_hi, n AS count
 FROM g ORDER BY k NULLS LAST"""
 
 
@@ -62,7 +62,7 @@ def _hist_naive(df, meta):
     v = df["distance_km"].to_numpy(dtype=float, na_value=np.nan)
     v = v[~np.isnan(v)]
     counts, edges = np.histogram(v, bins=n, range=(s, s + n * w))
-    out = pd.DataFrame({"x_start": edges[:-1], "x_end": edges[1:], "count": counts})
+    out = pd.DataFrame({"x_lo": edges[:-1], "x_hi": edges[1:], "count": counts})
     return out[out["count"] > 0]
 
 
@@ -108,8 +108,8 @@ def _heat_hand(meta):
 WITH g AS (SELECT {_bin_sql('distance_km', sx, wx, nx, sx + nx * wx)} AS kx,
                   {_bin_sql('weight_kg', sy, wy, ny, sy + ny * wy)} AS ky, count(*) AS n
            FROM deliveries GROUP BY kx, ky)
-SELECT {sx!r} + kx * {wx!r} AS x_start, {sx!r} + (kx + 1) * {wx!r} AS x_end,
-       {sy!r} + ky * {wy!r} AS y_start, {sy!r} + (ky + 1) * {wy!r} AS y_end, n AS count
+SELECT {sx!r} + kx * {wx!r} AS x_lo, {sx!r} + (kx + 1) * {wx!r} AS x_hi,
+       {sy!r} + ky * {wy!r} AS y_lo, {sy!r} + (ky + 1) * {wy!r} AS y_hi, n AS count
 FROM g ORDER BY kx NULLS LAST, ky NULLS LAST"""
 
 
@@ -120,7 +120,7 @@ def _heat_naive(df, meta):
     h, xe, ye = np.histogram2d(d["distance_km"].to_numpy(float), d["weight_kg"].to_numpy(float),
                                bins=[nx, ny], range=[[sx, sx + nx * wx], [sy, sy + ny * wy]])
     ix, iy = np.nonzero(h)
-    return pd.DataFrame({"x_start": xe[ix], "y_start": ye[iy], "count": h[ix, iy]})
+    return pd.DataFrame({"x_lo": xe[ix], "y_lo": ye[iy], "count": h[ix, iy]})
 
 
 # ---- 5. stacked bars -----------------------------------------------------------------
@@ -129,16 +129,16 @@ def _stack_hand(meta):
 WITH g AS (SELECT depot, vehicle, count(*) AS n FROM deliveries GROUP BY depot, vehicle)
 SELECT depot, n AS count, vehicle,
        sum(n) OVER (PARTITION BY depot ORDER BY vehicle NULLS FIRST ROWS UNBOUNDED PRECEDING) - n
-           AS count_start,
+           AS count_base,
        sum(n) OVER (PARTITION BY depot ORDER BY vehicle NULLS FIRST ROWS UNBOUNDED PRECEDING)
-           AS count_end
+           AS count_top
 FROM g ORDER BY depot, vehicle"""
 
 
 def _stack_naive(df, meta):
     g = df.groupby(["depot", "vehicle"]).size().rename("count").reset_index()
-    g["count_end"] = g.groupby("depot")["count"].cumsum()
-    g["count_start"] = g["count_end"] - g["count"]
+    g["count_top"] = g.groupby("depot")["count"].cumsum()
+    g["count_base"] = g["count_top"] - g["count"]
     return g
 
 
@@ -148,7 +148,7 @@ def _facet_hand(meta):
     return f"""
 WITH g AS (SELECT {_bin_sql('delay_min', s, w, n, s + n * w)} AS k, region, vehicle, count(*) AS n
            FROM deliveries GROUP BY ALL)
-SELECT {s!r} + k * {w!r} AS x_start, {s!r} + (k + 1) * {w!r} AS x_end, n AS count,
+SELECT {s!r} + k * {w!r} AS x_lo, {s!r} + (k + 1) * {w!r} AS x_hi, n AS count,
        region, vehicle
 FROM g ORDER BY k NULLS LAST, region, vehicle"""
 
@@ -195,7 +195,7 @@ def _filtered_hand(meta):
     return f"""
 WITH g AS (SELECT {_bin_sql('weight_kg', s, w, n, stop)} AS k, count(*) AS n
            FROM deliveries WHERE {_WHERE} GROUP BY k)
-SELECT {s!r} + k * {w!r} AS x_start, {s!r} + (k + 1) * {w!r} AS x_end, n AS count
+SELECT {s!r} + k * {w!r} AS x_lo, {s!r} + (k + 1) * {w!r} AS x_hi, n AS count
 FROM g ORDER BY k NULLS LAST"""
 
 
@@ -204,7 +204,7 @@ def _filtered_naive(df, meta):
     v = df["weight_kg"].to_numpy(dtype=float, na_value=np.nan)
     v = v[~np.isnan(v)]
     counts, edges = np.histogram(v, bins=n, range=(s, s + n * w))
-    return pd.DataFrame({"x_start": edges[:-1], "count": counts})
+    return pd.DataFrame({"x_lo": edges[:-1], "count": counts})
 
 
 # ---- 10. M4 line reduction -----------------------------------------------------------

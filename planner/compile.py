@@ -111,7 +111,7 @@ class Measure:
 class OutputColumn:
     name: str
     channel: str
-    role: str  # key | bin_start | bin_end | measure | stack_start | stack_end
+    role: str  # key | bin_lo | bin_hi | measure | stack_base | stack_top
     source: str | None = None  # source column name
 
 
@@ -402,12 +402,12 @@ def _assign_names(plan: Plan) -> None:
             plan.columns.append(OutputColumn(it.name, it.channel, "measure", spec.column))
         elif it.binned:
             if spec.name:
-                names = (claim(f"{spec.name}_start", label), claim(f"{spec.name}_end", label))
+                names = (claim(f"{spec.name}_lo", label), claim(f"{spec.name}_hi", label))
             else:
-                names = (claim(f"{label}_start", label), claim(f"{label}_end", label))
+                names = (claim(f"{label}_lo", label), claim(f"{label}_hi", label))
             it.names = names
-            plan.columns.append(OutputColumn(names[0], it.channel, "bin_start", spec.column))
-            plan.columns.append(OutputColumn(names[1], it.channel, "bin_end", spec.column))
+            plan.columns.append(OutputColumn(names[0], it.channel, "bin_lo", spec.column))
+            plan.columns.append(OutputColumn(names[1], it.channel, "bin_hi", spec.column))
         else:
             want = spec.name or (f"{spec.column}_{spec.extract}" if it.mode == "extract"
                                  else str(spec.column))
@@ -415,10 +415,10 @@ def _assign_names(plan: Plan) -> None:
             plan.columns.append(OutputColumn(it.names[0], it.channel, "key", spec.column))
     if plan.stack_measure is not None:
         m = plan.stack_measure
-        plan.columns.append(OutputColumn(claim(f"{m.name}_start", m.channel), m.channel,
-                                         "stack_start", m.spec.column))
-        plan.columns.append(OutputColumn(claim(f"{m.name}_end", m.channel), m.channel,
-                                         "stack_end", m.spec.column))
+        plan.columns.append(OutputColumn(claim(f"{m.name}_base", m.channel), m.channel,
+                                         "stack_base", m.spec.column))
+        plan.columns.append(OutputColumn(claim(f"{m.name}_top", m.channel), m.channel,
+                                         "stack_top", m.spec.column))
     _check_name_lengths(plan)
 
 
@@ -432,7 +432,7 @@ def _check_name_lengths(plan: Plan) -> None:
     cap = getattr(d, "max_identifier_bytes", None) or _IDENT_BYTES.get(d.name)
     if cap is None:
         return
-    stack = [c.name for c in plan.columns if c.role in ("stack_start", "stack_end")]
+    stack = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
     items = [(k.path, k.spec, list(k.names)) for k in plan.keys]
     items += [(m.path, m.spec, [m.name] + (stack if m is plan.stack_measure else []))
               for m in plan.measures]
@@ -1221,7 +1221,7 @@ def _stack_columns(plan: Plan) -> list[exp.Expression]:
             half = exp.Div(this=total, expression=exp.Literal.number(2))
             end = exp.Sub(this=end, expression=half)
             start = exp.Sub(this=exp.Paren(this=start), expression=half.copy())
-    names = [c.name for c in plan.columns if c.role in ("stack_start", "stack_end")]
+    names = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
     return [exp.alias_(start, names[0], quoted=True), exp.alias_(end, names[1], quoted=True)]
 
 

@@ -52,7 +52,7 @@ SEEDS = [
 HOSTILE_TEXT = ["", " ", "'", "\"", "' OR 1=1 --", "; DROP TABLE canary", "\x00", "\u202e",
                 "\U0001f4a3", "a" * 5000, "NaN", "-1", "1e999", "null", "depot", "delivered_at",
                 "Europe/Atlantis", "../../etc/passwd", "read_csv('/etc/passwd')", "(other)", "x",
-                "_sluice_n", "count", "y_start", "fee / 0 > 1", "ts"]
+                "_sluice_n", "count", "y_lo", "fee / 0 > 1", "ts"]
 EXTREME_NUMBERS = [0, -1, 1, 2**31, 2**63, 2**64, -(2**63) - 1, 10**30, 1e308, -1e308, 5e-324,
                    0.5, -0.0, 1e-300, 10000, 10001, 1_000_001]
 ODD_VALUES = [None, True, False, [], {}, [[[]]], {"a": {"b": {"c": None}}}, [None] * 50]

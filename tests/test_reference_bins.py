@@ -55,7 +55,7 @@ def test_reference_nicenum_worked_example():
 
 
 def _xs(rows, ch="x"):
-    return [(r[f"{ch}_start"], r[f"{ch}_end"], r["count"]) for r in rows]
+    return [(r[f"{ch}_lo"], r[f"{ch}_hi"], r["count"]) for r in rows]
 
 
 def _check_bins_meta(b, start, stop, width, count, method):
@@ -70,7 +70,7 @@ def _histogram_rows_match(rows, edges, counts_np, ch="x"):
     """Non-NULL bin rows must be exactly numpy's non-empty bins (default empty_bins: omit)."""
     width = edges[1] - edges[0]
     got = {}
-    for s, e, c in _xs([r for r in rows if r[f"{ch}_start"] is not None], ch):
+    for s, e, c in _xs([r for r in rows if r[f"{ch}_lo"] is not None], ch):
         k = int(round((s - edges[0]) / width))
         assert 0 <= k < len(edges) - 1, f"bin start {s} outside edges {edges[0]}..{edges[-1]}"
         assert math.isclose(s, edges[k], rel_tol=1e-9, abs_tol=width * 1e-9), (s, edges[k])
@@ -130,11 +130,11 @@ def test_bins_nice_on_column_with_nulls(api, ref):
     counts, _ = np.histogram(vals, bins=edges)
     rows = api.rows(resp)
     _histogram_rows_match(rows, edges, counts)  # reference: numpy.histogram
-    null_rows = [r for r in rows if r["x_start"] is None]
+    null_rows = [r for r in rows if r["x_lo"] is None]
     # DEVELOPERS: a NULL key is its own group; its bin keys are both null
-    assert len(null_rows) == 1 and null_rows[0]["x_end"] is None
+    assert len(null_rows) == 1 and null_rows[0]["x_hi"] is None
     assert null_rows[0]["count"] == int(ref.t["x"].isna().sum())  # reference: pandas isna
-    assert rows[-1]["x_start"] is None  # NULLs last
+    assert rows[-1]["x_lo"] is None  # NULLs last
 
 
 def test_bins_constant_column_does_not_fail(api, ref):
@@ -144,7 +144,7 @@ def test_bins_constant_column_does_not_fail(api, ref):
     rows = api.rows(resp)
     assert sum(r["count"] for r in rows) == len(ref.ranges)
     for r in rows:
-        assert r["x_start"] <= 7.0 <= r["x_end"]
+        assert r["x_lo"] <= 7.0 <= r["x_hi"]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -196,13 +196,13 @@ def test_limits_outside_and_closed_last_bin(api, ref):
     counts, _ = np.histogram(vals, bins=edges)  # numpy ignores values outside [0, 100]
     rows = api.rows(resp)
     _histogram_rows_match(rows, edges, counts)  # reference: numpy.histogram
-    last = [r for r in rows if r["x_start"] == 90]
+    last = [r for r in rows if r["x_lo"] == 90]
     assert last and last[0]["count"] == 3  # 99.9, 100, 100: value == upper limit in last bin (numpy convention)
     outside = int(((vals < 0) | (vals > 100)).sum())
     assert outside == 2
     assert resp["stats"]["outside_limits"]["x"] == outside  # reference: numpy mask outside [lo, hi]
     # NULLs are never "outside": they are their own group
-    nulls = [r for r in rows if r["x_start"] is None]
+    nulls = [r for r in rows if r["x_lo"] is None]
     assert len(nulls) == 1 and nulls[0]["count"] == int(ref.edges["v"].isna().sum())
     _check_bins_meta(resp["bins"]["x"], 0, 100, 10, 10, "width")
     assert resp["domains"]["x"] == [0, 100]
@@ -253,9 +253,9 @@ def test_rule_with_limits_matches_numpy_range(api, ref, rule):
 
 def test_histogram_columns_metadata(api):
     resp = api.chart({"channels": {"x": {"column": "x", "bin": {"bins": 10}}, "y": {"agg": "count"}}})
-    s, e = api.column(resp, "x_start"), api.column(resp, "x_end")
-    assert (s["role"], s["channel"], s["type"]) == ("bin_start", "x", "double")
-    assert (e["role"], e["channel"], e["type"]) == ("bin_end", "x", "double")
+    s, e = api.column(resp, "x_lo"), api.column(resp, "x_hi")
+    assert (s["role"], s["channel"], s["type"]) == ("bin_lo", "x", "double")
+    assert (e["role"], e["channel"], e["type"]) == ("bin_hi", "x", "double")
     counts = [c for c in resp["data"]["count"] if c is not None]
     assert resp["domains"]["count"] == [min(counts), max(counts)]
 

@@ -122,11 +122,11 @@ def test_stack_sum_is_cumulative_within_pile(api, ref, measure, name):
     assert len(rows) == len(exp)
     for r in rows:
         s, e, _ = exp[(r["grp2"], r["cat"])]
-        assert api.close(r[f"{name}_end"], e, rel=1e-9), (r, e)  # reference: cumulative sum, color ascending, NULLs first
-        assert api.close(r[f"{name}_start"], s, rel=1e-9, abs_=1e-9), (r, s)
-        assert api.close(r[f"{name}_end"] - r[f"{name}_start"], r[name], rel=1e-9)  # start = end - value
-    assert api.column(resp, f"{name}_start")["role"] == "stack_start"
-    assert api.column(resp, f"{name}_end")["role"] == "stack_end"
+        assert api.close(r[f"{name}_top"], e, rel=1e-9), (r, e)  # reference: cumulative sum, color ascending, NULLs first
+        assert api.close(r[f"{name}_base"], s, rel=1e-9, abs_=1e-9), (r, s)
+        assert api.close(r[f"{name}_top"] - r[f"{name}_base"], r[name], rel=1e-9)  # start = end - value
+    assert api.column(resp, f"{name}_base")["role"] == "stack_base"
+    assert api.column(resp, f"{name}_top")["role"] == "stack_top"
 
 
 def test_stack_fraction_ends_at_one(api, ref):
@@ -136,9 +136,9 @@ def test_stack_fraction_ends_at_one(api, ref):
     piles_max = {}
     for r in api.rows(resp):
         s, e, tot = exp[(r["cat"], r["flag"])]
-        assert api.close(r["count_end"], e / tot, rel=1e-9), r  # reference: cumulative share of the pile total
-        assert api.close(r["count_start"], s / tot, rel=1e-9, abs_=1e-12), r
-        piles_max[r["cat"]] = max(piles_max.get(r["cat"], 0), r["count_end"])
+        assert api.close(r["count_top"], e / tot, rel=1e-9), r  # reference: cumulative share of the pile total
+        assert api.close(r["count_base"], s / tot, rel=1e-9, abs_=1e-12), r
+        piles_max[r["cat"]] = max(piles_max.get(r["cat"], 0), r["count_top"])
     for p, m in piles_max.items():
         assert api.close(m, 1.0, rel=1e-12), (p, m)  # each pile scaled to 1
 
@@ -150,10 +150,10 @@ def test_stack_centered_is_symmetric(api, ref):
     lo, hi = {}, {}
     for r in api.rows(resp):
         s, e, tot = exp[(r["grp2"], r["cat"])]
-        assert api.close(r["sum_w_start"], s - tot / 2, rel=1e-9), r  # reference: cumulative sum minus half the pile total
-        assert api.close(r["sum_w_end"], e - tot / 2, rel=1e-9), r
-        lo[r["grp2"]] = min(lo.get(r["grp2"], math.inf), r["sum_w_start"])
-        hi[r["grp2"]] = max(hi.get(r["grp2"], -math.inf), r["sum_w_end"])
+        assert api.close(r["sum_w_base"], s - tot / 2, rel=1e-9), r  # reference: cumulative sum minus half the pile total
+        assert api.close(r["sum_w_top"], e - tot / 2, rel=1e-9), r
+        lo[r["grp2"]] = min(lo.get(r["grp2"], math.inf), r["sum_w_base"])
+        hi[r["grp2"]] = max(hi.get(r["grp2"], -math.inf), r["sum_w_top"])
     for p in lo:
         assert api.close(lo[p], -hi[p], rel=1e-9), (p, lo[p], hi[p])  # symmetric around 0
 
@@ -165,7 +165,7 @@ def test_stack_horizontal_measure_on_x(api, ref):
     exp = _stack_reference(vals, lambda k: k[0], lambda k: _nulls_first(k[1]))
     for r in api.rows(resp):
         s, e, _ = exp[(r["grp2"], r["flag"])]
-        assert (r["count_start"], r["count_end"]) == (s, e)  # reference: cumulative sum
+        assert (r["count_base"], r["count_top"]) == (s, e)  # reference: cumulative sum
 
 
 def test_stack_pile_is_per_facet_cell(api, ref):
@@ -183,7 +183,7 @@ def test_stack_pile_is_per_facet_cell(api, ref):
     assert len(rows) == len(exp)
     for r in rows:
         s, e, _ = exp[(r["cat"], r["grp2"], r["flag"])]
-        assert (r["count_start"], r["count_end"]) == (s, e)  # reference: cumulative sum per (facet, x) pile
+        assert (r["count_base"], r["count_top"]) == (s, e)  # reference: cumulative sum per (facet, x) pile
 
 
 # ---------------------------------------------------------------------------------------------
@@ -201,9 +201,9 @@ def test_empty_bins_zero_emits_every_bin(api, ref):
     edges = np.arange(-100, 201, 5, dtype=float)
     vals = ref.t["x"].dropna().to_numpy()
     counts, _ = np.histogram(vals, bins=edges)  # reference: numpy.histogram (empty bins are 0 there too)
-    rows = [r for r in api.rows(resp) if r["x_start"] is not None]
-    assert [r["x_start"] for r in rows] == pytest.approx(list(edges[:-1]))
-    assert [r["x_end"] for r in rows] == pytest.approx(list(edges[1:]))
+    rows = [r for r in api.rows(resp) if r["x_lo"] is not None]
+    assert [r["x_lo"] for r in rows] == pytest.approx(list(edges[:-1]))
+    assert [r["x_hi"] for r in rows] == pytest.approx(list(edges[1:]))
     assert [r["count"] for r in rows] == [int(c) for c in counts]
     assert resp["bins"]["x"]["count"] == 60
 
@@ -218,7 +218,7 @@ def test_empty_bins_keep_the_null_group(api, ref):
         }
     )
     rows = api.rows(resp)
-    nulls = [r for r in rows if r["x_start"] is None]
+    nulls = [r for r in rows if r["x_lo"] is None]
     # reference: pandas isna() count of the same column
     assert len(nulls) == 1 and nulls[0]["count"] == int(ref.t["x"].isna().sum())
     # every row is in some group: the counts add up to the matched rows (pandas len)
@@ -248,7 +248,7 @@ def test_empty_bins_zero_per_other_key(api, ref):
         mask = ref.t["flag"].isna() if f is None else (ref.t["flag"] == f)
         vals = ref.t.loc[mask, "x"].dropna().to_numpy()
         counts, _ = np.histogram(vals, bins=edges)  # reference: numpy.histogram
-        rs = sorted(rs, key=lambda r: r["x_start"])
+        rs = sorted(rs, key=lambda r: r["x_lo"])
         assert len(rs) == 10
         assert [r["count"] for r in rs] == [int(c) for c in counts]
 
@@ -263,7 +263,7 @@ def test_empty_bins_null_fills_measures_with_null(api, ref):
     )
     vals = ref.edges["v"].dropna().to_numpy()
     counts, _ = np.histogram(vals, bins=np.arange(0, 101, 10, dtype=float))  # reference: numpy.histogram
-    rows = [r for r in api.rows(resp) if r["x_start"] is not None]
+    rows = [r for r in api.rows(resp) if r["x_lo"] is not None]
     assert len(rows) == 10
     assert [r["count"] for r in rows] == [int(c) if c else None for c in counts]
 

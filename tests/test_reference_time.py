@@ -216,11 +216,11 @@ def test_calendar_bins_month_utc(api, ref):
     assert b["step"] == "P1M" and b["method"] == "calendar"
     got = {}
     for r in api.rows(resp):
-        if r["x_start"] is None:
-            assert r["x_end"] is None
+        if r["x_lo"] is None:
+            assert r["x_hi"] is None
             got[None] = r["count"]
             continue
-        s, e = parse_ts(r["x_start"]).astimezone(UTC), parse_ts(r["x_end"]).astimezone(UTC)
+        s, e = parse_ts(r["x_lo"]).astimezone(UTC), parse_ts(r["x_hi"]).astimezone(UTC)
         assert s.day == 1 and s.time() == dt.time(0)
         nxt = dt.datetime(s.year + (s.month == 12), s.month % 12 + 1, 1, tzinfo=UTC)
         assert e == nxt  # reference: calendar month length
@@ -230,7 +230,7 @@ def test_calendar_bins_month_utc(api, ref):
     months = sorted(k for k in want if k is not None)
     assert parse_ts(b["start"]).astimezone(UTC) == months[0]
     assert b["count"] == (months[-1].year - months[0].year) * 12 + months[-1].month - months[0].month + 1
-    assert api.column(resp, "x_start")["type"] == "timestamp"
+    assert api.column(resp, "x_lo")["type"] == "timestamp"
 
 
 def test_calendar_bins_month_berlin(api, ref):
@@ -238,7 +238,7 @@ def test_calendar_bins_month_berlin(api, ref):
     assert resp["bins"]["x"]["step"] == "P1M"
     got = {}
     for r in api.rows(resp):
-        k = None if r["x_start"] is None else check_offset(r["x_start"], BERLIN)
+        k = None if r["x_lo"] is None else check_offset(r["x_lo"], BERLIN)
         got[k] = r["count"]
     want = expected_counts(ref.ts, lambda t: local_trunc(t, "month", BERLIN))  # reference: zoneinfo
     assert got == want
@@ -270,7 +270,7 @@ def test_calendar_bins_subday_aligned_to_utc_epoch(api, ref):
     want = expected_counts(sel, lambda t: dt.datetime.fromtimestamp(int(t.timestamp()) // step * step, UTC))
     got = {}
     for r in api.rows(resp):
-        s, e = parse_ts(r["x_start"]).astimezone(UTC), parse_ts(r["x_end"]).astimezone(UTC)
+        s, e = parse_ts(r["x_lo"]).astimezone(UTC), parse_ts(r["x_hi"]).astimezone(UTC)
         assert int(s.timestamp()) % step == 0  # DEVELOPERS: sub-day bins aligned to the UTC epoch
         assert (e - s).total_seconds() == step
         got[s] = r["count"]

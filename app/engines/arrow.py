@@ -157,7 +157,7 @@ def output_kinds(plan: Any) -> dict[str, str]:
         else:
             out[m.name] = "double"
     for c in plan.columns:
-        if c.role in ("stack_start", "stack_end"):
+        if c.role in ("stack_base", "stack_top"):
             out[c.name] = "double"
     return out
 

@@ -135,11 +135,11 @@ function channelsOf(resp) {
   for (const c of resp.columns) {
     const slot = (ch[c.channel] = ch[c.channel] || {});
     if (c.role === "key") slot.key = slot.key || c;
-    else if (c.role === "bin_start") slot.start = c;
-    else if (c.role === "bin_end") slot.end = c;
+    else if (c.role === "bin_lo") slot.start = c;
+    else if (c.role === "bin_hi") slot.end = c;
     else if (c.role === "measure") slot.measure = slot.measure || c;
-    else if (c.role === "stack_start") slot.stackStart = c;
-    else if (c.role === "stack_end") slot.stackEnd = c;
+    else if (c.role === "stack_base") slot.stackStart = c;
+    else if (c.role === "stack_top") slot.stackEnd = c;
   }
   return ch;
 }
@@ -419,7 +419,7 @@ function draw(resp, body) {
     const m = resp.columns.find((c) => c.role === "measure");
     if (m) {
       kind = "bar";
-      const keys = resp.columns.filter((c) => c.role === "key" || c.role === "bin_start");
+      const keys = resp.columns.filter((c) => c.role === "key" || c.role === "bin_lo");
       const label = (i) => keys.map((c) => fmtValue(resp.data[c.name][i], c.type)).join(" · ") || `row ${i + 1}`;
       const bw = (xr[1] - xr[0]) / Math.max(1, n);
       const ys = measureScale(resp, [m], yr[0], yr[1], true);
@@ -456,9 +456,9 @@ function cellSpan(sc, i) {
 }
 function labelOf(slot, chName, body) {
   if (slot.key) return slot.key.name;
-  // a binned key is named <channel>_start/_end; the request says which column it bins
+  // a binned key is named <channel>_lo/_hi; the request says which column it bins
   const spec = body && body.channels && body.channels[chName];
-  return spec && spec.column ? `${spec.column} (binned)` : slot.start.name.replace(/_start$/, "");
+  return spec && spec.column ? `${spec.column} (binned)` : slot.start.name.replace(/_lo$/, "");
 }
 function drawLines(resp, ch, xs, ys, color, marks, n) {
   const series = new Map();
