@@ -8,7 +8,7 @@ DEMO   ?= data/demo.duckdb
 ROWS   ?= 2000000
 PYTEST_ARGS ?=
 
-.PHONY: serve test demo install install-test services browser bench load fuzz clean help
+.PHONY: serve test demo install install-test services browser node bench load fuzz clean help
 
 help:
 	@echo "make serve   build the venv and the demo data, serve on $(HOST):$(PORT) (PORT=... overrides)"
@@ -48,7 +48,14 @@ services:
 browser:  # Debian chromium + chromedriver for tests/test_browser.py, only when missing
 	bash .ci/browser.sh
 
-test: $(VENV)/.installed-test services browser
+# JavaScript clients the tests drive (Arrow decoding in Node, tsc on the generated types)
+tests/js/node_modules/.installed: tests/js/package.json tests/js/package-lock.json
+	cd tests/js && npm ci --no-audit --no-fund --loglevel=error
+	touch $@
+
+node: tests/js/node_modules/.installed
+
+test: $(VENV)/.installed-test services browser node
 	$(BIN)/python -m pytest -q -n 2 --dist loadfile $(PYTEST_ARGS)
 
 BENCH_ROWS ?= 10000000
@@ -67,4 +74,4 @@ fuzz: $(VENV)/.installed-test  # deep API fuzzing: FUZZ_SCALE x the make-test ca
 		tests/test_fuzz.py tests/test_fuzz_routes.py tests/test_fuzz_mutations.py $(PYTEST_ARGS)
 
 clean:
-	rm -rf $(VENV) .pytest_cache .hypothesis *.egg-info
+	rm -rf $(VENV) .pytest_cache .hypothesis *.egg-info tests/js/node_modules
