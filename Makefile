@@ -59,7 +59,7 @@ test: $(VENV)/.installed-test services browser node
 	$(BIN)/python -m pytest -q -n 2 --dist loadfile $(PYTEST_ARGS)
 
 BENCH_ROWS ?= 10000000
-bench: $(VENV)/.installed-test  # benchmarks, not tests; bench/README.md says what is measured
+bench: $(VENV)/.installed-test  # benchmarks, not tests; bench/run.py says what is measured (BENCH_CASES=..., BENCH_RUNS=...)
 	BENCH_ROWS=$(BENCH_ROWS) $(BIN)/python bench/run.py
 
 LOAD_CLIENTS ?= 32

@@ -4,10 +4,15 @@
                of the bin layout the service reported (a person writing the SQL by hand knows
                the extents of the data too);
 * ``cols``   -- the raw columns the naive paths fetch (and an optional WHERE);
-* ``naive``  -- how the naive client aggregates those columns in pandas.
+* ``naive``  -- how the naive client aggregates those columns in pandas (None: the case has
+               no naive path);
+* ``vary``   -- for a case whose filter changes on every request (a user dragging a brush):
+               the ``where`` of request number i, every i a new value; ``hand`` then takes
+               ``(meta, i)``.
 
 The hand-written SQL returns the same columns, in the same order, as the service's ``data``
-so the bench can check (a) == (b) for every case.
+so the bench can check (a) == (b) for every case (bench/runner.py, tests/test_bench_smoke.py).
+Cases name only request fields and table columns: no sluice module is imported here.
 """
 
 from __future__ import annotations
@@ -29,10 +34,21 @@ class Case:
     request: dict[str, Any]
     hand: Callable[[dict[str, Any]], str]
     cols: list[str]
-    naive: Callable[[pd.DataFrame, dict[str, Any]], pd.DataFrame]
+    naive: Callable[[pd.DataFrame, dict[str, Any]], pd.DataFrame] | None
     where_sql: str = ""
     table: str = "deliveries"
     params: dict[str, Any] = field(default_factory=dict)
+    vary: Callable[[int], list[dict[str, Any]]] | None = None
+
+    def body(self, i: int = 0) -> dict[str, Any]:
+        """The chart request number ``i`` (the same request for a case without ``vary``)."""
+        if self.vary is None:
+            return self.request
+        return {**self.request, "where": self.vary(i)}
+
+    def sql(self, meta: dict[str, Any], i: int = 0) -> str:
+        """The hand-written SQL for request number ``i``, given the layout it reported."""
+        return self.hand(meta, i) if self.vary is not None else self.hand(meta)
 
 
 def _bin(meta: dict[str, Any], ch: str) -> tuple[float, float, int]:
@@ -235,6 +251,57 @@ def _m4_naive(df, meta):
     return pd.DataFrame({"min": g.min(), "max": g.max(), "first": g.first(), "last": g.last()})
 
 
+# ---- 11./12. brushing: the same histogram, a new time window on every request ----------
+# A user drags a brush over a time axis: every request has a new delivered_at window, so
+# neither the result cache (off: no-cache) nor anything keyed by the filter's values helps.
+# Request i's window starts 61*i seconds after 2025-03-01 and lasts 120 days plus i % 7
+# hours: every i gives a new pair of values.
+_BRUSH_T0 = 1740787200  # 2025-03-01T00:00:00Z
+
+
+def _brush_window(i: int) -> tuple[str, str]:
+    import datetime as dt
+
+    lo = dt.datetime.fromtimestamp(_BRUSH_T0 + 61 * i, dt.timezone.utc)
+    hi = lo + dt.timedelta(days=120, hours=i % 7)
+    return lo.strftime("%Y-%m-%dT%H:%M:%SZ"), hi.strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _brush_where(i: int) -> list[dict[str, Any]]:
+    lo, hi = _brush_window(i)
+    return [{"column": "delivered_at", "gte": lo, "lt": hi}]
+
+
+def _brush_where_sql(i: int) -> str:
+    lo, hi = _brush_window(i)
+    return (f"delivered_at >= TIMESTAMPTZ '{lo[:-1]}+00' "
+            f"AND delivered_at < TIMESTAMPTZ '{hi[:-1]}+00'")
+
+
+def _brush_bins_hand(meta, i):
+    """Data-driven bins: the person knows the layout (from the answer), one statement."""
+    s, w, n = _bin(meta, "x")
+    stop = s + n * w
+    return f"""
+WITH g AS (SELECT {_bin_sql('distance_km', s, w, n, stop)} AS k, count(*) AS n
+           FROM deliveries WHERE {_brush_where_sql(i)} GROUP BY k)
+SELECT {s!r} + k * {w!r} AS x_lo, {s!r} + (k + 1) * {w!r} AS x_hi, n AS count
+FROM g ORDER BY k NULLS LAST"""
+
+
+_BRUSH_W, _BRUSH_O = 2.5, 0.0
+
+
+def _brush_width_hand(meta, i):
+    """width/origin bins, value range unknown: plain floor((v - origin) / width)."""
+    w, o = _BRUSH_W, _BRUSH_O
+    return f"""
+WITH g AS (SELECT floor((distance_km - {o!r}) / {w!r}) AS k, count(*) AS n
+           FROM deliveries WHERE {_brush_where_sql(i)} GROUP BY k)
+SELECT {o!r} + k * {w!r} AS x_lo, {o!r} + (k + 1) * {w!r} AS x_hi, n AS count
+FROM g ORDER BY k NULLS LAST"""
+
+
 def suite() -> list[Case]:
     return [
         Case("histogram", "histogram, 40 nice bins",
@@ -286,4 +353,13 @@ def suite() -> list[Case]:
              {"source": WALK, "channels": {"x": {"column": "t"}, "y": {"column": "v"}},
               "reduce": {"method": "m4", "width_px": 1000}},
              _m4_hand, ["t", "v"], _m4_naive, table="walk"),
+        Case("brush_bins", "brushed histogram, 40 nice bins, new time window per request",
+             {"source": SRC, "channels": {"x": {"column": "distance_km", "bin": {"bins": 40}},
+                                          "y": {"agg": "count"}}},
+             _brush_bins_hand, ["distance_km"], None, vary=_brush_where),
+        Case("brush_width", "brushed histogram, width 2.5 origin 0, new time window per request",
+             {"source": SRC, "channels": {"x": {"column": "distance_km",
+                                                "bin": {"width": _BRUSH_W, "origin": _BRUSH_O}},
+                                          "y": {"agg": "count"}}},
+             _brush_width_hand, ["distance_km"], None, vary=_brush_where),
     ]

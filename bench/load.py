@@ -84,7 +84,7 @@ def main() -> int:
     load_cfg = HERE / "data" / "load.toml"
     load_cfg.write_text(cfg.read_text() + "\n[limits]\nqueue_wait_ms = 120000\n")
     cfg = load_cfg
-    bodies = [c.request for c in cases.suite()]
+    bodies = [c.body(0) for c in cases.suite()]
     (HERE / "data" / "load_bodies.json").write_text(json.dumps(bodies))
     bench.port_free(bench.PORT)
     svc = bench.start_service(cfg)

@@ -1,0 +1,129 @@
+"""Benchmarks cannot rot: every bench case (bench/cases.py) runs here on a 20,000-row copy
+of the bench data through the bench's own case runner (bench/runner.py), and the service's
+answer must equal the hand-written DuckDB SQL for the same rows -- the (a) == (b) sanity
+check `make bench` performs before timing. A refactor that breaks a case, the runner or
+the public entry points the bench uses (HTTP, create_app, load_settings, build_demo)
+fails `make test`, not the next benchmark run.
+"""
+
+from __future__ import annotations
+
+import math
+import shutil
+import sys
+from pathlib import Path
+
+import pyarrow as pa
+import pytest
+
+BENCH = Path(__file__).resolve().parent.parent / "bench"
+sys.path.insert(0, str(BENCH))
+
+import cases as bench_cases  # noqa: E402  (bench/cases.py)
+import run as bench_run  # noqa: E402  (bench/run.py: data builders)
+import runner  # noqa: E402  (bench/runner.py: the case runner)
+
+ROWS = 20_000
+SUITE = {c.name: c for c in bench_cases.suite()}
+
+
+@pytest.fixture(scope="module")
+def bench_env(tmp_path_factory):
+    from app.demo import build_demo
+
+    root = tmp_path_factory.mktemp("bench_smoke")
+    db, walk = root / "deliveries.duckdb", root / "walk.duckdb"
+    build_demo(db, ROWS, progress=False)
+    bench_run.build_walk(walk, ROWS)
+    cfg = root / "bench.toml"
+    cfg.write_text(f'[sources.deliveries]\nengine = "duckdb"\npath = "{db}"\ntable = "deliveries"\n\n'
+                   f'[sources.walk]\nengine = "duckdb"\npath = "{walk}"\ntable = "walk"\n\n'
+                   "[server]\nmax_limit = 100000\nrequest_log = false\n")
+    # The hand-written SQL runs on copies: one process may not open a DuckDB file twice
+    # with different configurations (the service's connection is locked read-only).
+    ref = {}
+    for name, path in (("deliveries", db), ("walk", walk)):
+        copy = root / f"ref_{path.name}"
+        shutil.copy(path, copy)
+        ref[name] = runner.reference_connection(copy)
+    return {"config": cfg, "ref": ref}
+
+
+@pytest.fixture(scope="module")
+def bench_client(bench_env):
+    from fastapi.testclient import TestClient
+
+    from app.main import create_app
+    from app.settings import load_settings
+
+    with TestClient(create_app(load_settings(bench_env["config"]))) as c:
+        yield c
+
+
+def test_suite_has_the_brush_cases():
+    # issue 11: a brush case, the same chart with a new filter range on every request
+    for name in ("brush_bins", "brush_width"):
+        case = SUITE[name]
+        wheres = [str(case.body(i)["where"]) for i in range(50)]
+        assert len(set(wheres)) == 50, "every request must carry a new filter value"
+
+
+@pytest.mark.parametrize("name", list(SUITE))
+def test_case_answer_equals_hand_written_sql(name, bench_env, bench_client):
+    case = SUITE[name]
+    con = bench_env["ref"][case.table]
+    for i in ([0, 1, 2] if case.vary is not None else [0]):
+        chk = runner.check_case(case, bench_client, con, i=i)
+        assert chk.error is None, chk.error
+        # reference: the hand-written SQL of bench/cases.py, run by DuckDB itself on the
+        # same rows (what `make bench` calls the limit), compared column by column
+        assert chk.diff is None, f"{name}[{i}]: {chk.diff}\n{chk.hand_sql}"
+        assert chk.rows > 0  # an empty answer on both sides would prove nothing
+        assert chk.meta["stats"]["statements"] >= 1
+        assert isinstance(chk.meta["timing_ms"]["plan"], (int, float))
+    if case.naive is not None:  # the naive path of `make bench` still runs on these columns
+        cols = ", ".join(f'"{c}"' for c in case.cols)
+        where = f" WHERE {case.where_sql}" if case.where_sql else ""
+        df = con.sql(f"SELECT {cols} FROM {case.table}{where}").to_arrow_table().to_pandas()
+        assert len(case.naive(df, chk.meta)) > 0
+
+
+def test_brush_width_counts_match_numpy(bench_env, bench_client):
+    # The brush_width hand SQL is plain floor((v - origin) / width); check the service's
+    # counts against numpy's floor on the same filtered rows as well (numpy as the reference).
+    import numpy as np
+
+    case = SUITE["brush_width"]
+    con = bench_env["ref"]["deliveries"]
+    for i in (5, 6):
+        r = runner.post_chart(bench_client, case.body(i))
+        assert r.status_code == 200, r.text
+        data = r.json()["data"]
+        lo, hi = bench_cases._brush_window(i)
+        v = con.execute("SELECT distance_km FROM deliveries WHERE delivered_at >= ?::TIMESTAMPTZ "
+                        "AND delivered_at < ?::TIMESTAMPTZ AND distance_km IS NOT NULL",
+                        [lo, hi]).fetchnumpy()["distance_km"]
+        k, n = np.unique(np.floor((v - bench_cases._BRUSH_O) / bench_cases._BRUSH_W),
+                         return_counts=True)
+        got = {x: c for x, c in zip(data["x_lo"], data["count"]) if x is not None}
+        want = {bench_cases._BRUSH_O + kk * bench_cases._BRUSH_W: int(nn) for kk, nn in zip(k, n)}
+        assert got == want
+
+
+def test_plan_times_are_the_services_own(bench_client):
+    samples = runner.plan_times(SUITE["brush_bins"], bench_client, 3, start=500)
+    assert len(samples) == 3 and all(math.isfinite(x) and x >= 0 for x in samples)
+
+
+def test_first_request_case_runs_in_a_fresh_process(bench_env):
+    case = SUITE["brush_bins"]
+    out = runner.first_request(bench_env["config"], case, runs=1)
+    run0 = out["runs"][0]
+    assert run0["status"] == [200, 200]
+    for key in ("import_ms", "startup_ms", "first_plan_ms", "second_plan_ms"):
+        assert math.isfinite(out["p50"][key]) and out["p50"][key] >= 0
+    # the fresh process answers request 0 as the hand-written SQL does (DuckDB reference)
+    hand = bench_env["ref"]["deliveries"].sql(case.sql({"bins": run0["bins"]}, 0)).to_arrow_table()
+    got = pa.table({k: run0["data"][k] for k in hand.column_names})
+    assert runner.compare(got.cast(hand.schema), hand) is None
+
