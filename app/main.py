@@ -23,6 +23,7 @@ from app.limits import BodyLimitMiddleware, server_timeout
 from app.problems import PROBLEM_JSON, Problem, from_plan_error, problem_response, validation_handler
 from app.service import ChartService
 from app.settings import ConfigError, Settings, load_settings
+from app.warmup import warm_up
 from planner.dialects import DIALECTS
 from planner.errors import PlanError, nearest
 from planner.model import BatchRequest, ChartRequest
@@ -55,6 +56,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
+        warm_up(service)  # plan once per engine kind: the first request plans warm (app.warmup)
         yield
         catalog.close()
 

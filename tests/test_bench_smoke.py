@@ -20,6 +20,8 @@ BENCH = Path(__file__).resolve().parent.parent / "bench"
 sys.path.insert(0, str(BENCH))
 
 import cases as bench_cases  # noqa: E402  (bench/cases.py)
+import floor as bench_floor  # noqa: E402  (bench/floor.py)
+import plan_profile  # noqa: E402  (bench/plan_profile.py)
 import run as bench_run  # noqa: E402  (bench/run.py: data builders)
 import runner  # noqa: E402  (bench/runner.py: the case runner)
 
@@ -127,3 +129,20 @@ def test_first_request_case_runs_in_a_fresh_process(bench_env):
     got = pa.table({k: run0["data"][k] for k in hand.column_names})
     assert runner.compare(got.cast(hand.schema), hand) is None
 
+
+
+def test_floor_variants_answer_as_hand_written_sql(bench_env):
+    # bench/floor.py: the service's width/origin statement, with the guard and without, and
+    # the hand-written grouped counts; reference: the hand-written plain floor((v - o) / w)
+    # run by DuckDB (the data's values have two decimals, width 2.5: no value is within an
+    # ulp of an edge, so guarded and plain floors must agree)
+    qs = bench_floor.variants(bench_floor.service_sql(bench_env["config"]))
+    res = bench_floor.measure(bench_env["ref"]["deliveries"], qs, runs=1)
+    assert res["equal_to_hand_plain"] == {k: True for k in qs}
+    assert all(v > 0 for v in res["median_ms"].values())
+
+
+def test_plan_profile_runs(bench_env):
+    res = plan_profile.profile(bench_env["config"], ["brush_width"], n=3, top=10)["brush_width"]
+    assert res["requests"] == 3 and math.isfinite(res["plan_ms_p50"])
+    assert any(k.startswith("sqlglot") for k in res["by_module_ms_per_request"])
