@@ -22,25 +22,33 @@ def fmt(v, nd=1):
 
 def table(res: dict) -> str:
     lines = [
-        "| case | limit ms | service ms | service/limit | paired | best | naive in-proc ms | naive/service | "
-        "naive HTTP ms | naive HTTP/service | plan ms (p50) | cached ms (p50) | response B | "
-        "raw B | response/raw % | statements cold/warm | (a)==(b) |",
+        "| case | limit ms | service ms | service/limit | paired | best | service SQL/limit | "
+        "naive in-proc ms | naive/service | naive HTTP ms | naive HTTP/service | plan ms (p50) | "
+        "plan ms over HTTP | cached ms (p50) | response B | statements cold/warm | (a)==(b) |",
         "|" + "---|" * 17,
     ]
     for name, r in res["cases"].items():
+        if name == "first_request":
+            continue
         if "service_ms" not in r:
             lines.append(f"| {name} | error: {r.get('error', '')[:60]} |" + " |" * 15)
             continue
         lines.append("| " + " | ".join([
             f"{name} ({r['title']})", fmt(r["limit_ms"]), fmt(r["service_ms"]),
             fmt(r["service_over_limit"], 3), fmt(r.get("service_over_limit_paired"), 3),
-            fmt(r.get("service_over_limit_best"), 3), fmt(r.get("naive_inproc_ms")),
-            fmt(r.get("naive_inproc_over_service"), 1), fmt(r.get("naive_http_ms")),
-            fmt(r.get("naive_http_over_service"), 1), fmt(r.get("plan_ms_in_service", r["plan_ms"]), 3),
-            fmt(r["cached_ms"], 2), fmt(r["response_bytes"]), fmt(r.get("raw_bytes")),
-            fmt(r.get("response_over_raw_pct"), 4),
-            f"{r['statements_cold']}/{r['statements']}", "yes" if r["sanity_equal"] else "NO",
+            fmt(r.get("service_over_limit_best"), 3), fmt(r.get("service_sql_over_limit"), 3),
+            fmt(r.get("naive_inproc_ms")), fmt(r.get("naive_inproc_over_service"), 1),
+            fmt(r.get("naive_http_ms")), fmt(r.get("naive_http_over_service"), 1),
+            fmt(r["plan_ms"], 3), fmt(r.get("plan_ms_in_service"), 3), fmt(r["cached_ms"], 2),
+            fmt(r["response_bytes"]), f"{r['statements_cold']}/{r['statements']}",
+            "yes" if r["sanity_equal"] else "NO",
         ]) + " |")
+    first = res["cases"].get("first_request")
+    if first:
+        lines += ["", f"first_request ({first['title']}, {len(first['runs'])} fresh processes):",
+                  "", "| | " + " | ".join(first["p50"]) + " |", "|---|" + "---|" * len(first["p50"]),
+                  "| p50 | " + " | ".join(fmt(v, 1) for v in first["p50"].values()) + " |",
+                  "| min | " + " | ".join(fmt(v, 1) for v in first.get("min", {}).values()) + " |"]
     return "\n".join(lines)
 
 
