@@ -47,8 +47,9 @@ def table(res: dict) -> str:
     if first:
         lines += ["", f"first_request ({first['title']}, {len(first['runs'])} fresh processes):",
                   "", "| | " + " | ".join(first["p50"]) + " |", "|---|" + "---|" * len(first["p50"]),
-                  "| p50 | " + " | ".join(fmt(v, 1) for v in first["p50"].values()) + " |",
-                  "| min | " + " | ".join(fmt(v, 1) for v in first.get("min", {}).values()) + " |"]
+                  "| p50 | " + " | ".join(fmt(v, 1) for v in first["p50"].values()) + " |"]
+        if first.get("min"):
+            lines.append("| min | " + " | ".join(fmt(v, 1) for v in first["min"].values()) + " |")
     return "\n".join(lines)
 
 
