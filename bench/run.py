@@ -45,7 +45,6 @@ from typing import Any
 import duckdb
 import httpx
 import orjson
-import pyarrow as pa
 
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
