@@ -36,6 +36,14 @@ def test_warm_up_plans_each_engine_kind_once(tmp_path):
     app = create_app(_config(tmp_path))
     report = warm_up(app.state.service)
     assert list(report) == ["duckdb"] and report["duckdb"] > 0
+    # every representative request plans, and as ONE statement: no extents statement runs
+    # on the source at start-up (only the catalog's describe + row count)
+    cols = list(app.state.catalog.entry("deliveries").schema.columns.values())
+    with TestClient(app) as c:
+        for body in _requests("deliveries", cols):
+            r = c.post("/v1/sql", json=body)
+            assert r.status_code == 200, r.text
+            assert len(r.json()["sql"]) == 1
 
 
 def test_a_source_that_is_down_does_not_stop_start_up(tmp_path, caplog):
