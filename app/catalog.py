@@ -3,6 +3,10 @@
 Column names and types come only from the engine (``describe``), never from a request.
 Schemas and row counts are cached per source and refreshed when the engine's data version
 changes, so a request costs no catalog round trip.
+
+File engines that can tell their file was replaced or removed (``stale()``, DuckDB) are closed
+and opened again on the next request that needs them: a rebuilt file renamed over the old
+one is answered from at once, a deleted one is a 503 naming the source until it returns.
 """
 
 from __future__ import annotations
@@ -51,6 +55,11 @@ class Catalog:
 
     def engine(self, name: str) -> Engine:
         eng = self._engines.get(name)
+        if eng is not None:
+            stale = getattr(eng, "stale", None)
+            if stale is not None and stale():
+                self._retire_stale()
+                eng = None
         if eng is None:
             cfg = self.config(name)
             with self._lock:
@@ -59,6 +68,20 @@ class Catalog:
                     eng = open_engine(cfg)
                     self._engines[name] = eng
         return eng
+
+    def _retire_stale(self) -> None:
+        """Close every engine whose file changed (all at once: sources on one DuckDB file
+        share one database instance, which only a fresh open after the last close renews)."""
+        with self._lock:
+            for n, e in list(self._engines.items()):
+                stale = getattr(e, "stale", None)
+                if stale is not None and stale():
+                    self._engines.pop(n, None)
+                    self._entries.pop(n, None)
+                    try:
+                        e.close()
+                    except Exception:  # noqa: BLE001 - closing a replaced file's engine
+                        pass
 
     def entry(self, name: str) -> SourceEntry:
         """Schema and row count of a source, introspected once per data version."""
