@@ -27,7 +27,9 @@ stretching runs in a small thread pool of its own (``HASH_THREADS``), a verified
 remembered by its SHA-256 digest (bounded LRU; good and bad keys in separate maps, so a flood
 of bad keys cannot evict the good ones), and a client whose keys keep failing waits before
 its next unknown key is checked -- ``asyncio.sleep``, so nobody else waits with it
-(``Backoff``: doubling from 50 ms to 2 s, forgotten after a minute without failures). The
+(``Backoff``: doubling from 50 ms to 2 s, forgotten after a minute without failures) -- and
+checks one key at a time, so many connections from one address cannot occupy every hashing
+thread. The
 client is the connection's address (behind a reverse proxy, let uvicorn take it from
 ``X-Forwarded-For``: ``forwarded_allow_ips``). ``/healthz`` never looks at keys.
 
@@ -328,6 +330,7 @@ class AuthMiddleware:
         self.ring = KeyRing(list(keys))
         self.backoff = backoff or Backoff()
         self._limiter: Any = None  # anyio.CapacityLimiter, made inside the loop
+        self._client_locks = _Lru(10_000)  # client address -> asyncio.Lock
 
     async def _grant(self, scope: dict, presented: str) -> Grant | None:
         hit = self.ring.known(presented)
@@ -335,15 +338,26 @@ class AuthMiddleware:
             return hit  # type: ignore[return-value]
         if not self.ring.slow:  # SHA-256 only: microseconds, fine on the loop
             return self.ring.verify(presented)
-        client = (scope.get("client") or ("?", 0))[0]
-        wait = self.backoff.delay(client)
-        if wait > 0:
-            await asyncio.sleep(wait)  # this client only
         import anyio.to_thread
 
-        if self._limiter is None:
-            self._limiter = anyio.CapacityLimiter(HASH_THREADS)
-        grant = await anyio.to_thread.run_sync(self.ring.verify, presented, limiter=self._limiter)
+        client = (scope.get("client") or ("?", 0))[0]
+        lock = self._client_locks.get(client)
+        if lock is None:
+            lock = asyncio.Lock()
+            self._client_locks.put(client, lock)
+        # one check at a time per client: many connections from one address cannot take
+        # every hashing thread (others' first keys would queue behind them)
+        async with lock:
+            hit = self.ring.known(presented)  # (checked meanwhile by this client's other request)
+            if hit is not _MISSING:
+                return hit  # type: ignore[return-value]
+            wait = self.backoff.delay(client)
+            if wait > 0:
+                await asyncio.sleep(wait)  # this client only
+            if self._limiter is None:
+                self._limiter = anyio.CapacityLimiter(HASH_THREADS)
+            grant = await anyio.to_thread.run_sync(self.ring.verify, presented,
+                                                   limiter=self._limiter)
         if grant is None:
             self.backoff.failed(client)
         else:

@@ -152,10 +152,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         """The cached answer for ``req`` in ``fmt`` (single-flight), or ``run()``'s."""
         if not cache.enabled:
             return run(), "miss"
-        version = source_version(catalog.config(req.source).engine, catalog.engine(req.source),
-                                 float(cache_cfg.get("ttl_s", 60.0)))
-        return cache.compute(cache.key(canonical(req), version, fmt), req.source, run,
-                             lookup=lookup)
+        with service.limiter.deadline(req.source):  # the data version is asked on time too
+            version = source_version(catalog.config(req.source).engine, catalog.engine(req.source),
+                                     float(cache_cfg.get("ttl_s", 60.0)))
+            return cache.compute(cache.key(canonical(req), version, fmt), req.source, run,
+                                 lookup=lookup)
 
     def json_answer(req: ChartRequest, lookup: bool, t_in: float) -> bytes:
         """The JSON answer bytes, from the cache when it has them (chart and batch routes)."""

@@ -10,6 +10,7 @@ machine's shared server on 5432 is never touched.
 
 from __future__ import annotations
 
+import contextlib
 import glob
 import json
 import os
@@ -20,6 +21,7 @@ import subprocess
 import sys
 import threading
 import time
+import urllib.error
 import urllib.request
 from pathlib import Path
 
@@ -173,6 +175,136 @@ def test_warehouse_down_mid_run_then_back(cluster, tmp_path):
             cluster.start()
         r = _until_ok(c)
         assert r.json()["data"]["count"] and sum(r.json()["data"]["count"]) == fx.N
+
+
+# =====================================================================================
+# a frozen warehouse (SIGSTOP: what a network black hole looks like to the client)
+# =====================================================================================
+
+def _cluster_pids(cluster) -> list[int]:
+    """The postmaster (first line of postmaster.pid) and every process it forked."""
+    pid = int((cluster.data / "postmaster.pid").read_text().split()[0])
+    out = [pid]
+    for p in os.listdir("/proc"):
+        if p.isdigit():
+            try:
+                stat = Path(f"/proc/{p}/stat").read_text()
+            except OSError:
+                continue
+            if int(stat.rsplit(")", 1)[1].split()[1]) == pid:  # field 4: ppid (proc(5))
+                out.append(int(p))
+    return out
+
+
+@contextlib.contextmanager
+def _frozen(cluster):
+    pids = _cluster_pids(cluster)
+    for p in pids:
+        os.kill(p, signal.SIGSTOP)
+    try:
+        yield
+    finally:
+        for p in pids:
+            try:
+                os.kill(p, signal.SIGCONT)
+            except ProcessLookupError:
+                pass
+
+
+FROZEN_TIMEOUT_MS = 1500
+SLACK_S = 1.5  # scheduling on 2 shared cores + the engine's GRACE_S (0.5 s)
+
+
+def _frozen_config(cluster, tmp_path, timeout_ms=FROZEN_TIMEOUT_MS) -> Path:
+    cfg = tmp_path / "frozen.toml"
+    cfg.write_text(f'[sources.warehouse]\nengine = "postgres"\ndsn = "{cluster.dsn}"\n'
+                   f'table = "deliveries"\nconnect_timeout_s = 2\nstatement_timeout_ms = {timeout_ms}\n'
+                   "[server]\nrequest_log = false\nready_timeout_s = 1.0\n[cache]\nenabled = false\n")
+    return cfg
+
+
+def test_frozen_warehouse_answers_on_time_and_recovers(cluster, tmp_path):
+    from fastapi.testclient import TestClient
+
+    from app.main import create_app
+    from app.settings import load_settings
+
+    cfg = _frozen_config(cluster, tmp_path)
+    with TestClient(create_app(load_settings(cfg, environ={})), raise_server_exceptions=False) as c:
+        assert _chart(c).status_code == 200  # warm: the pool holds a live connection
+        with _frozen(cluster):
+            timings = {}
+            for what, call in (("chart", lambda: _chart(c)),
+                               ("chart again", lambda: _chart(c)),
+                               ("source", lambda: c.get("/v1/sources/warehouse")),
+                               ("readyz", lambda: c.get("/readyz")),
+                               ("healthz", lambda: c.get("/healthz"))):
+                t0 = time.monotonic()
+                r = call()
+                timings[what] = (r.status_code, round(time.monotonic() - t0, 2))
+                if what == "healthz":
+                    assert r.status_code == 200
+                    continue
+                assert r.status_code in (503, 504), (what, r.status_code, r.text[:300])
+                assert r.headers["content-type"].startswith("application/problem+json") or what == "readyz"
+            print(f"frozen PostgreSQL, statement_timeout_ms {FROZEN_TIMEOUT_MS}: {timings}")
+            budget = FROZEN_TIMEOUT_MS / 1000.0 + SLACK_S
+            assert all(timings[w][1] < budget for w in ("chart", "chart again", "source")), timings
+            assert timings["readyz"][1] < 1.0 + SLACK_S, timings
+            assert timings["healthz"][1] < 0.5, timings
+        r = _until_ok(c)  # SIGCONT: the pool replaces the dropped connections by itself
+        assert sum(r.json()["data"]["count"]) == fx.N
+
+
+def test_sigterm_is_bounded_with_a_frozen_warehouse(cluster, tmp_path):
+    """A chart blocked on a frozen warehouse (its own deadline 60 s away) does not hold the
+    shutdown: past shutdown_timeout_s the request is cut (503) and the process exits."""
+    cfg = _frozen_config(cluster, tmp_path, timeout_ms=60_000)
+    port = _free_port()
+    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", "--config", str(cfg),
+                             "--port", str(port), "--shutdown-timeout-s", "1"],
+                            cwd=Path(__file__).resolve().parents[1], env=dict(os.environ),
+                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
+    url = f"http://127.0.0.1:{port}/v1/chart"
+    body = json.dumps({"source": "warehouse", **BODY}).encode()
+
+    def post():
+        req = urllib.request.Request(url, data=body, headers={"content-type": "application/json"})
+        try:
+            with urllib.request.urlopen(req, timeout=90) as resp:
+                return resp.status
+        except urllib.error.HTTPError as e:
+            return e.code
+        except Exception as e:  # noqa: BLE001 - recorded, asserted below
+            return repr(e)
+
+    try:
+        deadline = time.monotonic() + 60
+        while not _port_open(port):
+            assert proc.poll() is None, proc.stdout.read().decode()[-2000:]
+            assert time.monotonic() < deadline, "sluice serve did not start"
+            time.sleep(0.2)
+        assert post() == 200
+        result = {}
+        with _frozen(cluster):
+            t = threading.Thread(target=lambda: result.update(status=post()))
+            t.start()
+            time.sleep(0.7)
+            assert "status" not in result  # blocked on the frozen server
+            t0 = time.monotonic()
+            proc.send_signal(signal.SIGTERM)
+            code = proc.wait(30)
+            took = time.monotonic() - t0
+            t.join(30)
+        print(f"SIGTERM with a frozen warehouse: exited after {took:.2f} s, the cut request "
+              f"answered {result.get('status')}")
+        assert code in (0, -signal.SIGTERM), proc.stdout.read().decode()[-2000:]
+        assert took < 1.0 + 3.0, took  # shutdown_timeout_s + closing the engines
+        assert result.get("status") == 503, result
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
 
 
 def _port_open(port: int) -> bool:

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import os
 import re
+import socket
 import threading
 from typing import Any
 from urllib.parse import unquote, urlparse
@@ -191,8 +192,15 @@ class MySQLEngine(EngineBase):
         return cancel
 
     def close(self) -> None:
+        """Bounded: sockets are shut down first, so a statement blocked on a silent server
+        returns at once and closing never waits for the server."""
         with self._lock:
             for c in self._conns:
+                try:
+                    if c._sock is not None:
+                        c._sock.shutdown(socket.SHUT_RDWR)
+                except OSError:
+                    pass
                 try:
                     c.close()
                 except Exception:  # noqa: BLE001 - already closed

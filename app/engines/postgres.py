@@ -160,7 +160,23 @@ class PostgresEngine(EngineBase):
         return cancel
 
     def close(self) -> None:
-        self.pool.close(timeout=2.0)  # bounded shutdown, even with a frozen server
+        """Bounded, even with a frozen server: statements still running are cut off (their
+        sockets shut down) and the pool gets 2 s to close."""
+        for conn in list(self._active.values()):
+            _shutdown(conn)
+        self.pool.close(timeout=2.0)
+
+
+def _shutdown(conn: Any) -> None:
+    """Shut the connection's socket down: a driver call blocked on it returns at once."""
+    try:
+        s = socket.socket(fileno=os.dup(conn.pgconn.socket))
+        try:
+            s.shutdown(socket.SHUT_RDWR)  # acts on the socket, not just this fd
+        finally:
+            s.close()
+    except Exception:  # noqa: BLE001 - already closed
+        pass
 
 
 class _Watchdog:
@@ -188,14 +204,7 @@ class _Watchdog:
             if conn is None:
                 return
             self.fired = True
-            try:
-                s = socket.socket(fileno=os.dup(conn.pgconn.socket))
-                try:
-                    s.shutdown(socket.SHUT_RDWR)  # acts on the socket, not just this fd
-                finally:
-                    s.close()
-            except Exception:  # noqa: BLE001 - already closed
-                pass
+            _shutdown(conn)
 
     def disarm(self) -> None:
         with self._lock:
