@@ -416,3 +416,116 @@ def test_sigterm_drains_a_slow_request(tmp_path):
         if proc.poll() is None:
             proc.kill()
             proc.wait(10)
+
+
+# =====================================================================================
+# MariaDB behind a network black hole (a loopback proxy that stops forwarding)
+# =====================================================================================
+
+class FreezableProxy:
+    """TCP proxy 127.0.0.1:<port> -> ``upstream``; ``frozen`` holds every byte in both
+    directions (connections stay open, nothing arrives: a black hole, not a refusal)."""
+
+    def __init__(self, upstream: tuple[str, int]) -> None:
+        self.upstream = upstream
+        self.frozen = threading.Event()
+        self.sock = socket.socket()
+        self.sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        self.sock.bind(("127.0.0.1", 0))
+        self.sock.listen(64)
+        self.port = self.sock.getsockname()[1]
+        self.closed = False
+        threading.Thread(target=self._accept, daemon=True).start()
+
+    def _accept(self) -> None:
+        while not self.closed:
+            try:
+                client, _ = self.sock.accept()
+            except OSError:
+                return
+            try:
+                server = socket.create_connection(self.upstream, timeout=5)
+                server.settimeout(None)
+            except OSError:
+                client.close()
+                continue
+            for a, b in ((client, server), (server, client)):
+                threading.Thread(target=self._pump, args=(a, b), daemon=True).start()
+
+    def _pump(self, src: socket.socket, dst: socket.socket) -> None:
+        try:
+            while True:
+                data = src.recv(65536)
+                if not data:
+                    break
+                while self.frozen.is_set() and not self.closed:
+                    time.sleep(0.05)
+                dst.sendall(data)
+        except OSError:
+            pass
+        finally:
+            for s in (src, dst):
+                try:
+                    s.close()
+                except OSError:
+                    pass
+
+    def close(self) -> None:
+        self.closed = True
+        self.sock.close()
+
+
+def test_mariadb_behind_a_black_hole_answers_on_time_and_recovers(tmp_path):
+    pymysql = pytest.importorskip("pymysql")
+    try:
+        con = pymysql.connect(host="127.0.0.1", port=3306, user="root", password="",
+                              database="test", connect_timeout=3)
+    except pymysql.Error as e:
+        pytest.skip(f"MariaDB is not reachable on 127.0.0.1:3306: {e}")
+    table = "sluice_freeze_" + "".join(ch if ch.isalnum() else "_" for ch in
+                                        os.environ.get("PYTEST_XDIST_WORKER", "main")) + f"_{os.getpid()}"
+    df = fx.frame()
+    with con.cursor() as cur:
+        cur.execute(f"DROP TABLE IF EXISTS {table}")
+        cur.execute(f"CREATE TABLE {table} (id BIGINT, depot VARCHAR(32))")
+        cur.executemany(f"INSERT INTO {table} VALUES (%s, %s)",
+                        [(int(r.id), r.depot) for r in df.itertuples(index=False)])
+    con.commit()
+    proxy = FreezableProxy(("127.0.0.1", 3306))
+    try:
+        from fastapi.testclient import TestClient
+
+        from app.main import create_app
+        from app.settings import load_settings
+
+        cfg = tmp_path / "my.toml"
+        cfg.write_text(f'[sources.warehouse]\nengine = "mysql"\n'
+                       f'dsn = "mysql://root@127.0.0.1:{proxy.port}/test"\ntable = "test.{table}"\n'
+                       f"connect_timeout_s = 2\nstatement_timeout_ms = {FROZEN_TIMEOUT_MS}\n"
+                       "[server]\nrequest_log = false\nready_timeout_s = 1.0\n[cache]\nenabled = false\n")
+        with TestClient(create_app(load_settings(cfg, environ={})), raise_server_exceptions=False) as c:
+            r = _chart(c)
+            assert r.status_code == 200, r.text
+            # reference: pandas value_counts of the rows inserted above
+            assert sum(r.json()["data"]["count"]) == fx.N
+            proxy.frozen.set()
+            timings = {}
+            for what, call in (("chart", lambda: _chart(c)), ("chart again", lambda: _chart(c)),
+                               ("source", lambda: c.get("/v1/sources/warehouse")),
+                               ("readyz", lambda: c.get("/readyz"))):
+                t0 = time.monotonic()
+                r = call()
+                timings[what] = (r.status_code, round(time.monotonic() - t0, 2))
+                assert r.status_code in (503, 504), (what, r.status_code, r.text[:300])
+            print(f"MariaDB behind a black hole, statement_timeout_ms {FROZEN_TIMEOUT_MS}: {timings}")
+            budget = FROZEN_TIMEOUT_MS / 1000.0 + SLACK_S
+            assert all(timings[w][1] < budget for w in ("chart", "chart again", "source")), timings
+            assert timings["readyz"][1] < 1.0 + SLACK_S, timings
+            proxy.frozen.clear()
+            r = _until_ok(c)
+            assert sum(r.json()["data"]["count"]) == fx.N
+    finally:
+        proxy.close()
+        with con.cursor() as cur:
+            cur.execute(f"DROP TABLE IF EXISTS {table}")
+        con.close()
