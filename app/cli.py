@@ -196,7 +196,7 @@ def build_parser() -> argparse.ArgumentParser:
                    "(default [server] max_connections, 1000)")
     s.add_argument("--shutdown-timeout-s", type=_positive_float, metavar="S",
                    help="on SIGTERM wait at most S seconds for running requests "
-                   "(default [server] shutdown_timeout_s, 30)")
+                   "(default [server] shutdown_timeout_s, 15)")
     s.add_argument("--log-level", default="info",
                    choices=["critical", "error", "warning", "info", "debug"],
                    help="uvicorn's log level (default info)")

@@ -78,7 +78,7 @@ class Settings:
     keepalive_timeout_s: float = 5.0  # idle keep-alive connections are closed after this
     body_timeout_s: float = 30.0  # the whole request body must arrive within this (408)
     max_connections: int = 1000  # open connections + running requests; beyond: 503
-    shutdown_timeout_s: float = 30.0  # SIGTERM: requests still running after this are cut
+    shutdown_timeout_s: float = 15.0  # SIGTERM: requests still running after this are cut
     ready_timeout_s: float = 2.0  # /readyz answers within this
     ready_ttl_s: float = 1.0  # a source's readiness check is reused for this long
     # not [server] scalars: [limits] (app.limits.Limits), [[keys]] (app.auth.ApiKey) and

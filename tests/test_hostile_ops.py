@@ -517,3 +517,29 @@ def test_metrics_need_an_operator_key(tmp_path):
         # Prometheus text exposition format 0.0.4: the operator sees every source's series
         assert r.status_code == 200 and r.headers["content-type"].startswith("text/plain")
         assert 'source="hidden_ledger"' in r.text and 'source="deliveries"' in r.text
+
+
+def test_reverse_proxy_example_is_consistent_with_the_server():
+    """deploy/nginx.conf cuts slow clients no later than sluice does, waits for the engine
+    longer than the default statement timeout, and keeps upstream connections for less than
+    sluice's keep-alive (nginx directive semantics: nginx.org/en/docs/http/ngx_http_core_module.html,
+    ngx_http_proxy_module.html, ngx_http_upstream_module.html)."""
+    import re
+
+    from app.limits import Limits
+    from app.settings import Settings
+
+    text = (Path(__file__).resolve().parents[1] / "deploy" / "nginx.conf").read_text()
+
+    def seconds(directive: str) -> float:
+        m = re.search(rf"^\s*{directive}\s+(\d+)s;", text, re.M)
+        assert m, directive
+        return float(m.group(1))
+
+    st = Settings(sources={})
+    assert seconds("client_header_timeout") <= st.header_timeout_s
+    assert seconds("client_body_timeout") <= st.body_timeout_s
+    assert seconds("proxy_read_timeout") > Limits().statement_timeout_ms / 1000.0
+    assert seconds("keepalive_timeout") < st.keepalive_timeout_s  # the upstream block's, first
+    assert re.search(r"client_max_body_size\s+1m;", text) and st.max_body_bytes <= 1024 * 1024
+    assert "X-Forwarded-For" in text
