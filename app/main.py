@@ -52,10 +52,10 @@ def _problem_responses() -> dict[int | str, dict[str, Any]]:
 def engine_problem(exc: EngineError) -> Problem:
     """The problem document for an engine failure: 504 for a server-side statement timeout,
     503 (Retry-After) when the source is unavailable, 502 when it rejected the statement."""
-    if isinstance(exc, EngineUnavailable) or server_timeout(exc.message):
-        if server_timeout(exc.message):  # the server's own statement_timeout (app.limits)
-            return Problem(504, "statement-timeout", "Statement timed out",
-                           f"source {exc.source!r}: {exc.message}", source=exc.source)
+    if server_timeout(exc.message):  # the server's own statement_timeout (app.limits)
+        return Problem(504, "statement-timeout", "Statement timed out",
+                       f"source {exc.source!r}: {exc.message}", source=exc.source)
+    if isinstance(exc, EngineUnavailable):
         return Problem(503, "source-unavailable", "Source unavailable",
                        f"source {exc.source!r}: {exc.message}", source=exc.source,
                        headers={"Retry-After": "5"})
