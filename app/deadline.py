@@ -9,7 +9,7 @@ opens the budget (nested budgets only ever shorten it), ``remaining()`` is what 
 * engines whose driver can block on a silent server (PostgreSQL, MySQL/MariaDB, the
   ClickHouse HTTP client) give every call a client-side deadline of ``remaining()`` (or
   their own statement timeout outside a request) plus ``GRACE_S``, so a frozen warehouse
-  answers 503 on time instead of never (see each engine);
+  answers 504 on time instead of never (see each engine);
 * probes (``/readyz``) open their own, short budget.
 
 The deadline lives in a ``ContextVar``: Starlette copies the context into the worker thread

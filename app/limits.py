@@ -193,11 +193,15 @@ class Overloaded(Problem):
 
 
 class StatementTimeout(Problem):
-    def __init__(self, source: str, ms: int) -> None:
-        super().__init__(504, "statement-timeout", "Statement timed out",
-                         f"source {source!r}: the request ran longer than {ms} ms "
-                         "(statement_timeout_ms) and was cancelled; narrow the request "
-                         "(where, fewer bins or keys)", source=source)
+    def __init__(self, source: str, ms: int, silent: str | None = None) -> None:
+        if silent:  # the warehouse itself did not answer (frozen, black-holed)
+            detail = (f"source {source!r}: {silent}; the request's deadline is {ms} ms "
+                      "(statement_timeout_ms)")
+        else:
+            detail = (f"source {source!r}: the request ran longer than {ms} ms "
+                      "(statement_timeout_ms) and was cancelled; narrow the request "
+                      "(where, fewer bins or keys)")
+        super().__init__(504, "statement-timeout", "Statement timed out", detail, source=source)
 
 
 class _Slot:
@@ -311,7 +315,8 @@ class GuardedEngine:
             return fn(sql)
         except EngineError as e:
             if server_timeout(e.message):
-                raise StatementTimeout(self._source, self._ms) from None
+                raise StatementTimeout(self._source, self._ms,
+                                       e.message if CLIENT_DEADLINE in e.message else None) from None
             if isinstance(e, EngineUnavailable):
                 raise  # the warehouse is down (even if the timer fired meanwhile): 503
             if fired is not None and fired["fired"]:
@@ -329,12 +334,18 @@ class GuardedEngine:
         return self._run(self._engine.fetch_row, sql)
 
 
+#: what engines write when their own watchdog gave up on a server that did not answer
+CLIENT_DEADLINE = "(client-side deadline)"
+
+
 def server_timeout(message: str) -> bool:
-    """A timeout the server enforced itself (PostgreSQL ``statement_timeout``, MySQL
-    ``max_execution_time``)."""
+    """A timeout: enforced by the server itself (PostgreSQL ``statement_timeout``, MySQL
+    ``max_execution_time``), or by the engine's client-side deadline when the server did not
+    answer at all (504 either way: the gateway gave up waiting)."""
     low = message.lower()
     return ("canceling statement due to statement timeout" in low
-            or "maximum statement execution time exceeded" in low)
+            or "maximum statement execution time exceeded" in low
+            or CLIENT_DEADLINE in low)
 
 
 # =====================================================================================

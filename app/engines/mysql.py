@@ -12,7 +12,7 @@ Client-side deadline: the server's time limit cannot fire on a server that is st
 behind a network black hole, so every socket read and write has a timeout
 (``read_timeout`` / ``write_timeout``) of what is left of the request's budget
 (``app.deadline``; else ``statement_timeout_ms``) plus ``GRACE_S``; past it the connection
-is dropped and the answer is 503. The ``KILL QUERY`` connection of a timeout is bounded too.
+is dropped and the answer is 504. The ``KILL QUERY`` connection of a timeout is bounded too.
 """
 
 from __future__ import annotations

@@ -12,8 +12,9 @@ acknowledges every byte, so TCP keepalives do not help). Every call therefore ru
 ``app.deadline.budget`` (the request's budget, else ``statement_timeout_ms``): at the
 budget ``app.limits`` sends a cancel request (``cancel_safe``, itself bounded), and
 ``GRACE_S`` later a watchdog shuts the connection's socket down, so the blocked driver call
-returns at once (503) and the pool replaces the connection. Waiting for a pooled connection
-and opening the pool are bounded by the same budget.
+returns at once (504, "did not answer ... (client-side deadline)") and the pool replaces
+the connection. Waiting for a pooled connection and opening the pool are bounded by the
+same budget (503 when no connection could be had).
 """
 
 from __future__ import annotations
