@@ -392,7 +392,7 @@ def test_readyz_answers_on_time_and_healthz_stays_fast_while_a_source_hangs(tmp_
     print(f"60 /readyz with a hanging source: slowest {worst:.2f} s (ready_timeout_s 1.0); "
           f"healthz p95 {p95 * 1000:.1f} ms; chart on it {st} after {chart_s:.2f} s")
     assert len(probes) == 60 and {p[0] for p in probes} == {503}
-    assert worst < 1.0 + 1.0, worst
+    assert worst < 1.0 + 1.5, worst  # ready_timeout_s + scheduling slack on 2 shared cores
     for _, _, doc in probes:  # the hanging source is named as not ready, the other is ready
         assert doc["sources"]["warehouse"]["ready"] is False, doc
         assert doc["sources"]["deliveries"]["ready"] is True, doc
