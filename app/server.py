@@ -17,7 +17,7 @@ The other limits are uvicorn's own:
 | ``keepalive_timeout_s``| ``timeout_keep_alive``       | idle keep-alive connections closed         |
 | ``max_connections``    | ``limit_concurrency``        | beyond it new requests get 503             |
 | ``shutdown_timeout_s`` | ``timeout_graceful_shutdown``| SIGTERM waits at most this for requests    |
-| (fixed 16 KiB)         | ``h11_max_incomplete_event_size`` | request line + headers larger: 400   |
+| (fixed 16 KiB)         | ``h11_max_incomplete_event_size`` | request line + headers larger: 431 (RFC 6585) |
 
 ``uvicorn app.main:app`` run by hand has uvicorn's defaults (no header deadline, no
 connection cap): use ``sluice serve``, or put a reverse proxy in front (README, *Deploying*).
@@ -34,6 +34,12 @@ _408_TEXT = b"request line and headers did not arrive in time"
 _408 = (b"HTTP/1.1 408 Request Timeout\r\ncontent-type: text/plain; charset=utf-8\r\n"
         b"content-length: " + str(len(_408_TEXT)).encode() + b"\r\nconnection: close\r\n\r\n"
         + _408_TEXT)
+
+
+_431_TEXT = b"request line and headers are larger than 16 KiB"
+_431 = (b"HTTP/1.1 431 Request Header Fields Too Large\r\ncontent-type: text/plain; "
+        b"charset=utf-8\r\ncontent-length: " + str(len(_431_TEXT)).encode()
+        + b"\r\nconnection: close\r\n\r\n" + _431_TEXT)
 
 
 def _base_protocol() -> type[asyncio.Protocol]:
@@ -81,12 +87,22 @@ def protocol(header_timeout_s: float, base: type[asyncio.Protocol] | None = None
             super().connection_made(transport)
             self._arm()  # a connection that sends nothing is timed out too
 
+        _header_bytes = 0
+
         def data_received(self, data: bytes) -> None:
             if self._waiting_for_headers():
                 self._arm()  # from the first byte of a request on a kept-alive connection
+                self._header_bytes += len(data)
             super().data_received(data)
             if not self._waiting_for_headers():
                 self._disarm()  # headers complete: the request is being served
+                self._header_bytes = 0
+            elif self._header_bytes > MAX_HEADER_BYTES and not self.transport.is_closing():
+                # httptools has no cap of its own (h11's is h11_max_incomplete_event_size)
+                try:
+                    self.transport.write(_431)
+                finally:
+                    self.transport.close()
 
         def connection_lost(self, exc: Exception | None) -> None:
             self._disarm()

@@ -259,6 +259,29 @@ def test_slow_headers_are_cut_at_the_deadline_and_others_answer(tmp_path):
     assert body_cut < 1.0 + 1.5, body_cut
 
 
+def test_oversized_headers_are_refused_with_431(tmp_path):
+    with LiveServer(_settings(tmp_path)) as srv:
+        s = socket.create_connection(("127.0.0.1", srv.port))
+        s.settimeout(5)
+        reply = b""
+        try:
+            s.sendall(b"GET /healthz HTTP/1.1\r\nHost: x\r\n")
+            for _ in range(40):  # 40 KiB of header lines, never finished
+                s.sendall(b"X-Pad: " + b"a" * 1017 + b"\r\n")
+        except OSError:
+            pass
+        try:
+            while chunk := s.recv(4096):
+                reply += chunk
+        except OSError:
+            pass
+        s.close()
+        # RFC 6585, 5: 431 Request Header Fields Too Large
+        assert reply.startswith(b"HTTP/1.1 431"), reply[:80]
+        st, _, _, _ = srv.request("GET", "/healthz", headers={"X-Fine": "a" * 4000})
+        assert st == 200  # ordinary headers well under 16 KiB pass
+
+
 def test_connection_cap_answers_503_instead_of_hanging(tmp_path):
     settings = _settings(tmp_path, server="header_timeout_s = 1.0\nmax_connections = 10\n")
     with LiveServer(settings) as srv:
