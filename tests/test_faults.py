@@ -299,7 +299,7 @@ def test_sigterm_is_bounded_with_a_frozen_warehouse(cluster, tmp_path):
         print(f"SIGTERM with a frozen warehouse: exited after {took:.2f} s, the cut request "
               f"answered {result.get('status')}")
         assert code in (0, -signal.SIGTERM), proc.stdout.read().decode()[-2000:]
-        assert took < 1.0 + 3.0, took  # shutdown_timeout_s + closing the engines
+        assert took < 1.0 + 4.0, took  # shutdown_timeout_s + closing the engines + slack
         assert result.get("status") == 503, result
     finally:
         if proc.poll() is None:

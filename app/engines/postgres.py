@@ -162,10 +162,10 @@ class PostgresEngine(EngineBase):
 
     def close(self) -> None:
         """Bounded, even with a frozen server: statements still running are cut off (their
-        sockets shut down) and the pool gets 2 s to close."""
+        sockets shut down) and the pool gets 1 s to close."""
         for conn in list(self._active.values()):
             _shutdown(conn)
-        self.pool.close(timeout=2.0)
+        self.pool.close(timeout=1.0)
 
 
 def _shutdown(conn: Any) -> None:
