@@ -311,6 +311,7 @@ def test_serve_passes_the_limits_to_uvicorn(tmp_path, monkeypatch):
     settings = _settings(tmp_path, server="header_timeout_s = 3.5\nkeepalive_timeout_s = 4.0\n")
     got = {}
     monkeypatch.setattr(uvicorn, "run", lambda app, **kw: got.update(kw))
+    monkeypatch.setenv("SLUICE_CONFIG", "")  # `serve --config` sets it: restored after the test
     cfg = Path(settings.config_path)
     assert cli.main(["serve", "--config", str(cfg), "--max-connections", "77",
                      "--shutdown-timeout-s", "9"]) == 0
