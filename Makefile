@@ -40,7 +40,7 @@ demo: $(VENV)/.installed
 	$(BIN)/sluice demo --rows $(ROWS) --out $(DEMO)
 
 serve: $(VENV)/.installed $(DEMO)
-	SLUICE_DEMO_PATH=$(DEMO) $(BIN)/uvicorn app.main:app --host $(HOST) --port $(PORT)
+	SLUICE_DEMO_PATH=$(DEMO) $(BIN)/sluice serve --host $(HOST) --port $(PORT)
 
 services:
 	bash .ci/services.sh

@@ -19,13 +19,27 @@ lists only the granted sources.
 
 Hashes: ``sha256:<hex>`` (or the bare hex) is SHA-256 of the key — fine for long random keys
 (``python -m app.auth new`` makes one); ``pbkdf2_sha256$<iterations>$<salt hex>$<hex>`` is a
-salted, stretched hash for keys people choose (``python -m app.auth hash KEY``). A verified
-key is remembered in memory by its SHA-256, so the stretching costs once per key and process.
+salted, stretched hash for keys people choose (``python -m app.auth hash KEY``).
 Comparisons use ``hmac.compare_digest``.
+
+Verifying a key never runs on the event loop (a PBKDF2 check costs ~50 ms of CPU): the
+stretching runs in a small thread pool of its own (``HASH_THREADS``), a verified key is
+remembered by its SHA-256 digest (bounded LRU; good and bad keys in separate maps, so a flood
+of bad keys cannot evict the good ones), and a client whose keys keep failing waits before
+its next unknown key is checked -- ``asyncio.sleep``, so nobody else waits with it
+(``Backoff``: doubling from 50 ms to 2 s, forgotten after a minute without failures) -- and
+checks one key at a time, so many connections from one address cannot occupy every hashing
+thread. The
+client is the connection's address (behind a reverse proxy, let uvicorn take it from
+``X-Forwarded-For``: ``forwarded_allow_ips``). ``/healthz`` never looks at keys.
+
+``/metrics`` shows every source's name and counters, so with keys configured it needs an
+**operator key** (``operator = true`` in its ``[[keys]]`` table); any other key gets a 403.
 """
 
 from __future__ import annotations
 
+import asyncio
 import contextvars
 import hashlib
 import hmac
@@ -33,8 +47,10 @@ import re
 import secrets
 import sys
 import threading
+import time
+from collections import OrderedDict
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 from app.problems import PROBLEM_JSON, Problem
@@ -42,6 +58,12 @@ from app.problems import PROBLEM_JSON, Problem
 #: paths that never need a key (probes, API docs, the preview page and its files)
 OPEN_PATHS = ("/healthz", "/readyz", "/docs", "/docs/oauth2-redirect", "/redoc", "/openapi.json", "/")
 OPEN_PREFIXES = ("/static/",)
+#: needs no key and never looks at one (liveness does no work at all)
+LIVENESS = "/healthz"
+#: needs an operator key when keys are configured
+OPERATOR_PATHS = ("/metrics",)
+#: threads that may run PBKDF2 at once (off the event loop, apart from the routes' pool)
+HASH_THREADS = 2
 
 _HEX64 = re.compile(r"[0-9a-f]{64}")
 
@@ -51,6 +73,7 @@ class ApiKey:
     hash: str
     sources: tuple[str, ...]
     name: str = ""
+    operator: bool = False  # may read /metrics
 
     def grants(self, source: str) -> bool:
         return "*" in self.sources or source in self.sources
@@ -62,6 +85,7 @@ class Grant:
 
     name: str = ""
     sources: frozenset[str] | None = None
+    operator: bool = False
 
     def allows(self, source: str) -> bool:
         return self.sources is None or "*" in self.sources or source in self.sources
@@ -139,9 +163,10 @@ def parse_keys(raw: Any, sources: Iterable[str],
         key = ("keys", str(i))
         if not isinstance(k, dict):
             raise fail(key, "must be a table with hash and sources", "write [[keys]] then hash = ...")
-        extra = set(k) - {"hash", "sources", "name"}
+        extra = set(k) - {"hash", "sources", "name", "operator"}
         if extra:
-            raise fail(key + (sorted(extra)[0],), "unknown key", "valid keys: hash, sources, name")
+            raise fail(key + (sorted(extra)[0],), "unknown key",
+                       "valid keys: hash, sources, name, operator")
         h = k.get("hash")
         if not isinstance(h, str) or not _valid_hash(h.strip().lower()):
             raise fail(key + ("hash",), "is missing or not a hash",
@@ -158,9 +183,13 @@ def parse_keys(raw: Any, sources: Iterable[str],
         name = k.get("name", "")
         if not isinstance(name, str):
             raise fail(key + ("name",), "must be a string", 'e.g. name = "dashboards"')
+        operator = k.get("operator", False)
+        if not isinstance(operator, bool):
+            raise fail(key + ("operator",), "must be true or false",
+                       "operator = true lets this key read /metrics")
         h = h.strip()
         h = h if h.startswith("pbkdf2_sha256$") else h.lower()
-        out.append(ApiKey(h, tuple(srcs), name))
+        out.append(ApiKey(h, tuple(srcs), name, operator))
     return out
 
 
@@ -179,27 +208,104 @@ def parse_cors(raw: Any, fail: Callable[[tuple[str, ...], str, str | None], Exce
 
 # ---- the middleware --------------------------------------------------------------------
 
-@dataclass
-class KeyRing:
-    keys: list[ApiKey]
-    _known: dict[str, Grant | None] = field(default_factory=dict)
-    _lock: threading.Lock = field(default_factory=threading.Lock)
+class _Lru:
+    """A bounded map, oldest entry dropped first (thread-safe)."""
 
-    def lookup(self, presented: str) -> Grant | None:
+    def __init__(self, cap: int) -> None:
+        self.cap = cap
+        self._d: OrderedDict[str, Any] = OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, k: str, default: Any = None) -> Any:
+        with self._lock:
+            if k not in self._d:
+                return default
+            self._d.move_to_end(k)
+            return self._d[k]
+
+    def put(self, k: str, v: Any) -> None:
+        with self._lock:
+            self._d[k] = v
+            self._d.move_to_end(k)
+            while len(self._d) > self.cap:
+                self._d.popitem(last=False)
+
+    def pop(self, k: str) -> None:
+        with self._lock:
+            self._d.pop(k, None)
+
+    def __len__(self) -> int:
+        return len(self._d)
+
+
+_MISSING = object()
+
+
+class KeyRing:
+    """The configured keys, and what was learnt about presented keys (by SHA-256 digest)."""
+
+    def __init__(self, keys: list[ApiKey], good: int = 1024, bad: int = 4096) -> None:
+        self.keys = keys
+        self.slow = any(k.hash.startswith("pbkdf2_sha256$") for k in keys)
+        self._good = _Lru(good)
+        self._bad = _Lru(bad)
+
+    def known(self, presented: str) -> Grant | None | object:
+        """The remembered answer for ``presented``, or ``_MISSING`` (cheap: one SHA-256)."""
         fp = sha256_hex(presented)
-        if fp in self._known:
-            return self._known[fp]
+        g = self._good.get(fp)
+        if g is not None:
+            return g
+        return None if self._bad.get(fp) is not None else _MISSING
+
+    def verify(self, presented: str) -> Grant | None:
+        """Check ``presented`` against every hash (slow with PBKDF2: run it off the loop)."""
         match = None
         for k in self.keys:
             if _matches(k.hash, presented):
                 match = k
                 break
-        grant = Grant(match.name, frozenset(match.sources)) if match else None
-        with self._lock:
-            if len(self._known) > 10_000:  # bad keys must not grow memory without bound
-                self._known.clear()
-            self._known[fp] = grant
+        fp = sha256_hex(presented)
+        if match is None:
+            self._bad.put(fp, True)
+            return None
+        grant = Grant(match.name, frozenset(match.sources), match.operator)
+        self._good.put(fp, grant)
         return grant
+
+    def lookup(self, presented: str) -> Grant | None:
+        """Blocking lookup (for callers off the event loop)."""
+        hit = self.known(presented)
+        return self.verify(presented) if hit is _MISSING else hit  # type: ignore[return-value]
+
+
+class Backoff:
+    """Per-client delay before an unknown key is checked, after failed ones: 50 ms, doubling
+    per failure up to ``max_s``; a client without failures for ``forget_s`` starts afresh.
+    The delay is an ``await`` on the caller's own request, so other clients never wait."""
+
+    def __init__(self, base_s: float = 0.05, max_s: float = 2.0, forget_s: float = 60.0,
+                 clients: int = 10_000) -> None:
+        self.base_s, self.max_s, self.forget_s = base_s, max_s, forget_s
+        self._state = _Lru(clients)  # client -> (failures, time of the last one)
+
+    def delay(self, client: str) -> float:
+        st = self._state.get(client)
+        if st is None:
+            return 0.0
+        n, last = st
+        if time.monotonic() - last > self.forget_s:
+            self._state.pop(client)
+            return 0.0
+        return min(self.base_s * 2 ** (n - 1), self.max_s)
+
+    def failed(self, client: str) -> None:
+        st = self._state.get(client)
+        n = 0 if st is None or time.monotonic() - st[1] > self.forget_s else st[0]
+        self._state.put(client, (min(n + 1, 64), time.monotonic()))
+
+    def succeeded(self, client: str) -> None:
+        self._state.pop(client)
 
 
 def _presented(headers: dict[bytes, bytes]) -> str | None:
@@ -219,18 +325,60 @@ def _presented(headers: dict[bytes, bytes]) -> str | None:
 class AuthMiddleware:
     """401 without a valid key (when keys are configured); sets the request's grant."""
 
-    def __init__(self, app: Any, keys: list[ApiKey]) -> None:
+    def __init__(self, app: Any, keys: list[ApiKey], backoff: Backoff | None = None) -> None:
         self.app = app
         self.ring = KeyRing(list(keys))
+        self.backoff = backoff or Backoff()
+        self._limiter: Any = None  # anyio.CapacityLimiter, made inside the loop
+        self._client_locks = _Lru(10_000)  # client address -> asyncio.Lock
+
+    async def _grant(self, scope: dict, presented: str) -> Grant | None:
+        hit = self.ring.known(presented)
+        if hit is not _MISSING:
+            return hit  # type: ignore[return-value]
+        if not self.ring.slow:  # SHA-256 only: microseconds, fine on the loop
+            return self.ring.verify(presented)
+        import anyio.to_thread
+
+        client = (scope.get("client") or ("?", 0))[0]
+        lock = self._client_locks.get(client)
+        if lock is None:
+            lock = asyncio.Lock()
+            self._client_locks.put(client, lock)
+        # one check at a time per client: many connections from one address cannot take
+        # every hashing thread (others' first keys would queue behind them)
+        async with lock:
+            hit = self.ring.known(presented)  # (checked meanwhile by this client's other request)
+            if hit is not _MISSING:
+                return hit  # type: ignore[return-value]
+            wait = self.backoff.delay(client)
+            if wait > 0:
+                await asyncio.sleep(wait)  # this client only
+            if self._limiter is None:
+                self._limiter = anyio.CapacityLimiter(HASH_THREADS)
+            grant = await anyio.to_thread.run_sync(self.ring.verify, presented,
+                                                   limiter=self._limiter)
+        if grant is None:
+            self.backoff.failed(client)
+        else:
+            self.backoff.succeeded(client)
+        return grant
 
     async def __call__(self, scope: dict, receive: Callable, send: Callable) -> None:
         if scope["type"] != "http" or not self.ring.keys:
             await self.app(scope, receive, send)
             return
         path = scope.get("path", "")
+        if path == LIVENESS:  # liveness never waits for a key check
+            token = _current.set(NOBODY)
+            try:
+                await self.app(scope, receive, send)
+            finally:
+                _current.reset(token)
+            return
         headers = {k.lower(): v for k, v in scope.get("headers", [])}
         presented = _presented(headers)
-        grant = self.ring.lookup(presented) if presented is not None else None
+        grant = await self._grant(scope, presented) if presented is not None else None
         if scope.get("method") == "OPTIONS" or path in OPEN_PATHS or path.startswith(OPEN_PREFIXES):
             # open, but without a valid key no source is visible (/readyz shows no names)
             token = _current.set(grant or NOBODY)
@@ -244,6 +392,11 @@ class AuthMiddleware:
                       if presented is None else "the API key is not valid")
             await _send_problem(send, Problem(401, "unauthorized", "Unauthorized", detail,
                                               headers={"WWW-Authenticate": "Bearer"}), path)
+            return
+        if path in OPERATOR_PATHS and not grant.operator:
+            await _send_problem(send, Problem(403, "operator-only", "Operator key needed",
+                                              f"{path} shows every source: it needs a key with "
+                                              "operator = true"), path)
             return
         token = _current.set(grant)
         try:

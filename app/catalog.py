@@ -3,15 +3,21 @@
 Column names and types come only from the engine (``describe``), never from a request.
 Schemas and row counts are cached per source and refreshed when the engine's data version
 changes, so a request costs no catalog round trip.
+
+File engines that can tell their file was replaced or removed (``stale()``, DuckDB) are closed
+and opened again on the next request that needs them: a rebuilt file renamed over the old
+one is answered from at once, a deleted one is a 503 naming the source until it returns.
 """
 
 from __future__ import annotations
 
 import threading
+import time
 from dataclasses import dataclass
 
 from sqlglot import exp
 
+from app import deadline
 from app.engines import Engine, EngineError, EngineUnavailable, open_engine
 from app.settings import Settings, SourceConfig
 from planner.dialects import get_dialect
@@ -39,6 +45,8 @@ class Catalog:
         self._engines: dict[str, Engine] = {}
         self._entries: dict[str, SourceEntry] = {}
         self._lock = threading.Lock()
+        self._open_locks: dict[str, threading.Lock] = {}
+        self._failed: dict[str, tuple[float, str]] = {}  # name -> (when, why) of the last failed open
 
     def names(self) -> list[str]:
         return self.settings.source_names
@@ -51,14 +59,58 @@ class Catalog:
 
     def engine(self, name: str) -> Engine:
         eng = self._engines.get(name)
+        if eng is not None:
+            stale = getattr(eng, "stale", None)
+            if stale is not None and stale():
+                self._retire_stale()
+                eng = None
         if eng is None:
-            cfg = self.config(name)
-            with self._lock:
-                eng = self._engines.get(name)
-                if eng is None:
-                    eng = open_engine(cfg)
-                    self._engines[name] = eng
+            eng = self._open(name)
         return eng
+
+    def _open(self, name: str) -> Engine:
+        """Open a source's engine: one opener per source, the others wait at most what is
+        left of their deadline (app.deadline); a failure is shared with the requests that
+        waited for it (a down warehouse costs one connection attempt, not one per waiting
+        request), and the first request arriving after it tries again."""
+        cfg = self.config(name)
+        arrived = time.monotonic()
+        with self._lock:
+            lock = self._open_locks.setdefault(name, threading.Lock())
+        left = deadline.budget(None)
+        if not lock.acquire(timeout=-1 if left is None else max(left, 0.0)):
+            raise EngineUnavailable(name, f"source {name!r} is still being opened; retry")
+        try:
+            eng = self._engines.get(name)
+            if eng is not None:
+                return eng
+            failed = self._failed.get(name)
+            if failed is not None and failed[0] >= arrived:  # failed while this one waited
+                raise EngineUnavailable(name, failed[1])
+            try:
+                eng = open_engine(cfg)
+            except EngineError as e:
+                self._failed[name] = (time.monotonic(), e.message)
+                raise
+            self._failed.pop(name, None)
+            self._engines[name] = eng
+            return eng
+        finally:
+            lock.release()
+
+    def _retire_stale(self) -> None:
+        """Close every engine whose file changed (all at once: sources on one DuckDB file
+        share one database instance, which only a fresh open after the last close renews)."""
+        with self._lock:
+            for n, e in list(self._engines.items()):
+                stale = getattr(e, "stale", None)
+                if stale is not None and stale():
+                    self._engines.pop(n, None)
+                    self._entries.pop(n, None)
+                    try:
+                        e.close()
+                    except Exception:  # noqa: BLE001 - closing a replaced file's engine
+                        pass
 
     def entry(self, name: str) -> SourceEntry:
         """Schema and row count of a source, introspected once per data version."""

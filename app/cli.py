@@ -46,15 +46,32 @@ def _positive_int(text: str) -> int:
     return n
 
 
+def _positive_float(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not v > 0 or v == float("inf"):
+        raise argparse.ArgumentTypeError(f"{text!r} must be a positive number of seconds")
+    return v
+
+
 def _cmd_serve(args: argparse.Namespace) -> int:
     import uvicorn
 
+    from app.server import uvicorn_options
+
     if args.config:
         os.environ["SLUICE_CONFIG"] = args.config
-    _load(args)  # validate before uvicorn starts: a bad config exits 3 with one readable line
-    # the app logs one JSON line per request itself, so uvicorn's access log is off
+    settings = _load(args)  # validate before uvicorn starts: a bad config exits 3, one line
+    for flag, key in (("header_timeout_s", "header_timeout_s"), ("max_connections", "max_connections"),
+                      ("shutdown_timeout_s", "shutdown_timeout_s")):
+        if getattr(args, flag) is not None:  # the command line wins over [server]
+            setattr(settings, key, getattr(args, flag))
+    # the app logs one JSON line per request itself, so uvicorn's access log is off;
+    # header deadline, keep-alive, connection cap and shutdown bound come from [server]
     uvicorn.run("app.main:app", host=args.host, port=args.port, workers=1,
-                log_level=args.log_level, access_log=False)
+                log_level=args.log_level, access_log=False, **uvicorn_options(settings))
     return EXIT_OK
 
 
@@ -171,6 +188,15 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--port", type=int, default=int(os.environ.get("PORT", "8000")),
                    help="TCP port (default $PORT, else 8000)")
     s.add_argument("--config", help=config_help, metavar="FILE")
+    s.add_argument("--header-timeout-s", type=_positive_float, metavar="S",
+                   help="request line and headers must arrive within S seconds, else 408 "
+                   "(default [server] header_timeout_s, 10)")
+    s.add_argument("--max-connections", type=_positive_int, metavar="N",
+                   help="open connections + running requests; beyond it 503 "
+                   "(default [server] max_connections, 1000)")
+    s.add_argument("--shutdown-timeout-s", type=_positive_float, metavar="S",
+                   help="on SIGTERM wait at most S seconds for running requests "
+                   "(default [server] shutdown_timeout_s, 15)")
     s.add_argument("--log-level", default="info",
                    choices=["critical", "error", "warning", "info", "debug"],
                    help="uvicorn's log level (default info)")

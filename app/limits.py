@@ -4,9 +4,10 @@
   IN-list length, ``filter_sql`` length — refused with a 422 whose pointer names the part;
 * request body size, also for chunked bodies without ``Content-Length`` (ASGI middleware,
   413);
-* a statement timeout per source (``statement_timeout_ms``): the statement is interrupted
-  from a timer thread (DuckDB: ``cursor.interrupt()`` through the engine's ``canceller()``)
-  and the request answers 504;
+* a deadline per request (``statement_timeout_ms`` of the source, ``app.deadline``): the
+  whole request -- planning, extents, main statement, shaping -- must finish within it; a
+  running statement is interrupted from a timer thread when the budget runs out (DuckDB:
+  ``cursor.interrupt()`` through the engine's ``canceller()``) and the request answers 504;
 * admission control per source (``max_concurrent`` requests running on it at once): beyond
   it a request waits at most ``queue_wait_ms`` and then answers 503 with ``Retry-After``.
 
@@ -33,6 +34,7 @@ Config::
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import dataclasses
 import threading
@@ -40,6 +42,7 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Any
 
+from app import deadline
 from app.engines.base import EngineError, EngineUnavailable
 from app.problems import PROBLEM_JSON, Problem
 from planner.errors import PlanError, pointer
@@ -190,11 +193,15 @@ class Overloaded(Problem):
 
 
 class StatementTimeout(Problem):
-    def __init__(self, source: str, ms: int) -> None:
-        super().__init__(504, "statement-timeout", "Statement timed out",
-                         f"source {source!r}: the statement ran longer than {ms} ms "
-                         "(statement_timeout_ms) and was cancelled; narrow the request "
-                         "(where, fewer bins or keys)", source=source)
+    def __init__(self, source: str, ms: int, silent: str | None = None) -> None:
+        if silent:  # the warehouse itself did not answer (frozen, black-holed)
+            detail = (f"source {source!r}: {silent}; the request's deadline is {ms} ms "
+                      "(statement_timeout_ms)")
+        else:
+            detail = (f"source {source!r}: the request ran longer than {ms} ms "
+                      "(statement_timeout_ms) and was cancelled; narrow the request "
+                      "(where, fewer bins or keys)")
+        super().__init__(504, "statement-timeout", "Statement timed out", detail, source=source)
 
 
 class _Slot:
@@ -240,6 +247,23 @@ class Limiter:
         finally:
             slot.sem.release()
 
+    @contextlib.contextmanager
+    def deadline(self, source: str) -> Iterator[None]:
+        """The whole request under the source's ``statement_timeout_ms`` (app.deadline);
+        a budget spent between statements (planning, shaping) is a 504 too."""
+        ms = self.of(source).statement_timeout_ms
+        with deadline.within(ms / 1000.0 if ms > 0 else None):
+            try:
+                yield
+            except deadline.DeadlineExceeded:
+                raise StatementTimeout(source, ms) from None
+
+    def check_deadline(self, source: str) -> None:
+        try:
+            deadline.check()
+        except deadline.DeadlineExceeded:
+            raise StatementTimeout(source, self.of(source).statement_timeout_ms) from None
+
     def guard(self, source: str, engine: Any, user_sql: bool = False) -> "GuardedEngine":
         return GuardedEngine(engine, source, self.of(source).statement_timeout_ms, user_sql)
 
@@ -256,8 +280,14 @@ class GuardedEngine:
         return getattr(self._engine, name)
 
     def _run(self, fn: Callable[[str], Any], sql: str) -> Any:
+        # the statement gets what is left of the request's budget (app.deadline), else the
+        # source's own statement_timeout_ms; a spent budget runs nothing more (504)
+        left = deadline.remaining()
+        if left is not None and left <= 0:
+            raise StatementTimeout(self._source, self._ms)
+        secs = left if left is not None else (self._ms / 1000.0 if self._ms > 0 else None)
         cancel = getattr(self._engine, "canceller", None)
-        if self._ms <= 0 or cancel is None:
+        if secs is None or cancel is None:
             return self._call(fn, sql, fired=None)
         interrupt = cancel()
         state = {"done": False, "fired": False}
@@ -270,7 +300,7 @@ class GuardedEngine:
                 state["fired"] = True
             interrupt()
 
-        timer = threading.Timer(self._ms / 1000.0, fire)
+        timer = threading.Timer(secs, fire)
         timer.daemon = True
         timer.start()
         try:
@@ -285,7 +315,8 @@ class GuardedEngine:
             return fn(sql)
         except EngineError as e:
             if server_timeout(e.message):
-                raise StatementTimeout(self._source, self._ms) from None
+                raise StatementTimeout(self._source, self._ms,
+                                       e.message if CLIENT_DEADLINE in e.message else None) from None
             if isinstance(e, EngineUnavailable):
                 raise  # the warehouse is down (even if the timer fired meanwhile): 503
             if fired is not None and fired["fired"]:
@@ -303,12 +334,18 @@ class GuardedEngine:
         return self._run(self._engine.fetch_row, sql)
 
 
+#: what engines write when their own watchdog gave up on a server that did not answer
+CLIENT_DEADLINE = "(client-side deadline)"
+
+
 def server_timeout(message: str) -> bool:
-    """A timeout the server enforced itself (PostgreSQL ``statement_timeout``, MySQL
-    ``max_execution_time``)."""
+    """A timeout: enforced by the server itself (PostgreSQL ``statement_timeout``, MySQL
+    ``max_execution_time``), or by the engine's client-side deadline when the server did not
+    answer at all (504 either way: the gateway gave up waiting)."""
     low = message.lower()
     return ("canceling statement due to statement timeout" in low
-            or "maximum statement execution time exceeded" in low)
+            or "maximum statement execution time exceeded" in low
+            or CLIENT_DEADLINE in low)
 
 
 # =====================================================================================
@@ -322,8 +359,8 @@ class BodyLimitMiddleware:
     to the app, so a chunked upload that grows past the cap is cut off without ever reaching
     the JSON parser."""
 
-    def __init__(self, app: Any, max_bytes: int) -> None:
-        self.app, self.max_bytes = app, max_bytes
+    def __init__(self, app: Any, max_bytes: int, body_timeout_s: float | None = None) -> None:
+        self.app, self.max_bytes, self.body_timeout_s = app, max_bytes, body_timeout_s
 
     async def __call__(self, scope: dict, receive: Callable, send: Callable) -> None:
         if scope["type"] != "http" or scope.get("method") in ("GET", "HEAD", "OPTIONS"):
@@ -346,8 +383,20 @@ class BodyLimitMiddleware:
         chunks: list[bytes] = []
         size = 0
         more = True
+        # a body dribbled byte by byte must not hold a connection (and its memory) forever:
+        # the whole body has body_timeout_s to arrive, else 408 (RFC 9110, 15.5.9)
+        end = None if not self.body_timeout_s else asyncio.get_running_loop().time() + self.body_timeout_s
         while more:
-            msg = await receive()
+            if end is None:
+                msg = await receive()
+            else:
+                try:
+                    msg = await asyncio.wait_for(receive(), max(end - asyncio.get_running_loop().time(), 0.0))
+                except TimeoutError:
+                    await self._reject(scope, send, 408, "body-timeout", "Request body too slow",
+                                       f"the body did not arrive within {self.body_timeout_s:g} s "
+                                       "(server body_timeout_s)")
+                    return
             if msg["type"] == "http.disconnect":
                 return
             body = msg.get("body", b"")

@@ -20,6 +20,7 @@ from app.catalog import Catalog, UnknownSource
 from app.encode import ARROW_STREAM, arrow_stream, dumps
 from app.engines import EngineError, EngineUnavailable
 from app.limits import BodyLimitMiddleware, server_timeout
+from app.probes import Readiness
 from app.problems import PROBLEM_JSON, Problem, from_plan_error, problem_response, validation_handler
 from app.service import ChartService
 from app.settings import ConfigError, Settings, load_settings
@@ -47,6 +48,21 @@ def _problem_responses() -> dict[int | str, dict[str, Any]]:
             503: "The source's engine is unavailable, or busy (Retry-After)",
             504: "The statement ran past the source's statement_timeout_ms"}
     return {code: {"description": d, "content": {PROBLEM_JSON: {}}} for code, d in desc.items()}
+
+
+def engine_problem(exc: EngineError) -> Problem:
+    """The problem document for an engine failure: 504 for a server-side statement timeout,
+    503 (Retry-After) when the source is unavailable, 502 when it rejected the statement."""
+    if server_timeout(exc.message):  # the server's own statement_timeout (app.limits)
+        return Problem(504, "statement-timeout", "Statement timed out",
+                       f"source {exc.source!r}: {exc.message}", source=exc.source)
+    if isinstance(exc, EngineUnavailable):
+        return Problem(503, "source-unavailable", "Source unavailable",
+                       f"source {exc.source!r}: {exc.message}", source=exc.source,
+                       headers={"Retry-After": "5"})
+    log.error("engine error on %s: %s", exc.source, exc.message)
+    return Problem(502, "engine-error", "The engine rejected the statement",
+                   f"source {exc.source!r}: {exc.message}", source=exc.source)
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
@@ -96,22 +112,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     async def _problem(request: Request, exc: Problem) -> Response:
         return problem_response(exc, request.url.path)
 
-    @app.exception_handler(EngineUnavailable)
-    async def _unavailable(request: Request, exc: EngineUnavailable) -> Response:
-        if server_timeout(exc.message):  # the server's own statement_timeout (app.limits)
-            return problem_response(Problem(504, "statement-timeout", "Statement timed out",
-                                            f"source {exc.source!r}: {exc.message}",
-                                            source=exc.source), request.url.path)
-        return problem_response(Problem(503, "source-unavailable", "Source unavailable",
-                                        f"source {exc.source!r}: {exc.message}", source=exc.source,
-                                        headers={"Retry-After": "5"}), request.url.path)
-
-    @app.exception_handler(EngineError)
+    @app.exception_handler(EngineError)  # EngineUnavailable too (503; 504 for a timeout)
     async def _engine_error(request: Request, exc: EngineError) -> Response:
-        log.error("engine error on %s: %s", exc.source, exc.message)
-        return problem_response(Problem(502, "engine-error", "The engine rejected the statement",
-                                        f"source {exc.source!r}: {exc.message}", source=exc.source),
-                                request.url.path)
+        return problem_response(engine_problem(exc), request.url.path)
 
     @app.exception_handler(Exception)
     async def _internal(request: Request, exc: Exception) -> Response:
@@ -151,10 +154,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         """The cached answer for ``req`` in ``fmt`` (single-flight), or ``run()``'s."""
         if not cache.enabled:
             return run(), "miss"
-        version = source_version(catalog.config(req.source).engine, catalog.engine(req.source),
-                                 float(cache_cfg.get("ttl_s", 60.0)))
-        return cache.compute(cache.key(canonical(req), version, fmt), req.source, run,
-                             lookup=lookup)
+        with service.limiter.deadline(req.source):  # the data version is asked on time too
+            version = source_version(catalog.config(req.source).engine, catalog.engine(req.source),
+                                     float(cache_cfg.get("ttl_s", 60.0)))
+            return cache.compute(cache.key(canonical(req), version, fmt), req.source, run,
+                                 lookup=lookup)
 
     def json_answer(req: ChartRequest, lookup: bool, t_in: float) -> bytes:
         """The JSON answer bytes, from the cache when it has them (chart and batch routes)."""
@@ -192,8 +196,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                 chart.model_dump(by_alias=True, exclude_none=True) | {"source": req.source})
             try:
                 results.append(json_answer(full, True, time.perf_counter()))
-            except PlanError as e:
-                prob = from_plan_error(e)
+            except (PlanError, Problem, EngineError) as e:
+                # this chart's own problem (422, 403, 503, 504, ...); the others still answer
+                prob = (from_plan_error(e) if isinstance(e, PlanError)
+                        else engine_problem(e) if isinstance(e, EngineError) else e)
                 prob.ptr = f"/charts/{i}{prob.ptr}" if prob.ptr is not None else f"/charts/{i}"
                 results.append(dumps(prob.body()))
         # the answers are already encoded (and may come from the cache): splice the bytes
@@ -225,41 +231,34 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         except UnknownSource as e:
             raise Problem(404, "unknown-source", "Unknown source", f"unknown source {name!r}",
                           "", suggestions=nearest(name, auth.filter_names(e.known))) from None
-        entry = catalog.entry(name)
+        with service.limiter.deadline(name):  # a frozen warehouse answers on time
+            entry = catalog.entry(name)
         cols = [{"name": c.name, "type": c.sql_type, "kind": c.kind}
                 for c in entry.schema.columns.values()]
         return JSONResponse({"name": name, "engine": cfg.engine, "table": cfg.table,
                              "columns": cols, "row_count": entry.row_count})
 
     @app.get("/healthz", tags=["operations"])
-    def healthz() -> Response:
-        """Liveness: the process is up and answering (touches no source)."""
+    async def healthz() -> Response:
+        """Liveness: the process is up and answering. An async route doing no I/O, so it
+        never waits for a worker thread behind running queries (app.probes)."""
         return JSONResponse({"status": "ok"})
 
+    readiness = app.state.readiness = Readiness(catalog, settings.ready_timeout_s,
+                                                settings.ready_ttl_s)
+
     @app.get("/readyz", tags=["operations"])
-    def readyz() -> Response:
-        """Readiness: every configured source answers; 503 with per-source detail if not."""
-        detail, ok = {}, True
-        for name in catalog.names():
-            t0 = time.perf_counter()
-            engine = catalog.config(name).engine
-            try:
-                entry = catalog.entry(name)
-                detail[name] = {"ready": True, "engine": engine, "row_count": entry.row_count,
-                                "columns": len(entry.schema.columns)}
-            except EngineError as e:
-                ok = False
-                detail[name] = {"ready": False, "engine": engine, "error": e.message}
-            except Exception as e:  # a probe must answer, whatever the engine raised
-                ok = False
-                detail[name] = {"ready": False, "engine": engine, "error": f"{type(e).__name__}: {e}"}
-            detail[name]["check_ms"] = round((time.perf_counter() - t0) * 1000.0, 3)
+    async def readyz() -> Response:
+        """Readiness: every configured source answers; 503 with per-source detail if not.
+        Answers within ``ready_timeout_s``; checks are shared and cached (app.probes)."""
+        ok, detail = await readiness.report(catalog.names())
         detail = {k: v for k, v in detail.items() if auth.allowed(k)}  # no key: no names
         return JSONResponse({"ready": ok, "sources": detail}, status_code=200 if ok else 503)
 
     @app.get("/metrics", tags=["operations"], response_class=Response)
     def metrics_text() -> Response:
-        """Prometheus text exposition of this app's metrics."""
+        """Prometheus text exposition of this app's metrics (with keys configured: operator
+        keys only, app.auth)."""
         body, ctype = metrics.render()
         return Response(body, media_type=ctype)
 
@@ -271,7 +270,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
 
     # body cap (also chunked bodies), then API keys, then CORS (answers preflights itself)
-    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
+    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
+                       body_timeout_s=settings.body_timeout_s)
     app.add_middleware(auth.AuthMiddleware, keys=getattr(settings, "keys", None) or [])
     if getattr(settings, "cors_origins", None):
         from starlette.middleware.cors import CORSMiddleware

@@ -27,6 +27,7 @@ matched the request's filters), ``rows_returned_total{source}``.
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import os
 import re
@@ -239,8 +240,22 @@ class ObservabilityMiddleware:
                 message = dict(message, headers=headers)
             await send(message)
 
+        started = False
+
+        async def _send_tracked(message: dict[str, Any]) -> None:
+            nonlocal started
+            if message["type"] == "http.response.start":
+                started = True
+            await _send(message)
+
         try:
-            await self.app(scope, receive, _send)
+            await self.app(scope, receive, _send_tracked)
+        except asyncio.CancelledError:
+            # the server cut the request off (SIGTERM past shutdown_timeout_s): say so with
+            # a 503 the client may retry elsewhere, not the server's bare 500
+            if not started:
+                await _send_problem_503(_send, scope.get("path", ""))
+            raise
         finally:
             seconds = time.perf_counter() - t0
             self.metrics.in_flight.dec()
@@ -257,3 +272,20 @@ class ObservabilityMiddleware:
                 if info.source is not None:
                     fields["source"] = info.source
                 self.log.info("request", extra={"fields": fields})
+
+
+async def _send_problem_503(send: Any, instance: str) -> None:
+    from app.encode import dumps
+    from app.problems import PROBLEM_JSON, Problem
+
+    p = Problem(503, "shutting-down", "Server shutting down",
+                "the server is shutting down and stopped this request; retry")
+    body = dumps(p.body(instance))
+    try:
+        await send({"type": "http.response.start", "status": 503,
+                    "headers": [(b"content-type", PROBLEM_JSON.encode()),
+                                (b"content-length", str(len(body)).encode()),
+                                (b"retry-after", b"1"), (b"connection", b"close")]})
+        await send({"type": "http.response.body", "body": body})
+    except Exception:  # noqa: BLE001 - the connection may be gone already
+        pass

@@ -183,7 +183,8 @@ class ChartService:
 
     def plan_sql(self, req: ChartRequest, dialect_name: str | None) -> dict[str, Any]:
         self.check_source(req.source)
-        with self.limiter.admit(req.source):  # max_concurrent per source, else 503
+        # the source's deadline covers the whole request (app.deadline); max_concurrent, else 503
+        with self.limiter.deadline(req.source), self.limiter.admit(req.source):
             return self._plan_sql(req, dialect_name)
 
     def _plan_sql(self, req: ChartRequest, dialect_name: str | None) -> dict[str, Any]:
@@ -200,8 +201,12 @@ class ChartService:
     # ---- running -------------------------------------------------------------------
     def run(self, req: ChartRequest) -> ChartResult:
         self.check_source(req.source)
-        with self.limiter.admit(req.source):  # max_concurrent per source, else 503
-            return self._run(req)
+        # the source's deadline covers the whole request: planning, extents, execution and
+        # shaping (app.deadline); max_concurrent per source, else 503
+        with self.limiter.deadline(req.source), self.limiter.admit(req.source):
+            result = self._run(req)
+            self.limiter.check_deadline(req.source)  # shaping ran past it: 504 all the same
+            return result
 
     def _run(self, req: ChartRequest) -> ChartResult:
         timing: dict[str, float] = {}

@@ -73,6 +73,14 @@ class Settings:
     max_limit: int = 100_000
     max_body_bytes: int = 1_000_000
     request_log: bool = True  # one JSON log line per request on the "sluice.access" logger
+    # connection hygiene (app.server, `sluice serve`) and probes (app.probes)
+    header_timeout_s: float = 10.0  # request line + headers must arrive within this
+    keepalive_timeout_s: float = 5.0  # idle keep-alive connections are closed after this
+    body_timeout_s: float = 30.0  # the whole request body must arrive within this (408)
+    max_connections: int = 1000  # open connections + running requests; beyond: 503
+    shutdown_timeout_s: float = 15.0  # SIGTERM: requests still running after this are cut
+    ready_timeout_s: float = 2.0  # /readyz answers within this
+    ready_ttl_s: float = 1.0  # a source's readiness check is reused for this long
     # not [server] scalars: [limits] (app.limits.Limits), [[keys]] (app.auth.ApiKey) and
     # [server] cors_origins
     limits: Any = None

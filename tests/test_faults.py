@@ -10,6 +10,7 @@ machine's shared server on 5432 is never touched.
 
 from __future__ import annotations
 
+import contextlib
 import glob
 import json
 import os
@@ -20,6 +21,7 @@ import subprocess
 import sys
 import threading
 import time
+import urllib.error
 import urllib.request
 from pathlib import Path
 
@@ -175,6 +177,136 @@ def test_warehouse_down_mid_run_then_back(cluster, tmp_path):
         assert r.json()["data"]["count"] and sum(r.json()["data"]["count"]) == fx.N
 
 
+# =====================================================================================
+# a frozen warehouse (SIGSTOP: what a network black hole looks like to the client)
+# =====================================================================================
+
+def _cluster_pids(cluster) -> list[int]:
+    """The postmaster (first line of postmaster.pid) and every process it forked."""
+    pid = int((cluster.data / "postmaster.pid").read_text().split()[0])
+    out = [pid]
+    for p in os.listdir("/proc"):
+        if p.isdigit():
+            try:
+                stat = Path(f"/proc/{p}/stat").read_text()
+            except OSError:
+                continue
+            if int(stat.rsplit(")", 1)[1].split()[1]) == pid:  # field 4: ppid (proc(5))
+                out.append(int(p))
+    return out
+
+
+@contextlib.contextmanager
+def _frozen(cluster):
+    pids = _cluster_pids(cluster)
+    for p in pids:
+        os.kill(p, signal.SIGSTOP)
+    try:
+        yield
+    finally:
+        for p in pids:
+            try:
+                os.kill(p, signal.SIGCONT)
+            except ProcessLookupError:
+                pass
+
+
+FROZEN_TIMEOUT_MS = 1500
+SLACK_S = 1.5  # scheduling on 2 shared cores + the engine's GRACE_S (0.5 s)
+
+
+def _frozen_config(cluster, tmp_path, timeout_ms=FROZEN_TIMEOUT_MS) -> Path:
+    cfg = tmp_path / "frozen.toml"
+    cfg.write_text(f'[sources.warehouse]\nengine = "postgres"\ndsn = "{cluster.dsn}"\n'
+                   f'table = "deliveries"\nconnect_timeout_s = 2\nstatement_timeout_ms = {timeout_ms}\n'
+                   "[server]\nrequest_log = false\nready_timeout_s = 1.0\n[cache]\nenabled = false\n")
+    return cfg
+
+
+def test_frozen_warehouse_answers_on_time_and_recovers(cluster, tmp_path):
+    from fastapi.testclient import TestClient
+
+    from app.main import create_app
+    from app.settings import load_settings
+
+    cfg = _frozen_config(cluster, tmp_path)
+    with TestClient(create_app(load_settings(cfg, environ={})), raise_server_exceptions=False) as c:
+        assert _chart(c).status_code == 200  # warm: the pool holds a live connection
+        with _frozen(cluster):
+            timings = {}
+            for what, call in (("chart", lambda: _chart(c)),
+                               ("chart again", lambda: _chart(c)),
+                               ("source", lambda: c.get("/v1/sources/warehouse")),
+                               ("readyz", lambda: c.get("/readyz")),
+                               ("healthz", lambda: c.get("/healthz"))):
+                t0 = time.monotonic()
+                r = call()
+                timings[what] = (r.status_code, round(time.monotonic() - t0, 2))
+                if what == "healthz":
+                    assert r.status_code == 200
+                    continue
+                assert r.status_code in (503, 504), (what, r.status_code, r.text[:300])
+                assert r.headers["content-type"].startswith("application/problem+json") or what == "readyz"
+            print(f"frozen PostgreSQL, statement_timeout_ms {FROZEN_TIMEOUT_MS}: {timings}")
+            budget = FROZEN_TIMEOUT_MS / 1000.0 + SLACK_S
+            assert all(timings[w][1] < budget for w in ("chart", "chart again", "source")), timings
+            assert timings["readyz"][1] < 1.0 + SLACK_S, timings
+            assert timings["healthz"][1] < 0.5, timings
+        r = _until_ok(c)  # SIGCONT: the pool replaces the dropped connections by itself
+        assert sum(r.json()["data"]["count"]) == fx.N
+
+
+def test_sigterm_is_bounded_with_a_frozen_warehouse(cluster, tmp_path):
+    """A chart blocked on a frozen warehouse (its own deadline 60 s away) does not hold the
+    shutdown: past shutdown_timeout_s the request is cut (503) and the process exits."""
+    cfg = _frozen_config(cluster, tmp_path, timeout_ms=60_000)
+    port = _free_port()
+    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", "--config", str(cfg),
+                             "--port", str(port), "--shutdown-timeout-s", "1"],
+                            cwd=Path(__file__).resolve().parents[1], env=dict(os.environ),
+                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
+    url = f"http://127.0.0.1:{port}/v1/chart"
+    body = json.dumps({"source": "warehouse", **BODY}).encode()
+
+    def post():
+        req = urllib.request.Request(url, data=body, headers={"content-type": "application/json"})
+        try:
+            with urllib.request.urlopen(req, timeout=90) as resp:
+                return resp.status
+        except urllib.error.HTTPError as e:
+            return e.code
+        except Exception as e:  # noqa: BLE001 - recorded, asserted below
+            return repr(e)
+
+    try:
+        deadline = time.monotonic() + 60
+        while not _port_open(port):
+            assert proc.poll() is None, proc.stdout.read().decode()[-2000:]
+            assert time.monotonic() < deadline, "sluice serve did not start"
+            time.sleep(0.2)
+        assert post() == 200
+        result = {}
+        with _frozen(cluster):
+            t = threading.Thread(target=lambda: result.update(status=post()))
+            t.start()
+            time.sleep(0.7)
+            assert "status" not in result  # blocked on the frozen server
+            t0 = time.monotonic()
+            proc.send_signal(signal.SIGTERM)
+            code = proc.wait(30)
+            took = time.monotonic() - t0
+            t.join(30)
+        print(f"SIGTERM with a frozen warehouse: exited after {took:.2f} s, the cut request "
+              f"answered {result.get('status')}")
+        assert code in (0, -signal.SIGTERM), proc.stdout.read().decode()[-2000:]
+        assert took < 1.0 + 4.0, took  # shutdown_timeout_s + closing the engines + slack
+        assert result.get("status") == 503, result
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
+
+
 def _port_open(port: int) -> bool:
     with socket.socket() as s:
         s.settimeout(0.5)
@@ -284,3 +416,116 @@ def test_sigterm_drains_a_slow_request(tmp_path):
         if proc.poll() is None:
             proc.kill()
             proc.wait(10)
+
+
+# =====================================================================================
+# MariaDB behind a network black hole (a loopback proxy that stops forwarding)
+# =====================================================================================
+
+class FreezableProxy:
+    """TCP proxy 127.0.0.1:<port> -> ``upstream``; ``frozen`` holds every byte in both
+    directions (connections stay open, nothing arrives: a black hole, not a refusal)."""
+
+    def __init__(self, upstream: tuple[str, int]) -> None:
+        self.upstream = upstream
+        self.frozen = threading.Event()
+        self.sock = socket.socket()
+        self.sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        self.sock.bind(("127.0.0.1", 0))
+        self.sock.listen(64)
+        self.port = self.sock.getsockname()[1]
+        self.closed = False
+        threading.Thread(target=self._accept, daemon=True).start()
+
+    def _accept(self) -> None:
+        while not self.closed:
+            try:
+                client, _ = self.sock.accept()
+            except OSError:
+                return
+            try:
+                server = socket.create_connection(self.upstream, timeout=5)
+                server.settimeout(None)
+            except OSError:
+                client.close()
+                continue
+            for a, b in ((client, server), (server, client)):
+                threading.Thread(target=self._pump, args=(a, b), daemon=True).start()
+
+    def _pump(self, src: socket.socket, dst: socket.socket) -> None:
+        try:
+            while True:
+                data = src.recv(65536)
+                if not data:
+                    break
+                while self.frozen.is_set() and not self.closed:
+                    time.sleep(0.05)
+                dst.sendall(data)
+        except OSError:
+            pass
+        finally:
+            for s in (src, dst):
+                try:
+                    s.close()
+                except OSError:
+                    pass
+
+    def close(self) -> None:
+        self.closed = True
+        self.sock.close()
+
+
+def test_mariadb_behind_a_black_hole_answers_on_time_and_recovers(tmp_path):
+    pymysql = pytest.importorskip("pymysql")
+    try:
+        con = pymysql.connect(host="127.0.0.1", port=3306, user="root", password="",
+                              database="test", connect_timeout=3)
+    except pymysql.Error as e:
+        pytest.skip(f"MariaDB is not reachable on 127.0.0.1:3306: {e}")
+    table = "sluice_freeze_" + "".join(ch if ch.isalnum() else "_" for ch in
+                                        os.environ.get("PYTEST_XDIST_WORKER", "main")) + f"_{os.getpid()}"
+    df = fx.frame()
+    with con.cursor() as cur:
+        cur.execute(f"DROP TABLE IF EXISTS {table}")
+        cur.execute(f"CREATE TABLE {table} (id BIGINT, depot VARCHAR(32))")
+        cur.executemany(f"INSERT INTO {table} VALUES (%s, %s)",
+                        [(int(r.id), r.depot) for r in df.itertuples(index=False)])
+    con.commit()
+    proxy = FreezableProxy(("127.0.0.1", 3306))
+    try:
+        from fastapi.testclient import TestClient
+
+        from app.main import create_app
+        from app.settings import load_settings
+
+        cfg = tmp_path / "my.toml"
+        cfg.write_text(f'[sources.warehouse]\nengine = "mysql"\n'
+                       f'dsn = "mysql://root@127.0.0.1:{proxy.port}/test"\ntable = "test.{table}"\n'
+                       f"connect_timeout_s = 2\nstatement_timeout_ms = {FROZEN_TIMEOUT_MS}\n"
+                       "[server]\nrequest_log = false\nready_timeout_s = 1.0\n[cache]\nenabled = false\n")
+        with TestClient(create_app(load_settings(cfg, environ={})), raise_server_exceptions=False) as c:
+            r = _chart(c)
+            assert r.status_code == 200, r.text
+            # reference: pandas value_counts of the rows inserted above
+            assert sum(r.json()["data"]["count"]) == fx.N
+            proxy.frozen.set()
+            timings = {}
+            for what, call in (("chart", lambda: _chart(c)), ("chart again", lambda: _chart(c)),
+                               ("source", lambda: c.get("/v1/sources/warehouse")),
+                               ("readyz", lambda: c.get("/readyz"))):
+                t0 = time.monotonic()
+                r = call()
+                timings[what] = (r.status_code, round(time.monotonic() - t0, 2))
+                assert r.status_code in (503, 504), (what, r.status_code, r.text[:300])
+            print(f"MariaDB behind a black hole, statement_timeout_ms {FROZEN_TIMEOUT_MS}: {timings}")
+            budget = FROZEN_TIMEOUT_MS / 1000.0 + SLACK_S
+            assert all(timings[w][1] < budget for w in ("chart", "chart again", "source")), timings
+            assert timings["readyz"][1] < 1.0 + SLACK_S, timings
+            proxy.frozen.clear()
+            r = _until_ok(c)
+            assert sum(r.json()["data"]["count"]) == fx.N
+    finally:
+        proxy.close()
+        with con.cursor() as cur:
+            cur.execute(f"DROP TABLE IF EXISTS {table}")
+        con.close()

@@ -250,3 +250,35 @@ def test_postgres_statement_timeout_is_504(tmp_path):
     finally:
         with psycopg.connect(fx.PG_DSN, autocommit=True) as con:
             con.execute(f'DROP VIEW IF EXISTS "{view}"')
+
+
+@pytest.mark.parametrize("stage", ["plan", "shape"])
+def test_the_deadline_covers_planning_and_shaping(db, tmp_path, monkeypatch, stage):
+    """statement_timeout_ms bounds the whole request, not each statement: a planning (or
+    shaping) step that outlasts it -- slowed here with a sleep around the real step -- ends
+    in the 504, not in a late 200 (the statements themselves take milliseconds)."""
+    import app.service as service_mod
+
+    real = service_mod.prepare if stage == "plan" else service_mod.ChartService._shape
+
+    def slow(*a, **kw):
+        time.sleep(1.2)
+        return real(*a, **kw)
+
+    body = {"source": "deliveries", "channels": {"x": {"column": "fee", "bin": {"bins": 5}},
+                                                 "y": {"agg": "count"}}}
+    with _client(db, tmp_path, "statement_timeout_ms = 1000\n[server]\nrequest_log = false\n"
+                 "[cache]\nenabled = false\n") as c:
+        for attempt in range(3):  # warm (first open and imports); then well inside 1 s
+            r = c.post("/v1/chart", json=body)
+        assert r.status_code == 200 and sum(r.json()["data"]["count"]) == fx.N
+        if stage == "plan":
+            monkeypatch.setattr(service_mod, "prepare", slow)
+        else:
+            monkeypatch.setattr(service_mod.ChartService, "_shape", slow)
+        other = {**body, "where": [{"column": "fee", "gte": 0}]}  # not planned before (PlanCache)
+        p = _problem(c.post("/v1/chart", json=other), 504)
+        assert p["source"] == "deliveries" and "1000 ms" in p["detail"]
+        monkeypatch.undo()
+        r = c.post("/v1/chart", json=body)  # the same request, unslowed: answered again
+        assert r.status_code == 200 and sum(r.json()["data"]["count"]) == fx.N

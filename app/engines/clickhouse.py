@@ -22,6 +22,7 @@ from typing import Any
 import pyarrow as pa
 from sqlglot import exp
 
+from app import deadline
 from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
 
@@ -124,14 +125,18 @@ class ClickHouseHttpEngine(_ClickHouseBase):
         self._params = {**query, "readonly": "2", "default_format": "ArrowStream",
                         "output_format_arrow_string_as_string": "1",
                         "max_execution_time": f"{timeout_ms / 1000.0:g}"}
-        self._timeout = timeout_ms / 1000.0 + 5.0
+        self._timeout_s = timeout_ms / 1000.0 if timeout_ms > 0 else None
 
     def _query(self, sql: str) -> pa.Table:
         url = self._url + "?" + urllib.parse.urlencode(self._params)
         req = urllib.request.Request(url, data=sql.encode("utf-8"), headers=self._headers,
                                      method="POST")
         try:
-            with urllib.request.urlopen(req, timeout=self._timeout) as resp:
+            # client-side deadline (app.deadline): a server that stops answering is a 503 on
+            # time, not a hang; max_execution_time above is the server's own limit
+            secs = deadline.budget(self._timeout_s)
+            with urllib.request.urlopen(req, timeout=None if secs is None
+                                        else secs + deadline.GRACE_S) as resp:
                 body = resp.read()
         except urllib.error.HTTPError as e:
             detail = e.read().decode("utf-8", "replace").strip()

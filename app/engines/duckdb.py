@@ -1,9 +1,19 @@
-"""DuckDB engine: one read-only connection per source, one cursor per worker thread."""
+"""DuckDB engine: one read-only connection per source, one cursor per worker thread.
+
+File lifecycle: the engine remembers the identity of the file it opened (device, inode, size,
+modification time). ``stale()`` says when the path now names something else -- a file
+replaced atomically (a rebuilt file renamed over it), rewritten in place, or deleted -- and
+the catalog then closes every engine on that path and opens the file again (DuckDB keeps one
+database instance per path while any connection to it is open, so all of them must go
+first). A statement running on the closed engine answers 503 ("retry"); a missing file is a
+503 naming the source until it returns.
+"""
 
 from __future__ import annotations
 
 import os
 import threading
+import time
 from pathlib import Path
 from typing import Any, Callable
 
@@ -20,6 +30,8 @@ class DuckDBEngine(EngineBase):
     def __init__(self, cfg: SourceConfig) -> None:
         self.cfg = cfg
         self.path = Path(cfg.path or ":memory:")
+        self._opened = self._identity()  # before connecting: a later swap is then noticed
+        self._closing = False
         if not self.path.exists():
             raise EngineUnavailable(cfg.name, f"DuckDB file {self.path} does not exist "
                                     "(run `make demo` or fix `path` in the config)")
@@ -53,11 +65,28 @@ class DuckDBEngine(EngineBase):
                 self._cursors.append(cur)
         return cur
 
+    def _identity(self) -> tuple[int, int, int, int] | None:
+        try:
+            st = os.stat(self.path)
+        except OSError:
+            return None
+        return (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+
+    def stale(self) -> bool:
+        """The path no longer names the file this engine opened (replaced or removed)."""
+        return self._identity() != self._opened
+
+    def _error(self, e: Exception) -> EngineError:
+        if self._closing:
+            return EngineUnavailable(self.cfg.name, f"DuckDB file {self.path} was replaced or "
+                                     "removed while the statement ran; retry")
+        return EngineError(self.cfg.name, str(e))
+
     def execute(self, sql: str) -> pa.Table:
         try:
             return self._cursor().sql(sql).to_arrow_table()
         except duckdb.Error as e:
-            raise EngineError(self.cfg.name, str(e)) from None
+            raise self._error(e) from None
 
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
@@ -70,12 +99,15 @@ class DuckDBEngine(EngineBase):
         try:
             rows = self._cursor().execute(q, params).fetchall()
         except duckdb.Error as e:
-            raise EngineError(self.cfg.name, str(e)) from None
+            raise self._error(e) from None
         return [(r[0], r[1]) for r in rows]
 
     def data_version(self) -> str:
-        st = os.stat(self.path)
-        return f"{st.st_ino}:{st.st_size}:{st.st_mtime_ns}"
+        ident = self._identity()
+        if ident is None:
+            raise EngineUnavailable(self.cfg.name, f"DuckDB file {self.path} no longer exists "
+                                    f"(source {self.cfg.name!r}); it is reopened when it returns")
+        return f"{ident[1]}:{ident[2]}:{ident[3]}"
 
     def canceller(self) -> Callable[[], None]:
         """Interrupts the statement the *calling* thread is about to run (statement timeouts:
@@ -90,6 +122,27 @@ class DuckDBEngine(EngineBase):
                 pass
 
     def close(self) -> None:
-        for cur in self._cursors:
-            cur.close()
-        self._con.close()
+        """Interrupt what still runs, then close every cursor and the connection (a busy
+        cursor refuses to close until its statement has stopped: retry briefly)."""
+        self._closing = True
+        with self._lock:
+            cursors, self._cursors = list(self._cursors), []
+        for cur in cursors:
+            try:
+                cur.interrupt()
+            except duckdb.Error:
+                pass
+        end = time.monotonic() + 5.0
+        for cur in cursors:
+            while True:
+                try:
+                    cur.close()
+                    break
+                except duckdb.Error:
+                    if time.monotonic() > end:
+                        break
+                    time.sleep(0.01)
+        try:
+            self._con.close()
+        except duckdb.Error:
+            pass

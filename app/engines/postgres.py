@@ -5,16 +5,29 @@ Read-only at the session level: every connection starts with
 ``statement_timeout`` from the source option ``statement_timeout_ms`` (default 30000) and
 ``TimeZone=UTC``. Options: ``pool_min`` (default 1), ``pool_max`` (default 4),
 ``connect_timeout_s`` (default 10).
+
+Client-side deadline: the server's ``statement_timeout`` cannot fire on a server that is
+stopped or behind a network black hole (the kernel still accepts the connection and
+acknowledges every byte, so TCP keepalives do not help). Every call therefore runs under
+``app.deadline.budget`` (the request's budget, else ``statement_timeout_ms``): at the
+budget ``app.limits`` sends a cancel request (``cancel_safe``, itself bounded), and
+``GRACE_S`` later a watchdog shuts the connection's socket down, so the blocked driver call
+returns at once (504, "did not answer ... (client-side deadline)") and the pool replaces
+the connection. Waiting for a pooled connection and opening the pool are bounded by the
+same budget (503 when no connection could be had).
 """
 
 from __future__ import annotations
 
+import os
+import socket
 import threading
 import time
 from typing import Any
 
 import pyarrow as pa
 
+from app import deadline
 from app.engines.arrow import UTC_US, rows_to_table
 from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
@@ -53,10 +66,12 @@ class PostgresEngine(EngineBase):
             # a SET on a pooled connection (e.g. default_transaction_read_only = off) must not
             # outlive its statement: RESET ALL restores the read-only start-up options
             reset=lambda conn: conn.execute("RESET ALL"))
+        self._timeout_s = timeout / 1000.0 if timeout > 0 else None
+        connect_s = float(cfg.options.get("connect_timeout_s", 10))
         try:
-            self.pool.open(wait=True, timeout=float(cfg.options.get("connect_timeout_s", 10)))
+            self.pool.open(wait=True, timeout=max(min(connect_s, deadline.budget(connect_s) or connect_s), 0.1))
         except Exception as e:  # noqa: BLE001 - PoolTimeout or OperationalError
-            self.pool.close()
+            self.pool.close(timeout=1.0)
             raise EngineUnavailable(cfg.name, f"cannot connect to PostgreSQL: {e}") from None
         # waiting for a pooled connection is bounded like connecting: a down server answers
         # 503 after connect_timeout_s instead of the pool's default 30 s
@@ -67,8 +82,12 @@ class PostgresEngine(EngineBase):
 
     def _run(self, sql: str, params: tuple | None = None) -> tuple[list[str], list[Any], list[tuple]]:
         psycopg = self._psycopg
+        secs = deadline.budget(self._timeout_s)  # client-side deadline (module docstring)
+        wait = self._wait_s if secs is None else max(min(self._wait_s, secs), 0.05)
+        dog = _Watchdog(None if secs is None else secs + deadline.GRACE_S)
         try:
-            with self.pool.connection(timeout=self._wait_s) as conn:
+            with self.pool.connection(timeout=wait) as conn:
+                dog.arm(conn)
                 self._active[threading.get_ident()] = conn
                 try:
                     cur = conn.execute(sql, params)
@@ -77,11 +96,17 @@ class PostgresEngine(EngineBase):
                 finally:
                     self._active.pop(threading.get_ident(), None)
         except psycopg.OperationalError as e:
+            if dog.fired:
+                raise EngineUnavailable(self.cfg.name, "PostgreSQL did not answer within "
+                                        f"{secs:.1f} s (client-side deadline); the connection "
+                                        "was dropped") from None
             raise EngineUnavailable(self.cfg.name, f"PostgreSQL: {e}") from None
         except psycopg.Error as e:
             raise EngineError(self.cfg.name, f"PostgreSQL: {e}".strip()) from None
         except Exception as e:  # noqa: BLE001 - pool timeout
             raise EngineUnavailable(self.cfg.name, f"PostgreSQL: {e}") from None
+        finally:
+            dog.disarm()
         return [d.name for d in desc], [d.type_code for d in desc], rows
 
     def execute(self, sql: str) -> pa.Table:
@@ -129,11 +154,61 @@ class PostgresEngine(EngineBase):
         def cancel() -> None:
             conn = self._active.get(ident)
             if conn is not None:
-                try:
-                    conn.cancel()
-                except Exception:  # noqa: BLE001 - finished meanwhile
+                try:  # bounded: a stopped server never answers the cancel request either
+                    conn.cancel_safe(timeout=max(deadline.GRACE_S, 0.1))
+                except Exception:  # noqa: BLE001 - finished meanwhile, or no answer
                     pass
         return cancel
 
     def close(self) -> None:
-        self.pool.close()
+        """Bounded, even with a frozen server: statements still running are cut off (their
+        sockets shut down) and the pool gets 1 s to close."""
+        for conn in list(self._active.values()):
+            _shutdown(conn)
+        self.pool.close(timeout=1.0)
+
+
+def _shutdown(conn: Any) -> None:
+    """Shut the connection's socket down: a driver call blocked on it returns at once."""
+    try:
+        s = socket.socket(fileno=os.dup(conn.pgconn.socket))
+        try:
+            s.shutdown(socket.SHUT_RDWR)  # acts on the socket, not just this fd
+        finally:
+            s.close()
+    except Exception:  # noqa: BLE001 - already closed
+        pass
+
+
+class _Watchdog:
+    """Shuts down the socket of a connection whose call outlives ``seconds``: the driver's
+    blocked read returns (an OperationalError) and the pool discards the connection."""
+
+    def __init__(self, seconds: float | None) -> None:
+        self.seconds = seconds
+        self.fired = False
+        self._conn: Any = None
+        self._timer: threading.Timer | None = None
+        self._lock = threading.Lock()
+
+    def arm(self, conn: Any) -> None:
+        if self.seconds is None:
+            return
+        self._conn = conn
+        self._timer = threading.Timer(self.seconds, self._fire)
+        self._timer.daemon = True
+        self._timer.start()
+
+    def _fire(self) -> None:
+        with self._lock:
+            conn, self._conn = self._conn, None
+            if conn is None:
+                return
+            self.fired = True
+            _shutdown(conn)
+
+    def disarm(self) -> None:
+        with self._lock:
+            self._conn = None
+        if self._timer is not None:
+            self._timer.cancel()

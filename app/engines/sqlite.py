@@ -18,6 +18,7 @@ from urllib.parse import quote
 
 import pyarrow as pa
 
+from app import deadline
 from app.engines.arrow import rows_to_table
 from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
@@ -53,8 +54,9 @@ class SQLiteEngine(EngineBase):
 
     def _run(self, sql: str, params: tuple = ()) -> tuple[list[str], list[tuple]]:
         conn = self._conn()
-        deadline = time.monotonic() + self._timeout_s
-        conn.set_progress_handler(lambda: 1 if time.monotonic() > deadline else 0, 10_000)
+        secs = deadline.budget(self._timeout_s)  # the request's budget, else the source's
+        end = time.monotonic() + (secs if secs is not None else float("inf"))
+        conn.set_progress_handler(lambda: 1 if time.monotonic() > end else 0, 10_000)
         try:
             cur = conn.execute(sql, params)
             rows = cur.fetchall()
