@@ -196,8 +196,9 @@ def ok(model: type[BaseModel], description: str, **more: Any) -> dict[int | str,
 
 
 CHART_FORMATS = {
-    ARROW_STREAM: {"schema": {"type": "string", "format": "binary"},
-                   "description": "Arrow IPC stream; metadata in the schema key `sluice`"},
+    ARROW_STREAM: {"schema": {"type": "string", "format": "binary",
+                              "description": "Arrow IPC stream; the JSON answer's metadata in "
+                              "the schema key `sluice`, channel and role per field"}},
     CSV: {"schema": {"type": "string"}, "example": "x_lo,x_hi,count\r\n0,5,10\r\n5,10,12\r\n"},
     PARQUET: {"schema": {"type": "string", "format": "binary"}},
 }
