@@ -122,6 +122,12 @@ class BatchAnswer(_Open):
         description="one per chart, in request order: its answer or its problem (pointer "
                     "under /charts/<i>)")
 
+    model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
+        "source": "deliveries", "results": [
+            {"type": "/problems/unknown-column", "title": "Unknown column", "status": 422,
+             "detail": "unknown column 'nope' in source 'deliveries'",
+             "pointer": "/charts/1/channels/x/column"}]}]})
+
 
 class SqlAnswer(_Open):
     dialect: str
@@ -170,10 +176,17 @@ class SourceDetail(_Open):
 class Health(_Open):
     status: Literal["ok"]
 
+    model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{"status": "ok"}]})
+
 
 class Readiness(_Open):
     ready: bool
     sources: dict[str, dict[str, Any]]
+
+    model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
+        "ready": True, "sources": {"deliveries": {"ready": True, "engine": "duckdb",
+                                                  "row_count": 2000000, "columns": 14,
+                                                  "check_ms": 0.8}}}]})
 
 
 def problem_responses(*codes: int) -> dict[int | str, dict[str, Any]]:

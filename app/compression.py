@@ -46,7 +46,7 @@ def choose_coding(header: str | None) -> str | None:
     ranges = _ranges(header)
     star = ranges.get("*", 0.0)
     best = None
-    for i, coding in enumerate(CODINGS):
+    for coding in CODINGS:
         q = ranges.get(coding, star)
         if q > 0 and (best is None or q > best[0]):
             best = (q, coding)
@@ -99,7 +99,8 @@ class CompressionMiddleware:
             names = {k.lower(): v for k, v in headers}
             ctype = names.get(b"content-type", b"").decode("latin-1").lower()
             body = message.get("body", b"")
-            eligible = ctype.startswith(COMPRESSIBLE) and b"content-encoding" not in names
+            eligible = (ctype.startswith(COMPRESSIBLE) and b"content-encoding" not in names
+                        and start.get("status", 200) != 206 and b"content-range" not in names)
             if eligible:  # the answer depends on Accept-Encoding: caches must know
                 headers.append((b"vary", b"Accept-Encoding"))
             if not eligible or coding is None or message.get("more_body") \

@@ -89,7 +89,7 @@ def test_examples_match_their_schemas(doc):
             jsonschema.Draft202012Validator(_json_schema(doc, {"$ref": f"#/components/schemas/{name}"})
                                             ).validate(example)
             checked += 1
-    assert checked >= 5  # ChartAnswer, ProblemDetail, SqlAnswer, SourcesAnswer, SourceDetail
+    assert checked >= 8  # ChartAnswer, ProblemDetail, BatchAnswer, SqlAnswer, SourcesAnswer, SourceDetail, Health, Readiness
 
 
 @pytest.mark.parametrize("method,path,body,status", [
