@@ -94,6 +94,15 @@ def column_values(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any]:
     return arr.to_pylist()
 
 
+def wire_values(arr: pa.ChunkedArray, tz: str | None = None) -> Any:
+    """``column_values`` for the JSON body: a decimal column becomes one raw JSON array of
+    its exact digits, formatted by Arrow (no Python ``Decimal`` per value: 10x faster)."""
+    if pa.types.is_decimal(arr.type) and arr.type.scale >= 0:
+        text = pc.fill_null(arr.cast(pa.string()), "null").to_pylist()
+        return orjson.Fragment(("[" + ",".join(text) + "]").encode())
+    return column_values(arr, tz)
+
+
 def domain(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any] | None:
     t = arr.type
     if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_timestamp(t) \

@@ -177,7 +177,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             result = service.run(req)
             observability.record_chart(req.source, result.meta, result.timing)
             t0 = time.perf_counter()
-            payload = service.to_json(result)
+            payload = service.to_json(result, wire=True)  # decimals: exact digits, vectorised
             payload.pop("cache", None)
             payload.pop("timing_ms", None)
             body = open_json(payload)

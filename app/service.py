@@ -12,7 +12,8 @@ from typing import Any
 import pyarrow as pa
 
 from app.catalog import Catalog, SourceEntry, UnknownSource
-from app.encode import column_values, domain, instant_text, normalize_column, type_name
+from app.encode import (column_values, domain, instant_text, normalize_column, type_name,
+                        wire_values)
 from app import auth
 from app.engines import Engine
 from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
@@ -332,11 +333,13 @@ class ChartService:
                                      "relative_standard_error": err}
         return table, meta
 
-    def to_json(self, result: ChartResult) -> dict[str, Any]:
+    def to_json(self, result: ChartResult, wire: bool = False) -> dict[str, Any]:
         """The JSON answer as Python values; decimals stay ``Decimal`` (``app.encode.dumps``
-        writes their exact digits)."""
+        writes their exact digits). ``wire=True``: decimal columns as ready JSON fragments
+        (for the HTTP body; the same bytes, faster)."""
         tz_of = _zones(result.plan)
-        data = {n: column_values(result.table.column(n), tz_of.get(n))
+        values = wire_values if wire else column_values
+        data = {n: values(result.table.column(n), tz_of.get(n))
                 for n in result.table.column_names}
         meta = result.meta
         out = {"columns": meta["columns"], "data": data}
