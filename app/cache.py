@@ -84,8 +84,9 @@ def stamp_json(open_body: bytes, cache: str, timing: dict[str, float]) -> bytes:
 
 def open_json(payload: dict[str, Any]) -> bytes:
     """orjson body of ``payload`` minus its closing brace, ready for ``stamp_json``."""
-    body = orjson.dumps(payload, option=orjson.OPT_SERIALIZE_NUMPY)
-    return body[:-1]
+    from app.encode import dumps  # exact decimals, dates (app.encode._default)
+
+    return dumps(payload)[:-1]
 
 
 class ResultCache:

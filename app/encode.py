@@ -1,9 +1,12 @@
 """Arrow result -> response payloads.
 
 JSON is columnar (``{"data": {"col": [...]}}``) and encoded with orjson. Timestamps become
-RFC 3339 strings (``Z`` for UTC, else the offset of the key's ``tz``), decimals become numbers,
-non-finite floats become ``null``. Arrow IPC keeps native types and carries the same metadata
-as JSON in the schema metadata key ``sluice``.
+RFC 3339 strings (``Z`` for UTC, else the offset of the key's ``tz``), decimals become JSON
+numbers written with their exact decimal digits (``3.76``, never ``3.7600000000000002``:
+orjson writes the text as a raw number fragment), non-finite floats become ``null``.
+Arrow IPC keeps the conformed types (``app.engines.arrow.output_types``: integer widths,
+decimal128, zoned timestamps), carries the same metadata as JSON in the schema metadata key
+``sluice`` and each column's ``channel`` and ``role`` in its field metadata.
 """
 
 from __future__ import annotations
@@ -40,31 +43,18 @@ def type_name(t: pa.DataType) -> str:
 
 
 def normalize_column(arr: pa.ChunkedArray) -> pa.ChunkedArray:
-    """Engine-specific types -> the few types the response uses."""
+    """Representation-only clean-up after ``conform``: one string type."""
     t = arr.type
-    if pa.types.is_decimal(t):
-        if t.scale == 0:
-            try:
-                return arr.cast(pa.int64())
-            except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-                return arr.cast(pa.float64())
-        return arr.cast(pa.float64())
     if pa.types.is_string_view(t) or pa.types.is_large_string(t):
         return arr.cast(pa.string())
     if pa.types.is_timestamp(t) and t.tz is None:
         return arr.cast(pa.timestamp(t.unit, tz="UTC"))  # naive values are read as UTC
-    if pa.types.is_unsigned_integer(t) or (pa.types.is_integer(t) and t != pa.int64()):
-        try:
-            return arr.cast(pa.int64())
-        except pa.ArrowInvalid:
-            return arr.cast(pa.float64())
-    if pa.types.is_floating(t) and t != pa.float64():
-        return arr.cast(pa.float64())
     return arr
 
 
 def timestamps_to_text(arr: pa.ChunkedArray, tz: str | None) -> list[str | None]:
-    zone = tz or "UTC"
+    """RFC 3339 text in ``tz`` (default: the zone of the Arrow type, else UTC)."""
+    zone = tz or arr.type.tz or "UTC"
     unit = arr.type.unit
     shown = arr.cast(pa.timestamp(unit, tz=zone))
     if len(shown) and unit != "s":
@@ -104,10 +94,19 @@ def column_values(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any]:
     return arr.to_pylist()
 
 
+def wire_values(arr: pa.ChunkedArray, tz: str | None = None) -> Any:
+    """``column_values`` for the JSON body: a decimal column becomes one raw JSON array of
+    its exact digits, formatted by Arrow (no Python ``Decimal`` per value: 10x faster)."""
+    if pa.types.is_decimal(arr.type) and arr.type.scale >= 0:
+        text = pc.fill_null(arr.cast(pa.string()), "null").to_pylist()
+        return orjson.Fragment(("[" + ",".join(text) + "]").encode())
+    return column_values(arr, tz)
+
+
 def domain(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any] | None:
     t = arr.type
     if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_timestamp(t) \
-            or pa.types.is_date(t):
+            or pa.types.is_date(t) or pa.types.is_decimal(t):
         if pa.types.is_floating(t):
             arr = pc.filter(arr, pc.is_finite(arr))
         mm = pc.min_max(arr)
@@ -115,7 +114,7 @@ def domain(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any] | None:
         if not lo.is_valid:
             return None
         if pa.types.is_timestamp(t):
-            return [instant_text(lo.as_py(), tz), instant_text(hi.as_py(), tz)]
+            return [instant_text(lo.as_py(), tz or t.tz), instant_text(hi.as_py(), tz or t.tz)]
         if pa.types.is_date(t):
             return [lo.as_py().isoformat(), hi.as_py().isoformat()]
         return [lo.as_py(), hi.as_py()]
@@ -127,9 +126,16 @@ def domain(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any] | None:
     return None
 
 
+def decimal_number(d: decimal.Decimal) -> Any:
+    """A decimal as a JSON number with exactly its digits (``null`` for NaN/infinity)."""
+    if not d.is_finite():
+        return None
+    return orjson.Fragment(str(d).encode())  # str() of a finite Decimal is a JSON number
+
+
 def _default(o: Any) -> Any:
     if isinstance(o, decimal.Decimal):
-        return float(o)
+        return decimal_number(o)
     if isinstance(o, dt.datetime):
         return instant_text(o, None)
     if isinstance(o, dt.date):
@@ -141,8 +147,21 @@ def dumps(payload: Any) -> bytes:
     return orjson.dumps(payload, default=_default, option=orjson.OPT_SERIALIZE_NUMPY)
 
 
+def arrow_schema(table: pa.Table, meta: dict[str, Any]) -> pa.Schema:
+    """The table's schema with the answer's metadata (key ``sluice``) and, per field, the
+    column's ``channel`` and ``role`` (so a reader needs no lookup to bind marks)."""
+    described = {c["name"]: c for c in meta.get("columns", [])}
+    fields = []
+    for f in table.schema:
+        c = described.get(f.name)
+        if c is not None:
+            f = f.with_metadata({k: str(c[k]) for k in ("channel", "role") if c.get(k)})
+        fields.append(f)
+    return pa.schema(fields, metadata={"sluice": dumps(meta)})
+
+
 def arrow_stream(table: pa.Table, meta: dict[str, Any]) -> bytes:
-    schema = table.schema.with_metadata({"sluice": dumps(meta)})
+    schema = arrow_schema(table, meta)
     sink = pa.BufferOutputStream()
     with pa.ipc.new_stream(sink, schema) as writer:
         writer.write_table(table.cast(schema))

@@ -14,14 +14,15 @@ from fastapi.exceptions import RequestValidationError
 from starlette.responses import FileResponse, Response
 from starlette.staticfiles import StaticFiles
 
-from app import auth, observability
+from app import answers, auth, formats, observability, routes_docs
 from app.cache import Entry, ResultCache, canonical, open_json, source_version, stamp_json
 from app.catalog import Catalog, UnknownSource
+from app.compression import CompressionMiddleware
 from app.encode import ARROW_STREAM, arrow_stream, dumps
 from app.engines import EngineError, EngineUnavailable
 from app.limits import BodyLimitMiddleware, server_timeout
 from app.probes import Readiness
-from app.problems import PROBLEM_JSON, Problem, from_plan_error, problem_response, validation_handler
+from app.problems import Problem, from_plan_error, problem_response, validation_handler
 from app.service import ChartService
 from app.settings import ConfigError, Settings, load_settings
 from app.warmup import warm_up
@@ -40,14 +41,14 @@ class JSONResponse(Response):
         return dumps(content)
 
 
-def _problem_responses() -> dict[int | str, dict[str, Any]]:
-    desc = {400: "Malformed request", 401: "No or bad API key (when keys are configured)",
-            403: "The API key is not granted this source", 404: "Unknown source",
-            413: "Body too large",
-            422: "The request cannot be planned (the pointer names the field)",
-            503: "The source's engine is unavailable, or busy (Retry-After)",
-            504: "The statement ran past the source's statement_timeout_ms"}
-    return {code: {"description": d, "content": {PROBLEM_JSON: {}}} for code, d in desc.items()}
+_problem_responses = answers.problem_responses  # problem+json entries for the OpenAPI document
+#: request headers a page on another origin may send (README: Cache-Control: no-cache to
+#: recompute, X-Request-ID to correlate, X-API-Key / Authorization for keys), and response
+#: headers it may read
+CORS_ALLOW_HEADERS = ["Accept", "Accept-Encoding", "Authorization", "Cache-Control",
+                      "Content-Type", "X-API-Key", "X-Request-ID"]
+CORS_EXPOSE_HEADERS = ["X-Request-ID", "Retry-After", "X-Sluice-Truncated",
+                       "X-Sluice-Approximate"]
 
 
 def engine_problem(exc: EngineError) -> Problem:
@@ -81,6 +82,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version="0.1.0",
         summary="Chart requests in, grouped SQL pushed down to the engine, mark-ready tables out.",
         lifespan=lifespan,
+        docs_url=None, redoc_url=None,  # offline docs pages: app/routes_docs.py
     )
     app.state.settings = settings
     app.state.catalog = catalog
@@ -128,15 +130,23 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
 
     # ---- routes -----------------------------------------------------------------------
-    @app.post("/v1/chart", responses=_problem_responses(), tags=["charts"])
+    @app.post("/v1/chart", tags=["charts"], response_model=None,
+              responses={**answers.ok(answers.ChartAnswer, "The chart's mark-ready table: JSON "
+                                      "by default; Arrow IPC stream, CSV or Parquet by Accept",
+                                      content=answers.CHART_FORMATS),
+                         **_problem_responses()})
     def chart(req: ChartRequest, request: Request) -> Response:
-        """Run a chart request and return the mark-ready table (JSON, or Arrow IPC stream
-        when the client accepts ``application/vnd.apache.arrow.stream``)."""
+        """Run a chart request and return the mark-ready table. The format follows
+        ``Accept`` (app/formats.py): ``application/json`` (default),
+        ``application/vnd.apache.arrow.stream``, ``text/csv`` or
+        ``application/vnd.apache.parquet``; anything else is a 406 problem."""
         t_in = time.perf_counter()
+        fmt = formats.choose(request.headers.get("accept"))
         service.check_source(req.source)  # auth before any cached answer
         lookup = "no-cache" not in request.headers.get("cache-control", "").lower()
-        if ARROW_STREAM not in request.headers.get("accept", ""):
-            return Response(json_answer(req, lookup, t_in), media_type="application/json")
+        if fmt == formats.JSON:
+            return Response(json_answer(req, lookup, t_in), media_type="application/json",
+                            headers={"Vary": "Accept"})
 
         def run() -> Entry:  # kept as (table, meta): the metadata is re-stamped per answer
             result = service.run(req)
@@ -148,7 +158,14 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         meta["cache"] = state
         meta["timing_ms"] = entry.timing if state == "miss" else {
             "lookup": round((time.perf_counter() - t_in) * 1000.0, 3)}
-        return Response(arrow_stream(entry.table, meta), media_type=ARROW_STREAM)
+        if fmt == ARROW_STREAM:
+            body = arrow_stream(entry.table, meta)
+        elif fmt == formats.CSV:
+            body = formats.csv_body(entry.table, {})  # zones: the Arrow timestamp types
+        else:
+            body = formats.parquet_body(entry.table, meta)
+        return Response(body, media_type=formats.MEDIA_TYPES[fmt],
+                        headers={"Vary": "Accept", **formats.table_headers(meta)})
 
     def cached(req: ChartRequest, fmt: str, run, lookup: bool) -> tuple[Entry, str]:
         """The cached answer for ``req`` in ``fmt`` (single-flight), or ``run()``'s."""
@@ -166,7 +183,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             result = service.run(req)
             observability.record_chart(req.source, result.meta, result.timing)
             t0 = time.perf_counter()
-            payload = service.to_json(result)
+            payload = service.to_json(result, wire=True)  # decimals: exact digits, vectorised
             payload.pop("cache", None)
             payload.pop("timing_ms", None)
             body = open_json(payload)
@@ -179,7 +196,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             "lookup": round((time.perf_counter() - t_in) * 1000.0, 3)}
         return stamp_json(entry.body, state, timing)
 
-    @app.post("/v1/batch", responses=_problem_responses(), tags=["charts"])
+    @app.post("/v1/batch", tags=["charts"], response_model=None,
+              responses={**answers.ok(answers.BatchAnswer, "One answer or problem per chart"),
+                         **_problem_responses()})
     def batch(req: BatchRequest) -> Response:
         """Several charts on one source. Each result is the chart's answer (cached like
         /v1/chart), or its problem document (pointer prefixed with ``/charts/<i>``); the
@@ -206,7 +225,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         head = dumps({"source": req.source})[:-1] + b',"results":['
         return Response(head + b",".join(results) + b"]}", media_type="application/json")
 
-    @app.post("/v1/sql", responses=_problem_responses(), tags=["charts"])
+    @app.post("/v1/sql", tags=["charts"], response_model=None,
+              responses={**answers.ok(answers.SqlAnswer, "The SQL for the dialect"),
+                         **_problem_responses()})
     def plan_sql(req: ChartRequest,
                  dialect: str | None = Query(None, description="Target dialect; default: the "
                                              "source's own engine. One of: " + ", ".join(sorted(DIALECTS)))
@@ -215,16 +236,22 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         observability.note_source(req.source)
         return JSONResponse(service.plan_sql(req, dialect))
 
-    @app.get("/v1/sources", tags=["sources"])
+    @app.get("/v1/sources", tags=["sources"], response_model=None,
+             responses={**answers.ok(answers.SourcesAnswer, "The sources the key may read"),
+                        **_problem_responses(401)})
     def sources() -> Response:
+        """Configured sources (only those the API key grants)."""
         out = []
         for name in auth.filter_names(catalog.names()):  # only the sources the key grants
             cfg = catalog.config(name)
             out.append({"name": name, "engine": cfg.engine, "table": cfg.table})
         return JSONResponse({"sources": out})
 
-    @app.get("/v1/sources/{name}", responses=_problem_responses(), tags=["sources"])
+    @app.get("/v1/sources/{name}", tags=["sources"], response_model=None,
+             responses={**answers.ok(answers.SourceDetail, "Columns, kinds and row count"),
+                        **_problem_responses(401, 403, 404, 503)})
     def source(name: str) -> Response:
+        """A source's introspected columns (engine type and kind) and row count."""
         auth.require(name, None)  # 403 before 404: names cannot be probed
         try:
             cfg = catalog.config(name)
@@ -238,7 +265,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         return JSONResponse({"name": name, "engine": cfg.engine, "table": cfg.table,
                              "columns": cols, "row_count": entry.row_count})
 
-    @app.get("/healthz", tags=["operations"])
+    @app.get("/healthz", tags=["operations"], response_model=None,
+             responses=answers.ok(answers.Health, "The process is up"))
     async def healthz() -> Response:
         """Liveness: the process is up and answering. An async route doing no I/O, so it
         never waits for a worker thread behind running queries (app.probes)."""
@@ -247,7 +275,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     readiness = app.state.readiness = Readiness(catalog, settings.ready_timeout_s,
                                                 settings.ready_ttl_s)
 
-    @app.get("/readyz", tags=["operations"])
+    @app.get("/readyz", tags=["operations"], response_model=None,
+             responses={**answers.ok(answers.Readiness, "Every source answers"),
+                        503: {"model": answers.Readiness, "description": "A source does not"}})
     async def readyz() -> Response:
         """Readiness: every configured source answers; 503 with per-source detail if not.
         Answers within ``ready_timeout_s``; checks are shared and cached (app.probes)."""
@@ -255,7 +285,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         detail = {k: v for k, v in detail.items() if auth.allowed(k)}  # no key: no names
         return JSONResponse({"ready": ok, "sources": detail}, status_code=200 if ok else 503)
 
-    @app.get("/metrics", tags=["operations"], response_class=Response)
+    @app.get("/metrics", tags=["operations"], response_class=Response,
+             responses={200: {"description": "Prometheus text exposition format 0.0.4",
+                              "content": {"text/plain": {"schema": {"type": "string"}}}}})
     def metrics_text() -> Response:
         """Prometheus text exposition of this app's metrics (with keys configured: operator
         keys only, app.auth)."""
@@ -268,8 +300,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         return FileResponse(STATIC_DIR / "index.html", media_type="text/html")
 
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
+    routes_docs.register(app)  # /docs and /redoc with local assets, /problems/<slug> pages
 
-    # body cap (also chunked bodies), then API keys, then CORS (answers preflights itself)
+    # compression (innermost: sees the final body), body cap (also chunked bodies), then API
+    # keys, then CORS (answers preflights itself)
+    app.add_middleware(CompressionMiddleware)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
                        body_timeout_s=settings.body_timeout_s)
     app.add_middleware(auth.AuthMiddleware, keys=getattr(settings, "keys", None) or [])
@@ -278,7 +313,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
         app.add_middleware(CORSMiddleware, allow_origins=settings.cors_origins,
                            allow_methods=["GET", "POST"], max_age=600,
-                           allow_headers=["Authorization", "X-API-Key", "Content-Type", "Accept"])
+                           allow_headers=CORS_ALLOW_HEADERS, expose_headers=CORS_EXPOSE_HEADERS)
     # outermost: times, counts and logs every request, 413s and 404s included
     app.add_middleware(observability.ObservabilityMiddleware, metrics=metrics,
                        log_requests=settings.request_log)

@@ -14,6 +14,82 @@ from planner.model import FILTER_TAGS
 
 PROBLEM_JSON = "application/problem+json"
 
+#: Every problem ``type`` this service answers (``/problems/<slug>``, RFC 9457 section 3.1.1):
+#: slug -> (title, HTTP status(es), what it means and what to do). ``/problems/<slug>`` serves
+#: the entry as a short page (app/routes_docs.py); a test checks that every slug raised in
+#: app/ and planner/ is listed here.
+PROBLEM_TYPES: dict[str, tuple[str, str, str]] = {
+    "invalid-request": ("The request does not match the chart request schema", "422",
+                        "A member is missing, unknown or of the wrong type. `pointer` names "
+                        "the first field at fault; `errors` lists every problem found."),
+    "unknown-source": ("Unknown source", "404",
+                       "The `source` is not configured (or not granted to the API key). "
+                       "`suggestions` lists the nearest names; `GET /v1/sources` lists all."),
+    "unknown-column": ("Unknown column", "422",
+                       "The column is not in the source's introspected catalog. "
+                       "`suggestions` lists the nearest column names."),
+    "unknown-dialect": ("Unknown dialect", "400",
+                        "The `dialect` query parameter of `POST /v1/sql` names no dialect "
+                        "sluice can generate; the detail lists the ones it can."),
+    "type-mismatch": ("Option does not fit the column type", "422",
+                      "The option at `pointer` needs another kind of column (for example "
+                      "`trunc` on a number, `sum` of text). `GET /v1/sources/{name}` shows "
+                      "each column's kind."),
+    "bad-value": ("Bad value", "422",
+                  "A value cannot be used as given (out of range, not finite, not parseable "
+                  "for the column's kind)."),
+    "bad-time-zone": ("Bad time zone", "422",
+                      "`tz` must be an IANA time zone name such as `Europe/Berlin` or `UTC`."),
+    "too-many-bins": ("Too many bins", "422",
+                      "The bin layout would make more bins than the server allows; use a "
+                      "larger width, fewer bins or limits."),
+    "limit-exceeded": ("Request exceeds a limit", "422",
+                       "The request is larger than this server allows (channels, filters, "
+                       "list lengths, `limit`); the detail names the `[limits]` key."),
+    "name-too-long": ("Name too long", "422", "An output name is longer than allowed."),
+    "unsupported": ("Not supported by the target engine", "422",
+                    "The engine of this source (or the `dialect` asked for) lacks a "
+                    "capability the request needs; the README's capability table lists "
+                    "what each engine can do."),
+    "bad-filter-sql": ("filter_sql is not allowed", "422",
+                       "`filter_sql` uses something outside the allow-list (catalog columns, "
+                       "literals, comparisons, AND/OR/NOT, IN, BETWEEN, IS NULL, LIKE, "
+                       "arithmetic, a few scalar functions), or the engine could not "
+                       "evaluate it."),
+    "not-acceptable": ("Not acceptable", "406",
+                       "The `Accept` header names no format this route answers in. "
+                       "`POST /v1/chart` answers `application/json`, "
+                       "`application/vnd.apache.arrow.stream`, `text/csv` and "
+                       "`application/vnd.apache.parquet`; `supported` lists them."),
+    "unauthorized": ("Unauthorized", "401",
+                     "API keys are configured and the request carries none, or an unknown "
+                     "one: send `X-API-Key: <key>` or `Authorization: Bearer <key>`."),
+    "forbidden-source": ("Source not granted", "403",
+                         "The API key is valid but not granted this source."),
+    "body-too-large": ("Request body too large", "413",
+                       "The body is larger than the server's `max_body_bytes`."),
+    "bad-request": ("Malformed request", "400",
+                    "The request could not be read (for example an undecodable body)."),
+    "not-found": ("Not found", "404", "No route has this path."),
+    "method-not-allowed": ("Method not allowed", "405",
+                           "The route exists but not for this HTTP method."),
+    "http-error": ("HTTP error", "4xx", "A protocol-level error; the detail says which."),
+    "overloaded": ("Source busy", "503",
+                   "The source is already running its `max_concurrent` statements; retry "
+                   "after the `Retry-After` seconds."),
+    "source-unavailable": ("Source unavailable", "503",
+                           "The source's engine cannot be reached or opened; retry after "
+                           "`Retry-After` seconds, and see `GET /readyz`."),
+    "statement-timeout": ("Statement timed out", "504",
+                          "The statement ran longer than the source's "
+                          "`statement_timeout_ms` and was cancelled; narrow the request."),
+    "engine-error": ("The engine rejected the statement", "502",
+                     "The engine refused SQL that sluice generated; this is logged and is a "
+                     "defect to report with the request."),
+    "internal": ("Internal error", "500",
+                 "sluice failed to answer; the error is logged under the `request_id`."),
+}
+
 
 class Problem(Exception):
     def __init__(self, status: int, slug: str, title: str, detail: str, ptr: str | None = None,

@@ -12,11 +12,12 @@ from typing import Any
 import pyarrow as pa
 
 from app.catalog import Catalog, SourceEntry, UnknownSource
-from app.encode import column_values, domain, instant_text, normalize_column, type_name
+from app.encode import (column_values, domain, instant_text, normalize_column, type_name,
+                        wire_values)
 from app import auth
 from app.engines import Engine
 from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
-from app.engines.arrow import conform
+from app.engines.arrow import conform, key_zone
 from planner.compile import INTERNAL, Plan, prepare
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
@@ -117,6 +118,19 @@ def _extents_only(req: ChartRequest) -> ChartRequest:
         "row": strip(req.facet.row), "col": strip(req.facet.col), "max_groups": None})
     return req.model_copy(update={"channels": channels, "facet": facet, "stack": None,
                                   "sort": [], "empty_bins": "omit"})
+
+
+def _zones(plan: Plan) -> dict[str, str]:
+    """Output column -> the zone its timestamps are written in (JSON offsets, Arrow type)."""
+    return {n: key_zone(plan, k) for k in plan.keys for n in k.names}
+
+
+def _column_meta(c: Any, t: pa.DataType) -> dict[str, Any]:
+    """``columns[]`` entry: name, channel, role, type (and a decimal's precision/scale)."""
+    out = {"name": c.name, "channel": c.channel, "role": c.role, "type": type_name(t)}
+    if pa.types.is_decimal(t):
+        out["precision"], out["scale"] = t.precision, t.scale
+    return out
 
 
 def _ms(t0: float) -> float:
@@ -241,7 +255,7 @@ class ChartService:
 
     def _bins(self, plan: Plan) -> dict[str, Any]:
         out = plan.bins_meta()
-        tz = {k.label: k.spec.tz for k in plan.keys}
+        tz = {k.label: key_zone(plan, k) for k in plan.keys}
         for ch, b in out.items():
             for key in ("start", "stop"):
                 if not isinstance(b.get(key), (int, float)) and b.get(key) is not None:
@@ -265,15 +279,11 @@ class ChartService:
                        for k in plan.keys if k.has_limits}
         groups = int(first(f"{INTERNAL}groups") or 0)
 
-        tz_of = {}
-        for k in plan.keys:
-            for n in k.names:
-                tz_of[n] = k.spec.tz
+        tz_of = _zones(plan)
         names = [c.name for c in plan.columns]
         arrays = {n: normalize_column(raw.column(n)) for n in names}
         table = pa.table(arrays)
-        columns = [{"name": c.name, "channel": c.channel, "role": c.role,
-                    "type": type_name(table.column(c.name).type)} for c in plan.columns]
+        columns = [_column_meta(c, table.column(c.name).type) for c in plan.columns]
         domains: dict[str, Any] = {}
         for c in plan.columns:
             dom = domain(table.column(c.name), tz_of.get(c.name))
@@ -328,9 +338,13 @@ class ChartService:
                                      "relative_standard_error": err}
         return table, meta
 
-    def to_json(self, result: ChartResult) -> dict[str, Any]:
-        tz_of = {n: k.spec.tz for k in result.plan.keys for n in k.names}
-        data = {n: column_values(result.table.column(n), tz_of.get(n))
+    def to_json(self, result: ChartResult, wire: bool = False) -> dict[str, Any]:
+        """The JSON answer as Python values; decimals stay ``Decimal`` (``app.encode.dumps``
+        writes their exact digits). ``wire=True``: decimal columns as ready JSON fragments
+        (for the HTTP body; the same bytes, faster)."""
+        tz_of = _zones(result.plan)
+        values = wire_values if wire else column_values
+        data = {n: values(result.table.column(n), tz_of.get(n))
                 for n in result.table.column_names}
         meta = result.meta
         out = {"columns": meta["columns"], "data": data}

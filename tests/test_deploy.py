@@ -286,6 +286,24 @@ def test_systemd_unit():
     assert unit["Install"]["WantedBy"] == ["multi-user.target"]
 
 
+def test_install_hints_name_the_distribution():
+    """Every ``pip install <ours>`` hint names pyproject's distribution. The name "sluice" on
+    the public package index belongs to an unrelated tool (checked by hand with
+    ``pip index versions``), so a hint naming it would install the wrong thing."""
+    import re
+
+    dist = tomllib.loads((REPO / "pyproject.toml").read_text())["project"]["name"]
+    assert dist != "sluice"
+    files = [*sorted((REPO / "app").rglob("*.py")), *sorted(DEPLOY.iterdir()), REPO / "README.md"]
+    hints = []
+    for f in files:
+        if f.is_file():
+            for m in re.finditer(r"pip install ['\"]?(sluice[A-Za-z0-9_.-]*)", f.read_text()):
+                hints.append((f.name, m.group(1)))
+    assert hints, "no install hint found: the check would pass vacuously"
+    assert {name for _, name in hints} == {dist}, hints
+
+
 # ---- the compose warehouse, for real ---------------------------------------------------------
 PG_ADMIN = "postgresql://postgres@127.0.0.1:5432/postgres"
 

@@ -208,4 +208,4 @@ def test_warehouse_engine_without_library_says_what_to_install(engine, module, e
         return
     with pytest.raises(EngineUnavailable) as err:
         open_engine(SourceConfig(name="w", engine=engine, table="t", dsn=f"{engine}://x"))
-    assert f"sluice[{extra}]" in err.value.message
+    assert f"sluice-charts[{extra}]" in err.value.message

@@ -7,9 +7,10 @@ engine's answer typed like DuckDB's, using the kinds the plan knows for each out
 * MySQL/MariaDB and SQLite return booleans as 0/1 -> ``bool``;
 * SQLite returns timestamps as text (the storage convention in ``planner.dialects.sqlite``:
   UTC ``YYYY-MM-DD HH:MM:SS[.SSS]``) -> ``timestamp[us, UTC]``;
-* untyped decimals (PostgreSQL ``numeric`` from SUM, MySQL DECIMAL sums) -> int64 when the
-  plan promises an integer, float64 otherwise;
-* naive timestamps are UTC instants (DESIGN: a naive TIMESTAMP is read as UTC).
+* decimals stay exact decimals (decimal128 with the column's precision and scale; SQLite's
+  doubles are rounded to the declared scale), integers keep the declared width;
+* naive timestamps are UTC instants (DESIGN: a naive TIMESTAMP is read as UTC), typed with
+  the zone of their key (``key_zone``) so a reader shows the wall clock of that zone.
 """
 
 from __future__ import annotations
@@ -26,16 +27,13 @@ UTC_US = pa.timestamp("us", tz="UTC")
 
 
 def _decimal_array(values: list[Any]) -> pa.Array:
-    """Decimals without a declared scale: int64 when every value is a whole number written
-    without a fraction (SUM of integers), float64 otherwise."""
-    whole = all(v is None or (isinstance(v, decimal.Decimal) and v.is_finite()
-                              and v.as_tuple().exponent >= 0) for v in values)
-    if whole:
-        try:
-            return pa.array([None if v is None else int(v) for v in values], pa.int64())
-        except (OverflowError, pa.ArrowInvalid):
-            pass
-    return pa.array([None if v is None else float(v) for v in values], pa.float64())
+    """Decimals as Arrow decimals (exact; pyarrow infers the precision and scale of the
+    values); ``conform`` later casts them to the type the plan promises. Values no decimal
+    type holds (NaN, infinities, more than 76 digits) fall back to float64."""
+    try:
+        return pa.array(values)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError, OverflowError):
+        return pa.array([None if v is None else float(v) for v in values], pa.float64())
 
 
 def column_array(values: list[Any], hint: pa.DataType | None = None) -> pa.Array:
@@ -94,75 +92,241 @@ def _parse_text_timestamps(arr: pa.ChunkedArray) -> pa.ChunkedArray:
         t = dt.datetime.fromisoformat(text)
         values.append(t.replace(tzinfo=dt.timezone.utc) if t.tzinfo is None
                       else t.astimezone(dt.timezone.utc))
-    return pa.chunked_array([pa.array(values, UTC_US)])
+    return pa.chunked_array([pa.array(values, UTC_US)], UTC_US)
 
 
-def conform_column(arr: pa.ChunkedArray, kind: str | None) -> pa.ChunkedArray:
-    """Cast one result column to the type its plan kind promises, where the engine's own
-    type differs only in representation (never in value)."""
-    if kind is None:
-        return arr
+#: declared integer types -> the Arrow width that holds every value of the type
+_INT_WIDTHS = {
+    "TINYINT": pa.int8(), "UTINYINT": pa.uint8(), "SMALLINT": pa.int16(),
+    "USMALLINT": pa.uint16(), "MEDIUMINT": pa.int32(), "UMEDIUMINT": pa.uint32(),
+    "INT": pa.int32(), "UINT": pa.uint32(), "BIGINT": pa.int64(), "UBIGINT": pa.uint64(),
+}
+#: ClickHouse's DecimalN(S) spell the precision in the type name, the scale as the parameter
+_DECIMAL_N = {"DECIMAL32": 9, "DECIMAL64": 18, "DECIMAL128": 38, "DECIMAL256": 76}
+#: a decimal whose precision and scale the catalog does not state (PostgreSQL ``numeric``):
+#: the scale is read from the values
+FREE_DECIMAL = pa.decimal128(38, 0)
+
+
+def _decimal(precision: int, scale: int) -> pa.DataType:
+    if precision <= 38:
+        return pa.decimal128(precision, scale)
+    return pa.decimal256(min(precision, 76), scale)
+
+
+def declared_type(col: Any, dialect: str | None = None) -> pa.DataType:
+    """The Arrow type of a source column's values, from the catalog's type name: integers
+    keep their width (SMALLINT -> int16), decimals their precision and scale, timestamps
+    are instants (UTC until a zone is applied)."""
+    kind = col.kind
+    if kind in ("integer", "decimal"):
+        from sqlglot import exp
+
+        try:
+            text = col.sql_type
+            for wrapper in ("Nullable(", "LowCardinality("):  # ClickHouse wrappers
+                while text.startswith(wrapper) and text.endswith(")"):
+                    text = text[len(wrapper):-1]
+            built = exp.DataType.build(text, dialect=dialect) if text else None
+        except Exception:  # noqa: BLE001 - unknown spellings: the widest type of the kind
+            built = None
+        name = built.this.name if built is not None else ""
+        if kind == "integer":
+            return _INT_WIDTHS.get(name, pa.int64())
+        params = [int(e.name) for e in (built.expressions if built is not None else [])
+                  if e.name.isdigit()]
+        if name in _DECIMAL_N and len(params) == 1:
+            return _decimal(_DECIMAL_N[name], params[0])
+        if len(params) == 2 and 0 <= params[1] <= params[0]:
+            return _decimal(params[0], params[1])
+        if len(params) == 1:  # DECIMAL(p): scale 0 (SQL standard)
+            return _decimal(params[0], 0)
+        return FREE_DECIMAL
+    return {"double": pa.float64(), "boolean": pa.bool_(), "string": pa.string(),
+            "date": pa.date32(), "timestamp": UTC_US, "timestamptz": UTC_US}.get(kind, pa.null())
+
+
+def key_zone(plan: Any, key: Any) -> str:
+    """The zone a temporal key's values are shown in (Arrow timestamp type, JSON offsets):
+    the key's own ``tz``, else the request's, else UTC."""
+    return key.spec.tz or request_zone(plan)
+
+
+def request_zone(plan: Any) -> str:
+    """The request's zone (a top-level ``tz``, where the request model has one), else UTC:
+    the zone of temporal measures (min/max of a timestamp)."""
+    return getattr(plan.request, "tz", None) or "UTC"
+
+
+def _free_decimal(arr: pa.ChunkedArray) -> pa.DataType:
+    """Precision and scale that hold every value of a decimal or float column exactly."""
+    if pa.types.is_decimal(arr.type):
+        return _decimal(38 if arr.type.precision <= 38 else 76, arr.type.scale)
+    scale = 0
+    for v in arr.to_pylist():
+        if v is not None:
+            e = decimal.Decimal(repr(v) if isinstance(v, float) else str(v)).as_tuple().exponent
+            if isinstance(e, int):
+                scale = max(scale, -e)
+    return _decimal(38, min(scale, 38))
+
+
+def _to_decimal(arr: pa.ChunkedArray, target: pa.DataType) -> pa.ChunkedArray:
+    """Engine values -> ``target`` decimal, exactly. Engines that store decimals as doubles
+    (SQLite: NUMERIC affinity) give the shortest text of the double, rounded half-even to
+    the declared scale: exact while the engine's own float error stays below half a unit of
+    the last place. A value the target cannot hold keeps the engine's type."""
     t = arr.type
-    if kind == "boolean" and (pa.types.is_integer(t) or pa.types.is_null(t)):
-        return pc.not_equal(arr, 0) if not pa.types.is_null(t) else arr.cast(pa.bool_())
-    if kind in ("timestamp", "timestamptz"):
-        if pa.types.is_string(t) or pa.types.is_large_string(t):
-            return _parse_text_timestamps(arr)
-        if pa.types.is_null(t):
-            return arr.cast(UTC_US)
-        if pa.types.is_timestamp(t) and (t.tz not in (None, "UTC") or t.unit in ("s", "ms")):
-            # one representation: microseconds (like DuckDB), UTC (naive values are UTC)
-            return arr.cast(pa.timestamp("us" if t.unit in ("s", "ms") else t.unit, tz="UTC"))
-        if pa.types.is_date(t):
-            return arr.cast(pa.timestamp("us")).cast(UTC_US)
-    if kind == "date" and (pa.types.is_string(t) or pa.types.is_large_string(t)):
-        return pc.strptime(arr, format="%Y-%m-%d", unit="s").cast(pa.date32())
-    if kind == "integer":
-        if pa.types.is_null(t):
-            return arr.cast(pa.int64())
-        if pa.types.is_floating(t) or pa.types.is_decimal(t):
-            try:
-                return arr.cast(pa.int64())  # safe cast: fails on a fraction
-            except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+    if target == FREE_DECIMAL:
+        target = _free_decimal(arr)
+    if pa.types.is_decimal(t) or pa.types.is_integer(t) or pa.types.is_null(t):
+        try:
+            return arr.cast(target)
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            pass  # e.g. a scale the target would cut: round through Python below
+    if pa.types.is_decimal(t) or pa.types.is_integer(t) or pa.types.is_floating(t) \
+            or pa.types.is_string(t) or pa.types.is_large_string(t):
+        quantum = decimal.Decimal(1).scaleb(-target.scale)
+        out = []
+        for v in arr.to_pylist():
+            if v is None:
+                out.append(None)
+                continue
+            d = decimal.Decimal(repr(v) if isinstance(v, float) else str(v))
+            if not d.is_finite():
                 return arr
-    if kind == "double":
-        if pa.types.is_null(t) or pa.types.is_integer(t) or pa.types.is_decimal(t):
-            return arr.cast(pa.float64())
-    if kind == "string" and pa.types.is_null(t):
-        return arr.cast(pa.string())
+            out.append(d.quantize(quantum, rounding=decimal.ROUND_HALF_EVEN,
+                                  context=decimal.Context(prec=80)))
+        try:
+            return pa.chunked_array([pa.array(out, target)], target)
+        except (pa.ArrowInvalid, OverflowError):
+            return arr
     return arr
 
 
-def output_kinds(plan: Any) -> dict[str, str]:
-    """Kind of every user-visible output column of a finished plan."""
-    out: dict[str, str] = {}
+def _to_integer(arr: pa.ChunkedArray, target: pa.DataType) -> pa.ChunkedArray:
+    """Engine integers (any width, doubles or decimals holding whole numbers) -> ``target``;
+    a value wider than the declared type (SQLite keeps every INTEGER in 64 bits) widens to
+    int64, and a whole number past int64 (a sum over HUGEINT) stays an exact decimal."""
+    for candidate in (target, pa.int64()):
+        try:
+            return arr.cast(candidate)  # safe cast: fails on overflow and on a fraction
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            continue
+    if pa.types.is_decimal(arr.type):
+        return arr
+    return arr.cast(pa.float64()) if pa.types.is_integer(arr.type) else arr
+
+
+def conform_column(arr: pa.ChunkedArray, target: pa.DataType | None) -> pa.ChunkedArray:
+    """Cast one result column to the Arrow type its plan promises, where the engine's own
+    type differs only in representation (never in value)."""
+    t = arr.type
+    if target is None:
+        if pa.types.is_string_view(t) or pa.types.is_large_string(t):
+            return arr.cast(pa.string())
+        return arr
+    if t == target:
+        return arr
+    if pa.types.is_boolean(target):
+        if pa.types.is_integer(t):
+            return pc.not_equal(arr, 0)
+        if pa.types.is_null(t):
+            return arr.cast(pa.bool_())
+        return arr
+    if pa.types.is_timestamp(target):
+        if pa.types.is_string(t) or pa.types.is_large_string(t):
+            arr = _parse_text_timestamps(arr)
+        elif pa.types.is_date(t):
+            arr = arr.cast(pa.timestamp("us")).cast(UTC_US)
+        elif pa.types.is_timestamp(t) and t.tz is None:  # naive values are UTC instants
+            arr = arr.cast(pa.timestamp(t.unit, tz="UTC"))
+        elif not (pa.types.is_timestamp(t) or pa.types.is_null(t)):
+            return arr
+        # one representation: microseconds (like DuckDB), in the zone of the key
+        return arr.cast(pa.timestamp("us" if arr.type.unit in ("s", "ms", "us") else "ns",
+                                     tz=target.tz))
+    if pa.types.is_date(target):
+        if pa.types.is_string(t) or pa.types.is_large_string(t):
+            return pc.strptime(arr, format="%Y-%m-%d", unit="s").cast(pa.date32())
+        if pa.types.is_timestamp(t) or pa.types.is_null(t) or pa.types.is_date(t):
+            return arr.cast(pa.date32())
+        return arr
+    if pa.types.is_integer(target):
+        if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t) \
+                or pa.types.is_null(t) or pa.types.is_boolean(t):
+            return _to_integer(arr, target)
+        return arr
+    if pa.types.is_decimal(target):
+        return _to_decimal(arr, target)
+    if pa.types.is_floating(target):
+        if pa.types.is_null(t) or pa.types.is_integer(t) or pa.types.is_decimal(t) \
+                or pa.types.is_floating(t):
+            return arr.cast(pa.float64())
+        return arr
+    if pa.types.is_string(target):
+        if pa.types.is_null(t) or pa.types.is_string_view(t) or pa.types.is_large_string(t):
+            return arr.cast(pa.string())
+    return arr
+
+
+def _sum_type(col_type: pa.DataType) -> pa.DataType:
+    """SUM keeps the scale of its decimal argument (SQL standard) in the widest precision;
+    a sum of integers is int64."""
+    if pa.types.is_decimal(col_type):
+        return _decimal(38 if col_type.precision <= 38 else 76, col_type.scale) \
+            if col_type != FREE_DECIMAL else FREE_DECIMAL
+    if pa.types.is_integer(col_type):
+        return pa.int64()
+    return pa.float64()
+
+
+def _with_zone(t: pa.DataType, zone: str) -> pa.DataType:
+    return pa.timestamp("us", tz=zone) if pa.types.is_timestamp(t) else t
+
+
+def output_types(plan: Any) -> dict[str, pa.DataType]:
+    """The Arrow type of every user-visible output column of a finished plan (the same on
+    every engine):
+
+    * keys and ``min``/``max`` keep the source column's type: integer width, decimal
+      precision and scale, dates; timestamps are instants typed with the key's zone;
+    * bin edges, stack extents and ``avg``/``median``/``quantile``/deviations are float64;
+    * counts are int64; ``sum`` is int64 over integers, decimal128(38, s) over decimals;
+    * ``extract`` fields are int32; a ``top`` key is text (it holds the other-label).
+    """
+    dialect = getattr(plan.dialect, "sqlglot", None) or None
+    out: dict[str, pa.DataType] = {}
     for k in plan.keys:
+        zone = key_zone(plan, k)
         if k.mode == "nbin":
-            kinds = ["double"] * len(k.names)
+            types = [pa.float64()] * len(k.names)
         elif k.mode in ("tbin", "trunc"):
-            kinds = ["timestamptz"] * len(k.names)
+            types = [pa.timestamp("us", tz=zone)] * len(k.names)
         elif k.mode == "extract":
-            kinds = ["integer"]
+            types = [pa.int32()]
         elif k.spec.top is not None:
-            kinds = ["string"]
+            types = [pa.string()]
         else:
-            kinds = [k.col.kind]
-        out.update(zip(k.names, kinds))
+            types = [_with_zone(declared_type(k.col, dialect), zone)]
+        out.update(zip(k.names, types))
     for m in plan.measures:
         agg = m.spec.agg
         if agg in ("count", "count_distinct", "approx_count_distinct"):
-            out[m.name] = "integer"
-        elif agg in ("sum", "min", "max") and m.col is not None:
-            out[m.name] = m.col.kind
+            out[m.name] = pa.int64()
+        elif agg in ("min", "max") and m.col is not None:
+            out[m.name] = _with_zone(declared_type(m.col, dialect), request_zone(plan))
+        elif agg == "sum" and m.col is not None:
+            out[m.name] = _sum_type(declared_type(m.col, dialect))
         else:
-            out[m.name] = "double"
+            out[m.name] = pa.float64()
     for c in plan.columns:
         if c.role in ("stack_base", "stack_top"):
-            out[c.name] = "double"
-    return out
+            out[c.name] = pa.float64()
+    return {n: t for n, t in out.items() if not pa.types.is_null(t)}
 
 
 def conform(table: pa.Table, plan: Any) -> pa.Table:
-    kinds = output_kinds(plan)
-    cols = [conform_column(table.column(n), kinds.get(n)) for n in table.column_names]
+    types = output_types(plan)
+    cols = [conform_column(table.column(n), types.get(n)) for n in table.column_names]
     return pa.table(dict(zip(table.column_names, cols)))

@@ -70,7 +70,7 @@ class ChdbEngine(_ClickHouseBase):
             from chdb import session as chs
         except ImportError:
             raise EngineUnavailable(cfg.name, "the clickhouse engine needs chdb "
-                                    "(pip install 'sluice[engines]') or a dsn = \"http://...\"") from None
+                                    "(pip install 'sluice-charts[engines]') or a dsn = \"http://...\"") from None
         if not cfg.path:
             raise EngineUnavailable(cfg.name, "a clickhouse source needs path = \"chdb folder\" "
                                     "or dsn = \"http://host:8123/\"")

@@ -51,7 +51,7 @@ class MySQLEngine(EngineBase):
             import pymysql
         except ImportError:
             raise EngineUnavailable(cfg.name, "the mysql engine needs pymysql "
-                                    "(pip install 'sluice[engines]')") from None
+                                    "(pip install 'sluice-charts[engines]')") from None
         self._pymysql = pymysql
         if not cfg.dsn:
             raise EngineUnavailable(cfg.name, "a mysql source needs dsn = \"mysql://user@host/db\"")

@@ -50,7 +50,7 @@ class PostgresEngine(EngineBase):
             from psycopg_pool import ConnectionPool
         except ImportError:
             raise EngineUnavailable(cfg.name, "the postgres engine needs psycopg and psycopg_pool "
-                                    "(pip install 'sluice[engines]')") from None
+                                    "(pip install 'sluice-charts[engines]')") from None
         if not cfg.dsn:
             raise EngineUnavailable(cfg.name, "a postgres source needs dsn = \"postgresql://...\"")
         self._psycopg = psycopg

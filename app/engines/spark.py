@@ -69,7 +69,7 @@ class SparkEngine(EngineBase):
             import pyspark  # noqa: F401
         except ImportError:
             raise EngineUnavailable(cfg.name, "the spark engine needs pyspark "
-                                    "(pip install 'sluice[engines]') and Java 17") from None
+                                    "(pip install 'sluice-charts[engines]') and Java 17") from None
         remote = cfg.dsn if cfg.dsn and cfg.dsn.startswith("sc://") else None
         try:
             self.spark = spark_session(str(cfg.options.get("master", "local[2]")),

@@ -1,6 +1,6 @@
 """Cloud warehouses through their official client libraries, installed as optional extras:
-``sluice[trino]`` (trino), ``sluice[bigquery]`` (google-cloud-bigquery),
-``sluice[snowflake]`` (snowflake-connector-python). Each library is imported only when a
+``sluice-charts[trino]`` (trino), ``sluice-charts[bigquery]`` (google-cloud-bigquery),
+``sluice-charts[snowflake]`` (snowflake-connector-python). Each library is imported only when a
 source uses it; without it the source reports a clear EngineUnavailable (HTTP 503).
 
 These engines are not exercised by the test suite (no servers here); their SQL is checked by
@@ -30,7 +30,7 @@ def _need(cfg: SourceConfig, module: str, extra: str):
         return importlib.import_module(module)
     except ImportError:
         raise EngineUnavailable(cfg.name, f"the {cfg.engine} engine needs the {module!r} client "
-                                f"library: pip install 'sluice[{extra}]'") from None
+                                f"library: pip install 'sluice-charts[{extra}]'") from None
 
 
 class _DbApiEngine(EngineBase):
