@@ -115,6 +115,7 @@ def column_profile(name: str, column: str, request: Request,
                 t0 = time.perf_counter()
                 raw = service.limiter.guard(name, engine).execute(plan.sql)
                 ms = round((time.perf_counter() - t0) * 1000.0, 3)
+            observability.record_chart(name, {}, {"execute": ms})  # engine seconds metric
             body = open_json({"source": name, "column": col.name} | shape(plan, raw))
             return Entry(body, "application/json", {"execute": ms})
 
