@@ -313,12 +313,14 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _version() -> str:
-    try:
-        from importlib.metadata import version
+    from importlib.metadata import PackageNotFoundError, version
 
-        return version("sluice")
-    except Exception:  # not installed (running from a checkout)
-        return "0+unknown"
+    for dist in ("sluice-charts", "sluice"):  # the distribution's name, then its old one
+        try:
+            return version(dist)
+        except PackageNotFoundError:
+            continue
+    return "0+unknown"  # not installed (running from a checkout)
 
 
 def main(argv: list[str] | None = None) -> int:
