@@ -407,6 +407,7 @@ def test_chart_text_is_readable_at_420_px(server, browser):
     try:
         browser.get(server + "/")
         wait_state(browser, "ready")
+        shot(browser, "preview_420_page.png")
         for body, picture in [(None, "preview_420_histogram.png"),
                               ({"source": "deliveries", "facet": {"row": {"column": "region"}},
                                 "channels": {"x": {"column": "vehicle"}, "y": {"agg": "count"}}},
