@@ -51,7 +51,9 @@ def clickhouse_dsn(tmp_path_factory):
     proc = subprocess.Popen([sys.executable, str(Path(__file__).with_name("chdb_http_server.py")),
                              str(root)], stdout=subprocess.PIPE, text=True)
     try:
-        port, table = proc.stdout.readline().split()
+        line = proc.stdout.readline().split()
+        assert len(line) == 2, f"chdb_http_server.py did not start (exit {proc.poll()})"
+        port, table = line
         yield f"http://127.0.0.1:{port}/", table
     finally:
         proc.terminate()
