@@ -8,12 +8,13 @@ DEMO   ?= data/demo.duckdb
 ROWS   ?= 2000000
 PYTEST_ARGS ?=
 
-.PHONY: serve test demo install install-test services browser node bench load fuzz clean help
+.PHONY: serve test demo install install-test services browser node types bench load fuzz clean help
 
 help:
 	@echo "make serve   build the venv and the demo data, serve on $(HOST):$(PORT) (PORT=... overrides)"
 	@echo "make test    build the venv with test extras, start PostgreSQL/MariaDB if needed, run the suite"
 	@echo "make demo    (re)build the demo DuckDB file ($(ROWS) rows; ROWS=... overrides)"
+	@echo "make types   regenerate clients/typescript/sluice.d.ts from the OpenAPI document"
 	@echo "make bench   benchmarks (not tests); make load: bounded load run; make fuzz: deep API fuzzing"
 
 $(BIN)/python:
@@ -54,6 +55,10 @@ tests/js/node_modules/.installed: tests/js/package.json tests/js/package-lock.js
 	touch $@
 
 node: tests/js/node_modules/.installed
+
+# TypeScript types from the OpenAPI document (tests/test_typescript.py checks they are current)
+types: $(VENV)/.installed node
+	$(BIN)/python clients/typescript/generate.py
 
 test: $(VENV)/.installed-test services browser node
 	$(BIN)/python -m pytest -q -n 2 --dist loadfile $(PYTEST_ARGS)

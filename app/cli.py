@@ -1,4 +1,4 @@
-"""``sluice`` command line: serve, demo, plan, sources.
+"""``sluice`` command line: serve, demo, chart, plan, sources, key.
 
 Exit codes (tested in tests/test_cli.py): 0 ok, 1 unexpected failure (a bug, or the
 operating system refused: disk full, port taken), 2 usage (bad arguments, unreadable input
@@ -93,52 +93,106 @@ def _load(args: argparse.Namespace):
         raise SystemExit(EXIT_CONFIG) from None
 
 
-def _cmd_plan(args: argparse.Namespace) -> int:
+def _read_request(args: argparse.Namespace, prog: str):
+    """The chart request of FILE (``-``: stdin), validated; an ``int`` exit code on failure."""
     from pydantic import ValidationError
 
-    from app.catalog import Catalog
-    from app.engines import EngineError
     from app.problems import loc_to_pointer
-    from app.service import ChartService
-    from planner.errors import PlanError
     from planner.model import ChartRequest
 
     try:
         text = sys.stdin.read() if args.file == "-" else open(args.file, encoding="utf-8").read()
     except (OSError, UnicodeDecodeError) as e:
-        print(f"sluice plan: cannot read {args.file}: {getattr(e, 'strerror', None) or e}",
+        print(f"{prog}: cannot read {args.file}: {getattr(e, 'strerror', None) or e}",
               file=sys.stderr)
         return EXIT_USAGE
     try:
         body = json.loads(text)
     except json.JSONDecodeError as e:
-        print(f"sluice plan: not valid JSON: {e}", file=sys.stderr)
+        print(f"{prog}: not valid JSON: {e}", file=sys.stderr)
         return EXIT_PLAN
     if not isinstance(body, dict):
-        print("sluice plan: the chart request must be a JSON object", file=sys.stderr)
+        print(f"{prog}: the chart request must be a JSON object", file=sys.stderr)
         return EXIT_PLAN
     if args.source:
         body["source"] = args.source
     try:
-        req = ChartRequest.model_validate(body)
+        return ChartRequest.model_validate(body)
     except ValidationError as e:
         for err in e.errors():
-            print(f"sluice plan: {loc_to_pointer(tuple(err['loc']))}: {err['msg']}", file=sys.stderr)
+            print(f"{prog}: {loc_to_pointer(tuple(err['loc']))}: {err['msg']}", file=sys.stderr)
         return EXIT_PLAN
+
+
+def _with_service(args: argparse.Namespace, prog: str, work) -> int:
+    """Run ``work(service)`` on a ChartService over the config's catalog (the API's code
+    path), mapping refusals to the documented exit codes."""
+    from app.catalog import Catalog
+    from app.engines import EngineError
+    from app.problems import Problem
+    from app.service import ChartService
+    from planner.errors import PlanError
+
     catalog = Catalog(_load(args))
     try:
-        out = ChartService(catalog).plan_sql(req, args.dialect)
+        return work(ChartService(catalog))
     except PlanError as e:
-        print(f"sluice plan: {e.pointer or '/'}: {e.detail}", file=sys.stderr)
+        print(f"{prog}: {e.pointer or '/'}: {e.detail}", file=sys.stderr)
         return EXIT_PLAN
     except EngineError as e:
-        print(f"sluice plan: source {e.source}: {e.message}", file=sys.stderr)
+        print(f"{prog}: source {e.source}: {e.message}", file=sys.stderr)
         return EXIT_SOURCE
+    except Problem as e:  # [limits] caps (4xx) or admission/timeouts (5xx)
+        where = f"{e.ptr}: " if e.ptr else ""
+        print(f"{prog}: {where}{e.detail}", file=sys.stderr)
+        return EXIT_PLAN if e.status < 500 else EXIT_SOURCE
     finally:
         catalog.close()
-    for stmt in out["sql"]:
-        print(stmt.rstrip(";") + ";")
-    return EXIT_OK
+
+
+def _cmd_plan(args: argparse.Namespace) -> int:
+    req = _read_request(args, "sluice plan")
+    if isinstance(req, int):
+        return req
+
+    def work(service) -> int:
+        for stmt in service.plan_sql(req, args.dialect)["sql"]:
+            print(stmt.rstrip(";") + ";")
+        return EXIT_OK
+
+    return _with_service(args, "sluice plan", work)
+
+
+def _cmd_chart(args: argparse.Namespace) -> int:
+    from app import answer_text
+
+    req = _read_request(args, "sluice chart")
+    if isinstance(req, int):
+        return req
+
+    def work(service) -> int:
+        result = service.run(req)
+        answer = service.to_json(result)
+        answer["timing_ms"] = result.timing
+        if args.format == "json":
+            sys.stdout.buffer.write(answer_text.json_bytes(answer) + b"\n")
+        elif args.format == "csv":
+            sys.stdout.write(answer_text.csv_text(answer))
+        else:
+            sys.stdout.write(answer_text.table_text(answer))
+        sys.stdout.flush()
+        if args.format != "json" and not args.quiet:
+            for line in answer_text.notes(answer):  # what could mislead, on stderr
+                print(f"sluice chart: {line}", file=sys.stderr)
+        return EXIT_OK
+
+    return _with_service(args, "sluice chart", work)
+
+
+def _cmd_key(args: argparse.Namespace) -> int:
+    from app.auth import main as auth_main  # the same code as `python -m app.auth`
+
+    return auth_main(["new"] if args.action == "new" else ["hash", args.key])
 
 
 def _cmd_sources(args: argparse.Namespace) -> int:
@@ -171,7 +225,9 @@ def build_parser() -> argparse.ArgumentParser:
                "  sluice demo --rows 200000            build data/demo.duckdb\n"
                "  sluice serve --port 8000             API, /docs and the preview page at /\n"
                "  sluice sources --config sluice.toml  check every source answers\n"
-               "  sluice plan chart.json --dialect postgres\n\n"
+               "  sluice plan chart.json --dialect postgres\n"
+               "  sluice chart chart.json --format csv\n"
+               "  sluice key new                       an API key and its hash\n\n"
                f"{_ENV_HELP}\n\n{_EXIT_HELP}")
     p.add_argument("--version", action="version", version=f"sluice {_version()}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
@@ -235,6 +291,43 @@ def build_parser() -> argparse.ArgumentParser:
     pl.add_argument("--config", help=config_help, metavar="FILE")
     pl.set_defaults(func=_cmd_plan)
 
+    ch = sub.add_parser(
+        "chart", formatter_class=fmt,
+        help="run a chart request file ('-' = stdin) and print the answer",
+        description=_para("Run a chart request on its source through the same code path as "
+                    "POST /v1/chart and print the answer: an aligned table (default), CSV "
+                    "(RFC 4180, NULL = empty field) or the API's JSON answer. The table and "
+                    "CSV print the answer's values (timestamps as RFC 3339 text); a summary "
+                    "line and anything that could mislead (truncation, rows outside limits, "
+                    "approximation) go to stderr."),
+        epilog="examples:\n"
+               "  sluice chart chart.json\n"
+               "  echo '{\"source\": \"deliveries\", \"channels\": {\"x\": {\"column\": \"depot\"}, "
+               "\"y\": {\"agg\": \"count\"}}}' \\\n"
+               "    | sluice chart - --format csv > depots.csv"
+               f"\n\n{_EXIT_HELP}")
+    ch.add_argument("file", metavar="FILE", help="chart request JSON file, or - for stdin")
+    ch.add_argument("--format", choices=["table", "csv", "json"], default="table",
+                    help="output format (default table)")
+    ch.add_argument("--source", metavar="NAME", help="override the request's source")
+    ch.add_argument("--config", help=config_help, metavar="FILE")
+    ch.add_argument("--quiet", action="store_true", help="no summary lines on stderr")
+    ch.set_defaults(func=_cmd_chart)
+
+    k = sub.add_parser(
+        "key", formatter_class=fmt, help="make an API key and its hash for [[keys]]",
+        description=_para("`key new` prints a random API key and its SHA-256 hash (put the hash "
+                    "in a [[keys]] table, give the key to the client). `key hash KEY` prints a "
+                    "salted PBKDF2 hash of a key someone chose. The key itself never belongs "
+                    "in the config."),
+        epilog="examples:\n  sluice key new\n  sluice key hash 'a passphrase someone chose'"
+               f"\n\n{_EXIT_HELP}")
+    ksub = k.add_subparsers(dest="action", required=True, metavar="ACTION")
+    ksub.add_parser("new", help="a random key and its sha256 hash")
+    kh = ksub.add_parser("hash", help="a salted pbkdf2 hash of KEY")
+    kh.add_argument("key", metavar="KEY")
+    k.set_defaults(func=_cmd_key)
+
     so = sub.add_parser(
         "sources", formatter_class=fmt, help="list configured sources with row counts",
         description=_para("List each configured source as tab-separated name, engine, table, rows, "
@@ -246,12 +339,14 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _version() -> str:
-    try:
-        from importlib.metadata import version
+    from importlib.metadata import PackageNotFoundError, version
 
-        return version("sluice")
-    except Exception:  # not installed (running from a checkout)
-        return "0+unknown"
+    for dist in ("sluice-charts", "sluice"):  # the distribution's name, then its old one
+        try:
+            return version(dist)
+        except PackageNotFoundError:
+            continue
+    return "0+unknown"  # not installed (running from a checkout)
 
 
 def main(argv: list[str] | None = None) -> int:

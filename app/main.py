@@ -294,6 +294,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         body, ctype = metrics.render()
         return Response(body, media_type=ctype)
 
+    from app.routes_sources import router as sources_router  # column profiles
+
+    app.include_router(sources_router)
+
     # ---- preview page (app/static) ----------------------------------------------------
     @app.get("/", include_in_schema=False)
     def preview() -> Response:

@@ -156,7 +156,7 @@ def test_page_loads_sources_and_columns(server, browser):
     wait_state(browser, "ready")
     sel = Select(browser.find_element(By.ID, "source"))
     assert sel.first_selected_option.get_attribute("value") == "deliveries"
-    cols = [li.text.split("\n")[0] for li in browser.find_elements(By.CSS_SELECTOR, "#columns li")]
+    cols = [b.get_attribute("data-column") for b in browser.find_elements(By.CSS_SELECTOR, "#columns button")]
     assert {"distance_km", "delivered_at", "depot", "vehicle"} <= set(cols)
     assert "50,000 rows" in browser.find_element(By.ID, "source-info").text
     body = json.loads(browser.find_element(By.ID, "request").get_property("value"))
@@ -257,7 +257,7 @@ def test_api_key_asked_for_when_the_server_wants_one(demo_db, browser, tmp_path)
         field.send_keys(key)
         browser.execute_script("arguments[0].dispatchEvent(new Event('change'))", field)
         WebDriverWait(browser, 20).until(
-            lambda d: len(d.find_elements(By.CSS_SELECTOR, "#columns li")) > 5)
+            lambda d: len(d.find_elements(By.CSS_SELECTOR, "#columns button")) > 5)
         body = run_request(browser)
         import httpx
 
@@ -280,3 +280,146 @@ def test_other_shapes_still_draw_one_mark_per_row(server, browser, channels, ext
     n = answer(server, body)["stats"]["result_rows"]
     assert len(marks(browser)) == n > 0
     shot(browser, f"preview_shape_{request.node.callspec.indices['channels']}.png")
+
+
+# --- small multiples, limits, cache, keyboard, live region, narrow screens -----------------
+
+def facet_cells(driver) -> list[dict]:
+    """Every drawn facet cell: its facet values, its frame, the rows of its marks, and
+    whether its marks and title lie inside the frame."""
+    return driver.execute_script("""
+        const within = (b, r) => b.left >= r.left - 1 && b.right <= r.right + 1
+                                 && b.top >= r.top - 1 && b.bottom <= r.bottom + 1;
+        return [...document.querySelectorAll('#chart .facet-cell')].map(g => {
+          const r = g.querySelector('.facet-frame').getBoundingClientRect();
+          const ms = [...g.querySelectorAll('[data-mark]')];
+          return {row: g.dataset.facetRow, col: g.dataset.facetCol,
+                  box: [r.left, r.top, r.right, r.bottom],
+                  marks: ms.map(m => +m.dataset.row),
+                  inside: ms.every(m => within(m.getBoundingClientRect(), r)),
+                  title_inside: within(g.querySelector('.facet-title').getBoundingClientRect(), r),
+                  ticks_inside: [...g.querySelectorAll('.axis text')].every(
+                    t => within(t.getBoundingClientRect(), r))};
+        });""")
+
+
+def _overlap(a, b) -> bool:
+    return a[0] < b[2] - 1 and b[0] < a[2] - 1 and a[1] < b[3] - 1 and b[1] < a[3] - 1
+
+
+@pytest.mark.parametrize("facet, picture", [
+    ({"row": {"column": "region"}}, "preview_facet_rows.png"),
+    ({"row": {"column": "region"}, "col": {"column": "vehicle"}}, "preview_facet_grid.png"),
+])
+def test_facets_are_small_multiples(server, browser, facet, picture):
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    body = run_request(browser, {"source": "deliveries", "facet": facet,
+                                 "channels": {"x": {"column": "distance_km", "bin": {"bins": 10, "limits": [0, 50]}},
+                                              "y": {"agg": "count"}}})
+    shot(browser, picture)
+    data = answer(server, body)
+    names = {c["channel"]: c["name"] for c in data["columns"] if c["channel"] in ("row", "col")}
+    keys = [tuple(str(data["data"][names[f]][i]) if f in names else "" for f in ("row", "col"))
+            for i in range(data["stats"]["result_rows"])]
+    cells = facet_cells(browser)
+    # one cell per facet value (pair) in the answer, each with the marks of its own rows
+    assert sorted((c["row"], c["col"]) for c in cells) == sorted(set(keys))
+    for c in cells:
+        want = [i for i, k in enumerate(keys) if k == (c["row"], c["col"])]
+        assert sorted(c["marks"]) == want
+        assert c["inside"] and c["title_inside"] and c["ticks_inside"], c  # nothing leaks out
+    assert sum(len(c["marks"]) for c in cells) == len(marks(browser)) == len(keys)
+    for i, a in enumerate(cells):  # small multiples: no cell is drawn over another
+        for b in cells[i + 1:]:
+            assert not _overlap(a["box"], b["box"]), (a, b)
+    # the same scales in every cell: the x tick labels are the same
+    ticks = browser.execute_script("""return [...document.querySelectorAll('#chart .facet-cell')].map(
+        g => [...g.querySelectorAll('.axis')][0].textContent)""")
+    assert len(set(ticks)) == 1
+
+
+def test_rows_outside_limits_are_said(server, browser):
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    body = run_request(browser, {"source": "deliveries", "channels": {
+        "x": {"column": "distance_km", "bin": {"width": 2, "origin": 0, "limits": [0, 20]}}, "y": {"agg": "count"}}})
+    out = answer(server, body)["stats"]["outside_limits"]["x"]
+    assert out > 0
+    text = f"{out:,} rows outside the x limits"
+    assert text in browser.find_element(By.ID, "legend").text
+    assert text in browser.find_element(By.ID, "status").text
+
+
+def test_cache_hit_status_says_cached(server, browser):
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    req = {"source": "deliveries", "channels": {"x": {"column": "region"}, "y": {"agg": "sum", "column": "fee"}}}
+    run_request(browser, req)
+    first = browser.find_element(By.ID, "status").text
+    run_request(browser, req)
+    second = browser.find_element(By.ID, "status").text
+    assert "cached answer (lookup" in second and "null" not in second and "engine" not in second, second
+    assert "engine" in first or "cached" in first
+
+
+def test_column_list_is_reachable_by_keyboard(server, browser):
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.keys import Keys
+
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    browser.execute_script("document.getElementById('request').value = '';"
+                           "document.getElementById('source').focus()")
+    for _ in range(12):  # Tab from the source picker until a column button has the focus
+        if browser.execute_script("return !!document.activeElement.closest('#columns')"):
+            break
+        ActionChains(browser).send_keys(Keys.TAB).perform()
+    focused = browser.switch_to.active_element
+    assert focused.tag_name == "button" and focused.get_attribute("data-column"), "Tab never reached a column"
+    name = focused.get_attribute("data-column")
+    ActionChains(browser).send_keys(Keys.ENTER).perform()
+    assert browser.find_element(By.ID, "request").get_property("value") == json.dumps(name)
+    # Space on the next column works too (a native button)
+    browser.execute_script("document.querySelectorAll('#columns button')[1].focus()")
+    second = browser.switch_to.active_element.get_attribute("data-column")
+    ActionChains(browser).send_keys(Keys.SPACE).perform()
+    assert json.dumps(second) in browser.find_element(By.ID, "request").get_property("value")
+
+
+def test_results_and_errors_are_announced(server, browser):
+    browser.get(server + "/")
+    wait_state(browser, "ready")
+    live = browser.find_element(By.CSS_SELECTOR, "[aria-live]")
+    assert live.get_attribute("aria-live") == "polite" and live.get_attribute("role") == "status"
+    before = live.text
+    body = run_request(browser)
+    after = live.text
+    n = answer(server, body)["stats"]["result_rows"]
+    assert after != before and f"{n:,} rows" in after
+    run_request(browser, {"source": "deliveries", "channels": {"x": {"column": "depott"}}})
+    err = live.text
+    assert err != after and "Error 422" in err and "/channels/x/column" in err
+
+
+def test_chart_text_is_readable_at_420_px(server, browser):
+    browser.set_window_size(420, 1000)
+    try:
+        browser.get(server + "/")
+        wait_state(browser, "ready")
+        shot(browser, "preview_420_page.png")
+        for body, picture in [(None, "preview_420_histogram.png"),
+                              ({"source": "deliveries", "facet": {"row": {"column": "region"}},
+                                "channels": {"x": {"column": "vehicle"}, "y": {"agg": "count"}}},
+                               "preview_420_facets.png")]:
+            run_request(browser, body)
+            sizes = browser.execute_script("""
+                return [...document.querySelectorAll('#chart .axis text, #chart .facet-title')].map(t =>
+                  parseFloat(getComputedStyle(t).fontSize) * t.getScreenCTM().a)""")
+            assert sizes and min(sizes) >= 10, sizes  # rendered px (font size x SVG scale)
+            width = browser.execute_script("return document.documentElement.scrollWidth")
+            assert width <= 420, width  # nothing wider than the screen
+            browser.execute_script("document.getElementById('figure').scrollIntoView()")
+            shot(browser, picture)
+    finally:
+        browser.set_window_size(1300, 1150)

@@ -174,7 +174,9 @@ def _run(schema, path: str, method: str, mode: GenerationMode, data, steer: bool
                 if isinstance(chart, dict):
                     _repair(chart, data.draw)
     if "name" in (case.path_parameters or {}) and data.draw(st.booleans()):
-        case.path_parameters = {"name": "deliveries"}
+        case.path_parameters = {**case.path_parameters, "name": "deliveries"}
+    if "column" in (case.path_parameters or {}) and data.draw(st.integers(0, 9)) < 7:
+        case.path_parameters = {**case.path_parameters, "column": data.draw(st.sampled_from(COLUMNS))}
     client = schema.sluice_client
     kw = {"params": case.query or None, "headers": {k: str(v) for k, v in (case.headers or {}).items()}}
     if method == "POST" and case.body is not None:
@@ -206,6 +208,7 @@ ROUTE_CASES = {
     ("/v1/batch", "POST", GenerationMode.POSITIVE): 100,
     ("/v1/batch", "POST", GenerationMode.NEGATIVE): 20,
     ("/v1/sources/{name}", "GET", GenerationMode.POSITIVE): 150,
+    ("/v1/sources/{name}/columns/{column}", "GET", GenerationMode.POSITIVE): 100,
     ("/v1/sources", "GET", GenerationMode.POSITIVE): 5,
     ("/healthz", "GET", GenerationMode.POSITIVE): 5,
     ("/readyz", "GET", GenerationMode.POSITIVE): 5,

@@ -1,10 +1,16 @@
 // sluice preview page. Plain JS, no build step, no network but this server.
 // Every drawn mark is one SVG element carrying data-mark (bar | cell | point) and data-row
-// (its row in the answer), so a test can count marks against stats.result_rows.
+// (its row in the answer), so a test can count marks against stats.result_rows. A faceted
+// answer is drawn as small multiples: one <g class="facet-cell"> per facet value (or pair),
+// all with the same scales, each holding the marks of its own rows.
 "use strict";
 
 const SVG = "http://www.w3.org/2000/svg";
-const W = 760, H = 380, M = { top: 18, right: 18, bottom: 54, left: 64 };  // left: set per drawing
+// The panel being drawn: its size in SVG units (= CSS pixels: the viewBox follows the
+// figure's width, so text keeps its CSS size on a phone) and the rows it shows.
+let W = 760, H = 380, ROWS = [];
+const M = { top: 26, right: 18, bottom: 54, left: 64 };  // left and right: set per drawing
+let TITLES = { x: true, y: true };  // axis titles (small multiples: outer panels only)
 const PALETTE = ["#2f6f73", "#c7772b", "#5b5ea6", "#8a9a2b", "#b04a6b", "#3b8fc2", "#7a5a3a", "#6c6f75",
                  "#d1a93b", "#4f9a6e"];
 const $ = (id) => document.getElementById(id);
@@ -154,8 +160,10 @@ function keyScale(resp, slot, chName, lo, hi, nullsPlaced) {
   const band = !slot.start && !isTime(keyCol.type) && !(isNum(keyCol.type) && new Set(data[keyCol.name]).size > 40);
   if (!nullsPlaced && !band && data[keyCol.name].some((v) => v === null)) {
     // a NULL key is its own group: it gets a slot of its own past the end of the axis
-    const dir = hi > lo ? 1 : -1, slotHi = hi, slotLo = hi - dir * 30;
-    const sc = keyScale(resp, slot, chName, lo, hi - dir * 44, true);
+    // (its width follows the panel: a small multiple keeps most of its axis for the data)
+    const room = Math.min(30, Math.abs(hi - lo) * 0.1);
+    const dir = hi > lo ? 1 : -1, slotHi = hi, slotLo = hi - dir * room;
+    const sc = keyScale(resp, slot, chName, lo, hi - dir * (room + Math.min(14, room / 2)), true);
     const inner = sc.pos;
     sc.pos = (i) => (data[keyCol.name][i] === null ? [Math.min(slotLo, slotHi), Math.max(slotLo, slotHi)] : inner(i));
     sc.ticks = sc.ticks.concat([{ at: (slotLo + slotHi) / 2, label: "null" }]);
@@ -215,12 +223,14 @@ function continuousTicks(type, d0, d1, f, bins, span) {
     const { ticks, step } = timeTicks(d0, d1, n);
     return ticks.map((t) => ({ at: f(new Date(t).toISOString()), label: timeLabel(t, step) }));
   }
-  if (bins && bins.count && bins.count <= 12) {
+  if (bins && bins.count && bins.count <= 12) {   // every bin edge, thinned to ~40 px apart
     const out = [];
     const vals = [];
     for (let k = 0; k <= bins.count; k++) vals.push(bins.start + k * bins.width);
     const labels = tickLabels(vals);
-    for (let k = 0; k <= bins.count; k++) out.push({ at: f(vals[k]), label: labels[k] });
+    const raw = 40 / (Math.abs(span) / bins.count);
+    const every = [1, 2, 5, 10, 20].find((k) => k >= raw) || bins.count;
+    for (let k = 0; k <= bins.count; k += every) out.push({ at: f(vals[k]), label: labels[k] });
     return out;
   }
   const vals = niceTicks(d0, d1, n), labels = tickLabels(vals);
@@ -256,7 +266,7 @@ function axis(svg, ticks, horizontal, at, title) {
         transform: `rotate(-35 ${t.at} ${at + 8})` } : { x: t.at, y: at + 16, "text-anchor": "middle" }, g);
       tx.textContent = t.label;
     }
-    if (title) { const tt = el("text", { class: "title", x: W - M.right, y: H - 6, "text-anchor": "end" }, svg); tt.textContent = title; }
+    if (title && TITLES.x) { const tt = el("text", { class: "title", x: W - M.right, y: H - 6, "text-anchor": "end" }, svg); tt.textContent = title; }
   } else {
     el("line", { x1: at, x2: at, y1: M.top, y2: H - M.bottom }, g);
     for (const t of ticks) {
@@ -265,7 +275,7 @@ function axis(svg, ticks, horizontal, at, title) {
       const tx = el("text", { x: at - 7, y: t.at + 4, "text-anchor": "end" }, g);
       tx.textContent = t.label;
     }
-    if (title) { const tt = el("text", { class: "title", x: 4, y: 12 }, svg); tt.textContent = title; }
+    if (title && TITLES.y) { const tt = el("text", { class: "title", x: 4, y: 12 }, svg); tt.textContent = title; }
   }
 }
 function colorOf(resp, ch) {
@@ -296,17 +306,115 @@ function tip(node, resp, i) {
   t.textContent = resp.columns.map((c) => `${c.name}: ${fmtValue(resp.data[c.name][i], c.type)}`).join("\n");
 }
 
+// The value of a facet key in row i, as a label ("North", "0–10").
+function facetValue(resp, slot, i) {
+  if (!slot) return null;
+  if (slot.start) {
+    const a = resp.data[slot.start.name][i];
+    return a === null ? null : `${fmtValue(a, slot.start.type)}–${fmtValue(resp.data[slot.end.name][i], slot.end.type)}`;
+  }
+  return slot.key ? resp.data[slot.key.name][i] : null;
+}
+// Facet values in key order (numbers and times by value, text by code point), NULL last.
+function facetOrder(resp, slot, n) {
+  const seen = new Map();
+  for (let i = 0; i < n; i++) {
+    const v = facetValue(resp, slot, i);
+    if (!seen.has(v)) seen.set(v, slot.start ? resp.data[slot.start.name][i] : v);
+  }
+  const type = (slot.start || slot.key).type;
+  const cmp = (a, b) => (isTime(type) ? toNum(a, type) - toNum(b, type)
+    : isNum(type) || type === "boolean" ? Number(a) - Number(b) : a < b ? -1 : a > b ? 1 : 0);
+  return [...seen.entries()].sort((a, b) => (a[1] === null) - (b[1] === null) || (a[1] === null ? 0 : cmp(a[1], b[1])))
+    .map((e) => e[0]);
+}
+// Small multiples: one cell per facet value (row facet: rows of cells, col facet: columns).
+function facetGrid(resp, ch, n) {
+  if (!ch.row && !ch.col) return null;
+  const rv = ch.row ? facetOrder(resp, ch.row, n) : [undefined];
+  const cv = ch.col ? facetOrder(resp, ch.col, n) : [undefined];
+  const cells = [];
+  for (const [r, a] of rv.entries()) for (const [c, b] of cv.entries()) cells.push({ r, c, row: a, col: b, rows: [] });
+  const at = new Map(cells.map((cell) => [JSON.stringify([cell.row, cell.col]), cell]));
+  for (let i = 0; i < n; i++) {
+    const a = ch.row ? facetValue(resp, ch.row, i) : undefined, b = ch.col ? facetValue(resp, ch.col, i) : undefined;
+    at.get(JSON.stringify([a, b])).rows.push(i);
+  }
+  return { cells: cells.filter((c) => c.rows.length), nr: rv.length, nc: cv.length };
+}
+// "region = North" for one facet, "North · van" for a grid (the legend names the keys).
+function facetLabel(ch, cell) {
+  const value = (slot, v) => (v === null ? "null" : slot.start ? v : fmtValue(v, (slot.key || slot.start).type));
+  const name = (slot) => (slot.key || slot.start).name.replace(/_lo$/, "");
+  if (ch.row && ch.col) return `${value(ch.row, cell.row)} · ${value(ch.col, cell.col)}`;
+  const slot = ch.row || ch.col, v = ch.row ? cell.row : cell.col;
+  return `${name(slot)} = ${value(slot, v)}`;
+}
+function fitText(node, text, width) {   // cut with an ellipsis to fit; the full text as a tooltip
+  node.textContent = text;
+  if (node.getComputedTextLength() <= width) return;
+  el("title", {}, node.parentNode).textContent = text;
+  let k = text.length;
+  while (k > 1 && node.getComputedTextLength() > width) node.textContent = text.slice(0, --k) + "…";
+}
+
 function draw(resp, body) {
   const svg = $("chart");
   svg.replaceChildren();
-  svg.setAttribute("viewBox", `0 0 ${W} ${H}`);
   const ch = channelsOf(resp);
   const n = resp.stats ? resp.stats.result_rows : 0;
+  const full = Math.max(280, Math.round($("figure").clientWidth - 14));  // SVG units = CSS px
+  const narrow = full < 560;
   // room on the left for the y labels: category names can be long
   const yKey = ch.y && ch.y.key;
   const longest = yKey ? Math.max(4, ...resp.data[yKey.name].map((v) => fmtValue(v, yKey.type).length)) : 6;
-  M.left = Math.round(Math.min(180, Math.max(64, 16 + 6.6 * longest)));
+  M.left = Math.round(Math.min(narrow ? 110 : 180, Math.max(narrow ? 50 : 64, 16 + 6.6 * longest)));
+  M.right = narrow ? 10 : 18;
   const color = colorOf(resp, ch);
+  const grid = facetGrid(resp, ch, n);
+  let kind = "none";
+  if (!grid) {
+    W = full; H = narrow ? 300 : 380; ROWS = [...Array(n).keys()]; TITLES = { x: true, y: true };
+    svg.setAttribute("viewBox", `0 0 ${W} ${H}`);
+    svg.setAttribute("width", W); svg.setAttribute("height", H);
+    kind = panel(svg, resp, body, ch, color);
+  } else {
+    const gap = 12, head = 20;
+    const cw = Math.floor((full - gap * (grid.nc - 1)) / grid.nc);
+    const chh = grid.nr > 1 ? (narrow ? 210 : 240) : (narrow ? 280 : 340);
+    const total = grid.nr * (chh + head) + gap * (grid.nr - 1);
+    svg.setAttribute("viewBox", `0 0 ${full} ${total}`);
+    svg.setAttribute("width", full); svg.setAttribute("height", total);
+    for (const cell of grid.cells) {
+      const g = el("g", { class: "facet-cell", transform: `translate(${cell.c * (cw + gap)},${cell.r * (chh + head + gap)})`,
+        "data-facet-row": ch.row ? String(cell.row) : "", "data-facet-col": ch.col ? String(cell.col) : "",
+        "data-rows": cell.rows.length }, svg);
+      el("rect", { class: "facet-frame", x: 0.5, y: 0.5, width: cw - 1, height: chh + head - 1 }, g);
+      fitText(el("text", { class: "facet-title", x: cw - 8, y: 15, "text-anchor": "end" }, g), facetLabel(ch, cell), cw - 16);
+      const inner = el("g", { transform: `translate(0,${head})` }, g);
+      W = cw; H = chh; ROWS = cell.rows;
+      TITLES = { x: cell.r === grid.nr - 1, y: cell.c === 0 };
+      kind = panel(inner, resp, body, ch, color);
+    }
+  }
+  const legend = $("legend");
+  legend.replaceChildren();
+  if (kind === "none") legend.append(html("span", "No drawing for an answer without a measure; the table below has it."));
+  for (const [c, label] of color.legend) { const s = html("span", label); const sw = html("i"); sw.style.background = c; s.prepend(sw); legend.append(s); }
+  if (grid) {
+    const nm = (slot) => (slot.key || slot.start).name.replace(/_lo$/, "");
+    const what = ch.row && ch.col ? `${nm(ch.row)} (rows) × ${nm(ch.col)} (columns)` : nm(ch.row || ch.col);
+    legend.append(html("span", `${grid.cells.length} cells by ${what}, the same scales in each.`));
+  }
+  for (const [chName, count] of Object.entries((resp.stats && resp.stats.outside_limits) || {})) {
+    if (count > 0) legend.append(html("span", `${fmtNum(count)} rows outside the ${chName} limits are not drawn.`, "outside"));
+  }
+  return { kind, marks: svg.querySelectorAll("[data-mark]").length };
+}
+
+// One plot panel in `svg` (the figure or a facet cell): W x H units, the rows ROWS, scales
+// from the whole answer (so every facet cell shares them).
+function panel(svg, resp, body, ch, color) {
   const xr = [M.left, W - M.right], yr = [H - M.bottom, M.top];
   let kind = "none";
   const marks = el("g", { class: "marks" }, svg);
@@ -325,7 +433,7 @@ function draw(resp, body) {
     const xs = lin(ch.x.key, xr[0], xr[1]), ys = lin(ch.y.key, yr[0], yr[1]);
     const X = resp.data[ch.x.key.name], Y = resp.data[ch.y.key.name];
     const pts = [];
-    for (let i = 0; i < n; i++) {
+    for (const i of ROWS) {
       if (X[i] === null || Y[i] === null) { tip(nullMark("point", i, M.left, H - M.bottom, marks), resp, i); continue; }
       pts.push([xs.f(X[i]), ys.f(Y[i]), i]);
     }
@@ -340,7 +448,7 @@ function draw(resp, body) {
     // heat cells: two keys, the colour is the measure
     kind = "cell";
     const xs = keyScale(resp, ch.x, "x", xr[0], xr[1]), ys = keyScale(resp, ch.y, "y", yr[0], yr[1]);
-    for (let i = 0; i < n; i++) {
+    for (const i of ROWS) {
       const px = cellSpan(xs, i), py = cellSpan(ys, i);
       if (!px || !py) continue;
       tip(el("rect", { "data-mark": "cell", "data-row": i, x: Math.min(...px), y: Math.min(...py),
@@ -353,7 +461,7 @@ function draw(resp, body) {
     kind = "point";
     const xs = measureScale(resp, [ch.x.measure], xr[0], xr[1], false);
     const ys = measureScale(resp, [ch.y.measure], yr[0], yr[1], false);
-    for (let i = 0; i < n; i++) {
+    for (const i of ROWS) {
       const vx = resp.data[ch.x.measure.name][i], vy = resp.data[ch.y.measure.name][i];
       if (vx === null || vy === null) {   // a null measure: a hollow mark on the axis
         tip(nullMark("point", i, vx === null ? M.left : xs.f(vx), vy === null ? H - M.bottom : ys.f(vy), marks), resp, i);
@@ -373,11 +481,11 @@ function draw(resp, body) {
     const yv = (i) => resp.data[ch.y.measure.name][i];
     if (isTime(keyType) && !ch.x.start && !stacked) {
       kind = "point";  // a line through the rows of each colour, one point mark per row
-      drawLines(resp, ch, xs, ys, color, marks, n);
+      drawLines(resp, ch, xs, ys, color, marks);
     } else {
       kind = "bar";
       const dodge = !stacked && color.count > 1;
-      for (let i = 0; i < n; i++) {
+      for (const i of ROWS) {
         let p = xs.pos(i);
         const v = yv(i);
         if (!p) continue;
@@ -401,7 +509,7 @@ function draw(resp, body) {
     if (ys.kind === "band") ys = keyScale(resp, ch.y, "y", yr[1], yr[0]);  // categories read top-down
     const xs = measureScale(resp, stacked ? [ch.x.stackStart, ch.x.stackEnd] : [ch.x.measure], xr[0], xr[1], true);
     const dodge = !stacked && color.count > 1;
-    for (let i = 0; i < n; i++) {
+    for (const i of ROWS) {
       let p = ys.pos(i);
       const v = resp.data[ch.x.measure.name][i];
       if (!p) continue;
@@ -421,27 +529,23 @@ function draw(resp, body) {
       kind = "bar";
       const keys = resp.columns.filter((c) => c.role === "key" || c.role === "bin_lo");
       const label = (i) => keys.map((c) => fmtValue(resp.data[c.name][i], c.type)).join(" · ") || `row ${i + 1}`;
-      const bw = (xr[1] - xr[0]) / Math.max(1, n);
+      const bw = (xr[1] - xr[0]) / Math.max(1, ROWS.length);
       const ys = measureScale(resp, [m], yr[0], yr[1], true);
-      for (let i = 0; i < n; i++) {
-        const v = resp.data[m.name][i], x = xr[0] + i * bw;
+      const slot = new Map(ROWS.map((i, k) => [i, k]));
+      for (const i of ROWS) {
+        const v = resp.data[m.name][i], x = xr[0] + slot.get(i) * bw;
         if (v === null) { tip(nullMark("bar", i, x + bw / 2, ys.f(0), marks), resp, i); continue; }
         const y0 = ys.f(0), y1 = ys.f(v);
         tip(el("rect", { "data-mark": "bar", "data-row": i, x: x + bw * 0.1, y: Math.min(y0, y1), width: Math.max(1, bw * 0.8),
           height: Math.max(0.5, Math.abs(y1 - y0)), fill: color.fill(i) }, marks), resp, i);
       }
-      const every = Math.ceil(n / Math.max(1, Math.floor((xr[1] - xr[0]) / 60)));
-      axis(svg, [...Array(n).keys()].filter((i) => i % every === 0).map((i) => ({ at: xr[0] + (i + 0.5) * bw, label: label(i) })),
+      const every = Math.ceil(ROWS.length / Math.max(1, Math.floor((xr[1] - xr[0]) / 60)));
+      axis(svg, ROWS.filter((i, k) => k % every === 0).map((i) => ({ at: xr[0] + (slot.get(i) + 0.5) * bw, label: label(i) })),
         true, H - M.bottom, "rows in answer order");
       axis(svg, ys.ticks, false, M.left, m.name);
     }
   }
-  const legend = $("legend");
-  legend.replaceChildren();
-  if (kind === "none") legend.append(html("span", "No drawing for an answer without a measure; the table below has it."));
-  for (const [c, label] of color.legend) { const s = html("span", label); const sw = html("i"); sw.style.background = c; s.prepend(sw); legend.append(s); }
-  if (ch.row || ch.col) legend.append(html("span", "Facet cells are drawn on top of one another; the table keeps them apart."));
-  return { kind, marks: marks.querySelectorAll("[data-mark]").length };
+  return kind;
 }
 // A row whose measure is null still gets its mark: a small hollow diamond, data-null="true".
 function nullMark(kind, i, x, y, parent) {
@@ -460,9 +564,9 @@ function labelOf(slot, chName, body) {
   const spec = body && body.channels && body.channels[chName];
   return spec && spec.column ? `${spec.column} (binned)` : slot.start.name.replace(/_lo$/, "");
 }
-function drawLines(resp, ch, xs, ys, color, marks, n) {
+function drawLines(resp, ch, xs, ys, color, marks) {
   const series = new Map();
-  for (let i = 0; i < n; i++) {
+  for (const i of ROWS) {
     const k = color.index ? color.index(i) : 0;
     if (!series.has(k)) series.set(k, []);
     series.get(k).push(i);
@@ -548,6 +652,7 @@ function showProblem(p, body) {
   if (p.suggestions && p.suggestions.length) box.append(html("div", `Nearest valid names: ${p.suggestions.join(", ")}`));
 }
 function clearAnswer() {
+  LAST = null;
   $("problem").hidden = true;
   $("figure").hidden = false;
   $("chart").replaceChildren();
@@ -555,6 +660,22 @@ function clearAnswer() {
   $("sql").textContent = "";
   $("result").replaceChildren();
 }
+
+// One line about the answer (announced by the live region): rows, what could mislead
+// (truncation, approximation, rows outside limits) and where the time went.
+function summary(data, drawn, roundTrip) {
+  const s = data.stats, tm = data.timing_ms || {};
+  const outside = Object.entries(s.outside_limits || {})
+    .map(([chName, k]) => ` · ${fmtNum(k)} rows outside the ${chName} limits`).join("");
+  const time = data.cache === "hit" ? `cached answer (lookup ${fmtNum(tm.lookup)} ms)`
+    : `engine ${fmtNum(tm.execute)} ms`;
+  return `${fmtNum(s.result_rows)} rows from ${fmtNum(s.matched_rows)} matched of ${fmtNum(s.source_rows)}`
+    + (s.truncated ? ` (truncated: ${fmtNum(s.groups)} groups)` : "") + (data.approximate ? " · approximate" : "")
+    + outside
+    + ` · ${fmtNum(drawn.marks)} ${drawn.kind === "none" ? "marks" : drawn.kind + " marks"}`
+    + ` · ${time} · round trip ${fmtNum(roundTrip)} ms`;
+}
+let LAST = null;  // the last answer drawn, redrawn when the page width changes
 
 async function run() {
   const btn = $("run");
@@ -576,19 +697,19 @@ async function run() {
     if (!r.ok) {
       askForKey(r.status);
       showProblem(data, body);
-      $("status").textContent = `HTTP ${r.status} · request id ${r.headers.get("x-request-id") || "?"}`;
+      // the status line is the page's live region: the problem is announced there too
+      $("status").textContent = `Error ${r.status}: ${data.title || "request refused"}`
+        + (data.pointer ? ` at ${data.pointer}` : "") + (data.detail ? ` · ${data.detail}` : "")
+        + ` · request id ${r.headers.get("x-request-id") || "?"}`;
       document.body.dataset.state = "problem";
       return;
     }
     $("sql").textContent = (data.sql || []).map((s) => layoutSql(s.replace(/;?\s*$/, ";"))).join("\n\n");
     showTable(data);
+    LAST = { data, body };
     const drawn = draw(data, body);
-    const s = data.stats, tm = data.timing_ms || {};
-    $("status").textContent = `${fmtNum(s.result_rows)} rows from ${fmtNum(s.matched_rows)} matched of ${fmtNum(s.source_rows)}`
-      + (s.truncated ? " (truncated)" : "") + (data.approximate ? " · approximate" : "")
-      + ` · ${fmtNum(drawn.marks)} ${drawn.kind === "none" ? "marks" : drawn.kind + " marks"}`
-      + ` · engine ${fmtNum(tm.execute)} ms · round trip ${fmtNum(performance.now() - t0)} ms · cache ${data.cache || "-"}`;
-    $("chart").dataset.resultRows = s.result_rows;
+    $("status").textContent = summary(data, drawn, performance.now() - t0);
+    $("chart").dataset.resultRows = data.stats.result_rows;
     document.body.dataset.state = "done";
   } catch (e) {
     clearAnswer();
@@ -607,11 +728,15 @@ async function loadSource(name) {
   const s = await r.json();
   if (!r.ok) { askForKey(r.status); info.textContent = s.detail || `HTTP ${r.status}`; return; }
   info.textContent = `${s.engine} · table ${s.table} · ${fmtNum(s.row_count)} rows`;
-  for (const c of s.columns) {
-    const li = html("li", c.name);
-    li.title = c.type;
-    li.append(html("span", c.kind || c.type));
-    li.addEventListener("click", () => insertAtCursor(JSON.stringify(c.name)));
+  for (const c of s.columns) {   // buttons: reachable with Tab, Enter / Space insert the name
+    const li = html("li");
+    const b = html("button", c.name, "column");
+    b.type = "button";
+    b.dataset.column = c.name;
+    b.title = `${c.type}: insert "${c.name}" into the request`;
+    b.append(html("span", c.kind || c.type));
+    b.addEventListener("click", () => insertAtCursor(JSON.stringify(c.name)));
+    li.append(b);
     list.append(li);
   }
   try {   // keep the request on the chosen source
@@ -648,6 +773,11 @@ async function init() {
   const keyInput = $("apikey");
   keyInput.value = sessionStorage.getItem("sluice-api-key") || "";
   keyInput.addEventListener("change", () => { sessionStorage.setItem("sluice-api-key", keyInput.value.trim()); loadSources(); });
+  let pending = 0;
+  window.addEventListener("resize", () => {
+    clearTimeout(pending);
+    pending = setTimeout(() => { if (LAST) draw(LAST.data, LAST.body); }, 120);
+  });
   await loadSources();
   document.body.dataset.state = "ready";
 }

@@ -1,0 +1,190 @@
+"""``GET /v1/sources/{name}/columns/{column}``: a column profile for filter widgets.
+
+The statement comes from ``planner.profile`` (one per profile); it runs here through the
+service's limiter (statement timeout, ``max_concurrent``) and the answer is kept in the
+result cache by (source, column, top) and the source's data version, like a chart answer.
+Access follows ``GET /v1/sources/{name}``: 403 for a source the key does not grant (before
+existence), 404 for an unknown source or column with the nearest names.
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+import orjson
+import pyarrow as pa
+from fastapi import APIRouter, Query, Request
+from pydantic import BaseModel, Field
+from starlette.responses import Response
+
+from app import auth, observability
+from app.cache import Entry, open_json, source_version, stamp_json
+from app.catalog import UnknownSource
+from app.encode import column_values, normalize_column
+from app.engines.arrow import conform_column
+from app.problems import PROBLEM_JSON, Problem
+from planner import profile as prof
+from planner.dialects import get_dialect
+from planner.errors import PlanError, nearest
+
+router = APIRouter(tags=["sources"])
+
+Scalar = bool | int | float | str | None
+
+
+class TopValue(BaseModel):
+    value: Scalar = Field(description="A value of the column (never NULL: see null_count)")
+    count: int = Field(description="Rows holding this value")
+
+
+class TopValues(BaseModel):
+    limit: int = Field(description="At most this many values were asked for (`top`)")
+    values: list[TopValue] = Field(description="Most frequent first; ties by value ascending")
+    complete: bool = Field(description="True when every distinct non-NULL value is listed")
+    other_rows: int = Field(description="Non-NULL rows whose value is not listed")
+
+
+class Distinct(BaseModel):
+    approximate: bool
+    method: str = Field(description="How distinct_count was computed, e.g. `exact (GROUP BY)`, "
+                        "`hyperloglog`, `exact (COUNT DISTINCT)`")
+    relative_standard_error: float | None = None
+
+
+class ColumnProfile(BaseModel):
+    source: str
+    column: str
+    kind: str = Field(description="integer | double | decimal | string | boolean | timestamp | "
+                      "timestamptz | date")
+    type: str = Field(description="The engine's own type name")
+    row_count: int
+    null_count: int
+    min: Scalar = Field(None, description="Smallest non-NULL value (timestamps RFC 3339 UTC, "
+                        "dates ISO 8601, text in the column's collation); absent for booleans")
+    max: Scalar = None
+    distinct_count: int = Field(description="Distinct non-NULL values (see `distinct`)")
+    distinct: Distinct
+    top_values: TopValues | None = Field(description="Most frequent values (text and boolean "
+                                         "columns by default; `top` asks for them on any column)")
+    sql: str
+    dialect: str
+    cache: str = Field(description="hit | miss")
+    timing_ms: dict[str, float]
+
+
+def _problems() -> dict[int | str, dict[str, Any]]:
+    desc = {401: "No or bad API key (when keys are configured)",
+            403: "The API key is not granted this source",
+            404: "Unknown source or column (suggestions name the nearest)",
+            422: "Bad `top`, or a column type that cannot be profiled",
+            503: "The source's engine is unavailable, or busy (Retry-After)",
+            504: "The statement ran past the source's statement_timeout_ms"}
+    return {code: {"description": d, "content": {PROBLEM_JSON: {}}} for code, d in desc.items()}
+
+
+@router.get("/v1/sources/{name}/columns/{column}", response_model=ColumnProfile,
+            responses=_problems())
+def column_profile(name: str, column: str, request: Request,
+                   top: int | None = Query(None, ge=0, le=prof.MAX_TOP, description=(
+                       "How many most frequent values to return (0: none). Default: "
+                       f"{prof.DEFAULT_TOP} for text and boolean columns, 0 otherwise."))
+                   ) -> Response:
+    """Profile one column for a filter widget: kind, NULL count, min/max, distinct count
+    (exact when the column is grouped for its frequent values, otherwise the engine's
+    approximate count, with the method) and the most frequent values with their counts."""
+    t_in = time.perf_counter()
+    st = request.app.state
+    catalog, service = st.catalog, st.service
+    auth.require(name, None)  # 403 before 404: names cannot be probed
+    try:
+        cfg = catalog.config(name)
+    except UnknownSource as e:
+        raise Problem(404, "unknown-source", "Unknown source", f"unknown source {name!r}",
+                      suggestions=nearest(name, auth.filter_names(e.known))) from None
+    observability.note_source(name)
+    engine = catalog.engine(name)
+    entry = catalog.entry(name)
+    try:
+        col = prof.resolve(entry.schema, column)
+        top = prof.default_top(col) if top is None else top
+
+        def run() -> Entry:
+            plan = prof.plan_profile(entry.schema, col.name, get_dialect(engine.dialect), top)
+            with service.limiter.admit(name):
+                t0 = time.perf_counter()
+                raw = service.limiter.guard(name, engine).execute(plan.sql)
+                ms = round((time.perf_counter() - t0) * 1000.0, 3)
+            observability.record_chart(name, {}, {"execute": ms})  # engine seconds metric
+            body = open_json({"source": name, "column": col.name} | shape(plan, raw))
+            return Entry(body, "application/json", {"execute": ms})
+
+        return _answer(request, cfg, engine, ("profile", name, col.name, top), run, t_in)
+    except PlanError as e:  # no request body: no pointer, the path names the column
+        raise Problem(e.status, e.slug, e.title, e.detail, suggestions=e.suggestions) from None
+
+
+def _answer(request: Request, cfg: Any, engine: Any, key: tuple, run, t_in: float) -> Response:
+    """The cached answer for ``key`` (single flight, per data version) or ``run()``'s."""
+    st = request.app.state
+    cache = st.cache
+    name = key[1]
+    lookup = "no-cache" not in request.headers.get("cache-control", "").lower()
+    if cache.enabled:
+        version = source_version(cfg.engine, engine,
+                                 float((getattr(st.settings, "cache", None) or {}).get("ttl_s", 60.0)))
+        got, state = cache.compute(cache.key(orjson.dumps(key), version, "profile"), name, run,
+                                   lookup=lookup)
+    else:
+        got, state = run(), "miss"
+    timing = got.timing if state == "miss" else {
+        "lookup": round((time.perf_counter() - t_in) * 1000.0, 3)}
+    return Response(stamp_json(got.body, state, timing), media_type="application/json")
+
+
+def _value(arr: pa.ChunkedArray, kind: str, i: int = 0) -> Any:
+    """Value ``i`` of a result column, typed by the column's kind and written as in a chart
+    answer (the same conform + JSON path); a decimal becomes the double nearest to it."""
+    one = conform_column(arr.slice(i, 1), kind)
+    if pa.types.is_decimal(one.type):
+        v = one[0].as_py()
+        return None if v is None else float(v)
+    return column_values(normalize_column(one))[0]
+
+
+def shape(plan: prof.ProfilePlan, raw: pa.Table) -> dict[str, Any]:
+    kind = plan.column.kind
+
+    def num(name: str, i: int = 0) -> int:
+        return int(raw.column(name)[i].as_py() or 0) if raw.num_rows else 0
+
+    out: dict[str, Any] = {"kind": kind, "type": plan.column.sql_type}
+    if plan.top == 0:
+        rows = num(prof.ROWS)
+        out.update(row_count=rows, null_count=rows - num(f"{prof.P}non_null"))
+    else:
+        out.update(row_count=num(prof.ROWS), null_count=num(prof.NULLS))
+    if plan.has_range and raw.num_rows:
+        out["min"] = _value(raw.column(prof.LO), kind)
+        out["max"] = _value(raw.column(prof.HI), kind)
+    else:
+        out["min"] = out["max"] = None
+    out["distinct_count"] = num(prof.DISTINCT)
+    out["distinct"] = {"approximate": plan.approximate, "method": plan.distinct_method,
+                       "relative_standard_error": plan.distinct_error}
+    if plan.top == 0:
+        out["top_values"] = None
+    else:
+        values = []
+        vals = raw.column(prof.VALUE)
+        counts = raw.column(prof.COUNT)
+        for i in range(raw.num_rows):
+            v = _value(vals, kind, i)
+            if v is not None:
+                values.append({"value": v, "count": int(counts[i].as_py())})
+        listed = sum(x["count"] for x in values)
+        out["top_values"] = {"limit": plan.top, "values": values,
+                             "complete": len(values) == out["distinct_count"],
+                             "other_rows": out["row_count"] - out["null_count"] - listed}
+    out.update(sql=plan.sql, dialect=plan.dialect)
+    return out
