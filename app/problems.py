@@ -88,6 +88,18 @@ PROBLEM_TYPES: dict[str, tuple[str, str, str]] = {
                      "defect to report with the request."),
     "internal": ("Internal error", "500",
                  "sluice failed to answer; the error is logged under the `request_id`."),
+    "unsupported-column": ("Column cannot be profiled", "422",
+                           "The column's engine type is one sluice cannot group or order "
+                           "(e.g. a list, map or binary type), so it has no profile."),
+    "body-timeout": ("Request body too slow", "408",
+                     "The request body did not arrive within the server's `body_timeout_s`; "
+                     "the connection is closed. Send the body at once."),
+    "operator-only": ("Operator key needed", "403",
+                      "With API keys configured, `/metrics` answers only keys marked "
+                      "`operator = true`, since it names every source."),
+    "shutting-down": ("Server shutting down", "503",
+                      "The process received SIGTERM and cut the request while draining; "
+                      "retry on another replica or after the restart (Retry-After)."),
 }
 
 

@@ -22,7 +22,7 @@ from app import auth, observability
 from app.cache import Entry, open_json, source_version, stamp_json
 from app.catalog import UnknownSource
 from app.encode import column_values, normalize_column
-from app.engines.arrow import conform_column
+from app.engines.arrow import conform_column, declared_type
 from app.problems import PROBLEM_JSON, Problem
 from planner import profile as prof
 from planner.dialects import get_dialect
@@ -142,10 +142,11 @@ def _answer(request: Request, cfg: Any, engine: Any, key: tuple, run, t_in: floa
     return Response(stamp_json(got.body, state, timing), media_type="application/json")
 
 
-def _value(arr: pa.ChunkedArray, kind: str, i: int = 0) -> Any:
-    """Value ``i`` of a result column, typed by the column's kind and written as in a chart
-    answer (the same conform + JSON path); a decimal becomes the double nearest to it."""
-    one = conform_column(arr.slice(i, 1), kind)
+def _value(arr: pa.ChunkedArray, plan: prof.ProfilePlan, i: int = 0) -> Any:
+    """Value ``i`` of a result column, typed by the column's declared type and written as in
+    a chart answer (the same conform + JSON path); a decimal becomes the double nearest to it."""
+    target = declared_type(plan.column, get_dialect(plan.dialect).sqlglot or None)
+    one = conform_column(arr.slice(i, 1), target)
     if pa.types.is_decimal(one.type):
         v = one[0].as_py()
         return None if v is None else float(v)
@@ -165,8 +166,8 @@ def shape(plan: prof.ProfilePlan, raw: pa.Table) -> dict[str, Any]:
     else:
         out.update(row_count=num(prof.ROWS), null_count=num(prof.NULLS))
     if plan.has_range and raw.num_rows:
-        out["min"] = _value(raw.column(prof.LO), kind)
-        out["max"] = _value(raw.column(prof.HI), kind)
+        out["min"] = _value(raw.column(prof.LO), plan)
+        out["max"] = _value(raw.column(prof.HI), plan)
     else:
         out["min"] = out["max"] = None
     out["distinct_count"] = num(prof.DISTINCT)
@@ -179,7 +180,7 @@ def shape(plan: prof.ProfilePlan, raw: pa.Table) -> dict[str, Any]:
         vals = raw.column(prof.VALUE)
         counts = raw.column(prof.COUNT)
         for i in range(raw.num_rows):
-            v = _value(vals, kind, i)
+            v = _value(vals, plan, i)
             if v is not None:
                 values.append({"value": v, "count": int(counts[i].as_py())})
         listed = sum(x["count"] for x in values)

@@ -13,7 +13,8 @@ export interface paths {
         };
         /**
          * Healthz
-         * @description Liveness: the process is up and answering (touches no source).
+         * @description Liveness: the process is up and answering. An async route doing no I/O, so it
+         *     never waits for a worker thread behind running queries (app.probes).
          */
         get: operations["healthz_healthz_get"];
         put?: never;
@@ -33,7 +34,8 @@ export interface paths {
         };
         /**
          * Metrics Text
-         * @description Prometheus text exposition of this app's metrics.
+         * @description Prometheus text exposition of this app's metrics (with keys configured: operator
+         *     keys only, app.auth).
          */
         get: operations["metrics_text_metrics_get"];
         put?: never;
@@ -54,6 +56,7 @@ export interface paths {
         /**
          * Readyz
          * @description Readiness: every configured source answers; 503 with per-source detail if not.
+         *     Answers within ``ready_timeout_s``; checks are shared and cached (app.probes).
          */
         get: operations["readyz_readyz_get"];
         put?: never;
@@ -97,8 +100,10 @@ export interface paths {
         put?: never;
         /**
          * Chart
-         * @description Run a chart request and return the mark-ready table (JSON, or Arrow IPC stream
-         *     when the client accepts ``application/vnd.apache.arrow.stream``).
+         * @description Run a chart request and return the mark-ready table. The format follows
+         *     ``Accept`` (app/formats.py): ``application/json`` (default),
+         *     ``application/vnd.apache.arrow.stream``, ``text/csv`` or
+         *     ``application/vnd.apache.parquet``; anything else is a 406 problem.
          */
         post: operations["chart_v1_chart_post"];
         delete?: never;
@@ -114,7 +119,10 @@ export interface paths {
             path?: never;
             cookie?: never;
         };
-        /** Sources */
+        /**
+         * Sources
+         * @description Configured sources (only those the API key grants).
+         */
         get: operations["sources_v1_sources_get"];
         put?: never;
         post?: never;
@@ -131,7 +139,10 @@ export interface paths {
             path?: never;
             cookie?: never;
         };
-        /** Source */
+        /**
+         * Source
+         * @description A source's introspected columns (engine type and kind) and row count.
+         */
         get: operations["source_v1_sources__name__get"];
         put?: never;
         post?: never;
@@ -191,6 +202,43 @@ export interface components {
         AnyOf: {
             /** Any */
             any: (components["schemas"]["Predicate"] | components["schemas"]["AnyOf"] | components["schemas"]["NotOf"])[];
+        };
+        /** Approximation */
+        Approximation: {
+            /** Columns */
+            columns: string[];
+            /** Method */
+            method: string;
+            /** Relative Standard Error */
+            relative_standard_error: number;
+        } & {
+            [key: string]: unknown;
+        };
+        /**
+         * BatchAnswer
+         * @example {
+         *       "results": [
+         *         {
+         *           "detail": "unknown column 'nope' in source 'deliveries'",
+         *           "pointer": "/charts/1/channels/x/column",
+         *           "status": 422,
+         *           "title": "Unknown column",
+         *           "type": "/problems/unknown-column"
+         *         }
+         *       ],
+         *       "source": "deliveries"
+         *     }
+         */
+        BatchAnswer: {
+            /**
+             * Results
+             * @description one per chart, in request order: its answer or its problem (pointer under /charts/<i>)
+             */
+            results: (components["schemas"]["ChartAnswer"] | components["schemas"]["ProblemDetail"])[];
+            /** Source */
+            source: string;
+        } & {
+            [key: string]: unknown;
         };
         /**
          * BatchChart
@@ -271,6 +319,38 @@ export interface components {
              */
             width?: number | null;
         };
+        /** BinLayout */
+        BinLayout: {
+            /** Count */
+            count: number;
+            /**
+             * Method
+             * @description nice | width | sturges | scott | fd | sqrt | calendar
+             */
+            method: string;
+            /**
+             * Start
+             * @description first edge (number, or RFC 3339 instant)
+             */
+            start: number | string | null;
+            /**
+             * Step
+             * @description time bins: ISO 8601 duration (PT1H, P1D, P3M)
+             */
+            step?: string | null;
+            /**
+             * Stop
+             * @description last edge (closed)
+             */
+            stop: number | string | null;
+            /**
+             * Width
+             * @description numeric bins
+             */
+            width?: number | null;
+        } & {
+            [key: string]: unknown;
+        };
         /**
          * Channel
          * @description A key (``column`` without ``agg``) or a measure (``agg``, with ``column`` as input).
@@ -324,6 +404,154 @@ export interface components {
             size?: components["schemas"]["Channel"] | null;
             x?: components["schemas"]["Channel"] | null;
             y?: components["schemas"]["Channel"] | null;
+        };
+        /**
+         * ChartAnswer
+         * @description A chart's mark-ready table, columnar, with what a front end needs to draw it.
+         * @example {
+         *       "bins": {
+         *         "x": {
+         *           "count": 3,
+         *           "method": "nice",
+         *           "start": 0,
+         *           "stop": 15,
+         *           "width": 5
+         *         }
+         *       },
+         *       "cache": "miss",
+         *       "columns": [
+         *         {
+         *           "channel": "x",
+         *           "name": "x_lo",
+         *           "role": "bin_lo",
+         *           "type": "double"
+         *         },
+         *         {
+         *           "channel": "x",
+         *           "name": "x_hi",
+         *           "role": "bin_hi",
+         *           "type": "double"
+         *         },
+         *         {
+         *           "channel": "y",
+         *           "name": "count",
+         *           "role": "measure",
+         *           "type": "integer"
+         *         },
+         *         {
+         *           "channel": "size",
+         *           "name": "min_fee",
+         *           "precision": 10,
+         *           "role": "measure",
+         *           "scale": 2,
+         *           "type": "decimal"
+         *         }
+         *       ],
+         *       "data": {
+         *         "count": [
+         *           10,
+         *           12,
+         *           3
+         *         ],
+         *         "min_fee": [
+         *           3.76,
+         *           4.1,
+         *           12.8
+         *         ],
+         *         "x_hi": [
+         *           5,
+         *           10,
+         *           15
+         *         ],
+         *         "x_lo": [
+         *           0,
+         *           5,
+         *           10
+         *         ]
+         *       },
+         *       "dialect": "duckdb",
+         *       "domains": {
+         *         "count": [
+         *           3,
+         *           12
+         *         ],
+         *         "x": [
+         *           0,
+         *           15
+         *         ],
+         *         "x_hi": [
+         *           5,
+         *           15
+         *         ],
+         *         "x_lo": [
+         *           0,
+         *           10
+         *         ]
+         *       },
+         *       "sql": [
+         *         "SELECT MIN(\"distance_km\") ...",
+         *         "WITH \"_sluice_base\" AS (...) SELECT ..."
+         *       ],
+         *       "stats": {
+         *         "groups": 3,
+         *         "matched_rows": 25,
+         *         "result_rows": 3,
+         *         "source_rows": 5000,
+         *         "statements": 2,
+         *         "truncated": false
+         *       },
+         *       "timing_ms": {
+         *         "encode": 0.1,
+         *         "execute": 3.1,
+         *         "plan": 0.4,
+         *         "shape": 0.3
+         *       }
+         *     }
+         */
+        ChartAnswer: {
+            /** Approximate */
+            approximate?: boolean | null;
+            approximation?: components["schemas"]["Approximation"] | null;
+            /** Bins */
+            bins: {
+                [key: string]: components["schemas"]["BinLayout"];
+            };
+            /**
+             * Cache
+             * @enum {string}
+             */
+            cache: "hit" | "miss";
+            /** Columns */
+            columns: components["schemas"]["OutputColumn"][];
+            /**
+             * Data
+             * @description column name -> values (timestamps RFC 3339, decimals exact numbers, non-finite floats null)
+             */
+            data: {
+                [key: string]: unknown[];
+            };
+            /** Dialect */
+            dialect: string;
+            /** Domains */
+            domains: {
+                [key: string]: unknown[];
+            };
+            /**
+             * Reduced
+             * @description M4 line reduction (Jugel et al. 2014)
+             */
+            reduced?: {
+                [key: string]: unknown;
+            } | null;
+            /** Sql */
+            sql: string[];
+            stats: components["schemas"]["Stats"];
+            /** Timing Ms */
+            timing_ms: {
+                [key: string]: number;
+            };
+        } & {
+            [key: string]: unknown;
         };
         /**
          * ChartRequest
@@ -431,10 +659,59 @@ export interface components {
             max_groups?: number | null;
             row?: components["schemas"]["Channel"] | null;
         };
+        /**
+         * Health
+         * @example {
+         *       "status": "ok"
+         *     }
+         */
+        Health: {
+            /**
+             * Status
+             * @constant
+             */
+            status: "ok";
+        } & {
+            [key: string]: unknown;
+        };
+        /** HTTPValidationError */
+        HTTPValidationError: {
+            /** Detail */
+            detail?: components["schemas"]["ValidationError"][];
+        };
         /** NotOf */
         NotOf: {
             /** Not */
             not: components["schemas"]["Predicate"] | components["schemas"]["AnyOf"] | components["schemas"]["NotOf"];
+        };
+        /** OutputColumn */
+        OutputColumn: {
+            /**
+             * Channel
+             * @description x, y, color, size, shape, opacity, by, row or col
+             */
+            channel: string;
+            /** Name */
+            name: string;
+            /**
+             * Precision
+             * @description decimals only
+             */
+            precision?: number | null;
+            /**
+             * Role
+             * @enum {string}
+             */
+            role: "key" | "bin_lo" | "bin_hi" | "measure" | "stack_base" | "stack_top";
+            /**
+             * Scale
+             * @description decimals only
+             */
+            scale?: number | null;
+            /** Type */
+            type: ("integer" | "double" | "decimal" | "string" | "boolean" | "timestamp" | "date" | "null") | string;
+        } & {
+            [key: string]: unknown;
         };
         /**
          * Predicate
@@ -466,6 +743,89 @@ export interface components {
             /** Starts With */
             starts_with?: string | null;
         };
+        /**
+         * ProblemDetail
+         * @description RFC 9457 problem details; ``type`` resolves to a page describing the problem.
+         * @example {
+         *       "detail": "unknown column 'distanse_km' in source 'deliveries'; did you mean 'distance_km'?",
+         *       "errors": [
+         *         {
+         *           "detail": "unknown column ...",
+         *           "pointer": "/channels/x/column"
+         *         }
+         *       ],
+         *       "instance": "/v1/chart",
+         *       "pointer": "/channels/x/column",
+         *       "status": 422,
+         *       "suggestions": [
+         *         "distance_km"
+         *       ],
+         *       "title": "Unknown column",
+         *       "type": "/problems/unknown-column"
+         *     }
+         */
+        ProblemDetail: {
+            /** Detail */
+            detail: string;
+            /** Errors */
+            errors?: components["schemas"]["ProblemError"][] | null;
+            /** Instance */
+            instance?: string | null;
+            /** Pointer */
+            pointer?: string | null;
+            /** Status */
+            status: number;
+            /** Suggestions */
+            suggestions?: string[] | null;
+            /** Title */
+            title: string;
+            /**
+             * Type
+             * @description /problems/<slug>
+             */
+            type: string;
+        } & {
+            [key: string]: unknown;
+        };
+        /** ProblemError */
+        ProblemError: {
+            /** Detail */
+            detail: string;
+            /**
+             * Pointer
+             * @description RFC 6901 JSON Pointer into the request body
+             */
+            pointer: string;
+        } & {
+            [key: string]: unknown;
+        };
+        /**
+         * Readiness
+         * @example {
+         *       "ready": true,
+         *       "sources": {
+         *         "deliveries": {
+         *           "check_ms": 0.8,
+         *           "columns": 14,
+         *           "engine": "duckdb",
+         *           "ready": true,
+         *           "row_count": 2000000
+         *         }
+         *       }
+         *     }
+         */
+        Readiness: {
+            /** Ready */
+            ready: boolean;
+            /** Sources */
+            sources: {
+                [key: string]: {
+                    [key: string]: unknown;
+                };
+            };
+        } & {
+            [key: string]: unknown;
+        };
         /** Reduce */
         Reduce: {
             /**
@@ -488,6 +848,150 @@ export interface components {
              * @default false
              */
             desc?: boolean;
+        };
+        /** SourceColumn */
+        SourceColumn: {
+            /**
+             * Kind
+             * @description integer | double | decimal | string | boolean | timestamp | timestamptz | date | other
+             */
+            kind: string;
+            /** Name */
+            name: string;
+            /**
+             * Type
+             * @description the engine's own type name
+             */
+            type: string;
+        } & {
+            [key: string]: unknown;
+        };
+        /**
+         * SourceDetail
+         * @example {
+         *       "columns": [
+         *         {
+         *           "kind": "decimal",
+         *           "name": "fee",
+         *           "type": "DECIMAL(10,2)"
+         *         }
+         *       ],
+         *       "engine": "duckdb",
+         *       "name": "deliveries",
+         *       "row_count": 2000000,
+         *       "table": "deliveries"
+         *     }
+         */
+        SourceDetail: {
+            /** Columns */
+            columns: components["schemas"]["SourceColumn"][];
+            /** Engine */
+            engine: string;
+            /** Name */
+            name: string;
+            /** Row Count */
+            row_count: number;
+            /** Table */
+            table: string;
+        } & {
+            [key: string]: unknown;
+        };
+        /**
+         * SourcesAnswer
+         * @example {
+         *       "sources": [
+         *         {
+         *           "engine": "duckdb",
+         *           "name": "deliveries",
+         *           "table": "deliveries"
+         *         }
+         *       ]
+         *     }
+         */
+        SourcesAnswer: {
+            /** Sources */
+            sources: components["schemas"]["SourceSummary"][];
+        } & {
+            [key: string]: unknown;
+        };
+        /** SourceSummary */
+        SourceSummary: {
+            /** Engine */
+            engine: string;
+            /** Name */
+            name: string;
+            /** Table */
+            table: string;
+        } & {
+            [key: string]: unknown;
+        };
+        /**
+         * SqlAnswer
+         * @example {
+         *       "bins": {},
+         *       "dialect": "postgres",
+         *       "sql": [
+         *         "SELECT ... GROUP BY ..."
+         *       ],
+         *       "timing_ms": {
+         *         "plan": 0.6
+         *       }
+         *     }
+         */
+        SqlAnswer: {
+            /** Bins */
+            bins: {
+                [key: string]: components["schemas"]["BinLayout"];
+            };
+            /** Dialect */
+            dialect: string;
+            /**
+             * Sql
+             * @description the extents statement (if any), then the main one
+             */
+            sql: string[];
+            /** Timing Ms */
+            timing_ms: {
+                [key: string]: number;
+            };
+        } & {
+            [key: string]: unknown;
+        };
+        /** Stats */
+        Stats: {
+            /**
+             * Groups
+             * @description groups before limit
+             */
+            groups: number;
+            /**
+             * Matched Rows
+             * @description rows after where
+             */
+            matched_rows: number;
+            /**
+             * Outside Limits
+             * @description per binned channel: rows outside its limits
+             */
+            outside_limits?: {
+                [key: string]: number;
+            } | null;
+            /** Result Rows */
+            result_rows: number;
+            /** Source Rows */
+            source_rows: number;
+            /**
+             * Statements
+             * @description SQL statements run for this answer
+             */
+            statements: number;
+            /**
+             * Truncated
+             * @description true when limit cut groups off
+             */
+            truncated: boolean;
+        } & {
+            [key: string]: unknown;
         };
         /** TopValue */
         TopValue: {
@@ -525,6 +1029,19 @@ export interface components {
              */
             values: components["schemas"]["TopValue"][];
         };
+        /** ValidationError */
+        ValidationError: {
+            /** Context */
+            ctx?: Record<string, never>;
+            /** Input */
+            input?: unknown;
+            /** Location */
+            loc: (string | number)[];
+            /** Message */
+            msg: string;
+            /** Error Type */
+            type: string;
+        };
     };
     responses: never;
     parameters: never;
@@ -533,21 +1050,38 @@ export interface components {
     pathItems: never;
 }
 export type AnyOf = components['schemas']['AnyOf'];
+export type Approximation = components['schemas']['Approximation'];
+export type BatchAnswer = components['schemas']['BatchAnswer'];
 export type BatchChart = components['schemas']['BatchChart'];
 export type BatchRequest = components['schemas']['BatchRequest'];
 export type Bin = components['schemas']['Bin'];
+export type BinLayout = components['schemas']['BinLayout'];
 export type Channel = components['schemas']['Channel'];
 export type Channels = components['schemas']['Channels'];
+export type ChartAnswer = components['schemas']['ChartAnswer'];
 export type ChartRequest = components['schemas']['ChartRequest'];
 export type ColumnProfile = components['schemas']['ColumnProfile'];
 export type Distinct = components['schemas']['Distinct'];
 export type Facet = components['schemas']['Facet'];
+export type Health = components['schemas']['Health'];
+export type HttpValidationError = components['schemas']['HTTPValidationError'];
 export type NotOf = components['schemas']['NotOf'];
+export type OutputColumn = components['schemas']['OutputColumn'];
 export type Predicate = components['schemas']['Predicate'];
+export type ProblemDetail = components['schemas']['ProblemDetail'];
+export type ProblemError = components['schemas']['ProblemError'];
+export type Readiness = components['schemas']['Readiness'];
 export type Reduce = components['schemas']['Reduce'];
 export type SortItem = components['schemas']['SortItem'];
+export type SourceColumn = components['schemas']['SourceColumn'];
+export type SourceDetail = components['schemas']['SourceDetail'];
+export type SourcesAnswer = components['schemas']['SourcesAnswer'];
+export type SourceSummary = components['schemas']['SourceSummary'];
+export type SqlAnswer = components['schemas']['SqlAnswer'];
+export type Stats = components['schemas']['Stats'];
 export type TopValue = components['schemas']['TopValue'];
 export type TopValues = components['schemas']['TopValues'];
+export type ValidationError = components['schemas']['ValidationError'];
 export type $defs = Record<string, never>;
 export interface operations {
     healthz_healthz_get: {
@@ -559,13 +1093,13 @@ export interface operations {
         };
         requestBody?: never;
         responses: {
-            /** @description Successful Response */
+            /** @description The process is up */
             200: {
                 headers: {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/json": unknown;
+                    "application/json": components["schemas"]["Health"];
                 };
             };
         };
@@ -579,12 +1113,14 @@ export interface operations {
         };
         requestBody?: never;
         responses: {
-            /** @description Successful Response */
+            /** @description Prometheus text exposition format 0.0.4 */
             200: {
                 headers: {
                     [name: string]: unknown;
                 };
-                content?: never;
+                content: {
+                    "text/plain": string;
+                };
             };
         };
     };
@@ -597,13 +1133,22 @@ export interface operations {
         };
         requestBody?: never;
         responses: {
-            /** @description Successful Response */
+            /** @description Every source answers */
             200: {
                 headers: {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/json": unknown;
+                    "application/json": components["schemas"]["Readiness"];
+                };
+            };
+            /** @description A source does not */
+            503: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/json": components["schemas"]["Readiness"];
                 };
             };
         };
@@ -621,13 +1166,13 @@ export interface operations {
             };
         };
         responses: {
-            /** @description Successful Response */
+            /** @description One answer or problem per chart */
             200: {
                 headers: {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/json": unknown;
+                    "application/json": components["schemas"]["BatchAnswer"];
                 };
             };
             /** @description Malformed request */
@@ -636,7 +1181,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description No or bad API key (when keys are configured) */
@@ -645,7 +1190,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The API key is not granted this source */
@@ -654,7 +1199,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description Unknown source */
@@ -663,7 +1208,16 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
+            /** @description The Accept header names no format this route answers in */
+            406: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description Body too large */
@@ -672,7 +1226,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The request cannot be planned (the pointer names the field) */
@@ -681,7 +1235,16 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
+            /** @description The engine rejected the statement sluice generated */
+            502: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The source's engine is unavailable, or busy (Retry-After) */
@@ -690,7 +1253,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The statement ran past the source's statement_timeout_ms */
@@ -699,7 +1262,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
         };
@@ -717,13 +1280,21 @@ export interface operations {
             };
         };
         responses: {
-            /** @description Successful Response */
+            /** @description The chart's mark-ready table: JSON by default; Arrow IPC stream, CSV or Parquet by Accept */
             200: {
                 headers: {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/json": unknown;
+                    "application/json": components["schemas"]["ChartAnswer"];
+                    "application/vnd.apache.arrow.stream": string;
+                    "application/vnd.apache.parquet": string;
+                    /**
+                     * @example x_lo,x_hi,count
+                     *     0,5,10
+                     *     5,10,12
+                     */
+                    "text/csv": string;
                 };
             };
             /** @description Malformed request */
@@ -732,7 +1303,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description No or bad API key (when keys are configured) */
@@ -741,7 +1312,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The API key is not granted this source */
@@ -750,7 +1321,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description Unknown source */
@@ -759,7 +1330,16 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
+            /** @description The Accept header names no format this route answers in */
+            406: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description Body too large */
@@ -768,7 +1348,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The request cannot be planned (the pointer names the field) */
@@ -777,7 +1357,16 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
+            /** @description The engine rejected the statement sluice generated */
+            502: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The source's engine is unavailable, or busy (Retry-After) */
@@ -786,7 +1375,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The statement ran past the source's statement_timeout_ms */
@@ -795,7 +1384,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
         };
@@ -809,13 +1398,22 @@ export interface operations {
         };
         requestBody?: never;
         responses: {
-            /** @description Successful Response */
+            /** @description The sources the key may read */
             200: {
                 headers: {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/json": unknown;
+                    "application/json": components["schemas"]["SourcesAnswer"];
+                };
+            };
+            /** @description No or bad API key (when keys are configured) */
+            401: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
         };
@@ -831,22 +1429,13 @@ export interface operations {
         };
         requestBody?: never;
         responses: {
-            /** @description Successful Response */
+            /** @description Columns, kinds and row count */
             200: {
                 headers: {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/json": unknown;
-                };
-            };
-            /** @description Malformed request */
-            400: {
-                headers: {
-                    [name: string]: unknown;
-                };
-                content: {
-                    "application/problem+json": unknown;
+                    "application/json": components["schemas"]["SourceDetail"];
                 };
             };
             /** @description No or bad API key (when keys are configured) */
@@ -855,7 +1444,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The API key is not granted this source */
@@ -864,7 +1453,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description Unknown source */
@@ -873,25 +1462,16 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
-            /** @description Body too large */
-            413: {
-                headers: {
-                    [name: string]: unknown;
-                };
-                content: {
-                    "application/problem+json": unknown;
-                };
-            };
-            /** @description The request cannot be planned (the pointer names the field) */
+            /** @description Validation Error */
             422: {
                 headers: {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/json": components["schemas"]["HTTPValidationError"];
                 };
             };
             /** @description The source's engine is unavailable, or busy (Retry-After) */
@@ -900,16 +1480,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
-                };
-            };
-            /** @description The statement ran past the source's statement_timeout_ms */
-            504: {
-                headers: {
-                    [name: string]: unknown;
-                };
-                content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
         };
@@ -1010,13 +1581,13 @@ export interface operations {
             };
         };
         responses: {
-            /** @description Successful Response */
+            /** @description The SQL for the dialect */
             200: {
                 headers: {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/json": unknown;
+                    "application/json": components["schemas"]["SqlAnswer"];
                 };
             };
             /** @description Malformed request */
@@ -1025,7 +1596,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description No or bad API key (when keys are configured) */
@@ -1034,7 +1605,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The API key is not granted this source */
@@ -1043,7 +1614,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description Unknown source */
@@ -1052,7 +1623,16 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
+            /** @description The Accept header names no format this route answers in */
+            406: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description Body too large */
@@ -1061,7 +1641,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The request cannot be planned (the pointer names the field) */
@@ -1070,7 +1650,16 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
+            /** @description The engine rejected the statement sluice generated */
+            502: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The source's engine is unavailable, or busy (Retry-After) */
@@ -1079,7 +1668,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
             /** @description The statement ran past the source's statement_timeout_ms */
@@ -1088,7 +1677,7 @@ export interface operations {
                     [name: string]: unknown;
                 };
                 content: {
-                    "application/problem+json": unknown;
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
         };
