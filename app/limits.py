@@ -173,7 +173,8 @@ def clamp_limit(req: ChartRequest, max_limit: int) -> ChartRequest:
     if "limit" not in req.model_fields_set:
         return req.model_copy(update={"limit": max_limit})
     raise PlanError(pointer("limit"), f"limit {req.limit} exceeds this server's cap of "
-                    f"{max_limit} rows (leave limit out to get the first {max_limit})",
+                    f"{max_limit} rows (without limit an answer has at most "
+                    f"{min(type(req).model_fields['limit'].default, max_limit)} rows)",
                     slug="limit-exceeded", title="Request exceeds a limit")
 
 
@@ -315,6 +316,10 @@ def server_timeout(message: str) -> bool:
 # body size (also chunked bodies without Content-Length)
 # =====================================================================================
 
+async def replay_empty() -> dict:
+    return {"type": "http.request", "body": b"", "more_body": False}
+
+
 class BodyLimitMiddleware:
     """413 for a request body over ``max_bytes``, whether or not it declares its length.
 
@@ -357,6 +362,15 @@ class BodyLimitMiddleware:
                 return
             chunks.append(body)
             more = msg.get("more_body", False)
+        if scope.get("path", "").startswith("/v1/"):  # JSON routes: app.body checks first
+            from app.body import check_body
+            from app.problems import problem_response
+
+            ctype = headers.get(b"content-type")
+            problem = check_body(b"".join(chunks), ctype.decode("latin-1") if ctype else None)
+            if problem is not None:
+                await problem_response(problem, scope.get("path"))(scope, replay_empty, send)
+                return
         replayed = False
 
         async def replay() -> dict:

@@ -379,18 +379,27 @@ def _check_options(plan: Plan) -> None:
 
 
 def _assign_names(plan: Plan) -> None:
+    """Output names, unique IGNORING CASE: DuckDB, SQLite and MariaDB compare identifiers
+    case-insensitively even when quoted (MariaDB with Unicode case folding: 'ǅ' = 'ǆ'), so
+    'depot' and 'Depot' would be one column there. ``str.casefold`` (Unicode full case
+    folding) is at least as strict as each of them; a clash gets ``<channel>_`` prefixed,
+    then ``_2``, ``_3``, ..."""
     taken: set[str] = set()
+
+    def free(name: str) -> bool:
+        folded = name.casefold()
+        return folded not in taken and not folded.startswith(INTERNAL)
 
     def claim(want: str, channel: str) -> str:
         name = want
-        if name in taken or name.startswith(INTERNAL):
+        if not free(name):
             name = f"{channel}_{want}"
         n = 2
         base = name
-        while name in taken:
+        while not free(name):
             name = f"{base}_{n}"
             n += 1
-        taken.add(name)
+        taken.add(name.casefold())
         return name
 
     # name in request order: x, y, color, size, shape, opacity, by[i], row, col
