@@ -297,11 +297,13 @@ class GuardedEngine:
                                 slug="bad-filter-sql", title="filter_sql failed on the engine") from None
             raise
 
-    def execute(self, sql: str) -> Any:
-        return self._run(self._engine.execute, sql)
+    def execute(self, sql: str, params: Any = None) -> Any:
+        fn = self._engine.execute
+        return self._run(fn if not params else lambda q: fn(q, params), sql)
 
-    def fetch_row(self, sql: str) -> Any:
-        return self._run(self._engine.fetch_row, sql)
+    def fetch_row(self, sql: str, params: Any = None) -> Any:
+        fn = self._engine.fetch_row
+        return self._run(fn if not params else lambda q: fn(q, params), sql)
 
 
 def server_timeout(message: str) -> bool:

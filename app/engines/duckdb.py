@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import threading
 from pathlib import Path
+from collections.abc import Sequence
 from typing import Any, Callable
 
 import duckdb
@@ -53,8 +54,10 @@ class DuckDBEngine(EngineBase):
                 self._cursors.append(cur)
         return cur
 
-    def execute(self, sql: str) -> pa.Table:
+    def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
         try:
+            if params:  # bound values (planner.compile bind_sql): qmark style, lists allowed
+                return self._cursor().sql(sql, params=list(params)).to_arrow_table()
             return self._cursor().sql(sql).to_arrow_table()
         except duckdb.Error as e:
             raise EngineError(self.cfg.name, str(e)) from None
