@@ -85,6 +85,9 @@ def _walk(doc: Any) -> Problem | None:
     """Iterative walk of the decoded body in document order: the first offender is named.
     Only containers go on the stack; scalars are checked where they sit (a 5,000-value list
     costs ~1 ms)."""
+    if not isinstance(doc, (dict, list)):  # not an object: FastAPI/pydantic say so
+        bad = _scalar(doc)
+        return _bad("", bad) if bad is not None else None
     stack: list[tuple[Any, tuple, int]] = [(doc, (), 0)]
     while stack:
         v, path, nested = stack.pop()

@@ -281,14 +281,19 @@ def _measure(cases, cfg, svc, rows_srv, skip_naive) -> int:
             for i in range(200):
                 t0 = time.perf_counter()
                 if cache is not None:  # the service's planning path: request -> SQL text
+                    from planner.compile import PARAM_FORMS, bind_sql, bind_values
+
                     template, entry, engine = service._plan(req, cached=True)
-                    ext = cache.extents_sql(template)
+                    d = template.plan.dialect
+                    values = bind_values(req, entry.schema, d) if template.plan.slots else []
+                    ext = template.extents_sql
                     row = None
                     if ext is not None:
-                        row = cache.extents_row(entry, ext)
+                        sql, args = bind_sql(ext, values, PARAM_FORMS.get(d.name, ("", "qmark"))[1])
+                        row = cache.extents_row(entry, ext, args)
                         if row is None:
-                            row = engine.fetch_row(ext)
-                            cache.remember_extents(entry, ext, row)
+                            row = engine.fetch_row(sql, args) if args else engine.fetch_row(sql)
+                            cache.remember_extents(entry, ext, args, row)
                     cache.finished(template, entry, row)
                 else:  # before the planning cache existed: prepare + finish + render
                     plan, entry, engine = service._plan(req)

@@ -366,6 +366,9 @@ PARAM_CASES = {
     "nested_and_repeated": [{"any": [{"column": "k", "in": KS[100:140]},
                                      {"not": {"column": "n", "in": list(range(10, 30))}}]},
                             {"column": "k", "not_in": KS[:20]}],
+    # '%' in the statement text (LIKE patterns, modulo): psycopg and pymysql need it doubled
+    "percent_in_sql": [{"column": "cat", "contains": "a"}, {"column": "k", "starts_with": "k0"},
+                       {"column": "k", "in": KS[:300:7]}],
     # ints and floats together stay literals (rows hold x exactly on -40, -10, 0, ...)
     "mixed_numbers_stay_literals": [{"column": "x", "in": [-40, -10, 0, 10, 20, 40] + sorted(
         {r["x"] for r in ROWS if r["x"] is not None})[:12]}],
@@ -390,6 +393,8 @@ def _literal_and_param(service, engine: str, body: dict):
 def test_bound_lists_equal_literal_lists(service, engine, case):
     body = {"channels": {"x": {"column": "grp"}, "color": {"column": "flag"}, "y": COUNT,
                          "size": {"agg": "sum", "column": "n"}}, "where": PARAM_CASES[case]}
+    if case == "percent_in_sql":
+        body["filter_sql"] = "n % 2 = 0 AND cat LIKE '%a%'"
     lit, par, nargs = _literal_and_param(service, engine, body)
     if case == "mixed_numbers_stay_literals":
         assert nargs == 0
@@ -500,3 +505,11 @@ def test_limit_cap_hint_states_the_real_default(client):
     p = problem(client.post("/v1/chart", json={"source": "duckdb", "channels": {"x": {"column": "k"}},
                                                "limit": 501}), (422, 422), "/limit")
     assert f"at most {got} rows" in p["detail"], p["detail"]
+
+
+@pytest.mark.parametrize("path", ["/v1/sources/%ED%A0%80", "/v1/sources/%F0%9F%98%80",
+                                  "/v1/sources/a%00b"])
+def test_undecodable_names_in_paths(client, path):
+    # a lone surrogate's UTF-8 bytes (ED A0 80) are not UTF-8 (RFC 3629 section 3): the
+    # name cannot match a source; answered 404 problem+json like any unknown name
+    problem(client.get(path), (404, 404))
