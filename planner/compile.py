@@ -442,12 +442,15 @@ def _assign_names(plan: Plan) -> None:
 #: identifier caps (bytes) of engines that silently CUT longer names (the answer would then
 #: lack the column); a dialect may set ``max_identifier_bytes`` itself
 _IDENT_BYTES = {"postgres": 63, "redshift": 127}
+#: engines whose identifiers hold only the Basic Multilingual Plane (MariaDB/MySQL: utf8mb3
+#: system charset; a name with U+10000 or above is error 1300 "Invalid utf8mb4 character")
+_IDENT_BMP_ONLY = {"mysql"}
 
 
 def _check_name_lengths(plan: Plan) -> None:
     d = plan.dialect
     cap = getattr(d, "max_identifier_bytes", None) or _IDENT_BYTES.get(d.name)
-    if cap is None:
+    if cap is None and d.name not in _IDENT_BMP_ONLY:
         return
     stack = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
     items = [(k.path, k.spec, list(k.names)) for k in plan.keys]
@@ -455,7 +458,13 @@ def _check_name_lengths(plan: Plan) -> None:
               for m in plan.measures]
     for path, spec, names in items:
         for n in names:
-            if len(n.encode("utf-8")) > cap:
+            if d.name in _IDENT_BMP_ONLY and any(ord(c) > 0xFFFF for c in n):
+                raise PlanError(pointer(*path, "name" if spec.name else "column"),
+                                f"output column name {n!r} has a character beyond U+FFFF; "
+                                f"{d.name} identifiers cannot hold one (MariaDB/MySQL keep "
+                                "names in utf8mb3): give the channel another name",
+                                slug="bad-name")
+            if cap is not None and len(n.encode("utf-8")) > cap:
                 raise PlanError(pointer(*path, "name" if spec.name else "column"),
                                 f"output column name {n!r} is longer than the {cap} bytes "
                                 f"{d.name} keeps; give the channel a shorter name",

@@ -324,7 +324,19 @@ def test_unicode_case_folding_and_internal_prefix(client, engine):
     assert "color__SLUICE_n" in names and "y_\u212a" in names and "opacity_ǆ" in names
 
 
-BAD_NAMES = [" g", "\tg", "g ", "g\t", "\u00a0g", "g\u3000", "a\nb", "a\x7fb", "a\x1bb", " "]
+BAD_NAMES = [" g", "\tg", "g ", "g\t", "\u00a0g", "g\u3000", "a\nb", "a\x7fb", "a\x1bb", " ",
+             "\u2028g"]
+
+
+def test_names_beyond_the_bmp(client):
+    # MariaDB identifiers hold only U+0000..U+FFFF (utf8mb3); elsewhere any character works
+    body = {"channels": {"x": {"column": "grp", "name": "\U0001F4E6 parcels"}, "y": COUNT}}
+    problem(client.post("/v1/chart", json={"source": "mysql", **body}), (422, 422),
+            "/channels/x/name")
+    for engine in ("duckdb", "sqlite", "postgres"):
+        r = client.post("/v1/chart", json={"source": engine, **body})
+        assert r.status_code == 200, r.text[:300]
+        assert answer_counts(r.json(), key="\U0001F4E6 parcels") == counts_by_grp(ROWS)
 
 
 @pytest.mark.parametrize("engine", ENGINES)
@@ -336,7 +348,8 @@ def test_names_with_edge_space_or_control_chars_are_422(client, engine, name):
 
 
 @pytest.mark.parametrize("engine", ENGINES)
-@pytest.mark.parametrize("name", ["a b", "größe", "東京 区", "it's", 'say "x"', "a`b", "50%", "x?"])
+@pytest.mark.parametrize("name", ["a b", "größe", "東京 区", "it's", 'say "x"', "a`b", "50%", "x?",
+                                  "\uffff", "a\u200bb", "\u0301"])
 def test_names_with_inner_space_and_quotes_work(client, engine, name):
     r = client.post("/v1/chart", json={"source": engine, "channels": {
         "x": {"column": "grp", "name": name}, "y": COUNT}})
@@ -513,3 +526,121 @@ def test_undecodable_names_in_paths(client, path):
     # a lone surrogate's UTF-8 bytes (ED A0 80) are not UTF-8 (RFC 3629 section 3): the
     # name cannot match a source; answered 404 problem+json like any unknown name
     problem(client.get(path), (404, 404))
+
+
+# =====================================================================================
+# generated cases (Hypothesis; `make fuzz` runs SLUICE_FUZZ_SCALE times more)
+# =====================================================================================
+
+import os  # noqa: E402
+
+from hypothesis import HealthCheck, given, settings, strategies as st  # noqa: E402
+
+SCALE = max(1, int(os.environ.get("SLUICE_FUZZ_SCALE", "1")))
+
+
+def _gen_settings(n: int):
+    return settings(max_examples=n * SCALE, derandomize=True, deadline=None, database=None,
+                    suppress_health_check=list(HealthCheck))
+
+
+def _never_5xx(r) -> None:
+    assert r.status_code < 500, r.text[:600]
+    if r.status_code >= 400:
+        problem(r, (400, 499))
+
+
+@_gen_settings(50)
+@given(engine=st.sampled_from(ENGINES), field=st.sampled_from(["value", "column", "name", "label"]),
+       text=st.text(min_size=0, max_size=8), at=st.integers(0, 8),
+       sur=st.integers(0xD800, 0xDFFF))
+def test_generated_surrogates(client, engine, field, text, at, sur):
+    bad = text[:at] + chr(sur) + text[at:]
+    esc = json.dumps(bad, ensure_ascii=True)  # JSON escapes: "\udXXX" in the body text
+    ch = {"x": '{"column":"grp"}', "y": '{"agg":"count"}'}
+    where = "[]"
+    if field == "value":
+        where = '[{"column":"cat","eq":%s}]' % esc
+    elif field == "column":
+        ch["x"] = '{"column":%s}' % esc
+    elif field == "name":
+        ch["x"] = '{"column":"grp","name":%s}' % esc
+    else:
+        ch["x"] = '{"column":"cat","top":2,"other_label":%s}' % esc
+    raw = '{"source":"%s","channels":{"x":%s,"y":%s},"where":%s}' % (engine, ch["x"], ch["y"], where)
+    want = {"value": "/where/0/eq", "column": "/channels/x/column", "name": "/channels/x/name",
+            "label": "/channels/x/other_label"}[field]
+    problem(raw_post(client, raw), (422, 422), want)
+
+
+@_gen_settings(60)
+@given(engine=st.sampled_from(ENGINES), op=st.sampled_from(["eq", "ne", "lt", "lte", "gt", "gte", "in"]),
+       column=st.sampled_from(["n", "id", "x", "amount"]),
+       value=st.one_of(st.integers(-(2 ** 70), 2 ** 70), st.integers(-(2 ** 64) - 5, 2 ** 64 + 5),
+                       st.integers(-(10 ** 400), 10 ** 400),
+                       st.floats(allow_nan=False, allow_infinity=False)))
+def test_generated_numbers(client, engine, op, column, value):
+    # reference: the fixture rows compared in Python (exact integer/float comparison)
+    raw_value = json.dumps([value] if op == "in" else value)
+    raw = ('{"source":"%s","channels":{"x":{"column":"grp"},"y":{"agg":"count"}},'
+           '"where":[{"column":"%s","%s":%s}]}' % (engine, column, op, raw_value))
+    r = raw_post(client, raw)
+    if isinstance(value, int) and not -(2 ** 63) <= value <= 2 ** 64 - 1:
+        problem(r, (422, 422), f"/where/0/{op}" + ("/0" if op == "in" else ""))
+        return
+    assert r.status_code == 200, r.text[:500]
+    import decimal
+    import operator
+    cmp = {"eq": operator.eq, "ne": operator.ne, "lt": operator.lt, "lte": operator.le,
+           "gt": operator.gt, "gte": operator.ge, "in": operator.eq}[op]
+    # the planner writes the JSON number's own text (repr of the double) as the literal
+    v = decimal.Decimal(repr(value) if isinstance(value, float) else value) \
+        if column == "amount" else value
+    want = sum(1 for row in ROWS if row[column] is not None
+               and cmp(decimal.Decimal(row[column]) if column == "amount" else row[column], v))
+    if column == "amount" and isinstance(value, float) and op in ("eq", "ne", "in"):
+        return  # a double compared with DECIMAL(12,2) is engine-typed: covered by the matrix
+    assert r.json()["stats"]["matched_rows"] == want, (op, column, value)
+
+
+@_gen_settings(50)
+@given(engine=st.sampled_from(ENGINES), path=st.lists(st.sampled_from(["not", "any"]), max_size=40))
+def test_generated_nesting(client, engine, path):
+    # reference: three-valued logic over the fixture rows in Python
+    text, leaf = '{"column":"n","gt":10}', lambda r: None if r["n"] is None else r["n"] > 10
+    for kind in reversed(path):
+        text = ('{"not":%s}' % text) if kind == "not" else ('{"any":[%s]}' % text)
+    raw = ('{"source":"%s","channels":{"x":{"column":"grp"},"y":{"agg":"count"}},'
+           '"where":[%s]}' % (engine, text))
+    r = raw_post(client, raw)
+    if len(path) > MAX_FILTER_DEPTH:
+        ptr = "/where/0" + "".join("/not" if k == "not" else "/any/0"
+                                   for k in path[:MAX_FILTER_DEPTH + 1])
+        problem(r, (422, 422), ptr)
+        return
+    assert r.status_code == 200, r.text[:500]
+    flips = path.count("not") % 2
+    want = sum(1 for row in ROWS if leaf(row) is not None and leaf(row) != bool(flips))
+    assert r.json()["stats"]["matched_rows"] == want
+
+
+@_gen_settings(60)
+@given(engine=st.sampled_from(ENGINES), name=st.text(min_size=1, max_size=12),
+       other=st.sampled_from(["grp", "count", "GRP", "Count", "y_count"]))
+def test_generated_names(client, engine, name, other):
+    import unicodedata
+
+    r = client.post("/v1/chart", json={"source": engine, "channels": {
+        "x": {"column": "grp", "name": name}, "y": {"agg": "count", "name": other}}})
+    if ("\x00" in name or name != name.strip()
+            or any(unicodedata.category(c) == "Cc" for c in name)):
+        problem(r, (422, 422), "/channels/x/name")
+        return
+    if engine == "mysql" and any(ord(c) > 0xFFFF for c in name):
+        # MariaDB identifiers are utf8mb3 (its manual, "Identifier Names"): refused at the name
+        problem(r, (422, 422), "/channels/x/name")
+        return
+    assert r.status_code == 200, r.text[:500]
+    cols = [c["name"] for c in r.json()["columns"]]
+    assert cols[0] == name and len({c.casefold() for c in cols}) == 2, cols
+    assert answer_counts(r.json(), key=name, measure=cols[1]) == counts_by_grp(ROWS)
