@@ -55,8 +55,20 @@ COUNT = {"agg": "count"}
 def sources(tmp_path_factory):
     root = tmp_path_factory.mktemp("hostile")
     table = fx.arrow_table(ROWS)
-    return {"duckdb": fx.load_duckdb(root, table), "sqlite": fx.load_sqlite(root, ROWS),
-            "postgres": fx.load_postgres(ROWS), "mysql": fx.load_mysql(ROWS)}
+    # own PostgreSQL schema / MariaDB table names: the engine matrix of the same worker
+    # keeps its own (engine_fixtures names them after PYTEST_XDIST_WORKER)
+    import os
+
+    saved = os.environ.get("PYTEST_XDIST_WORKER")
+    os.environ["PYTEST_XDIST_WORKER"] = f"{fx.worker()}_hostile"
+    try:
+        return {"duckdb": fx.load_duckdb(root, table), "sqlite": fx.load_sqlite(root, ROWS),
+                "postgres": fx.load_postgres(ROWS), "mysql": fx.load_mysql(ROWS)}
+    finally:
+        if saved is None:
+            os.environ.pop("PYTEST_XDIST_WORKER", None)
+        else:
+            os.environ["PYTEST_XDIST_WORKER"] = saved
 
 
 @pytest.fixture(scope="module")
