@@ -123,8 +123,8 @@ class PlanCache:
         prep = self._prepared.get(key)
         if prep is None:
             plan = prepare(req, entry.schema, dialect, params=True)
-            bound = sum(len(v) for v in bind_values(req, entry.schema, dialect)) \
-                if plan.slots else 0
+            bound = sum(len(v) if isinstance(v, list) else v.count(",") + 1  # (JSON text)
+                        for v in bind_values(req, entry.schema, dialect)) if plan.slots else 0
             prep = Prepared(plan, key, plan.extents_sql, bound)
             plan.extents = None  # rendered once: the text is what is reused
             self._prepared.put(key, prep, _plan_charge(shape, bound, prep.extents_sql))

@@ -329,11 +329,13 @@ def test_unicode_case_folding_and_internal_prefix(client, engine):
     r = client.post("/v1/chart", json={"source": engine, "channels": {
         "x": {"column": "k", "top": 3}, "y": {"agg": "count", "name": "\u212a"},
         "color": {"column": "grp", "name": "_SLUICE_n"},
-        "size": {"agg": "max", "column": "n", "name": "Ǆ"}, "opacity": {"agg": "min", "column": "n", "name": "ǆ"}}})
+        "size": {"agg": "max", "column": "n", "name": "Ǆ"}, "opacity": {"agg": "min", "column": "n", "name": "ǆ"},
+        "shape": {"agg": "min", "column": "x", "name": "i"}, "by": [{"column": "flag", "name": "İ"}]}})
     assert r.status_code == 200, r.text[:500]
     names = [c["name"] for c in r.json()["columns"]]
     assert len({n.casefold() for n in names}) == len(names), names
-    assert "color__SLUICE_n" in names and "y_\u212a" in names and "opacity_ǆ" in names
+    # MariaDB 'Duplicate column name' for i/İ (measured), hence by0_İ
+    assert {"color__SLUICE_n", "y_\u212a", "opacity_ǆ", "by0_İ"} <= set(names), names
 
 
 BAD_NAMES = [" g", "\tg", "g ", "g\t", "\u00a0g", "g\u3000", "a\nb", "a\x7fb", "a\x1bb", " ",
