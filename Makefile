@@ -77,6 +77,8 @@ FUZZ_SCALE ?= 8
 fuzz: $(VENV)/.installed-test  # deep API fuzzing: FUZZ_SCALE x the make-test cases (8: ~19,000)
 	SLUICE_FUZZ_SCALE=$(FUZZ_SCALE) $(BIN)/python -m pytest -q -n 2 --dist loadfile -p no:cacheprovider \
 		tests/test_fuzz.py tests/test_fuzz_routes.py tests/test_fuzz_mutations.py $(PYTEST_ARGS)
+	SLUICE_FUZZ_SCALE=$(FUZZ_SCALE) $(BIN)/python -m pytest -q -p no:cacheprovider \
+		tests/test_hostile_inputs.py -k generated $(PYTEST_ARGS)
 
 clean:
 	rm -rf $(VENV) .pytest_cache .hypothesis *.egg-info tests/js/node_modules

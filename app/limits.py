@@ -176,7 +176,8 @@ def clamp_limit(req: ChartRequest, max_limit: int) -> ChartRequest:
     if "limit" not in req.model_fields_set:
         return req.model_copy(update={"limit": max_limit})
     raise PlanError(pointer("limit"), f"limit {req.limit} exceeds this server's cap of "
-                    f"{max_limit} rows (leave limit out to get the first {max_limit})",
+                    f"{max_limit} rows (without limit an answer has at most "
+                    f"{min(type(req).model_fields['limit'].default, max_limit)} rows)",
                     slug="limit-exceeded", title="Request exceeds a limit")
 
 
@@ -327,11 +328,13 @@ class GuardedEngine:
                                 slug="bad-filter-sql", title="filter_sql failed on the engine") from None
             raise
 
-    def execute(self, sql: str) -> Any:
-        return self._run(self._engine.execute, sql)
+    def execute(self, sql: str, params: Any = None) -> Any:
+        fn = self._engine.execute
+        return self._run(fn if not params else lambda q: fn(q, params), sql)
 
-    def fetch_row(self, sql: str) -> Any:
-        return self._run(self._engine.fetch_row, sql)
+    def fetch_row(self, sql: str, params: Any = None) -> Any:
+        fn = self._engine.fetch_row
+        return self._run(fn if not params else lambda q: fn(q, params), sql)
 
 
 #: what engines write when their own watchdog gave up on a server that did not answer
@@ -351,6 +354,10 @@ def server_timeout(message: str) -> bool:
 # =====================================================================================
 # body size (also chunked bodies without Content-Length)
 # =====================================================================================
+
+async def replay_empty() -> dict:
+    return {"type": "http.request", "body": b"", "more_body": False}
+
 
 class BodyLimitMiddleware:
     """413 for a request body over ``max_bytes``, whether or not it declares its length.
@@ -406,6 +413,15 @@ class BodyLimitMiddleware:
                 return
             chunks.append(body)
             more = msg.get("more_body", False)
+        if scope.get("path", "").startswith("/v1/"):  # JSON routes: app.body checks first
+            from app.body import check_body
+            from app.problems import problem_response
+
+            ctype = headers.get(b"content-type")
+            problem = check_body(b"".join(chunks), ctype.decode("latin-1") if ctype else None)
+            if problem is not None:
+                await problem_response(problem, scope.get("path"))(scope, replay_empty, send)
+                return
         replayed = False
 
         async def replay() -> dict:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+import typing
 from typing import Any
 
 from fastapi import Request
@@ -9,8 +11,8 @@ from fastapi.exceptions import RequestValidationError
 from starlette.responses import Response
 
 from app.encode import dumps
-from planner.errors import PlanError, pointer
-from planner.model import FILTER_TAGS
+from planner.errors import PlanError, nearest, pointer
+from planner.model import FILTER_TAGS, AnyOf, BatchRequest, ChartRequest, NotOf, Predicate
 
 PROBLEM_JSON = "application/problem+json"
 
@@ -124,12 +126,60 @@ class Problem(Exception):
 
 
 def problem_response(p: Problem, instance: str | None = None) -> Response:
-    return Response(dumps(p.body(instance)), status_code=p.status, media_type=PROBLEM_JSON,
-                    headers=p.headers)
+    body = p.body(instance)
+    try:
+        raw = dumps(body)
+    except TypeError:  # text that is not UTF-8 (a lone surrogate echoed from the request)
+        raw = dumps(_printable(body))
+    return Response(raw, status_code=p.status, media_type=PROBLEM_JSON, headers=p.headers)
+
+
+def _printable(v: Any) -> Any:
+    """``v`` with every string made UTF-8 safe (lone surrogates written as \\udXXX)."""
+    if isinstance(v, str):
+        return v.encode("utf-8", "backslashreplace").decode("utf-8")
+    if isinstance(v, dict):
+        return {_printable(k): _printable(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_printable(x) for x in v]
+    return v
 
 
 def from_plan_error(e: PlanError) -> Problem:
     return Problem(e.status, e.slug, e.title, e.detail, e.pointer, suggestions=e.suggestions)
+
+
+#: member tags pydantic puts into locations of union errors (no request field is named so)
+_UNION_MEMBER = re.compile(r"^(bool|int|float|str|function-(after|before|wrap|plain)\[.*\])$")
+_FILTER_MODELS = {"predicate": Predicate, "any": AnyOf, "not": NotOf}
+
+
+def _models_in(annotation: Any) -> list[type]:
+    """The pydantic models an annotation can hold (through Optional, list, Union, Annotated)."""
+    if isinstance(annotation, type) and hasattr(annotation, "model_fields"):
+        return [annotation]
+    return [m for a in typing.get_args(annotation) for m in _models_in(a)]
+
+
+def allowed_keys(root: type, loc: tuple[Any, ...]) -> list[str]:
+    """The keys the model at ``loc`` (a pydantic location, without the key itself) accepts."""
+    models = [root]
+    for p in loc:
+        if isinstance(p, int):
+            continue
+        if p in _FILTER_MODELS and any(m in _FILTER_MODELS.values() for m in models):
+            models = [_FILTER_MODELS[p]]
+            continue
+        nxt: list[type] = []
+        for m in models:
+            for name, f in m.model_fields.items():
+                if p in (name, f.alias):
+                    nxt += _models_in(f.annotation)
+        models = nxt
+    keys: list[str] = []
+    for m in models:
+        keys += [f.alias or n for n, f in m.model_fields.items()]
+    return sorted(set(keys))
 
 
 def loc_to_pointer(loc: tuple[Any, ...]) -> str:
@@ -140,6 +190,8 @@ def loc_to_pointer(loc: tuple[Any, ...]) -> str:
     out: list[Any] = []
     expect_tag = False
     for p in parts:
+        if isinstance(p, str) and _UNION_MEMBER.match(p):
+            continue  # which member of a union failed (e.g. eq's 'int' or 'str'): no body part
         if expect_tag and p in FILTER_TAGS:
             expect_tag = False
             continue
@@ -159,27 +211,49 @@ def _message(err: dict[str, Any]) -> str:
         return "field required"
     if err.get("type") == "json_invalid":
         return f"the body is not valid JSON ({err.get('ctx', {}).get('error', 'parse error')})"
+    if "unable to parse raw data as a unicode string" in msg:
+        return ("text must be valid Unicode: a lone UTF-16 surrogate such as \\ud800 is not "
+                "(RFC 8259 section 8.2)")
     if msg.startswith("Value error, "):
         msg = msg[len("Value error, "):]
     return msg
 
 
-def from_validation_error(exc: RequestValidationError) -> Problem:
+def from_validation_error(exc: RequestValidationError, root: type = ChartRequest) -> Problem:
+    """``root``: the body's model (the nearest valid keys of an unknown one come from it)."""
     errors = []
+    suggestions: list[str] = []
+    seen: set[tuple[str, str]] = set()
     for err in exc.errors():
-        ptr = loc_to_pointer(tuple(err.get("loc", ())))
+        loc = tuple(err.get("loc", ()))
+        ptr = loc_to_pointer(loc)
         if err.get("type") == "json_invalid":
             ptr = ""
-        errors.append({"pointer": ptr, "detail": _message(err)})
+        detail = _message(err)
+        if err.get("type") == "extra_forbidden" and loc:
+            body_loc = loc[1:] if loc[0] == "body" else loc
+            near = nearest(str(loc[-1]), allowed_keys(root, body_loc[:-1]))
+            if near:
+                detail += f"; did you mean {', '.join(repr(n) for n in near)}?"
+                suggestions = suggestions or near
+        if (ptr, detail) in seen:
+            continue
+        seen.add((ptr, detail))
+        # a union reports each member's failure: its own check's message says most
+        errors.append({"pointer": ptr, "detail": detail,
+                       "_rank": (-ptr.count("/"), err.get("type") != "value_error")})
     # the deepest pointer first: it names the field at fault most precisely
-    errors.sort(key=lambda e: -e["pointer"].count("/"))
+    errors.sort(key=lambda e: e["_rank"])
+    for e in errors:
+        e.pop("_rank")
     first = errors[0] if errors else {"pointer": "", "detail": "invalid request"}
     detail = first["detail"] + (f" (at {first['pointer']})" if first["pointer"] else "")
     if len(errors) > 1:
         detail += f"; {len(errors) - 1} more problem(s) in 'errors'"
     return Problem(422, "invalid-request", "The request does not match the chart request schema",
-                   detail, first["pointer"], errors=errors)
+                   detail, first["pointer"], errors=errors, suggestions=suggestions or None)
 
 
 async def validation_handler(request: Request, exc: RequestValidationError) -> Response:
-    return problem_response(from_validation_error(exc), request.url.path)
+    root = BatchRequest if request.url.path.rstrip("/").endswith("/batch") else ChartRequest
+    return problem_response(from_validation_error(exc, root), request.url.path)

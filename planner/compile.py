@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import datetime as dt
 import functools
+import json
 import math
 import re
 import zoneinfo
@@ -129,6 +130,9 @@ class Plan:
     approximate: list[str] = field(default_factory=list)
     stack_measure: Measure | None = None
     reduced_row: dict[str, Any] | None = None  # extents of an M4 reduction (planner/m4.py)
+    #: number of bound-parameter slots in the SQL (``prepare(..., params=True)``); their
+    #: values come from ``bind_values(request, ...)``, the text from ``bind_sql``
+    slots: int = 0
 
     # ---- SQL text --------------------------------------------------------------------
     @property
@@ -193,7 +197,10 @@ class Plan:
 # step 1: check the request against the schema
 # =====================================================================================
 
-def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect) -> Plan:
+def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
+            params: bool = False) -> Plan:
+    """``params``: long ``in`` / ``not_in`` lists become bound parameters (see
+    ``PARAM_FORMS``) instead of literals, so the SQL text does not depend on their values."""
     keys: list[Key] = []
     measures: list[Measure] = []
     for path, channel, ch in request.keyed_channels():
@@ -204,8 +211,9 @@ def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect) -> Pl
             measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect))
         else:
             keys.append(_check_key(len(keys), path, channel, ch, schema, dialect))
-    where = _compile_where(request, schema, dialect)
-    plan = Plan(request, schema, dialect, keys, measures, where)
+    slots: list[Any] | None = [] if params and dialect.name in PARAM_FORMS else None
+    where = _compile_where(request, schema, dialect, slots)
+    plan = Plan(request, schema, dialect, keys, measures, where, slots=len(slots or ()))
     _check_options(plan)
     _assign_names(plan)
     if request.reduce is not None:  # M4 line reduction: planner/m4.py
@@ -379,18 +387,31 @@ def _check_options(plan: Plan) -> None:
 
 
 def _assign_names(plan: Plan) -> None:
+    """Output names, unique IGNORING CASE: DuckDB, SQLite and MariaDB compare identifiers
+    case-insensitively even when quoted (MariaDB with Unicode case folding: 'ǅ' = 'ǆ'), so
+    'depot' and 'Depot' would be one column there. ``str.casefold`` (Unicode full case
+    folding) without U+0307 COMBINING DOT ABOVE is at least as strict as each of them
+    (measured on MariaDB 10/11: 'i' = 'İ', which casefolds to 'i' + U+0307; 'ß' != 's',
+    'é' != 'e'); a clash gets ``<channel>_`` prefixed, then ``_2``, ``_3``, ..."""
     taken: set[str] = set()
+
+    def fold(name: str) -> str:
+        return name.casefold().replace("\u0307", "")
+
+    def free(name: str) -> bool:
+        folded = fold(name)
+        return folded not in taken and not folded.startswith(INTERNAL)
 
     def claim(want: str, channel: str) -> str:
         name = want
-        if name in taken or name.startswith(INTERNAL):
+        if not free(name):
             name = f"{channel}_{want}"
         n = 2
         base = name
-        while name in taken:
+        while not free(name):
             name = f"{base}_{n}"
             n += 1
-        taken.add(name)
+        taken.add(fold(name))
         return name
 
     # name in request order: x, y, color, size, shape, opacity, by[i], row, col
@@ -425,12 +446,15 @@ def _assign_names(plan: Plan) -> None:
 #: identifier caps (bytes) of engines that silently CUT longer names (the answer would then
 #: lack the column); a dialect may set ``max_identifier_bytes`` itself
 _IDENT_BYTES = {"postgres": 63, "redshift": 127}
+#: engines whose identifiers hold only the Basic Multilingual Plane (MariaDB/MySQL: utf8mb3
+#: system charset; a name with U+10000 or above is error 1300 "Invalid utf8mb4 character")
+_IDENT_BMP_ONLY = {"mysql"}
 
 
 def _check_name_lengths(plan: Plan) -> None:
     d = plan.dialect
     cap = getattr(d, "max_identifier_bytes", None) or _IDENT_BYTES.get(d.name)
-    if cap is None:
+    if cap is None and d.name not in _IDENT_BMP_ONLY:
         return
     stack = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
     items = [(k.path, k.spec, list(k.names)) for k in plan.keys]
@@ -438,7 +462,13 @@ def _check_name_lengths(plan: Plan) -> None:
               for m in plan.measures]
     for path, spec, names in items:
         for n in names:
-            if len(n.encode("utf-8")) > cap:
+            if d.name in _IDENT_BMP_ONLY and any(ord(c) > 0xFFFF for c in n):
+                raise PlanError(pointer(*path, "name" if spec.name else "column"),
+                                f"output column name {n!r} has a character beyond U+FFFF; "
+                                f"{d.name} identifiers cannot hold one (MariaDB/MySQL keep "
+                                "names in utf8mb3): give the channel another name",
+                                slug="bad-name")
+            if cap is not None and len(n.encode("utf-8")) > cap:
                 raise PlanError(pointer(*path, "name" if spec.name else "column"),
                                 f"output column name {n!r} is longer than the {cap} bytes "
                                 f"{d.name} keeps; give the channel a shorter name",
@@ -516,12 +546,17 @@ _COMPARE = {"eq": exp.EQ, "ne": exp.NEQ, "lt": exp.LT, "lte": exp.LTE, "gt": exp
             "gte": exp.GTE}
 
 
-def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect) -> exp.Expression:
+def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect,
+                    slots: list[Any] | None = None) -> exp.Expression:
+    """``slots``: when a list, long in/not_in lists become parameter slots appended to it
+    (their values: ``bind_values``); None writes every value as a literal."""
     if isinstance(f, AnyOf):
-        parts = [_compile_filter(g, path + ("any", j), schema, d) for j, g in enumerate(f.any)]
+        parts = [_compile_filter(g, path + ("any", j), schema, d, slots)
+                 for j, g in enumerate(f.any)]
         return exp.Paren(this=exp.or_(*parts)) if len(parts) > 1 else parts[0]
     if isinstance(f, NotOf):
-        return exp.Not(this=exp.Paren(this=_compile_filter(f.not_, path + ("not",), schema, d)))
+        return exp.Not(this=exp.Paren(this=_compile_filter(f.not_, path + ("not",), schema, d,
+                                                           slots)))
     assert isinstance(f, Predicate)
     col = _resolve(f.column, schema, pointer(*path, "column"))
     ref = d.column(col.name, "s")
@@ -533,6 +568,12 @@ def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect) -> ex
         elif op in ("in", "not_in"):
             if not value:
                 terms.append(exp.false() if op == "in" else exp.true())
+                continue
+            raw = _param_values(d, col, value, pointer(*path, op)) if slots is not None else None
+            if raw is not None:
+                node = _param_in(d, col, ref.copy(), value[0], pointer(*path, op, 0), len(slots), raw)
+                slots.append(None)
+                terms.append(node if op == "in" else exp.Not(this=node))
                 continue
             lits = [_literal(d, col, v, pointer(*path, op, j)) for j, v in enumerate(value)]
             node = exp.In(this=ref.copy(), expressions=lits)
@@ -550,8 +591,212 @@ def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect) -> ex
     return exp.Paren(this=exp.and_(*terms)) if len(terms) > 1 else terms[0]
 
 
-def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect) -> exp.Expression | None:
-    parts = [_compile_filter(f, ("where", i), schema, d) for i, f in enumerate(req.where)]
+# ---- bound parameters for long IN lists ------------------------------------------------
+#
+# A 5,000-value ``in`` list written as literals costs ~0.3 s of sqlglot building, copying and
+# rendering per request and makes every request's SQL text (and cached plan) different. As
+# bound parameters the text depends only on the request's shape, so one cached plan serves
+# every list, and the values go to the driver as data:
+#
+#   list  (DuckDB, PostgreSQL): ``col IN (SELECT <literal form of u> FROM UNNEST(<one list
+#         parameter>) AS p(u))``; ``x IN (subquery)`` and ``x IN (v1, ..., vn)`` are the same
+#         predicate in SQL (ISO 9075 8.4 <in predicate>: both are ``x = ANY (...)``), NULLs
+#         included, so not_in stays NOT IN;
+#   json  (SQLite, no arrays): ``col IN (SELECT <literal form of value> FROM json_each(?))``
+#         with the values as one JSON array (SQLite's JSON1 functions, built in since 3.38);
+#   each  (MariaDB/MySQL, no arrays): one ``%s`` per value, escaped by the driver; the list
+#         is padded to a power of two by repeating its last value (``x IN (a, b, b)`` is
+#         ``x IN (a, b)``), so few SQL texts exist per request shape.
+#
+# "<literal form of u>" is the dialect's own literal for the column kind with the literal
+# replaced by the parameter (e.g. MySQL's CAST(... AS BINARY) for text, the timestamp casts),
+# so a value compares exactly as its literal would (tests/test_hostile_inputs.py checks
+# both forms give the same answer on every engine). Lists shorter than PARAM_MIN_VALUES,
+# and number lists mixing ints and floats or holding integers beyond 64-bit signed, stay
+# literals. Slots appear in the rendered text as NUL-delimited markers (request text can
+# never contain NUL: planner.model.Text), replaced by ``bind_sql``.
+
+PARAM_MIN_VALUES = 16
+#: dialect -> (form, driver paramstyle)
+PARAM_FORMS = {"duckdb": ("list", "qmark"), "postgres": ("list", "format"),
+               "sqlite": ("json", "qmark"), "mysql": ("each", "format")}
+_PG_ARRAY = {str: "TEXT[]", int: "BIGINT[]", float: "DOUBLE PRECISION[]", bool: "BOOLEAN[]"}
+_SLOT = re.compile(r"\x00(\d+)(?:\.(\d+))?\x00")
+
+
+def _marker(slot: int, j: int | None = None) -> exp.Expression:
+    return exp.Var(this=f"\x00{slot}\x00" if j is None else f"\x00{slot}.{j}\x00")
+
+
+def _leaf(e: exp.Expression) -> exp.Expression:
+    """The literal inside a dialect's literal form (a number's sign included)."""
+    if isinstance(e, (exp.Literal, exp.Boolean)) or (isinstance(e, exp.Neg)
+                                                     and isinstance(e.this, exp.Literal)):
+        return e
+    for node in e.walk():
+        if isinstance(node, exp.Boolean) or (isinstance(node, exp.Literal) and node.is_string):
+            return node
+    raise AssertionError(f"no literal in {e!r}")
+
+
+def _param_values(d: Dialect, col: ColumnInfo, values: list[Any], ptr: str) -> list[Any] | None:
+    """The driver values of a long in/not_in list (each what its literal denotes), or None
+    when the list stays literals. Checks every value as ``_literal`` would (same pointers)."""
+    if d.name not in PARAM_FORMS or not _bindable(values):
+        return None
+    if col.is_number:
+        for j, v in enumerate(values):
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
+                _literal(d, col, v, f"{ptr}/{j}")  # raises the type mismatch
+        return list(values)
+    if col.kind == "string":
+        for j, v in enumerate(values):
+            if not isinstance(v, str) or "\x00" in v:
+                _literal(d, col, v, f"{ptr}/{j}")
+        return list(values)
+    if col.kind == "boolean":
+        for j, v in enumerate(values):
+            if not isinstance(v, bool):
+                _literal(d, col, v, f"{ptr}/{j}")
+        return list(values)
+    if col.is_temporal:
+        return [_leaf(_literal(d, col, v, f"{ptr}/{j}")).this for j, v in enumerate(values)]
+    return None
+
+
+def _bindable(values: list[Any]) -> bool:
+    """Whether a list is bound as parameters (decided from the values alone, so that
+    ``param_shape`` and ``prepare`` always agree): long enough, one JSON type, integers
+    within 64-bit signed, floats finite."""
+    if len(values) < PARAM_MIN_VALUES:
+        return False
+    kinds = {type(v) for v in values}
+    if len(kinds) != 1:
+        return False
+    if int in kinds:
+        return all(-2 ** 63 <= v < 2 ** 63 for v in values)
+    if float in kinds:
+        return all(math.isfinite(v) for v in values)
+    return True
+
+
+def _param_in(d: Dialect, col: ColumnInfo, ref: exp.Expression, first: Any, ptr: str,
+              slot: int, raw: list[Any]) -> exp.In:
+    form = PARAM_FORMS[d.name][0]
+    template = _literal(d, col, first, ptr)
+
+    def put(e: exp.Expression) -> exp.Expression:
+        t = template.copy()
+        leaf = _leaf(t)
+        if leaf is t:
+            return e
+        leaf.replace(e)
+        return t
+
+    if form == "each":
+        return exp.In(this=ref, expressions=[put(_marker(slot, j)) for j in range(_padded(len(raw)))])
+    if form == "json":
+        sel = exp.select(put(exp.column("value", quoted=True))).from_(
+            exp.Anonymous(this="json_each", expressions=[_marker(slot)]))
+        return exp.In(this=ref, query=exp.Subquery(this=sel))
+    arg = _marker(slot)
+    if d.name == "postgres":
+        arg = d.cast(arg, _PG_ARRAY[type(raw[0])])
+    unnest = exp.Unnest(expressions=[arg], alias=exp.TableAlias(
+        this=exp.to_identifier("p", quoted=True), columns=[exp.to_identifier("u", quoted=True)]))
+    sel = exp.select(put(exp.column("u", quoted=True))).from_(unnest)
+    return exp.In(this=ref, query=exp.Subquery(this=sel))
+
+
+def _padded(n: int) -> int:
+    return 1 << max(0, n - 1).bit_length()
+
+
+def param_shape(req: ChartRequest, d: Dialect) -> Any:
+    """The request as plain JSON with every list that ``prepare(..., params=True)`` may bind
+    replaced by its padded length: equal shapes render the same SQL text."""
+    doc = req.model_dump(mode="json", by_alias=True, exclude_none=True)
+    if d.name not in PARAM_FORMS:
+        return doc
+
+    def walk(f: Any) -> None:
+        if "any" in f:
+            for g in f["any"]:
+                walk(g)
+        elif "not" in f:
+            walk(f["not"])
+        else:
+            for op in ("in", "not_in"):
+                v = f.get(op)
+                if v is not None and _bindable(v):
+                    f[op] = ["\x00", _padded(len(v)), sorted({type(x).__name__ for x in v})]
+
+    for f in doc.get("where", []):
+        walk(f)
+    return doc
+
+
+def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any]:
+    """The value of every parameter slot of ``prepare(req, schema, d, params=True)``, in slot
+    order (the same walk as ``_compile_filter``), checked like literals."""
+    if d.name not in PARAM_FORMS:
+        return []
+    form = PARAM_FORMS[d.name][0]
+    out: list[Any] = []
+
+    def walk(f: Any, path: tuple) -> None:
+        if isinstance(f, AnyOf):
+            for j, g in enumerate(f.any):
+                walk(g, path + ("any", j))
+            return
+        if isinstance(f, NotOf):
+            walk(f.not_, path + ("not",))
+            return
+        col = None
+        for op, value in f.operators():
+            if op not in ("in", "not_in") or not value:
+                continue
+            col = col or _resolve(f.column, schema, pointer(*path, "column"))
+            raw = _param_values(d, col, value, pointer(*path, op))
+            if raw is None:
+                continue
+            if form == "each":
+                raw = raw + [raw[-1]] * (_padded(len(raw)) - len(raw))
+            elif form == "json":
+                raw = json.dumps(raw, ensure_ascii=False)
+            out.append(raw)
+
+    for i, f in enumerate(req.where):
+        walk(f, ("where", i))
+    return out
+
+
+def bind_sql(sql: str, values: list[Any], style: str) -> tuple[str, list[Any]]:
+    """SQL text with slot markers -> (text for the driver, its parameters in order).
+    ``qmark``: ``?``; ``format``: ``%s`` with every literal ``%`` doubled (psycopg and
+    pymysql read ``%`` as the start of a placeholder)."""
+    args: list[Any] = []
+
+    def sub(m: re.Match) -> str:
+        v = values[int(m.group(1))]
+        args.append(v if m.group(2) is None else v[int(m.group(2))])
+        return "?" if style == "qmark" else "%s"
+
+    if not values or "\x00" not in sql:
+        return sql, []
+    if style == "format":
+        sql = sql.replace("%", "%%")
+    return _SLOT.sub(sub, sql), args
+
+
+def display_sql(sql: str) -> str:
+    """SQL with slot markers shown as ``?`` (the ``sql`` member of an answer)."""
+    return _SLOT.sub("?", sql)
+
+
+def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect,
+                   slots: list[Any] | None = None) -> exp.Expression | None:
+    parts = [_compile_filter(f, ("where", i), schema, d, slots) for i, f in enumerate(req.where)]
     if req.filter_sql is not None:  # allow-listed SQL text, rebuilt from the catalog
         from planner.filter_sql import compile_filter_sql
 

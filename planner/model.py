@@ -8,6 +8,8 @@ need the source's schema (bin on text, avg of a string, unknown columns) happen 
 from __future__ import annotations
 
 import math
+import re
+import unicodedata
 from typing import Annotated, Any, Literal, Union
 
 from pydantic import (
@@ -32,21 +34,64 @@ ExtractField = Literal[
     "hour", "minute", "second",
 ]
 BinRule = Literal["sturges", "scott", "fd", "sqrt"]
-Scalar = Union[bool, int, float, str]  # bool first: JSON true must not become 1
 ChannelName = Literal["x", "y", "color", "size", "shape", "opacity", "row", "col"]
 
 MAX_BINS = 10_000
+#: deepest nesting of ``any`` / ``not`` in ``where`` (a predicate directly in ``where`` is
+#: depth 0). SQLite's parser refuses OR/AND chains nested ~23 levels deep (SQLite 3.40,
+#: measured), so 16 keeps every engine below its own parser and recursion limits.
+MAX_FILTER_DEPTH = 16
+#: integers in a request must fit 64 bits, signed or unsigned (the widest integer columns
+#: the engines store): beyond that a literal changes type differently on every engine.
+INT_MIN, INT_MAX = -(2 ** 63), 2 ** 64 - 1
+
+_BAD_TEXT = re.compile("[\x00\ud800-\udfff]")
 
 
 def _no_nul(v: str) -> str:
-    # NUL ends a C string: engines would cut the text (or fail) instead of using it as sent
-    if "\x00" in v:
-        raise ValueError("text may not contain NUL (\\u0000) characters")
+    # NUL ends a C string: engines would cut the text (or fail) instead of using it as sent;
+    # a lone UTF-16 surrogate (JSON "\ud800" without its pair) is not a Unicode scalar
+    # value (RFC 8259 section 8.2), so no engine or encoder can carry it as UTF-8
+    bad = _BAD_TEXT.search(v)
+    if bad is not None:
+        if bad.group() == "\x00":
+            raise ValueError("text may not contain NUL (\\u0000) characters")
+        raise ValueError(f"text may not contain a lone UTF-16 surrogate (\\u{ord(bad.group()):04x}"
+                         f" at character {bad.start()}): it is not valid Unicode (RFC 8259 "
+                         "section 8.2)")
     return v
 
 
-#: request text (names, labels, values): any Unicode but NUL
+#: request text (names, labels, values): any Unicode but NUL and lone surrogates
 Text = Annotated[str, AfterValidator(_no_nul)]
+
+
+def _output_name(v: str) -> str:
+    # MariaDB drops leading spaces of an alias (then ORDER BY misses it), engines differ on
+    # control characters: one rule everywhere, checked before any engine sees the name
+    if v != v.strip():
+        raise ValueError("an output name may not start or end with white space")
+    bad = next((c for c in v if unicodedata.category(c) == "Cc"), None)
+    if bad is not None:
+        raise ValueError(f"an output name may not contain control characters (U+{ord(bad):04X})")
+    return v
+
+
+#: output column names (``name``): text without edge white space or control characters
+Name = Annotated[str, AfterValidator(_no_nul), AfterValidator(_output_name)]
+
+
+def _in_range(v: Any) -> Any:
+    if isinstance(v, int) and not isinstance(v, bool) and not INT_MIN <= v <= INT_MAX:
+        raise ValueError(f"integers must lie in [-2^63, 2^64-1]; this one has {len(str(abs(v)))} "
+                         "digits (write an approximate value as a float, e.g. 1e30)")
+    if isinstance(v, float) and not math.isfinite(v):
+        raise ValueError("numbers must be finite")
+    return v
+
+
+#: a value compared in ``where``; bool first: JSON true must not become 1
+Scalar = Annotated[Union[bool, int, float, Text], AfterValidator(_in_range)]
 
 
 class _Strict(BaseModel):
@@ -96,7 +141,10 @@ class Channel(_Strict):
     tz: Text | None = Field(None, min_length=1, max_length=64, description="IANA time zone name.")
     top: int | None = Field(None, ge=1, le=10_000, description="Keep the N largest groups.")
     other_label: Text = Field("(other)", max_length=256)
-    name: Text | None = Field(None, min_length=1, max_length=128, description="Output column name.")
+    name: Name | None = Field(None, min_length=1, max_length=128, description="Output column "
+                              "name; unique among the answer's columns ignoring case (a clash "
+                              "gets the channel prefixed); no edge white space or control "
+                              "characters.")
 
     @model_validator(mode="after")
     def _consistent(self) -> "Channel":
@@ -214,6 +262,27 @@ Filter = Annotated[
 AnyOf.model_rebuild()
 NotOf.model_rebuild()
 
+def filter_depth(where: Any, prefix: str = "/where") -> tuple[int, str] | None:
+    """(depth, JSON Pointer) of the first filter nested deeper than MAX_FILTER_DEPTH in a raw
+    (decoded JSON) ``where`` list, else None. Iterative: safe on any nesting."""
+    if not isinstance(where, list):
+        return None
+    stack: list[tuple[Any, str, int]] = [(f, f"{prefix}/{i}", 0) for i, f in enumerate(where)]
+    stack.reverse()  # popped in document order: the first offender is reported
+    while stack:
+        f, ptr, depth = stack.pop()
+        if depth > MAX_FILTER_DEPTH:
+            return depth, ptr
+        if not isinstance(f, dict):
+            continue
+        if isinstance(f.get("not"), dict):
+            stack.append((f["not"], ptr + "/not", depth + 1))
+        if isinstance(f.get("any"), list):
+            stack.extend(reversed([(g, f"{ptr}/any/{j}", depth + 1)
+                                   for j, g in enumerate(f["any"])]))
+    return None
+
+
 #: Discriminator tags that pydantic inserts into error locations; stripped from pointers.
 FILTER_TAGS = frozenset({"predicate", "any", "not"})
 
@@ -256,7 +325,7 @@ class ChartRequest(_Strict):
         None, description="Line reduction: {\"method\": \"m4\", \"width_px\": W} answers at most "
         "4*W raw points (x, y) that draw the same pixels as the whole series (Jugel et al., "
         "M4, PVLDB 7(10), 2014); channels x (number/timestamp column) and y (number column).")
-    filter_sql: str | None = Field(
+    filter_sql: Text | None = Field(
         None, min_length=1, max_length=4096,
         description="An extra condition written as SQL (DuckDB-flavoured generic SQL), ANDed "
         "with `where`. Only an allow-list is accepted: catalog columns, literals (numbers, "
@@ -265,6 +334,15 @@ class ChartRequest(_Strict):
         "lower, upper, trim, length, abs, round, floor, ceil, coalesce. Anything else is a "
         "422 whose pointer is /filter_sql. The server may set a lower length cap.",
         examples=["fee > 10 AND depot IN ('North Yard')"])
+
+    @field_validator("where", mode="before")
+    @classmethod
+    def _shallow(cls, v: Any) -> Any:
+        depth = filter_depth(v)
+        if depth is not None:
+            raise ValueError(f"any/not nest {depth[0]} levels deep at {depth[1]}; at most "
+                             f"{MAX_FILTER_DEPTH}")
+        return v
 
     def keyed_channels(self) -> list[tuple[tuple[str | int, ...], str, Channel]]:
         """Every channel with its path in the request and its channel name, in order:
@@ -287,11 +365,11 @@ class ChartRequest(_Strict):
 class BatchChart(ChartRequest):
     """A chart inside a batch: ``source`` comes from the batch."""
 
-    source: str | None = Field(None, min_length=1, max_length=256)  # type: ignore[assignment]
+    source: Text | None = Field(None, min_length=1, max_length=256)  # type: ignore[assignment]
 
 
 class BatchRequest(_Strict):
     """Several charts on one source, answered together (each answer or problem in order)."""
 
-    source: str = Field(min_length=1, max_length=256)
+    source: Text = Field(min_length=1, max_length=256)
     charts: list[BatchChart] = Field(min_length=1, max_length=32)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import Any, Protocol
 
 import pyarrow as pa
@@ -24,11 +25,12 @@ class EngineBase:
     """What most engines share: table names split on dots, and one row read from the Arrow
     answer of ``execute`` (engines whose driver returns Python rows override ``fetch_row``)."""
 
-    def execute(self, sql: str) -> pa.Table:  # pragma: no cover - every engine defines it
+    def execute(self, sql: str, params: Sequence[Any] | None = None
+                ) -> pa.Table:  # pragma: no cover - every engine defines it
         raise NotImplementedError
 
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        t = self.execute(sql)
+    def fetch_row(self, sql: str, params: Sequence[Any] | None = None) -> dict[str, Any]:
+        t = self.execute(sql, params) if params else self.execute(sql)
         return {n: c[0].as_py() for n, c in zip(t.column_names, t.columns)} if t.num_rows else {}
 
     def split_table(self, table: str) -> tuple[str, ...]:
@@ -39,11 +41,14 @@ class Engine(Protocol):
     #: planner dialect name used to render SQL for this engine
     dialect: str
 
-    def execute(self, sql: str) -> pa.Table:
-        """Run one read-only statement and return its result as Arrow."""
+    def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
+        """Run one read-only statement and return its result as Arrow. ``params``
+        (optional): values for the statement's placeholders in the driver's paramstyle
+        (``planner.compile.PARAM_FORMS``); duckdb, postgres, mysql and sqlite take them,
+        other engines are only given statements without placeholders."""
 
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        """Run a statement returning one row, as a dict."""
+    def fetch_row(self, sql: str, params: Sequence[Any] | None = None) -> dict[str, Any]:
+        """Run a statement returning one row, as a dict (``params`` as for execute)."""
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
         """(column name, engine type name) for the table, in table order."""

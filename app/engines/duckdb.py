@@ -15,6 +15,7 @@ import os
 import threading
 import time
 from pathlib import Path
+from collections.abc import Sequence
 from typing import Any, Callable
 
 import duckdb
@@ -82,12 +83,13 @@ class DuckDBEngine(EngineBase):
                                      "removed while the statement ran; retry")
         return EngineError(self.cfg.name, str(e))
 
-    def execute(self, sql: str) -> pa.Table:
+    def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
         try:
+            if params:  # bound values (planner.compile bind_sql): qmark style, lists allowed
+                return self._cursor().sql(sql, params=list(params)).to_arrow_table()
             return self._cursor().sql(sql).to_arrow_table()
         except duckdb.Error as e:
             raise self._error(e) from None
-
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
         name = table[-1]

@@ -21,6 +21,7 @@ import os
 import re
 import socket
 import threading
+from collections.abc import Sequence
 from typing import Any
 from urllib.parse import unquote, urlparse
 
@@ -148,12 +149,12 @@ class MySQLEngine(EngineBase):
             raise EngineError(self.cfg.name, f"MySQL/MariaDB: {e}") from None
         return [d[0] for d in desc], [d[1] for d in desc], rows
 
-    def execute(self, sql: str) -> pa.Table:
-        names, types, rows = self._run(sql)
+    def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
+        names, types, rows = self._run(sql, tuple(params) if params else None)
         return rows_to_table(names, rows, [_FIELD_TYPES.get(t) for t in types])
 
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        names, _, rows = self._run(sql)
+    def fetch_row(self, sql: str, params: Sequence[Any] | None = None) -> dict[str, Any]:
+        names, _, rows = self._run(sql, tuple(params) if params else None)
         return dict(zip(names, rows[0])) if rows else {}
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:

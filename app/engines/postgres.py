@@ -23,6 +23,7 @@ import os
 import socket
 import threading
 import time
+from collections.abc import Sequence
 from typing import Any
 
 import pyarrow as pa
@@ -109,12 +110,12 @@ class PostgresEngine(EngineBase):
             dog.disarm()
         return [d.name for d in desc], [d.type_code for d in desc], rows
 
-    def execute(self, sql: str) -> pa.Table:
-        names, oids, rows = self._run(sql)
+    def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
+        names, oids, rows = self._run(sql, tuple(params) if params else None)
         return rows_to_table(names, rows, [_OID_TYPES.get(o) for o in oids])
 
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        names, _, rows = self._run(sql)
+    def fetch_row(self, sql: str, params: Sequence[Any] | None = None) -> dict[str, Any]:
+        names, _, rows = self._run(sql, tuple(params) if params else None)
         return dict(zip(names, rows[0])) if rows else {}
 
     def _regclass_sql(self, table: tuple[str, ...]) -> tuple[str, tuple]:

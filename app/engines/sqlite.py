@@ -13,6 +13,7 @@ import sqlite3
 import threading
 import time
 from pathlib import Path
+from collections.abc import Sequence
 from typing import Any
 from urllib.parse import quote
 
@@ -72,12 +73,12 @@ class SQLiteEngine(EngineBase):
             conn.set_progress_handler(None, 0)
         return names, rows
 
-    def execute(self, sql: str) -> pa.Table:
-        names, rows = self._run(sql)
+    def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
+        names, rows = self._run(sql, tuple(params or ()))
         return rows_to_table(names, rows)
 
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        names, rows = self._run(sql)
+    def fetch_row(self, sql: str, params: Sequence[Any] | None = None) -> dict[str, Any]:
+        names, rows = self._run(sql, tuple(params or ()))
         return dict(zip(names, rows[0])) if rows else {}
 
     def split_table(self, table: str) -> tuple[str, ...]:
