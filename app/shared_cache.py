@@ -152,11 +152,7 @@ class SharedCache:
         name = PREFIX + "lock:" + digest(key)
         token = f"{self.owner}:{uuid.uuid4().hex}"
         got = self._call(lambda: self.r.set(name, token, nx=True, px=self.lock_ms), None)
-        if got:
-            return Lease(self, name, token)
-        if got is None and not self.up:
-            return None  # Redis is down: the caller computes on its own
-        return None
+        return Lease(self, name, token) if got else None  # None: held elsewhere, or Redis down
 
     def locked(self, key: tuple) -> bool:
         return bool(self._call(lambda: self.r.exists(PREFIX + "lock:" + digest(key)), 0))

@@ -82,12 +82,11 @@ def run_layout(name: str, root: Path, db: Path, replicas: int, shared: bool) -> 
     try:
         plans = workload()
         lat: list[float] = []
-        errors = 0
+        errors: dict[int, int] = {}
         lock = threading.Lock()
         barrier = threading.Barrier(len(plans))
 
         def client(i: int, plan: list[dict]) -> None:
-            nonlocal errors
             barrier.wait()
             for n, body in enumerate(plan):
                 port = reps.ports[(i + n) % len(reps.ports)]
@@ -96,7 +95,8 @@ def run_layout(name: str, root: Path, db: Path, replicas: int, shared: bool) -> 
                 ms = (time.perf_counter() - t0) * 1000.0
                 with lock:
                     lat.append(ms)
-                    errors += status != 200
+                    if status != 200:
+                        errors[status] = errors.get(status, 0) + 1
 
         t0 = time.perf_counter()
         threads = [threading.Thread(target=client, args=(i, p)) for i, p in enumerate(plans)]
@@ -109,7 +109,8 @@ def run_layout(name: str, root: Path, db: Path, replicas: int, shared: bool) -> 
         execs = reps.executions()
         lat.sort()
         return {"layout": name, "replicas": replicas, "shared": shared, "clients": len(plans),
-                "requests": len(lat), "errors": errors, "distinct": distinct,
+                "requests": len(lat), "errors": sum(errors.values()),
+                "error_statuses": {str(k): v for k, v in sorted(errors.items())}, "distinct": distinct,
                 "executions": execs, "executions_per_distinct": round(execs / distinct, 3),
                 "p50_ms": round(quantile(lat, 0.50), 1), "p99_ms": round(quantile(lat, 0.99), 1),
                 "wall_s": round(wall, 2), "rps": round(len(lat) / wall, 1),
@@ -139,7 +140,7 @@ def main() -> None:
     for r in out:
         print(f"| {r['layout']} | {r['requests']} | {r['distinct']} | {r['executions']} | "
               f"{r['executions_per_distinct']:.3f} | {r['p50_ms']} | {r['p99_ms']} | "
-              f"{r['wall_s']} | {r['rps']} | {r['errors']} |")
+              f"{r['wall_s']} | {r['rps']} | {r['errors']} {r['error_statuses'] or ''} |")
     if args.json:
         Path(args.json).write_text(json.dumps({"rows": ROWS, "results": out}, indent=2))
 

@@ -216,3 +216,54 @@ def test_redis_stopped_answers_stay_correct_and_sharing_comes_back(data):
     finally:
         reps.stop()
         redis.stop()
+
+
+# ---- the shared cache itself (in-process, no replicas) ---------------------------------------
+
+def test_shared_values_are_zlib_compressed_with_ttl_and_size_cap():
+    """What lands in Redis: zlib data (RFC 1950, decompressed here by Python's zlib) holding
+    the answer bytes, with a TTL; a value over the cap is not stored at all."""
+    import os
+    import uuid
+    import zlib
+
+    import redis as redis_py
+
+    from app.shared_cache import PREFIX, SharedCache, digest
+
+    url = machine_redis()
+    sc = SharedCache(url, shared_ttl_s=60, shared_max_value_bytes=4000)
+    raw = redis_py.Redis.from_url(url)
+    key = (b'{"test":"' + uuid.uuid4().hex.encode() + b'"}', "v1", "json")
+    body = b'{"data":{"grp":[' + b'"north","south","east","west",' * 2000 + b'"x"]}'
+    assert sc.put(key, body, "application/json", {"execute": 1.5})
+    name = PREFIX + "answer:" + digest(key)
+    try:
+        value = raw.get(name)
+        assert body in zlib.decompress(value)  # reference: zlib itself
+        assert len(value) * 10 < len(body)      # repetitive JSON shrinks (here > 10x)
+        assert 0 < raw.pttl(name) <= 60_000
+        assert sc.get(key) == (body, "application/json", {"execute": 1.5})
+        big = (key[0] + b"big", "v1", "json")
+        assert not sc.put(big, os.urandom(8000), "application/json", {})  # incompressible
+        assert raw.exists(PREFIX + "answer:" + digest(big)) == 0
+    finally:
+        raw.delete(name)
+
+
+def test_unreachable_redis_costs_one_timeout_then_backs_off(caplog):
+    """A Redis that is not there: the first call fails within the socket timeout and logs
+    once; calls during the back-off do not touch the network at all."""
+    import logging
+
+    from app.shared_cache import SharedCache
+
+    sc = SharedCache(f"redis://127.0.0.1:{rc.free_port()}/0", timeout_ms=200)
+    key = (b"{}", "v", "json")
+    with caplog.at_level(logging.WARNING, logger="sluice.shared_cache"):
+        t0 = time.monotonic()
+        assert sc.get(key) is None
+        assert sc.lease(key) is None and not sc.put(key, b"{}", "application/json", {})
+        assert time.monotonic() - t0 < 1.0
+    assert sc.errors == 1 and not sc.up  # the later calls were skipped (back-off)
+    assert sum("local cache only" in r.getMessage() for r in caplog.records) == 1
