@@ -187,6 +187,11 @@ class RedisServer:
             time.sleep(0.05)
         return self
 
+    def freeze(self) -> None:
+        """SIGSTOP: the port still accepts connections, nothing answers (a "slow" Redis)."""
+        if self.proc is not None:
+            self.proc.send_signal(signal.SIGSTOP)
+
     def stop(self) -> None:
         if self.proc is not None and self.proc.poll() is None:
             self.proc.send_signal(signal.SIGKILL)

@@ -136,25 +136,36 @@ def test_replica_killed_loses_nothing(trio, data):
     is waiting on is answered (its lease ran out, it ran the chart), and every answer the
     dead replica stored is still served by the others from Redis, without the engine."""
     _, _, refs = data
-    slow = {**SLOW, "where": [{"column": "x", "gt": 1.0}]}  # a key nobody has yet
     doomed, other = trio.ports[0], trio.ports[1]
-    out: dict = {}
-
-    def leader():
-        out["leader"] = rc.post(doomed, slow, timeout=60)
-
-    t = threading.Thread(target=lambda: _quiet(leader))
-    t.start()
-    time.sleep(0.3)  # the leader holds the lease now
-    waiter = threading.Thread(target=lambda: out.update(waiter=rc.post(other, slow)))
-    waiter.start()
-    time.sleep(0.3)
+    heavy = {**SLOW, "channels": {**SLOW["channels"], "color": {"column": "grp"}}}
+    for attempt in range(5):  # until the kill lands while the leader is still computing
+        slow = {**heavy, "where": [{"column": "x", "gt": 1.0 + attempt}]}  # a fresh key
+        out: dict = {}
+        waits = rc.metric(other, "sluice_cache_events_total", event="shared_wait")
+        t = threading.Thread(target=lambda: _quiet(lambda: out.update(leader=rc.post(doomed, slow))))
+        t.start()
+        time.sleep(0.1)  # the leader takes the lease
+        waiter = threading.Thread(target=lambda: out.update(waiter=rc.post(other, slow)))
+        waiter.start()
+        deadline = time.monotonic() + 5
+        while rc.metric(other, "sluice_cache_events_total", event="shared_wait") == waits \
+                and time.monotonic() < deadline and "leader" not in out:
+            time.sleep(0.02)
+        if "leader" not in out:
+            break
+        waiter.join(60)  # the leader was quicker than the kill: try a fresh key
+    else:
+        pytest.fail("the slow chart always finished before the kill")
     trio.kill(0)
     waiter.join(60)
     t.join(5)
+    assert "leader" not in out  # the leader's request died with its replica
     status, answer = out["waiter"]
     assert status == 200, answer
     assert answer["stats"]["result_rows"] > 0
+    # it did wait on the dead replica's lease, then ran the chart itself
+    assert rc.metric(other, "sluice_cache_events_total", event="shared_wait") == waits + 1
+    assert answer["cache"] == "miss"
     # the dead replica's earlier answers are still there (computed only by it: fresh keys)
     fresh = [{**c, "where": [*c.get("where", []), {"column": "id", "gte": 0}]} for c in CHARTS]
     before = trio.executions()
@@ -190,15 +201,23 @@ def test_redis_stopped_answers_stay_correct_and_sharing_comes_back(data):
         results = spray(reps.ports, CHARTS[:3], 3)
         assert all(s == 200 for s, _, _ in results)
         assert reps.executions() == 3
-        redis.stop()
+        # a frozen Redis (accepts connections, never answers): the 250 ms socket timeouts
+        redis.freeze()
         t0 = time.monotonic()
-        results = spray(reps.ports, CHARTS, 3)  # 3 known (local hits or recomputed), 3 new
+        results = spray(reps.ports, CHARTS[2:4], 3)
+        assert all(s == 200 for s, _, _ in results), [a for s, a, _ in results if s != 200][:2]
+        for _, a, i in results:
+            check(a, refs[2 + i])
+        assert time.monotonic() - t0 < 15
+        assert reps.events("shared_error") >= 1
+        redis.stop()  # and then gone
+        t0 = time.monotonic()
+        results = spray(reps.ports, CHARTS, 3)  # known ones (local hits or recomputed), new ones
         took = time.monotonic() - t0
         assert all(s == 200 for s, _, _ in results), [a for s, a, _ in results if s != 200][:2]
         for _, a, i in results:
             check(a, refs[i])
         assert took < 20, took  # no request waited on the dead Redis for long
-        assert reps.events("shared_error") >= 1
         assert any("local cache only" in reps.log(i) for i in range(3))
         # Redis back on the same port: the replicas use it again by themselves (back-off)
         redis = rc.RedisServer(root, redis.port).start()
