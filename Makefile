@@ -8,7 +8,7 @@ DEMO   ?= data/demo.duckdb
 ROWS   ?= 2000000
 PYTEST_ARGS ?=
 
-.PHONY: serve test demo install install-test services browser node types bench load fuzz clean help
+.PHONY: serve test demo install install-test services browser node types bench bench-replicas load fuzz clean help
 
 help:
 	@echo "make serve   build the venv and the demo data, serve on $(HOST):$(PORT) (PORT=... overrides)"
@@ -66,6 +66,10 @@ test: $(VENV)/.installed-test services browser node
 BENCH_ROWS ?= 10000000
 bench: $(VENV)/.installed-test  # benchmarks, not tests; bench/run.py says what is measured (BENCH_CASES=..., BENCH_RUNS=...)
 	BENCH_ROWS=$(BENCH_ROWS) $(BIN)/python bench/run.py
+
+bench-replicas: $(VENV)/.installed-test  # 3 replicas sharing Redis vs local caches vs 1 (redis-server)
+	@command -v redis-server >/dev/null || { apt-get update -qq && apt-get install -y -qq redis-server; }
+	$(BIN)/python bench/replicas.py
 
 LOAD_CLIENTS ?= 32
 LOAD_SECONDS ?= 60

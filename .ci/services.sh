@@ -1,6 +1,7 @@
 #!/usr/bin/env bash
 # Start the database servers the test suite talks to, when they are not already up:
-# PostgreSQL on 127.0.0.1:5432 and MariaDB on 127.0.0.1:3306 (Debian packages on this machine).
+# PostgreSQL on 127.0.0.1:5432, MariaDB on 127.0.0.1:3306 and Redis on 127.0.0.1:6379 (the
+# shared answer cache tests) — Debian packages on this machine.
 set -uo pipefail
 
 up() { (exec 3<>"/dev/tcp/127.0.0.1/$1") 2>/dev/null; }
@@ -31,5 +32,14 @@ elif [ -x /usr/sbin/mariadbd ]; then
   wait_for 3306 MariaDB || exit 1
 else
   echo "services: MariaDB is not installed (apt-get install mariadb-server)" >&2
+fi
+if up 6379; then
+  echo "services: Redis is up on 127.0.0.1:6379"
+elif command -v redis-server >/dev/null 2>&1; then
+  echo "services: starting Redis"
+  redis-server --bind 127.0.0.1 --port 6379 --daemonize yes --save '' --appendonly no || true
+  wait_for 6379 Redis || exit 1
+else
+  echo "services: Redis is not installed (apt-get install redis-server)" >&2
 fi
 exit 0

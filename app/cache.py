@@ -17,8 +17,13 @@ Why it looks like this:
 * **Single flight.** Identical requests that arrive while the first is still running wait for
   it and share its answer, so N concurrent identical requests run the engine once.
 
+* **Shared** (optional, ``[cache] url``): ``app.shared_cache`` in Redis behind the LRU, so
+  replicas share JSON answers and run a chart once between them (a lease in Redis); Redis
+  down or slow only means local caching.
+
 Counters go to ``app.observability`` when that module is present (``hit``, ``miss``,
-``store``, ``evict``).
+``store``, ``evict``; with a shared cache ``shared_hit``, ``shared_store``, ``shared_wait``,
+``shared_error``, ``shared_too_large``).
 """
 
 from __future__ import annotations
@@ -90,14 +95,28 @@ def open_json(payload: dict[str, Any]) -> bytes:
 
 
 class ResultCache:
-    def __init__(self, max_bytes: int = DEFAULT_MAX_BYTES, enabled: bool = True) -> None:
+    def __init__(self, max_bytes: int = DEFAULT_MAX_BYTES, enabled: bool = True,
+                 shared: Any = None) -> None:
         self.max_bytes = int(max_bytes)
         self.enabled = bool(enabled) and self.max_bytes > 0
+        #: optional ``app.shared_cache.SharedCache`` (Redis) behind the LRU: JSON answers only
+        self.shared = shared if self.enabled else None
         self._entries: OrderedDict[tuple, Entry] = OrderedDict()
         self._bytes = 0
         self._lock = threading.Lock()
         self._inflight: dict[tuple, Future] = {}
         self.hits = self.misses = self.stores = self.evictions = self.coalesced = 0
+
+    @classmethod
+    def from_config(cls, cfg: dict[str, Any]) -> "ResultCache":
+        """The ``[cache]`` table: ``enabled``, ``max_bytes`` and, with ``url``, the shared
+        Redis cache (``app.shared_cache``) and its options."""
+        shared = None
+        if cfg.get("url") and cfg.get("enabled", True):
+            from app.shared_cache import DEFAULTS, SharedCache
+
+            shared = SharedCache(cfg["url"], **{k: cfg[k] for k in DEFAULTS if k in cfg})
+        return cls(cfg.get("max_bytes", DEFAULT_MAX_BYTES), cfg.get("enabled", True), shared)
 
     # ---- keys ----------------------------------------------------------------------------
     @staticmethod
@@ -178,24 +197,57 @@ class ResultCache:
                 return e, "hit"
         else:
             fut = None
-        with self._lock:
-            self.misses += 1
-        self._event(source, "miss")
+        shared = self.shared if key[2] == "json" else None
+        lease = None
         try:
+            if shared is not None and lookup:  # another replica's answer, or its flight
+                e = self._from_shared(key, source)
+                if e is None:
+                    lease = shared.lease(key)
+                    if lease is None and shared.up:  # held elsewhere: wait for its answer
+                        self._event(source, "shared_wait")
+                        e = self._from_shared(key, source, wait=True)
+                        if e is None:  # the holder died or is slow: run it here
+                            lease = shared.lease(key)
+                if e is not None:
+                    self._finish(key, fut, e)
+                    return e, "hit"
+            with self._lock:
+                self.misses += 1
+            self._event(source, "miss")
             e = fn()
             e.source = source
             self.put(key, e)  # stored before the flight ends: no gap for a second run
+            if shared is not None and type(e) is Entry:
+                if shared.put(key, e.body, e.media_type, e.timing):
+                    self._event(source, "shared_store")
         except BaseException as exc:
             if fut is not None:
                 fut.set_exception(exc)
                 with self._lock:
                     self._inflight.pop(key, None)
             raise
+        finally:
+            if lease is not None:
+                lease.release()
+        self._finish(key, fut, e)
+        return e, "miss"
+
+    def _finish(self, key: tuple, fut: Future | None, e: Entry) -> None:
         if fut is not None:
             fut.set_result(e)
             with self._lock:
                 self._inflight.pop(key, None)
-        return e, "miss"
+
+    def _from_shared(self, key: tuple, source: str, wait: bool = False) -> Entry | None:
+        got = self.shared.wait(key) if wait else self.shared.get(key)
+        if got is None:
+            return None
+        body, media_type, timing = got
+        e = Entry(body, media_type, timing, source)
+        self.put(key, e)
+        self._event(source, "shared_hit")
+        return e
 
     @staticmethod
     def _event(source: str, event: str) -> None:

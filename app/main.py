@@ -88,8 +88,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.catalog = catalog
     app.state.service = service
     cache_cfg = getattr(settings, "cache", None) or {}
-    cache = app.state.cache = ResultCache(cache_cfg.get("max_bytes", 64 * 1024 * 1024),
-                                          cache_cfg.get("enabled", True))
+    cache = app.state.cache = ResultCache.from_config(cache_cfg)  # + [cache] url: Redis
     metrics = app.state.metrics = observability.Metrics()  # one registry per app
     metrics.declare_sources(catalog.names())
 

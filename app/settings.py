@@ -86,7 +86,7 @@ class Settings:
     limits: Any = None
     keys: list = field(default_factory=list)
     cors_origins: list = field(default_factory=list)
-    # [cache] (app.cache): enabled, max_bytes
+    # [cache] (app.cache): enabled, max_bytes, ttl_s; url + options: app.shared_cache
     cache: dict = field(default_factory=lambda: {"enabled": True, "max_bytes": 64 * 1024 * 1024,
                                                  "ttl_s": 60.0})
 
@@ -255,7 +255,8 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
     cache = data.get("cache", {})
     if not isinstance(cache, dict):
         raise ctx.fail(("cache",), "must be a table", "write [cache] on its own line")
-    _check_unknown(ctx, ("cache",), cache, ["enabled", "max_bytes", "ttl_s"])
+    _check_unknown(ctx, ("cache",), cache, ["enabled", "max_bytes", "ttl_s"] + SHARED_CACHE_KEYS)
+    _parse_shared_cache(ctx, cache, st)
     if "ttl_s" in cache:
         v = _coerce(ctx, ("cache", "ttl_s"), cache["ttl_s"], float, "60")
         if v < 0:
@@ -271,6 +272,26 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
                            "e.g. max_bytes = 67108864 (64 MiB; 0 disables the cache)")
         st.cache["max_bytes"] = v
     return st
+
+
+#: [cache] keys of the shared Redis cache (app.shared_cache): url, then numbers (defaults there)
+SHARED_CACHE_KEYS = ["url", "shared_ttl_s", "shared_max_value_bytes", "lock_ms", "wait_ms",
+                     "poll_ms", "timeout_ms"]
+
+
+def _parse_shared_cache(ctx: Any, cache: dict, st: Settings) -> None:
+    if "url" in cache:
+        url = cache["url"]
+        if not isinstance(url, str) or not url.startswith(("redis://", "rediss://", "unix://")):
+            raise ctx.fail(("cache", "url"), f"is {url!r}; it must be a Redis URL",
+                           'e.g. url = "redis://127.0.0.1:6379/0" (rediss:// for TLS)')
+        st.cache["url"] = url
+    for k in SHARED_CACHE_KEYS[1:]:
+        if k in cache:
+            v = _coerce(ctx, ("cache", k), cache[k], float, "1000")
+            if v <= 0:
+                raise ctx.fail(("cache", k), f"is {v}; it must be more than 0", None)
+            st.cache[k] = v
 
 
 def _env_name_of(parts: tuple[str, ...]) -> str:

@@ -212,6 +212,49 @@ def test_compose_port_config_and_probe_match_the_app(compose, app_paths):
     assert f"/{wh['environment']['POSTGRES_DB']}" in src.dsn and "@warehouse:" in src.dsn
 
 
+# ---- compose: two replicas sharing answers through Redis ----------------------------------
+@pytest.fixture(scope="module")
+def replicas_compose() -> dict:
+    return yaml.safe_load((DEPLOY / "compose.replicas.yaml").read_text())
+
+
+def test_replicas_compose_runs_two_identical_replicas_on_redis(replicas_compose, containerfile,
+                                                               app_paths):
+    svcs = replicas_compose["services"]
+    reps = [svcs[n] for n in ("sluice-1", "sluice-2")]
+    assert reps[0] == reps[1]  # one definition (a YAML anchor): same image, config, command
+    svc = reps[0]
+    assert (DEPLOY / svc["build"]["context"]).resolve() == REPO
+    assert svc["command"] == containerfile["cmd"]
+    assert "ports" not in svc  # only the proxy is published
+    assert svc["depends_on"]["redis"]["condition"] == "service_healthy"
+    env = svc["environment"]
+    mounts = {v.split(":")[1]: (DEPLOY / v.split(":")[0]) for v in svc["volumes"]}
+    st = load_settings(mounts[env["SLUICE_CONFIG"]],
+                       environ={k: str(v) for k, v in env.items() if k.startswith("SLUICE_")})
+    # the config sluice gets names the compose Redis service, and its source the warehouse
+    assert st.cache["url"] == "redis://redis:6379/0" and st.cache["enabled"] is True
+    assert st.sources["deliveries"].dsn == env["SLUICE_SOURCES__DELIVERIES__DSN"]
+    probe = " ".join(svc["healthcheck"]["test"])
+    assert f"127.0.0.1:{env['PORT']}/readyz" in probe and "/readyz" in app_paths
+    # Redis keeps answers only: no persistence, a memory cap with LRU eviction
+    cmd = svcs["redis"]["command"]
+    assert cmd[0] == "redis-server" and cmd[cmd.index("--save") + 1] == ""
+    assert cmd[cmd.index("--appendonly") + 1] == "no"
+    assert cmd[cmd.index("--maxmemory-policy") + 1] == "allkeys-lru"
+
+
+def test_replicas_proxy_balances_both_replicas(replicas_compose):
+    proxy = replicas_compose["services"]["proxy"]
+    conf_path = DEPLOY / [v for v in proxy["volumes"] if v.endswith(".conf:ro")][0].split(":")[0]
+    conf = conf_path.read_text()
+    port = replicas_compose["services"]["sluice-1"]["environment"]["PORT"]
+    for name in ("sluice-1", "sluice-2"):
+        assert f"server {name}:{port}" in conf
+        assert proxy["depends_on"][name]["condition"] == "service_healthy"
+    assert any(p.endswith(":8000") for p in proxy["ports"]) and "listen 8000;" in conf
+
+
 # ---- Kubernetes ----------------------------------------------------------------------------
 @pytest.fixture(scope="module")
 def k8s() -> dict:

@@ -84,7 +84,9 @@ class Dialect:
     def how(self, feature: str) -> str:
         """Capability-table cell: how the feature is written here, or why it is refused."""
         if feature == "engine":
-            return "live engine" if self.checked == "live" else "golden SQL + parse"
+            if self.checked != "live":
+                return "golden SQL + parse"
+            return self.notes.get("engine", "live engine")
         if feature == "quantile" and not self.supports("quantile"):
             return "no (422)"
         if feature in self.unsupported:

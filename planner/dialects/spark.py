@@ -1,4 +1,5 @@
-"""Spark SQL (checked live through pyspark in local mode) and Databricks (generated).
+"""Spark SQL (checked live through pyspark in local mode and over the wire on a Spark Connect
+server, tests/test_spark_connect.py) and Databricks (generated).
 
 * The session time zone must be UTC (the engine sets ``spark.sql.session.timeZone``); a
   "naive wall-clock time" is a TIMESTAMP read in that UTC session: ``from_utc_timestamp`` /
@@ -23,6 +24,7 @@ class Spark(Dialect):
     sqlglot = "spark"
     approx_distinct = ("hyperloglog++", 0.05)
     notes = {
+        "engine": "live engine (local mode and a Spark Connect server)",
         "quantile": "percentile()",
         "approx_count_distinct": "approx_count_distinct (HLL++)",
         "tz": "from_utc_timestamp (UTC session)",
