@@ -195,6 +195,7 @@ def problem_responses(*codes: int) -> dict[int | str, dict[str, Any]]:
             403: "The API key is not granted this source", 404: "Unknown source",
             406: "The Accept header names no format this route answers in",
             413: "Body too large",
+            415: "The body is not sent as application/json",
             422: "The request cannot be planned (the pointer names the field)",
             502: "The engine rejected the statement sluice generated",
             503: "The source's engine is unavailable, or busy (Retry-After)",

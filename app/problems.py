@@ -102,6 +102,12 @@ PROBLEM_TYPES: dict[str, tuple[str, str, str]] = {
     "shutting-down": ("Server shutting down", "503",
                       "The process received SIGTERM and cut the request while draining; "
                       "retry on another replica or after the restart (Retry-After)."),
+    "unsupported-media-type": ("The body must be JSON", "415",
+                               "A POST to `/v1/*` needs `Content-Type: application/json`; "
+                               "the body was not read."),
+    "bad-name": ("Output name not allowed", "422",
+                 "An output `name` starts or ends with white space, holds a control character, "
+                 "or (on MariaDB) a character beyond U+FFFF; `pointer` names it."),
 }
 
 

@@ -365,7 +365,7 @@ export interface components {
             extract?: ("year" | "quarter" | "month" | "week" | "isoyear" | "day" | "dow" | "isodow" | "doy" | "hour" | "minute" | "second") | null;
             /**
              * Name
-             * @description Output column name.
+             * @description Output column name; unique among the answer's columns ignoring case (a clash gets the channel prefixed); no edge white space or control characters.
              */
             name?: string | null;
             /**
@@ -1229,6 +1229,15 @@ export interface operations {
                     "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
+            /** @description The body is not sent as application/json */
+            415: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
             /** @description The request cannot be planned (the pointer names the field) */
             422: {
                 headers: {
@@ -1344,6 +1353,15 @@ export interface operations {
             };
             /** @description Body too large */
             413: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
+            /** @description The body is not sent as application/json */
+            415: {
                 headers: {
                     [name: string]: unknown;
                 };
@@ -1637,6 +1655,15 @@ export interface operations {
             };
             /** @description Body too large */
             413: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
+            /** @description The body is not sent as application/json */
+            415: {
                 headers: {
                     [name: string]: unknown;
                 };
