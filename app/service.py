@@ -100,15 +100,18 @@ class Prepared:
     extents_sql: str | None
 
 
-def _extents_only(req: ChartRequest) -> ChartRequest:
+def _extents_only(req: ChartRequest, schema: Any) -> ChartRequest:
     """The request's keys (same order, so the same extents names) and filters without what
-    only the chart needs (time zones, top, measures, stack): bin extents depend on neither."""
+    only the chart needs (the keys' time zones, top, measures, stack): bin extents depend on
+    neither. The request's tz stays: it is how the filters' instants are read."""
     def strip(ch):
         if ch is None:
             return None
         if ch.is_measure:
             return ch.model_copy(update={"agg": "count", "column": None, "q": None})
-        return ch.model_copy(update={"tz": None, "top": None})
+        col = schema.column(ch.column)
+        return ch.model_copy(update={"tz": "UTC" if col is not None and col.is_temporal
+                                     else None, "top": None})
 
     ch = req.channels
     channels = ch.model_copy(update={**{n: strip(getattr(ch, n)) for n in VISUAL_CHANNELS},
@@ -117,6 +120,12 @@ def _extents_only(req: ChartRequest) -> ChartRequest:
         "row": strip(req.facet.row), "col": strip(req.facet.col), "max_groups": None})
     return req.model_copy(update={"channels": channels, "facet": facet, "stack": None,
                                   "sort": [], "empty_bins": "omit"})
+
+
+def _zones(plan: Plan) -> dict[str, str]:
+    """The zone each key's output column is written in (its own tz, else the request's);
+    other columns (measures) use the request's tz."""
+    return {n: k.tz for k in plan.keys for n in k.names}
 
 
 def _ms(t0: float) -> float:
@@ -178,7 +187,7 @@ class ChartService:
             try:
                 extents = prepare(plan.request, plan.schema, native).extents
             except Unsupported:  # e.g. tz on a SQLite source: extents need none of it
-                extents = prepare(_extents_only(plan.request), plan.schema, native).extents
+                extents = prepare(_extents_only(plan.request, plan.schema), plan.schema, native).extents
         return engine.fetch_row(native.render(extents)) if extents is not None else None
 
     def plan_sql(self, req: ChartRequest, dialect_name: str | None) -> dict[str, Any]:
@@ -236,7 +245,7 @@ class ChartService:
 
     def _bins(self, plan: Plan) -> dict[str, Any]:
         out = plan.bins_meta()
-        tz = {k.label: k.spec.tz for k in plan.keys}
+        tz = {k.label: k.tz for k in plan.keys}
         for ch, b in out.items():
             for key in ("start", "stop"):
                 if not isinstance(b.get(key), (int, float)) and b.get(key) is not None:
@@ -260,10 +269,7 @@ class ChartService:
                        for k in plan.keys if k.has_limits}
         groups = int(first(f"{INTERNAL}groups") or 0)
 
-        tz_of = {}
-        for k in plan.keys:
-            for n in k.names:
-                tz_of[n] = k.spec.tz
+        tz_of = _zones(plan)
         names = [c.name for c in plan.columns]
         arrays = {n: normalize_column(raw.column(n)) for n in names}
         table = pa.table(arrays)
@@ -271,7 +277,7 @@ class ChartService:
                     "type": type_name(table.column(c.name).type)} for c in plan.columns]
         domains: dict[str, Any] = {}
         for c in plan.columns:
-            dom = domain(table.column(c.name), tz_of.get(c.name))
+            dom = domain(table.column(c.name), tz_of.get(c.name, plan.request.tz))
             if dom is not None:
                 domains[c.name] = dom
         bins = self._bins(plan)
@@ -324,8 +330,8 @@ class ChartService:
         return table, meta
 
     def to_json(self, result: ChartResult) -> dict[str, Any]:
-        tz_of = {n: k.spec.tz for k in result.plan.keys for n in k.names}
-        data = {n: column_values(result.table.column(n), tz_of.get(n))
+        tz_of = _zones(result.plan)
+        data = {n: column_values(result.table.column(n), tz_of.get(n, result.plan.request.tz))
                 for n in result.table.column_names}
         meta = result.meta
         out = {"columns": meta["columns"], "data": data}

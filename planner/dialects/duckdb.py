@@ -68,6 +68,14 @@ class DuckDB(Dialect):
         # quantile_cont interpolates linearly: Hyndman & Fan type 7.
         return exp.Anonymous(this="quantile_cont", expressions=[self.double(arg), self.number(q)])
 
+    def int_series(self, n: int, name: str) -> exp.Select:
+        # range(n): the table function of the integers 0 .. n-1 (column "range")
+        return exp.select(exp.alias_(exp.column("range", quoted=True), name, quoted=True)).from_(
+            exp.Table(this=exp.Anonymous(this="range", expressions=[exp.Literal.number(n)])))
+
+    def finite(self, e: exp.Expression) -> exp.Expression:
+        return exp.Anonymous(this="isfinite", expressions=[e])
+
     def agg(self, name, arg, q):
         if name == "approx_count_distinct":
             return exp.Anonymous(this="approx_count_distinct", expressions=[arg])

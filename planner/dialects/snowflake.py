@@ -56,7 +56,7 @@ class Snowflake(Dialect):
         return self.fn("DATE_TRUNC", self.lit(unit.upper()), naive)
 
     def add_units(self, naive, n, unit):
-        return self.fn("DATEADD", self.var(unit.upper()), self.lit(n), naive)
+        return self.fn("DATEADD", self.var(unit.upper()), self.count_arg(n), naive)
 
     def extract(self, field, naive):
         fns = {"year": "YEAR", "quarter": "QUARTER", "month": "MONTH", "week": "WEEKISO",

@@ -52,14 +52,14 @@ class SQLite(Dialect):
     def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
         utc = value.astimezone(dt.timezone.utc)
         if kind == "date":
-            return self.lit(utc.date().isoformat())
+            return self.lit(value.date().isoformat())
         # the storage form (3 fraction digits); a sub-millisecond instant keeps 6 digits,
         # which still orders correctly against the 3-digit stored text
         frac = f"{utc.microsecond:06d}"
-        return self.lit(utc.strftime("%Y-%m-%d %H:%M:%S.") + (frac[:3] if frac.endswith("000") else frac))
+        return self.lit((self.wall_text(utc) + ".") + (frac[:3] if frac.endswith("000") else frac))
 
     def local_literal(self, value: dt.datetime) -> exp.Expression:
-        return self.lit(value.strftime("%Y-%m-%d %H:%M:%S"))
+        return self.lit(self.wall_text(value))
 
     def _f(self, fmt: str, e: exp.Expression, *mods: str) -> exp.Expression:
         return self.fn("strftime", self.lit(fmt), e, *[self.lit(m) for m in mods])
@@ -98,9 +98,13 @@ class SQLite(Dialect):
 
     def add_units(self, naive, n, unit):
         if unit == "quarter":
-            n, unit = 3 * n, "month"
+            n, unit = self.times(n, 3), "month"
         if unit == "week":
-            n, unit = 7 * n, "day"
+            n, unit = self.times(n, 7), "day"
+        if isinstance(n, exp.Expression):  # the modifier '+<n> <unit>s' built in SQL
+            mod = exp.DPipe(this=exp.DPipe(this=self.lit("+"), expression=self.cast(n, "TEXT")),
+                            expression=self.lit(f" {unit}s"))
+            return self.fn("strftime", self.lit("%Y-%m-%d %H:%M:%S"), naive, mod)
         return self._f("%Y-%m-%d %H:%M:%S", naive, f"{n:+d} {unit}s")
 
     def extract(self, field, naive):
