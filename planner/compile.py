@@ -184,11 +184,11 @@ class Plan:
                 out[label] = {"start": b.start, "stop": b.stop, "width": b.width,
                               "count": b.count, "method": b.method}
             elif k.mode == "tbin" and k.tstep is not None:
-                starts = _time_bin_starts(k)
-                first = _time_bin_instant(k, starts[0]) if starts else None
-                last = _time_bin_instant(k, _time_next(k, starts[-1])) if starts else None
+                n = k.tcount or 0
+                first = _time_bin_instant(k, _time_bin_start(k, 0)) if n else None
+                last = _time_bin_instant(k, _time_bin_start(k, n)) if n else None
                 out[label] = {"start": first, "stop": last, "step": k.tstep.iso,
-                              "count": len(starts), "method": "calendar"}
+                              "count": n, "method": "calendar"}
         return out
 
 
@@ -773,10 +773,7 @@ def _layout_time_steps(k: Key, row: dict[str, Any], p: str, target: int) -> None
         first_l = _trunc_local(lo_local, step.unit)
         last_l = _trunc_local(hi_local, step.unit)
         k.tstart = first_l
-        count, cur = 1, first_l
-        while cur < last_l and count <= MAX_DENSE_CELLS:
-            cur = _add_local(cur, step.unit, 1)
-            count += 1
+        count = _units_between(first_l, last_l, step.unit) + 1
         if last_l == hi_local and last_l > first_l:  # hi on a bin edge: closed last bin
             count -= 1
             k.tclosed = dt.datetime.fromtimestamp(hi, dt.timezone.utc)
@@ -817,22 +814,20 @@ def _add_local(t: dt.datetime, unit: str, n: int) -> dt.datetime:
     return t.replace(year=t.year + m // 12, month=m % 12 + 1)
 
 
-def _time_bin_starts(k: Key) -> list[Any]:
-    assert k.tstep is not None and k.tcount is not None
-    if k.tstep.is_fixed:
-        return [k.tstart + i * k.tstep.seconds for i in range(k.tcount)]
-    out, cur = [], k.tstart
-    for _ in range(k.tcount):
-        out.append(cur)
-        cur = _add_local(cur, k.tstep.unit, 1)
-    return out
+def _units_between(a: dt.datetime, b: dt.datetime, unit: str) -> int:
+    """Whole calendar units from the bin start ``a`` to the bin start ``b`` (both truncated)."""
+    if unit in ("day", "week"):
+        return (b - a).days // (7 if unit == "week" else 1)
+    months = (b.year - a.year) * 12 + b.month - a.month
+    return months // {"month": 1, "quarter": 3, "year": 12}[unit]
 
 
-def _time_next(k: Key, start: Any) -> Any:
+def _time_bin_start(k: Key, i: int) -> Any:
+    """The i-th bin start (epoch seconds, or a naive wall-clock time for calendar steps)."""
     assert k.tstep is not None
     if k.tstep.is_fixed:
-        return start + k.tstep.seconds
-    return _add_local(start, k.tstep.unit, 1)
+        return k.tstart + i * k.tstep.seconds
+    return _add_local(k.tstart, k.tstep.unit, i)
 
 
 def _time_bin_instant(k: Key, v: Any) -> dt.datetime:
@@ -903,12 +898,12 @@ def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
             return key
         # closed last bin: a value equal to the stop (the only kept value whose bin starts
         # there) goes into the last bin
-        starts = _time_bin_starts(k)
+        last = _time_bin_start(k, k.tcount - 1)
         if step.is_fixed:
-            stop_key, last_key = d.real(k.tclosed.timestamp()), d.real(starts[-1])
+            stop_key, last_key = d.real(k.tclosed.timestamp()), d.real(last)
         else:
             stop_local = k.tclosed.astimezone(zoneinfo.ZoneInfo(k.tz)).replace(tzinfo=None)
-            stop_key, last_key = d.local_literal(stop_local), d.local_literal(starts[-1])
+            stop_key, last_key = d.local_literal(stop_local), d.local_literal(last)
         return exp.Case(ifs=[exp.If(this=exp.GTE(this=key, expression=stop_key),
                                     true=last_key)], default=key.copy())
     raise AssertionError(k.mode)
@@ -1197,7 +1192,7 @@ def _main_statement(plan: Plan) -> exp.Select:
         outer = outer.order_by(*terms)
     outer = outer.limit(d.number(req.limit))
     for name, q in ctes:
-        outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q)
+        outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q, copy=False)
     return outer
 
 
@@ -1295,31 +1290,38 @@ def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
     q = exp.select(*[_ref(k.internal) for k in order]).from_(sources[0])
     for s in sources[1:]:
         q = q.join(s, join_type="cross")
-    # a NULL bin (a NULL value, or inf / NaN) appears only where the data has one: the
-    # observed key combinations with a NULL binned key, never one per group (pandas groupby
-    # with observed=False and dropna=False adds no NaN groups either)
-    nulls = exp.select(*[_ref(k.internal) for k in order]).from_(_table(current)).where(
-        exp.or_(*[exp.Is(this=_ref(k.internal), expression=exp.Null()) for k in binned]))
     gname = f"{INTERNAL}grid"
-    ctes.append((gname, exp.union(q, nulls, distinct=False)))
+    ctes.append((gname, q))
+    # The grid's rows and the data's rows, grouped by the keys (NULLs group together, like a
+    # null-safe join, but one hash aggregation instead of a join: MariaDB ran the join
+    # quadratically). A NULL bin (a NULL value, or inf / NaN) thus appears only where the data
+    # has one, never one per group -- the grid holds only the bins of the layout.
+    has = f"{INTERNAL}has"
+    n, matched = f"{INTERNAL}n", f"{INTERNAL}matched"
+    outs = [f"{INTERNAL}out{k.index}" for k in flags]
+    keys = [k.internal for k in plan.keys]
+    data = exp.select(*[_ref(c) for c in keys], *[_ref(m.internal) for m in plan.measures],
+                      _ref(n), _ref(matched), *[_ref(o) for o in outs],
+                      exp.alias_(exp.Literal.number(1), has, quoted=True)).from_(_table(current))
+    empty = exp.select(*[_ref(c) for c in keys],
+                       *[exp.alias_(exp.Null(), m.internal, quoted=True) for m in plan.measures],
+                       exp.alias_(exp.Literal.number(0), n, quoted=True),
+                       exp.alias_(exp.Null(), matched, quoted=True),
+                       *[exp.alias_(exp.Null(), o, quoted=True) for o in outs],
+                       exp.alias_(exp.Literal.number(0), has, quoted=True)).from_(_table(gname))
+    uname = f"{INTERNAL}cells"
+    ctes.append((uname, exp.union(data, empty, distinct=False)))
     fill = exp.Literal.number(0) if plan.request.empty_bins == "zero" else exp.Null()
-    missing = exp.Is(this=_ref(f"{INTERNAL}n", "c"), expression=exp.Null())
-    dense = (exp.select(*[exp.alias_(_ref(k.internal, "g"), k.internal, quoted=True) for k in plan.keys])
-             .from_(exp.alias_(_table(gname), "g", quoted=True))
-             .join(exp.alias_(_table(current), "c", quoted=True),
-                   on=exp.and_(*[d.null_safe_eq(_ref(k.internal, "g"), _ref(k.internal, "c"))
-                                 for k in plan.keys]),
-                   join_type="left"))
-    for m in plan.measures:
+    missing = exp.EQ(this=exp.Max(this=_ref(has)), expression=exp.Literal.number(0))
+    dense = exp.select(*[_ref(c) for c in keys]).from_(_table(uname))
+    for m in plan.measures:  # one data row per cell at most: MAX returns its value unchanged
         dense = dense.select(exp.alias_(exp.Case(ifs=[exp.If(this=missing.copy(), true=fill.copy())],
-                                                 default=_ref(m.internal, "c")), m.internal, quoted=True))
-    dense = dense.select(
-        exp.alias_(exp.Coalesce(this=_ref(f"{INTERNAL}n", "c"), expressions=[exp.Literal.number(0)]),
-                   f"{INTERNAL}n", quoted=True),
-        exp.alias_(_ref(f"{INTERNAL}matched", "c"), f"{INTERNAL}matched", quoted=True))
-    for k in flags:
-        dense = dense.select(exp.alias_(_ref(f"{INTERNAL}out{k.index}", "c"),
-                                        f"{INTERNAL}out{k.index}", quoted=True))
+                                                 default=exp.Max(this=_ref(m.internal))),
+                                        m.internal, quoted=True))
+    dense = dense.select(exp.alias_(exp.Sum(this=_ref(n)), n, quoted=True),
+                         exp.alias_(exp.Max(this=_ref(matched)), matched, quoted=True),
+                         *[exp.alias_(exp.Max(this=_ref(o)), o, quoted=True) for o in outs])
+    dense = dense.group_by(*[_ref(c) for c in keys])
     name = f"{INTERNAL}dense"
     ctes.append((name, dense))
     return name

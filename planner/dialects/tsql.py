@@ -63,6 +63,11 @@ class TSQL(Dialect):
     def trunc(self, unit, naive):
         return self.fn("DATETRUNC", self.var("iso_week" if unit == "week" else unit), naive)
 
+    def int_series(self, n, name):
+        # GENERATE_SERIES (SQL Server 2022): column "value"
+        return exp.select(exp.alias_(self.column("value"), name, quoted=True)).from_(
+            exp.Table(this=self.fn("GENERATE_SERIES", self.lit(0), self.lit(max(n - 1, 0)))))
+
     def add_units(self, naive, n, unit):
         return self.fn("DATEADD", self.var(unit), self.count_arg(n), naive)
 
