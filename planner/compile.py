@@ -637,7 +637,7 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
         p = f"{INTERNAL}e{k.index}_"
         if k.mode == "tbin":
             if k.tlimits is None:
-                ep = d.epoch(ref, k.col.kind)
+                ep = d.epoch(_instant_in_range(d, k, ref), k.col.kind)
                 sel += [exp.alias_(exp.Min(this=ep), p + "min", quoted=True),
                         exp.alias_(exp.Max(this=ep.copy()), p + "max", quoted=True)]
             continue
@@ -859,15 +859,29 @@ def _outside_expr(d: Dialect, k: Key) -> exp.Expression | None:
         lo_l = d.timestamp_literal(k.tlimits[0], k.col.kind)
         hi_l = d.timestamp_literal(k.tlimits[1], k.col.kind)
         cond = exp.or_(exp.LT(this=ref, expression=lo_l), exp.GT(this=ref.copy(), expression=hi_l))
+        ok = d.instant_range(ref.copy(), k.col.kind)
+        if ok is not None:  # 'infinity' / year 12000 are not outside: they go to the NULL bin
+            cond = exp.and_(ok, exp.Paren(this=cond))
     else:
         return None
     return exp.Case(ifs=[exp.If(this=cond, true=exp.Literal.number(1))],
                     default=exp.Literal.number(0))
 
 
+def _instant_in_range(d: Dialect, k: Key, ref: exp.Expression) -> exp.Expression:
+    """A temporal column as a time key sees it: instants outside years 1..9999 (UTC), such
+    as 'infinity' or year 12000, are NULL (their own NULL group, never in a layout)."""
+    ok = d.instant_range(ref, k.col.kind)
+    if ok is None:
+        return ref
+    return exp.Case(ifs=[exp.If(this=ok, true=ref.copy())])
+
+
 def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
     """The internal grouping value of a key, computed per source row."""
     ref = d.column(k.col.name, "s")
+    if k.col.is_temporal:  # plain, trunc, extract and time bins alike
+        ref = _instant_in_range(d, k, ref)
     if k.mode == "plain":
         if top_alias is None:
             return ref

@@ -264,6 +264,19 @@ class Dialect:
             q = q.join(t, join_type="cross")
         return q.where(exp.LT(this=value.copy(), expression=exp.Literal.number(n)))
 
+    #: The engine's timestamps can lie outside years 1..9999 (year 12000, 'infinity'), which
+    #: neither Python nor RFC 3339 can write: time keys treat them as NULL (``instant_range``).
+    wide_instants: ClassVar[bool] = False
+
+    def instant_range(self, e: exp.Expression, kind: str) -> exp.Expression | None:
+        """``e`` lies in years 1..9999 (UTC), or None when the engine cannot hold others."""
+        if not self.wide_instants:
+            return None
+        lo = dt.datetime(1, 1, 1, tzinfo=dt.timezone.utc)
+        hi = dt.datetime(9999, 12, 31, 23, 59, 59, 999999, tzinfo=dt.timezone.utc)
+        return exp.Between(this=e, low=self.timestamp_literal(lo, kind),
+                           high=self.timestamp_literal(hi, kind))
+
     def finite(self, e: exp.Expression) -> exp.Expression:
         """``e`` (a DOUBLE) is neither infinite nor NaN (NaN compares above every number in
         PostgreSQL and DuckDB, false everywhere else; SQLite stores NaN as NULL)."""

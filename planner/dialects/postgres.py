@@ -16,6 +16,7 @@ from planner.dialects.base import Dialect
 class Postgres(Dialect):
     name = "postgres"
     sqlglot = "postgres"
+    wide_instants = True  # 'infinity' and years past 9999 are legal values
     approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
     notes = {
         "quantile": "PERCENTILE_CONT WITHIN GROUP",

@@ -21,6 +21,7 @@ from planner.dialects.base import Dialect
 class Spark(Dialect):
     name = "spark"
     sqlglot = "spark"
+    wide_instants = True  # 'infinity' and years past 9999 are legal values
     approx_distinct = ("hyperloglog++", 0.05)
     notes = {
         "quantile": "percentile()",
