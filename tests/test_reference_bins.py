@@ -7,6 +7,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pandas as pd
 import pytest
 
 # ---------------------------------------------------------------------------------------------
@@ -406,3 +407,30 @@ def test_subnormal_data_span_answers_one_bin(api, ref):
     vals = ref.t["x"].dropna().to_numpy()
     want = int(((vals >= 0) & (vals <= 5e-324)).sum())  # reference: numpy mask
     assert sum(r["count"] for r in api.rows(resp)) == want
+
+
+# ---------------------------------------------------------------------------------------------
+# issue 9.3: empty_bins with a key beside the bin fills the layout's bins only; a NULL bin
+# appears only where the data has one (reference: pandas groupby over pd.cut categories)
+# ---------------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("fill", ["zero", "null"])
+def test_empty_bins_with_a_group_adds_no_null_bins(api, ref, fill):
+    df = ref.t[["x", "cat"]].copy()
+    assert df["x"].isna().any() and df["cat"].isna().any()
+    keep = df["x"].isna() | ((df["x"] >= 0) & (df["x"] <= 100))  # rows outside the limits drop out
+    df = df[keep]
+    edges = np.arange(0, 101, 10, dtype=float)
+    bins = pd.cut(df["x"], edges, right=False, include_lowest=True)
+    bins = bins.where(df["x"] != 100, pd.Interval(90.0, 100.0, closed="left"))  # closed last bin (numpy)
+    full = df.groupby([bins, df["cat"]], observed=False, dropna=False).size()  # reference: pandas
+    # the bins of the layout for every group; NULL-bin rows only where observed (size > 0)
+    want = {(None if pd.isna(b) else b.left, None if pd.isna(c) else c): int(n)
+            for (b, c), n in full.items() if not pd.isna(b) or n > 0}
+    resp = api.chart({"channels": {"x": {"column": "x", "bin": {"width": 10, "origin": 0, "limits": [0, 100]}},
+                                   "color": {"column": "cat"}, "y": {"agg": "count"}}, "empty_bins": fill})
+    got = {(r["x_lo"], r["cat"]): r["count"] for r in api.rows(resp)}
+    if fill == "null":  # added rows carry null measures (DEVELOPERS: empty_bins)
+        want = {k: (n if n > 0 else None) for k, n in want.items()}
+    assert set(got) == set(want)  # no invented NULL-bin rows (reference: pandas)
+    assert got == want  # reference: pandas groupby sizes
