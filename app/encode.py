@@ -56,8 +56,8 @@ def normalize_column(arr: pa.ChunkedArray) -> pa.ChunkedArray:
     if pa.types.is_unsigned_integer(t) or (pa.types.is_integer(t) and t != pa.int64()):
         try:
             return arr.cast(pa.int64())
-        except pa.ArrowInvalid:
-            return arr.cast(pa.float64())
+        except pa.ArrowInvalid:  # a UBIGINT above 2^63 - 1 (legal data): exact as uint64
+            return arr.cast(pa.uint64())
     if pa.types.is_floating(t) and t != pa.float64():
         return arr.cast(pa.float64())
     return arr

@@ -222,3 +222,27 @@ def test_clickhouse_non_finite_values_go_to_the_null_bin(tmp_path):
             assert [r["count"] for r in o["rows"] if r["x_lo"] is None] == [int(cut.isna().sum())]  # reference: pandas.cut
         else:
             check(o, "clickhouse")
+
+
+def test_ubigint_key_above_int64_is_exact(tmp_path):
+    """A UBIGINT of 2^64 - 1 as a key answers the exact integer (JSON numbers are unbounded,
+    RFC 8259 section 6; Arrow keeps uint64) instead of failing a cast to int64 or double."""
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    path = tmp_path / "u.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute("CREATE TABLE t AS SELECT * FROM (VALUES (18446744073709551615::UBIGINT), "
+                "(18446744073709551615::UBIGINT), (7::UBIGINT), (NULL)) v(u)")
+    con.close()
+    cat = Catalog(parse_settings({"sources": {"u": {"engine": "duckdb", "path": str(path),
+                                                    "table": "t"}}}, "<u>"))
+    try:
+        svc = ChartService(cat)
+        out = run(svc, "u", {"channels": {"x": {"column": "u"}, "y": {"agg": "count"}}})
+    finally:
+        cat.close()
+    assert out["data"]["u"] == [7, 2 ** 64 - 1, None]  # reference: the stored values (DuckDB UBIGINT max)
+    assert out["data"]["count"] == [1, 2, 1]
+    assert out["domains"]["u"] == [7, 2 ** 64 - 1]
