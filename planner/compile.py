@@ -620,7 +620,7 @@ def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect) -> exp.E
 def _bin_input(d: Dialect, k: Key) -> exp.Expression:
     """The value a numeric bin places: the column as DOUBLE, NULL when it is not finite
     (inf, -inf, NaN: such rows go to the NULL bin and never widen a layout from the data)."""
-    v = d.double(d.column(k.col.name, "s"))
+    v = d.double(d.number_cell(d.column(k.col.name, "s")))
     if k.col.kind != "double":  # integers and decimals are always finite
         return v
     return exp.Case(ifs=[exp.If(this=d.finite(v), true=v.copy())])
@@ -850,7 +850,7 @@ def _outside_expr(d: Dialect, k: Key) -> exp.Expression | None:
     ref = d.column(k.col.name, "s")
     if k.nlimits is not None:
         lo, hi = k.nlimits
-        v = d.double(ref)
+        v = d.double(d.number_cell(ref))
         cond = exp.or_(exp.LT(this=v, expression=d.real(lo)),
                        exp.GT(this=v.copy(), expression=d.real(hi)))
         if k.col.kind == "double":  # inf / NaN are not outside: they go to the NULL bin
@@ -895,6 +895,7 @@ def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
     if k.mode == "extract":
         return d.extract(k.spec.extract, d.to_local(ref, k.col.kind, k.tz))
     if k.mode == "nbin":
+        ref = d.number_cell(ref)
         idx = _nbin_index(d, k, d.double(ref))
         if k.col.kind == "double":  # inf / NaN have no bin: the NULL bin (like pandas.cut)
             return exp.Case(ifs=[exp.If(this=d.finite(d.double(ref.copy())), true=idx)])

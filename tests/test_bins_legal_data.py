@@ -246,3 +246,57 @@ def test_ubigint_key_above_int64_is_exact(tmp_path):
     assert out["data"]["u"] == [7, 2 ** 64 - 1, None]  # reference: the stored values (DuckDB UBIGINT max)
     assert out["data"]["count"] == [1, 2, 1]
     assert out["domains"]["u"] == [7, 2 ** 64 - 1]
+
+
+def test_sqlite_cells_outside_the_storage_convention_are_null(tmp_path):
+    """planner/dialects/sqlite.py documents the storage convention (UTC text timestamps,
+    YYYY-MM-DD dates, numbers as INTEGER / REAL). A cell that breaks it -- text in a REAL
+    column ('abc' would CAST to 0.0), an integer or unreadable text in a TIMESTAMP or DATE
+    column -- reads as NULL: one NULL group, never a 500, never a wrong bin. Reference: the
+    convention applied in Python (datetime.fromisoformat / date.fromisoformat)."""
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    rows = [("2026-01-01 10:00:00.000", 1.5, "2026-01-01"), ("2026-01-02 11:00:00.000", 2.5, "2026-01-02"),
+            (1767225600, "abc", 20260101), ("garbage", 3.0, "2026/01/03"), (None, None, None)]
+    path = tmp_path / "bad.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE t (ts TIMESTAMP, v REAL, d DATE)")
+    conn.executemany("INSERT INTO t VALUES (?, ?, ?)", rows)
+    conn.commit()
+    conn.close()
+    cat = Catalog(parse_settings({"sources": {"bad": {"engine": "sqlite", "path": str(path),
+                                                      "table": "t"}}}, "<bad>"))
+
+    def iso(v):  # reference: the documented convention, read in Python
+        try:
+            return dt.datetime.fromisoformat(v).replace(tzinfo=UTC) if isinstance(v, str) else None
+        except ValueError:
+            return None
+
+    try:
+        svc = ChartService(cat)
+        plain = run(svc, "bad", {"channels": {"x": {"column": "ts"}, "y": {"agg": "count"}}})
+        want = collections_counter([iso(r[0]) for r in rows])
+        got = {None if t is None else dt.datetime.fromisoformat(t): n
+               for t, n in zip(plain["data"]["ts"], plain["data"]["count"])}
+        assert got == want
+        days = run(svc, "bad", {"channels": {"x": {"column": "d", "trunc": "month"}, "y": {"agg": "count"}}})
+        assert days["data"]["count"] == [2, 3]  # 2026-01-01 and 2026-01-02; three NULL-like cells
+        binned = run(svc, "bad", {"channels": {"x": {"column": "v", "bin": {"width": 1, "origin": 0}},
+                                               "y": {"agg": "count"}}})
+        nums = [r[1] for r in rows if isinstance(r[1], float)]
+        edges = np.array([1.0, 2.0, 3.0])  # the origin grid over the data 1.5 .. 3.0 (closed last bin)
+        counts, _ = np.histogram(nums, bins=edges)  # reference: numpy on the REAL cells only
+        assert [r["count"] for r in binned["rows"] if r["x_lo"] is not None] == [int(c) for c in counts if c]
+        assert [r["count"] for r in binned["rows"] if r["x_lo"] is None] == [2]  # 'abc' and NULL
+    finally:
+        cat.close()
+
+
+def collections_counter(items):
+    out: dict = {}
+    for i in items:
+        out[i] = out.get(i, 0) + 1
+    return out

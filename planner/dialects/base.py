@@ -277,6 +277,11 @@ class Dialect:
         return exp.Between(this=e, low=self.timestamp_literal(lo, kind),
                            high=self.timestamp_literal(hi, kind))
 
+    def number_cell(self, col: exp.Expression) -> exp.Expression:
+        """A number column's value as bins read it; engines whose columns can hold cells of
+        another type (SQLite) turn those into NULL."""
+        return col
+
     def finite(self, e: exp.Expression) -> exp.Expression:
         """``e`` (a DOUBLE) is neither infinite nor NaN (NaN compares above every number in
         PostgreSQL and DuckDB, false everywhere else; SQLite stores NaN as NULL)."""

@@ -6,8 +6,11 @@ Storage convention for timestamps (SQLite has no timestamp type): a column decla
 ``YYYY-MM-DD HH:MM:SS.SSS`` (SQLite's own ``strftime('%Y-%m-%d %H:%M:%f')``: always three
 fraction digits); a ``DATE`` column holds ``YYYY-MM-DD``. Filters compare that text with
 literals written in the same fixed-width form, so the comparison is exact (and can use an
-index); values stored in another form would compare wrongly. Results come back as text and
-the service types them from the plan.
+index); values stored in another form would compare wrongly in filters. Keys never group
+them wrongly: a cell that breaks the convention (text in a REAL/INTEGER column, an integer or
+text SQLite's date functions cannot read in a TIMESTAMP/DATE column) is NULL for bins and
+time keys (``number_cell``, ``instant_range``) and reads as NULL in results. Results come
+back as text and the service types them from the plan.
 
 SQLite has no time zone database: only UTC is accepted (``tz`` other than UTC -> 422). It has
 no percentile or standard deviation aggregates: median, quantile, stddev/variance and the
@@ -41,6 +44,19 @@ class SQLite(Dialect):
 
     def double(self, e: exp.Expression) -> exp.Expression:
         return exp.Cast(this=e, to=exp.DataType.build("DOUBLE"))
+
+    def instant_range(self, e: exp.Expression, kind: str) -> exp.Expression | None:
+        # a cell outside the storage convention (not text SQLite's date functions read:
+        # 'garbage', an integer) is NULL for every time key
+        check = self.fn("date" if kind == "date" else "datetime", e)
+        return exp.and_(exp.EQ(this=self.fn("typeof", e.copy()), expression=self.lit("text")),
+                        exp.Not(this=exp.Is(this=check, expression=exp.Null())))
+
+    def number_cell(self, col: exp.Expression) -> exp.Expression:
+        # a REAL / INTEGER column may hold text ('abc' CASTs to 0.0): such cells are NULL
+        kinds = [self.lit("integer"), self.lit("real")]
+        return exp.Case(ifs=[exp.If(this=exp.In(this=self.fn("typeof", col), expressions=kinds),
+                                    true=col.copy())])
 
     def floor(self, e: exp.Expression) -> exp.Expression:
         # FLOOR needs the optional math functions; CAST truncates toward zero.
