@@ -210,8 +210,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                                              f"a batch runs on one source ({req.source!r})",
                                              f"/charts/{i}/source").body()))
                 continue
+            inherited = {"source": req.source}
+            if req.tz is not None and chart.tz is None:  # the dashboard's zone
+                inherited["tz"] = req.tz
             full = ChartRequest.model_validate(
-                chart.model_dump(by_alias=True, exclude_none=True) | {"source": req.source})
+                chart.model_dump(by_alias=True, exclude_none=True) | inherited)
             try:
                 results.append(json_answer(full, True, time.perf_counter()))
             except (PlanError, Problem, EngineError) as e:

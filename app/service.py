@@ -21,7 +21,7 @@ from app.encode import (column_values, domain, instant_text, normalize_column, t
 from app import auth
 from app.engines import Engine
 from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
-from app.engines.arrow import conform, key_zone
+from app.engines.arrow import conform, key_zone, request_zone
 from planner.compile import (INTERNAL, PARAM_FORMS, Plan, bind_sql, bind_values, display_sql,
                              param_shape, prepare)
 from planner.dialects import DIALECTS, get_dialect
@@ -170,15 +170,18 @@ class Prepared:
     bound_values: int = 0  # values of its bound lists (for the byte charge)
 
 
-def _extents_only(req: ChartRequest) -> ChartRequest:
+def _extents_only(req: ChartRequest, schema: Any) -> ChartRequest:
     """The request's keys (same order, so the same extents names) and filters without what
-    only the chart needs (time zones, top, measures, stack): bin extents depend on neither."""
+    only the chart needs (the keys' time zones, top, measures, stack): bin extents depend on
+    neither. The request's tz stays: it is how the filters' instants are read."""
     def strip(ch):
         if ch is None:
             return None
         if ch.is_measure:
             return ch.model_copy(update={"agg": "count", "column": None, "q": None})
-        return ch.model_copy(update={"tz": None, "top": None})
+        col = schema.column(ch.column)
+        return ch.model_copy(update={"tz": "UTC" if col is not None and col.is_temporal
+                                     else None, "top": None})
 
     ch = req.channels
     channels = ch.model_copy(update={**{n: strip(getattr(ch, n)) for n in VISUAL_CHANNELS},
@@ -261,7 +264,7 @@ class ChartService:
             try:
                 extents = prepare(plan.request, plan.schema, native).extents
             except Unsupported:  # e.g. tz on a SQLite source: extents need none of it
-                extents = prepare(_extents_only(plan.request), plan.schema, native).extents
+                extents = prepare(_extents_only(plan.request, plan.schema), plan.schema, native).extents
         return engine.fetch_row(native.render(extents)) if extents is not None else None
 
     def plan_sql(self, req: ChartRequest, dialect_name: str | None) -> dict[str, Any]:
@@ -363,7 +366,7 @@ class ChartService:
         columns = [_column_meta(c, table.column(c.name).type) for c in plan.columns]
         domains: dict[str, Any] = {}
         for c in plan.columns:
-            dom = domain(table.column(c.name), tz_of.get(c.name))
+            dom = domain(table.column(c.name), tz_of.get(c.name, plan.request.tz))
             if dom is not None:
                 domains[c.name] = dom
         bins = self._bins(plan)
@@ -421,7 +424,7 @@ class ChartService:
         (for the HTTP body; the same bytes, faster)."""
         tz_of = _zones(result.plan)
         values = wire_values if wire else column_values
-        data = {n: values(result.table.column(n), tz_of.get(n))
+        data = {n: values(result.table.column(n), tz_of.get(n, request_zone(result.plan)))
                 for n in result.table.column_names}
         meta = result.meta
         out = {"columns": meta["columns"], "data": data}

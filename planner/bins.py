@@ -1,16 +1,29 @@
 """Bin layouts: nice widths, bin-count rules and calendar steps.
 
-* Nice numbers: P. S. Heckbert, "Nice Numbers for Graph Labels", Graphics Gems (1990),
-  the ``nicenum`` routine and its "loose labelling" use.
-* Bin-count rules as ``numpy.histogram_bin_edges`` implements them:
-  H. A. Sturges (1926), D. W. Scott (1979), D. Freedman & P. Diaconis (1981), and the
-  square-root choice. Edges are ``linspace(min, max, k + 1)`` exactly as numpy builds them.
+* Nice numbers: P. S. Heckbert, "Nice Numbers for Graph Labels", Graphics Gems (1990): widths
+  of the form {1, 2, 5} x 10^k (``nicenum``). ``bins: N`` picks, among those widths, the one
+  whose bins (edges on multiples of the width, covering the data) number closest to N
+  without exceeding it (``nice_bins``).
+* Bin-count rules as ``numpy.histogram_bin_edges`` implements them
+  (numpy/lib/_histograms_impl.py, ``_hist_bin_*`` and ``_get_bin_edges``): H. A. Sturges
+  (1926), D. W. Scott (1979), D. Freedman & P. Diaconis (1981), and the square-root choice.
+  The rule gives a bin *width* from the values inside the range; the count is
+  ``ceil((hi - lo) / width)`` and the edges are ``linspace(lo, hi, count + 1)``.
 """
 
 from __future__ import annotations
 
 import math
+import sys
 from dataclasses import dataclass
+from decimal import Decimal
+
+#: smallest positive normal double: below it widths lose precision (subnormal)
+_TINY = sys.float_info.min
+
+
+class LayoutError(ValueError):
+    """A layout whose edges cannot be represented as distinct finite doubles."""
 
 
 def nicenum(x: float, round_: bool) -> float:
@@ -20,13 +33,18 @@ def nicenum(x: float, round_: bool) -> float:
     """
     if x <= 0 or not math.isfinite(x):
         raise ValueError("nicenum needs a positive finite number")
-    expv = math.floor(math.log10(x))
-    f = x / 10.0 ** expv
+    expv = Decimal(x).adjusted()  # floor(log10 x), exact also for subnormal x
+    f = float(Decimal(x).scaleb(-expv))
     if round_:
         nf = 1.0 if f < 1.5 else 2.0 if f < 3.0 else 5.0 if f < 7.0 else 10.0
     else:
         nf = 1.0 if f <= 1.0 else 2.0 if f <= 2.0 else 5.0 if f <= 5.0 else 10.0
-    return nf * 10.0 ** expv
+    return _nice(nf, expv)
+
+
+def _nice(mantissa: float, expv: int) -> float:
+    """mantissa x 10^expv as the double nearest to the decimal (0.2, not 2 * 0.1)."""
+    return float(Decimal(repr(mantissa)).scaleb(expv))
 
 
 @dataclass(frozen=True)
@@ -35,7 +53,7 @@ class NumericBins:
 
     start: float
     width: float
-    count: int | None  # None: open-ended (width + origin without limits)
+    count: int | None  # None: open-ended (never produced since layouts read the data)
     method: str
 
     @property
@@ -47,65 +65,151 @@ class NumericBins:
 
 def _snap(v: float, step: float) -> float:
     """Remove floating noise from a multiple of a nice step (0.30000000000000004 -> 0.3)."""
-    if step <= 0:
+    if step <= 0 or not math.isfinite(v):
         return v
     digits = max(0, -math.floor(math.log10(step)) + 2)
+    if digits > 300:
+        return v
     return round(v, digits)
 
 
+def _edge(k: int, step: float) -> float:
+    """The k-th multiple of a nice step as a double: the double nearest to the decimal
+    k x step (0.3, not 3 * 0.1 = 0.30000000000000004)."""
+    return float(Decimal(k) * Decimal(repr(step)))
+
+
+def _grid_index(v: float, step: float, up: bool) -> int:
+    """The largest k with edge_k <= v (or, with ``up``, the smallest k with edge_k >= v)."""
+    k = math.floor(v / step)
+    while _edge(k, step) > v:
+        k -= 1
+    while _edge(k + 1, step) <= v:
+        k += 1
+    if up and _edge(k, step) < v:
+        k += 1
+    return k
+
+
+def check_layout(b: NumericBins) -> NumericBins:
+    """Refuse edges that are not distinct finite doubles (the bins would hold nothing)."""
+    if b.count is None:
+        return b
+    stop = b.stop
+    ok = (math.isfinite(b.start) and math.isfinite(b.width) and b.width >= _TINY
+          and stop is not None and math.isfinite(stop))
+    if ok:
+        # spacing of doubles grows with magnitude: the widest-magnitude edges decide
+        for e in (b.start, stop - b.width):
+            if not e + b.width > e:
+                ok = False
+    if not ok:
+        raise LayoutError(f"bins of width {b.width:.17g} from {b.start:.17g} have edges that are "
+                          "not distinct finite numbers")
+    return b
+
+
+def nice_step_count(lo: float, hi: float, step: float) -> tuple[float, int]:
+    """(start, count) of the bins of width ``step`` on multiples of the step covering [lo, hi]
+    (the last bin closed: a value equal to its stop belongs to it)."""
+    first = _grid_index(lo, step, up=False)
+    last = _grid_index(hi, step, up=True)
+    return _edge(first, step), max(1, last - first)
+
+
 def nice_bins(lo: float, hi: float, target: int) -> NumericBins:
-    """Loose nice bins covering [lo, hi] with about ``target`` bins (Heckbert 1990)."""
+    """Nice bins covering [lo, hi]: among the widths {1, 2, 5} x 10^k (Heckbert 1990), the one
+    whose bin count is closest to ``target`` without exceeding it (ties: the finer width).
+    When no width gives at most ``target`` bins (target 1 with data across a multiple of
+    every width, e.g. around 0), the width giving the fewest bins."""
     if hi < lo:
         lo, hi = hi, lo
-    if hi == lo:
-        # A single value: one unit-ish bin around it (Heckbert's method needs a range).
+    target = max(int(target), 1)
+    if hi == lo or not (hi - lo) >= _TINY * 1e3:
+        # A single value (or a span too narrow to split): one unit-ish bin around it.
         width = nicenum(abs(lo), True) / 10.0 if lo != 0 else 1.0
+        if not width >= _TINY * 1e3:
+            width = 1.0
         start = _snap(math.floor(lo / width) * width, width)
-        return NumericBins(start, width, 1, "nice")
-    span = nicenum(hi - lo, False)
-    width = nicenum(span / max(target, 1), True)
-    start = _snap(math.floor(lo / width) * width, width)
-    stop = _snap(math.ceil(hi / width) * width, width)
-    count = max(1, int(round((stop - start) / width)))
-    return NumericBins(start, width, count, "nice")
+        if not start + width > hi:
+            start = lo
+        return check_layout(NumericBins(start, width, 1, "nice"))
+    span = hi - lo
+    e_lo = Decimal(span / target).adjusted() - 1
+    e_hi = Decimal(max(span, abs(lo), abs(hi))).adjusted() + 1  # up to widths that hold all
+    best: tuple[int, float, float] | None = None  # (count, step, start)
+    fewest: tuple[int, float, float] | None = None
+    for e in range(e_lo, e_hi + 1):
+        for m in (1.0, 2.0, 5.0):
+            step = _nice(m, e)
+            if not (step >= _TINY and math.isfinite(lo / step) and math.isfinite(hi / step)):
+                continue
+            start, count = nice_step_count(lo, hi, step)
+            if count <= target and (best is None or count > best[0]):
+                best = (count, step, start)
+            if fewest is None or count < fewest[0]:
+                fewest = (count, step, start)
+    chosen = best or fewest
+    if chosen is None:
+        raise LayoutError(f"no nice width splits [{lo!r}, {hi!r}]")
+    count, step, start = chosen
+    return check_layout(NumericBins(start, step, count, "nice"))
 
 
-def rule_bin_count(rule: str, n: int, lo: float, hi: float,
-                   std_pop: float | None = None, iqr: float | None = None) -> int:
-    """Number of equal bins on [lo, hi] the way numpy.histogram_bin_edges picks it."""
-    ptp = hi - lo
-    if n <= 0 or ptp == 0:
-        return 1
+def rule_width(rule: str, n: int, ptp: float, std_pop: float | None, iqr: float | None) -> float:
+    """numpy's ``_hist_bin_<rule>(x)`` for n values of peak-to-peak ``ptp`` (x trimmed to the
+    range), population standard deviation ``std_pop`` and interquartile range ``iqr``."""
     if rule == "sturges":
-        width = ptp / (math.log2(n) + 1.0)
-    elif rule == "sqrt":
-        width = ptp / math.sqrt(n)
-    elif rule == "scott":
-        width = (24.0 * math.pi ** 0.5 / n) ** (1.0 / 3.0) * (std_pop or 0.0)
-    elif rule == "fd":
-        width = 2.0 * (iqr or 0.0) * n ** (-1.0 / 3.0)
-    else:  # pragma: no cover - the model only admits the four rules
-        raise ValueError(rule)
-    if width <= 0:
+        return ptp / (math.log2(n) + 1.0)
+    if rule == "sqrt":
+        return ptp / math.sqrt(n)
+    if rule == "scott":
+        return (24.0 * math.pi ** 0.5 / n) ** (1.0 / 3.0) * (std_pop or 0.0)
+    if rule == "fd":
+        return 2.0 * (iqr or 0.0) * n ** (-1.0 / 3.0)
+    raise ValueError(rule)  # pragma: no cover - the model only admits the four rules
+
+
+def rule_bin_count(rule: str, n: int, lo: float, hi: float, ptp: float,
+                   std_pop: float | None = None, iqr: float | None = None,
+                   integer: bool = False) -> int:
+    """numpy ``_get_bin_edges`` for a string ``bins``: the rule's width from the n values
+    inside [lo, hi] (peak-to-peak ``ptp``), then ``ceil((hi - lo) / width)``; 1 bin when there
+    are no values or the width is 0; integer data get a width of at least 1."""
+    if n <= 0:
         return 1
-    return int(math.ceil(ptp / width))
+    width = rule_width(rule, n, ptp, std_pop, iqr)
+    if not width:  # numpy: `if width:` (0 -> one bin; NaN is truthy and fails below)
+        return 1
+    if integer and width < 1:
+        width = 1.0
+    k = math.ceil((hi - lo) / width)
+    return max(1, int(k))
 
 
-def rule_bins(rule: str, n: int, lo: float, hi: float,
-              std_pop: float | None = None, iqr: float | None = None) -> NumericBins:
-    k = rule_bin_count(rule, n, lo, hi, std_pop, iqr)
+def rule_bins(rule: str, n: int, lo: float, hi: float, ptp: float | None = None,
+              std_pop: float | None = None, iqr: float | None = None,
+              integer: bool = False) -> NumericBins:
+    """``numpy.histogram_bin_edges(a, bins=rule, range=(lo, hi))``: [lo, hi] are the limits
+    (or the data's min/max), ``ptp`` the peak-to-peak of the values inside them (default
+    hi - lo). numpy widens a zero range to [lo - 0.5, hi + 0.5]."""
+    if ptp is None:
+        ptp = hi - lo
     if hi == lo:
-        # numpy widens a zero range to [lo - 0.5, hi + 0.5]
-        return NumericBins(lo - 0.5, 1.0 / k, k, rule)
+        lo, hi = lo - 0.5, hi + 0.5
+    k = rule_bin_count(rule, n, lo, hi, ptp, std_pop, iqr, integer)
     return NumericBins(lo, (hi - lo) / k, k, rule)
 
 
-def width_bins(width: float, origin: float, lo: float | None, hi: float | None) -> NumericBins:
-    """Fixed width and origin; with limits the bins cover [lo, hi] on the origin's grid."""
-    if lo is None or hi is None:
-        return NumericBins(origin, width, None, "width")
-    first = math.floor((lo - origin) / width)
-    last = math.ceil((hi - origin) / width)
+def width_bins(width: float, origin: float, lo: float, hi: float) -> NumericBins:
+    """Fixed width and origin: the bins of the origin's grid covering [lo, hi] (the limits or
+    the data's min/max); a value equal to the last stop belongs to the last bin."""
+    q_lo, q_hi = (lo - origin) / width, (hi - origin) / width
+    if not (math.isfinite(q_lo) and math.isfinite(q_hi)):
+        raise LayoutError(f"width {width:g} from origin {origin:g} cannot place the values "
+                          f"[{lo:g}, {hi:g}] (the bin numbers overflow)")
+    first = math.floor(q_lo)
+    last = math.ceil(q_hi)
     start = origin + first * width
     return NumericBins(_snap(start, width), width, max(1, last - first), "width")
 

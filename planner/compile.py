@@ -25,11 +25,12 @@ Main statement shape::
 
 from __future__ import annotations
 
+import contextvars
 import datetime as dt
 import functools
 import json
 import math
-import re
+import sys
 import zoneinfo
 from dataclasses import dataclass, field
 from typing import Any
@@ -71,6 +72,8 @@ class Key:
     nlimits: tuple[float, float] | None = None
     vrange: tuple[float, float] | None = None  # values that land in the bins (limits or data)
     tlimits: tuple[dt.datetime, dt.datetime] | None = None
+    #: time bins: the stop instant of a closed last bin (values equal to it go into it)
+    tclosed: dt.datetime | None = None
 
     @property
     def label(self) -> str:
@@ -185,11 +188,11 @@ class Plan:
                 out[label] = {"start": b.start, "stop": b.stop, "width": b.width,
                               "count": b.count, "method": b.method}
             elif k.mode == "tbin" and k.tstep is not None:
-                starts = _time_bin_starts(k)
-                first = _time_bin_instant(k, starts[0]) if starts else None
-                last = _time_bin_instant(k, _time_next(k, starts[-1])) if starts else None
+                n = k.tcount or 0
+                first = _time_bin_instant(k, _time_bin_start(k, 0)) if n else None
+                last = _time_bin_instant(k, _time_bin_start(k, n)) if n else None
                 out[label] = {"start": first, "stop": last, "step": k.tstep.iso,
-                              "count": len(starts), "method": "calendar"}
+                              "count": n, "method": "calendar"}
         return out
 
 
@@ -203,6 +206,7 @@ def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
     ``PARAM_FORMS``) instead of literals, so the SQL text does not depend on their values."""
     keys: list[Key] = []
     measures: list[Measure] = []
+    request_tz = _check_tz(request.tz, pointer("tz"))
     for path, channel, ch in request.keyed_channels():
         if ch.is_measure and channel in ("row", "col"):
             raise PlanError(pointer(*path, "agg"), f"facet {channel} must be a key (a column), "
@@ -210,7 +214,8 @@ def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
         if ch.is_measure:
             measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect))
         else:
-            keys.append(_check_key(len(keys), path, channel, ch, schema, dialect))
+            keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
+                                   request_tz))
     slots: list[Any] | None = [] if params and dialect.name in PARAM_FORMS else None
     where = _compile_where(request, schema, dialect, slots)
     plan = Plan(request, schema, dialect, keys, measures, where, slots=len(slots or ()))
@@ -236,17 +241,29 @@ def _resolve(name: str, schema: SourceSchema, ptr: str) -> ColumnInfo:
     return col
 
 
-def _check_tz(tz: str | None, ptr: str) -> str:
+#: names zoneinfo can open that are not canonical IANA zones (build artefacts, the host's own
+#: zone, and the posix/ right/ copies of the database)
+_NOT_ZONES = frozenset({"Factory", "localtime", "posixrules"})
+
+
+@functools.lru_cache(maxsize=1)
+def time_zone_names() -> frozenset[str]:
+    """The IANA time zone names sluice accepts: ``zoneinfo.available_timezones()`` without
+    ``Factory``, ``localtime``, ``posixrules`` and the ``posix/`` / ``right/`` trees."""
+    return frozenset(z for z in zoneinfo.available_timezones()
+                     if z not in _NOT_ZONES and not z.startswith(("posix/", "right/")))
+
+
+def _check_tz(tz: str | None, ptr: str, default: str = "UTC") -> str:
     if tz is None:
-        return "UTC"
-    if not re.fullmatch(r"[A-Za-z0-9_+\-/]{1,64}", tz):
-        raise PlanError(ptr, f"{tz!r} is not an IANA time zone name", slug="bad-time-zone")
-    try:
-        zoneinfo.ZoneInfo(tz)
-    except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):
-        raise PlanError(ptr, f"unknown time zone {tz!r} (use an IANA name such as "
-                        "'Europe/Berlin' or 'UTC')", slug="bad-time-zone") from None
-    return tz
+        return default
+    if tz in time_zone_names():
+        return tz
+    sugg = nearest(tz, sorted(time_zone_names()))
+    hint = f"; did you mean {', '.join(repr(s) for s in sugg)}?" if sugg else ""
+    raise PlanError(ptr, f"{tz!r} is not an IANA time zone name (use one such as "
+                    f"'Europe/Berlin' or 'UTC'){hint}", slug="bad-time-zone",
+                    suggestions=sugg)
 
 
 def _check_measure(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
@@ -273,19 +290,25 @@ def _check_measure(i: int, path, channel: str, ch: Channel, schema: SourceSchema
 
 
 def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
-               d: Dialect) -> Key:
+               d: Dialect, request_tz: str = "UTC") -> Key:
     assert ch.column is not None
     col = _resolve(ch.column, schema, pointer(*path, "column"))
     if col.kind == "other":
         raise PlanError(pointer(*path, "column"),
                         f"column {col.name!r} has type {col.sql_type}, which sluice cannot "
                         "group by", slug="type-mismatch")
-    tz = _check_tz(ch.tz, pointer(*path, "tz"))
+    # a key's own tz, else the request's (the dashboard's zone), else UTC
+    tz = _check_tz(ch.tz, pointer(*path, "tz"), request_tz)
     if ch.tz is not None and not col.is_temporal:
         raise PlanError(pointer(*path, "tz"), f"tz applies to timestamps; {col.name!r} is {col.kind}",
                         slug="type-mismatch")
-    if ch.tz is not None and ch.tz != "UTC" and not d.supports("tz"):
-        raise Unsupported(pointer(*path, "tz"), d.name, "time zone conversion")
+    if not col.is_temporal:
+        tz = "UTC"
+    uses_zone = ch.trunc is not None or ch.extract is not None or ch.bin is not None
+    if col.is_temporal and (uses_zone or ch.tz is not None) and tz != "UTC" \
+            and not d.supports("tz"):
+        raise Unsupported(pointer(*path, "tz") if ch.tz is not None else pointer("tz"),
+                          d.name, "time zone conversion")
     if ch.top is not None and col.kind != "string":
         raise PlanError(pointer(*path, "top"),
                         f"top keeps the largest text categories; {col.name!r} is {col.kind}",
@@ -328,6 +351,12 @@ def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
                         or not lo < hi:
                     raise PlanError(pointer(*path, "bin", "limits"),
                                     "limits must be finite numbers [lo, hi] with lo < hi")
+                if not (hi - lo >= sys.float_info.min
+                        and hi - lo >= 64 * math.ulp(max(abs(lo), abs(hi)))):
+                    # e.g. [0, 5e-324]: no two distinct bin edges fit between them
+                    raise PlanError(pointer(*path, "bin", "limits"),
+                                    f"limits [{lo!r}, {hi!r}] are too close together to hold "
+                                    "distinct bin edges", slug="bad-layout")
                 key.nlimits = (float(lo), float(hi))
             return key
         if col.is_temporal:
@@ -338,8 +367,9 @@ def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
                                 "bins (a calendar step is chosen) or trunc", slug="type-mismatch")
             key = Key(i, path, channel, ch, col, "tbin", tz)
             if b.limits is not None:
-                lo_t = _parse_instant(b.limits[0], pointer(*path, "bin", "limits", 0))
-                hi_t = _parse_instant(b.limits[1], pointer(*path, "bin", "limits", 1))
+                # offset-less limits are wall-clock times of the key's zone
+                lo_t = _parse_instant(b.limits[0], pointer(*path, "bin", "limits", 0), tz)
+                hi_t = _parse_instant(b.limits[1], pointer(*path, "bin", "limits", 1), tz)
                 if not lo_t < hi_t:
                     raise PlanError(pointer(*path, "bin", "limits"), "limits need lo < hi")
                 key.tlimits = (lo_t, hi_t)
@@ -495,7 +525,18 @@ def _measure_name(ch: Channel) -> str:
 # where
 # =====================================================================================
 
-def _parse_instant(value: Any, ptr: str) -> dt.datetime:
+#: The zone in which offset-less instants of ``where`` / ``filter_sql`` are read while a
+#: request is compiled (the request's ``tz``; set by ``_compile_where``).
+_READ_TZ: contextvars.ContextVar[str] = contextvars.ContextVar("sluice_read_tz", default="UTC")
+
+
+def _parse_instant(value: Any, ptr: str, tz: str | None = None) -> dt.datetime:
+    """An ISO 8601 date or timestamp as an aware instant. Text without an offset is a
+    wall-clock time in ``tz`` (default: the request's zone, see ``_READ_TZ``); a wall-clock
+    time that occurs twice or never (DST changes) reads with fold=0, i.e. the offset in force
+    before the change (zoneinfo's rule). Instants outside years 1..9999 in UTC are refused.
+    The result keeps the zone it was written in (its date is the date a DATE column compares
+    with); dialects convert it to UTC for timestamps."""
     if not isinstance(value, str):
         raise PlanError(ptr, f"expected an ISO 8601 timestamp string, got {value!r}",
                         slug="type-mismatch")
@@ -511,9 +552,15 @@ def _parse_instant(value: Any, ptr: str) -> dt.datetime:
         raise PlanError(ptr, f"{value!r} is not an ISO 8601 date or timestamp "
                         "(e.g. '2026-01-01' or '2026-01-01T08:00:00Z')",
                         slug="bad-value") from None
+    zone = tz if tz is not None else _READ_TZ.get()
     if t.tzinfo is None:
-        t = t.replace(tzinfo=dt.timezone.utc)
-    return t
+        t = t.replace(tzinfo=dt.timezone.utc if zone == "UTC" else zoneinfo.ZoneInfo(zone))
+    try:
+        t.astimezone(dt.timezone.utc)  # the dialects compare instants in UTC
+        return t  # in the zone it was written in: a date column compares with its date
+    except (OverflowError, ValueError):
+        raise PlanError(ptr, f"{value!r} is outside the instants sluice can compare (years 1 to "
+                        "9999 in UTC)", slug="out-of-range") from None
 
 
 def _literal(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> exp.Expression:
@@ -766,8 +813,12 @@ def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any
                 raw = json.dumps(raw, ensure_ascii=False)
             out.append(raw)
 
-    for i, f in enumerate(req.where):
-        walk(f, ("where", i))
+    token = _READ_TZ.set(_check_tz(req.tz, pointer("tz")))  # as _compile_where reads them
+    try:
+        for i, f in enumerate(req.where):
+            walk(f, ("where", i))
+    finally:
+        _READ_TZ.reset(token)
     return out
 
 
@@ -796,11 +847,17 @@ def display_sql(sql: str) -> str:
 
 def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect,
                    slots: list[Any] | None = None) -> exp.Expression | None:
-    parts = [_compile_filter(f, ("where", i), schema, d, slots) for i, f in enumerate(req.where)]
-    if req.filter_sql is not None:  # allow-listed SQL text, rebuilt from the catalog
-        from planner.filter_sql import compile_filter_sql
+    # offset-less instants in where and filter_sql are read in the request's zone
+    token = _READ_TZ.set(_check_tz(req.tz, pointer("tz")))
+    try:
+        parts = [_compile_filter(f, ("where", i), schema, d, slots)
+                 for i, f in enumerate(req.where)]
+        if req.filter_sql is not None:  # allow-listed SQL text, rebuilt from the catalog
+            from planner.filter_sql import compile_filter_sql
 
-        parts.append(compile_filter_sql(req.filter_sql, schema, d))
+            parts.append(compile_filter_sql(req.filter_sql, schema, d, tz=_READ_TZ.get()))
+    finally:
+        _READ_TZ.reset(token)
     if not parts:
         return None
     return exp.and_(*parts) if len(parts) > 1 else parts[0]
@@ -809,6 +866,15 @@ def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect,
 # =====================================================================================
 # extents
 # =====================================================================================
+
+def _bin_input(d: Dialect, k: Key) -> exp.Expression:
+    """The value a numeric bin places: the column as DOUBLE, NULL when it is not finite
+    (inf, -inf, NaN: such rows go to the NULL bin and never widen a layout from the data)."""
+    v = d.double(d.number_cell(d.column(k.col.name, "s")))
+    if k.col.kind != "double":  # integers and decimals are always finite
+        return v
+    return exp.Case(ifs=[exp.If(this=d.finite(v), true=v.copy())])
+
 
 def _extents_statement(plan: Plan) -> exp.Select | None:
     d = plan.dialect
@@ -821,20 +887,20 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
         p = f"{INTERNAL}e{k.index}_"
         if k.mode == "tbin":
             if k.tlimits is None:
-                ep = d.epoch(ref, k.col.kind)
+                ep = d.epoch(_instant_in_range(d, k, ref), k.col.kind)
                 sel += [exp.alias_(exp.Min(this=ep), p + "min", quoted=True),
                         exp.alias_(exp.Max(this=ep.copy()), p + "max", quoted=True)]
             continue
-        if b.width is not None:
-            continue
         if b.rule is None and k.nlimits is not None:
-            continue  # nice bins over explicit limits need no statistics
-        v: exp.Expression = d.double(ref)
-        if k.nlimits is not None:  # numpy filters to the range before applying a rule
+            continue  # nice bins (or a width) over explicit limits need no statistics
+        v = _bin_input(d, k)
+        if k.nlimits is not None:  # numpy trims the data to the range before applying a rule
             lo, hi = k.nlimits
             v = exp.Case(ifs=[exp.If(this=exp.Between(this=v.copy(), low=d.real(lo),
                                                       high=d.real(hi)), true=v.copy())])
-        else:
+        # the data's (or, with limits, the kept values') min and max: the layout's extent,
+        # and the peak-to-peak of numpy's sturges / sqrt rules
+        if b.rule in (None, "sturges", "sqrt") or k.nlimits is None:
             sel += [exp.alias_(exp.Min(this=v.copy()), p + "min", quoted=True),
                     exp.alias_(exp.Max(this=v.copy()), p + "max", quoted=True)]
         if b.rule is not None:
@@ -854,46 +920,84 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
 
 def _num(row: dict[str, Any], name: str) -> float | None:
     v = row.get(name)
-    return None if v is None else float(v)
+    if v is None:
+        return None
+    v = float(v)
+    return v if math.isfinite(v) else None
 
 
 def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
+    """Fix a numeric key's bins: ``width`` (origin grid), ``rule`` (numpy's edges) or ``bins``
+    (nice widths), over the limits or the data's finite min/max. Layouts whose edges are not
+    distinct finite doubles, or that make more than MAX_BINS bins, are a 422."""
     b = k.spec.bin
     assert b is not None
     p = f"{INTERNAL}e{k.index}_"
-    if b.width is not None:
-        lo, hi = k.nlimits if k.nlimits else (None, None)
-        o = b.origin or 0.0
-        if lo is not None and hi is not None and not (
-                (hi - lo) / b.width <= MAX_BINS and math.isfinite((lo - o) / b.width)
-                and math.isfinite((hi - o) / b.width)):
-            raise PlanError(pointer(*k.path, "bin", "width"),
-                            f"width {b.width:g} over the limits makes {(hi - lo) / b.width:.3g} "
-                            f"bins; at most {MAX_BINS}: use a larger width", slug="too-many-bins")
-        k.nbins = binning.width_bins(b.width, b.origin or 0.0, lo, hi)
-        k.vrange = k.nlimits
-        return
+    method = "width" if b.width is not None else b.rule or "nice"
+    field_ptr = pointer(*k.path, "bin", "width" if b.width is not None else
+                        "rule" if b.rule is not None else "bins")
     if k.nlimits is not None:
         lo, hi = k.nlimits
     else:
         lo, hi = _num(row, p + "min"), _num(row, p + "max")
-        if lo is None or hi is None:  # no non-NULL values: a harmless placeholder layout
-            k.nbins = binning.NumericBins(0.0, 1.0, 1, b.rule or "nice")
+        if lo is None or hi is None:  # no finite values: a harmless placeholder layout
+            start = b.origin or 0.0 if b.width is not None else 0.0
+            k.nbins = binning.NumericBins(start, b.width or 1.0, 1, method)
             return
     k.vrange = (lo, hi)
-    if b.rule is not None:
-        n = int(row.get(p + "n") or 0)
-        q1, q3 = _num(row, p + "q1"), _num(row, p + "q3")
-        iqr = (q3 - q1) if q1 is not None and q3 is not None else None
-        k.nbins = binning.rule_bins(b.rule, n, lo, hi, _num(row, p + "sd"), iqr)
-    else:
-        k.nbins = binning.nice_bins(lo, hi, b.bins or 20)
+    try:
+        if b.width is not None:
+            o = b.origin or 0.0
+            nb = binning.width_bins(b.width, o, lo, hi)
+        elif b.rule is not None:
+            n = int(row.get(p + "n") or 0)
+            q1, q3 = _num(row, p + "q1"), _num(row, p + "q3")
+            iqr = (q3 - q1) if q1 is not None and q3 is not None else None
+            if k.nlimits is not None:  # numpy: the rule sees only the values inside the range
+                dlo, dhi = _num(row, p + "min"), _num(row, p + "max")
+                ptp = (dhi - dlo) if dlo is not None and dhi is not None else 0.0
+            else:
+                ptp = hi - lo
+            nb = binning.rule_bins(b.rule, n, lo, hi, ptp, _num(row, p + "sd"), iqr,
+                                   integer=k.col.kind == "integer")
+        else:
+            nb = binning.nice_bins(lo, hi, b.bins or 20)
+        if nb.count is not None and nb.count > MAX_BINS:
+            raise PlanError(field_ptr, f"this layout makes {nb.count} bins over "
+                            f"[{lo:g}, {hi:g}]; at most {MAX_BINS}: use "
+                            + ("a larger width" if b.width is not None else
+                               "another rule or limits" if b.rule is not None else "fewer bins"),
+                            slug="too-many-bins")
+        k.nbins = binning.check_layout(nb)
+    except binning.LayoutError as e:
+        if k.nlimits is None and b.width is None and lo is not None:
+            # data too narrow to split (e.g. 0 and 5e-324): numpy's zero-range layout
+            k.nbins = binning.rule_bins(b.rule or "sturges", 0, lo, lo)
+            k.nbins = binning.NumericBins(k.nbins.start, k.nbins.width, 1, method)
+            return
+        where = pointer(*k.path, "bin", "limits") if k.nlimits is not None and b.width is None \
+            else field_ptr
+        raise PlanError(where, f"{e}: no value could be placed in a bin; use "
+                        + ("a larger width or another origin" if b.width is not None
+                           else "wider limits"), slug="bad-layout") from None
 
 
 def _layout_time(k: Key, row: dict[str, Any]) -> None:
+    """Fix a time key's calendar step and bins over its limits (or the data's min/max). Like
+    numeric bins, the last bin is closed: when the upper end falls on a bin edge, values
+    equal to it belong to the bin that ends there (no extra bin past the limits)."""
     b = k.spec.bin
     assert b is not None
     p = f"{INTERNAL}e{k.index}_"
+    where = pointer(*k.path, "bin", "limits") if k.tlimits is not None else pointer(*k.path, "bin")
+    try:
+        _layout_time_steps(k, row, p, b.bins or 20)
+    except (OverflowError, ValueError):
+        raise PlanError(where, "the time bins would start or end outside the years 1 to 9999 "
+                        f"(in {k.tz}); use limits inside that range", slug="out-of-range") from None
+
+
+def _layout_time_steps(k: Key, row: dict[str, Any], p: str, target: int) -> None:
     if k.tlimits is not None:
         lo = k.tlimits[0].timestamp()
         hi = k.tlimits[1].timestamp()
@@ -901,11 +1005,15 @@ def _layout_time(k: Key, row: dict[str, Any]) -> None:
         lo, hi = _num(row, p + "min"), _num(row, p + "max")
     if lo is None or hi is None:
         lo = hi = 0.0
-    k.tstep = binning.time_step(hi - lo, b.bins or 20)
+    k.tstep = binning.time_step(hi - lo, target)
     step = k.tstep
+    k.tclosed = None
     if step.is_fixed:
         first = math.floor(lo / step.seconds) * step.seconds
         last = math.floor(hi / step.seconds) * step.seconds
+        if last == hi and last > first:  # hi on an edge: the last bin [hi - step, hi] is closed
+            last -= step.seconds
+            k.tclosed = dt.datetime.fromtimestamp(hi, dt.timezone.utc)
         k.tstart = float(first)
         k.tcount = int(round((last - first) / step.seconds)) + 1
     else:
@@ -915,11 +1023,13 @@ def _layout_time(k: Key, row: dict[str, Any]) -> None:
         first_l = _trunc_local(lo_local, step.unit)
         last_l = _trunc_local(hi_local, step.unit)
         k.tstart = first_l
-        count, cur = 1, first_l
-        while cur < last_l and count <= MAX_DENSE_CELLS:
-            cur = _add_local(cur, step.unit, 1)
-            count += 1
+        count = _units_between(first_l, last_l, step.unit) + 1
+        if last_l == hi_local and last_l > first_l:  # hi on a bin edge: closed last bin
+            count -= 1
+            k.tclosed = dt.datetime.fromtimestamp(hi, dt.timezone.utc)
         k.tcount = count
+        # every bin start and stop must be a wall-clock time Python (and the engines) know
+        _time_bin_instant(k, _add_local(first_l, step.unit, count))
 
 
 def _trunc_local(t: dt.datetime, unit: str) -> dt.datetime:
@@ -954,22 +1064,20 @@ def _add_local(t: dt.datetime, unit: str, n: int) -> dt.datetime:
     return t.replace(year=t.year + m // 12, month=m % 12 + 1)
 
 
-def _time_bin_starts(k: Key) -> list[Any]:
-    assert k.tstep is not None and k.tcount is not None
-    if k.tstep.is_fixed:
-        return [k.tstart + i * k.tstep.seconds for i in range(k.tcount)]
-    out, cur = [], k.tstart
-    for _ in range(k.tcount):
-        out.append(cur)
-        cur = _add_local(cur, k.tstep.unit, 1)
-    return out
+def _units_between(a: dt.datetime, b: dt.datetime, unit: str) -> int:
+    """Whole calendar units from the bin start ``a`` to the bin start ``b`` (both truncated)."""
+    if unit in ("day", "week"):
+        return (b - a).days // (7 if unit == "week" else 1)
+    months = (b.year - a.year) * 12 + b.month - a.month
+    return months // {"month": 1, "quarter": 3, "year": 12}[unit]
 
 
-def _time_next(k: Key, start: Any) -> Any:
+def _time_bin_start(k: Key, i: int) -> Any:
+    """The i-th bin start (epoch seconds, or a naive wall-clock time for calendar steps)."""
     assert k.tstep is not None
     if k.tstep.is_fixed:
-        return start + k.tstep.seconds
-    return _add_local(start, k.tstep.unit, 1)
+        return k.tstart + i * k.tstep.seconds
+    return _add_local(k.tstart, k.tstep.unit, i)
 
 
 def _time_bin_instant(k: Key, v: Any) -> dt.datetime:
@@ -992,22 +1100,38 @@ def _outside_expr(d: Dialect, k: Key) -> exp.Expression | None:
     ref = d.column(k.col.name, "s")
     if k.nlimits is not None:
         lo, hi = k.nlimits
-        v = d.double(ref)
+        v = d.double(d.number_cell(ref))
         cond = exp.or_(exp.LT(this=v, expression=d.real(lo)),
                        exp.GT(this=v.copy(), expression=d.real(hi)))
+        if k.col.kind == "double":  # inf / NaN are not outside: they go to the NULL bin
+            cond = exp.and_(d.finite(v.copy()), exp.Paren(this=cond))
     elif k.tlimits is not None:
         lo_l = d.timestamp_literal(k.tlimits[0], k.col.kind)
         hi_l = d.timestamp_literal(k.tlimits[1], k.col.kind)
         cond = exp.or_(exp.LT(this=ref, expression=lo_l), exp.GT(this=ref.copy(), expression=hi_l))
+        ok = d.instant_range(ref.copy(), k.col.kind)
+        if ok is not None:  # 'infinity' / year 12000 are not outside: they go to the NULL bin
+            cond = exp.and_(ok, exp.Paren(this=cond))
     else:
         return None
     return exp.Case(ifs=[exp.If(this=cond, true=exp.Literal.number(1))],
                     default=exp.Literal.number(0))
 
 
+def _instant_in_range(d: Dialect, k: Key, ref: exp.Expression) -> exp.Expression:
+    """A temporal column as a time key sees it: instants outside years 1..9999 (UTC), such
+    as 'infinity' or year 12000, are NULL (their own NULL group, never in a layout)."""
+    ok = d.instant_range(ref, k.col.kind)
+    if ok is None:
+        return ref
+    return exp.Case(ifs=[exp.If(this=ok, true=ref.copy())])
+
+
 def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
     """The internal grouping value of a key, computed per source row."""
     ref = d.column(k.col.name, "s")
+    if k.col.is_temporal:  # plain, trunc, extract and time bins alike
+        ref = _instant_in_range(d, k, ref)
     if k.mode == "plain":
         if top_alias is None:
             return ref
@@ -1021,54 +1145,75 @@ def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
     if k.mode == "extract":
         return d.extract(k.spec.extract, d.to_local(ref, k.col.kind, k.tz))
     if k.mode == "nbin":
-        b = k.nbins
-        assert b is not None
-        v = d.double(ref)
-        start, width = d.real(b.start), d.real(b.width)
-        fast = _plain_floor_is_exact(b, k.vrange)
-        if fast is not None:
-            # floor((v - start) / width) already puts every value of the range where the
-            # guarded form below would (proved at plan time, see _plain_floor_is_exact);
-            # the guard doubled the cost of a 10M-row histogram.
-            q = v.copy() if b.start == 0.0 else exp.Paren(this=exp.Sub(this=v.copy(),
-                                                                       expression=start.copy()))
-            idx = d.floor(exp.Div(this=q, expression=width.copy()))
-            if fast:  # the closed last bin: values on the upper edge go into the last bin
-                idx = exp.Case(ifs=[exp.If(this=exp.GTE(this=v.copy(), expression=d.real(fast)),
-                                           true=d.number(b.count - 1))], default=idx)
-            return idx
-
-        def edge(i: exp.Expression) -> exp.Expression:
-            return exp.Add(this=start.copy(), expression=exp.Mul(this=exp.Paren(this=i),
-                                                                  expression=width.copy()))
-
-        i0 = d.floor(exp.Div(this=exp.Paren(this=exp.Sub(this=v.copy(), expression=start.copy())),
-                             expression=width.copy()))
-        # floating-point guard: move by one bin when the quotient fell on the wrong side of
-        # an edge, so every value obeys edge_i <= v < edge_(i+1) exactly.
-        idx = exp.Add(this=i0, expression=exp.Paren(this=exp.Case(ifs=[
-            exp.If(this=exp.GTE(this=v.copy(), expression=edge(exp.Add(
-                this=i0.copy(), expression=exp.Literal.number(1)))), true=exp.Literal.number(1)),
-            exp.If(this=exp.LT(this=v.copy(), expression=edge(i0.copy())),
-                   true=exp.Neg(this=exp.Literal.number(1)))],
-            default=exp.Literal.number(0))))
-        if b.count is not None:  # closed last bin; clamp float noise at the lower edge
-            top = d.number(b.count - 1)
-            idx = exp.Case(ifs=[exp.If(this=exp.GT(this=idx.copy(), expression=top),
-                                       true=top.copy()),
-                                exp.If(this=exp.LT(this=idx.copy(), expression=exp.Literal.number(0)),
-                                       true=exp.Literal.number(0))],
-                           default=idx)
+        ref = d.number_cell(ref)
+        idx = _nbin_index(d, k, d.double(ref))
+        if k.col.kind == "double":  # inf / NaN have no bin: the NULL bin (like pandas.cut)
+            return exp.Case(ifs=[exp.If(this=d.finite(d.double(ref.copy())), true=idx)])
         return idx
     if k.mode == "tbin":
         step = k.tstep
         assert step is not None
         if step.is_fixed:
             s = d.real(step.seconds)
-            return exp.Mul(this=d.floor(exp.Div(this=d.epoch(ref, k.col.kind), expression=s)),
-                           expression=s.copy())
-        return d.trunc(step.unit, d.to_local(ref, k.col.kind, k.tz))
+            key = exp.Mul(this=d.floor(exp.Div(this=d.epoch(ref, k.col.kind), expression=s)),
+                          expression=s.copy())
+        else:
+            key = d.trunc(step.unit, d.to_local(ref, k.col.kind, k.tz))
+        if k.tclosed is None:
+            return key
+        # closed last bin: a value equal to the stop (the only kept value whose bin starts
+        # there) goes into the last bin
+        last = _time_bin_start(k, k.tcount - 1)
+        if step.is_fixed:
+            stop_key, last_key = d.real(k.tclosed.timestamp()), d.real(last)
+        else:
+            stop_local = k.tclosed.astimezone(zoneinfo.ZoneInfo(k.tz)).replace(tzinfo=None)
+            stop_key, last_key = d.local_literal(stop_local), d.local_literal(last)
+        return exp.Case(ifs=[exp.If(this=exp.GTE(this=key, expression=stop_key),
+                                    true=last_key)], default=key.copy())
     raise AssertionError(k.mode)
+
+
+def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
+    """Bin number of the DOUBLE value ``v`` in the key's numeric layout."""
+    b = k.nbins
+    assert b is not None
+    start, width = d.real(b.start), d.real(b.width)
+    fast = _plain_floor_is_exact(b, k.vrange)
+    if fast is not None:
+        # floor((v - start) / width) already puts every value of the range where the
+        # guarded form below would (proved at plan time, see _plain_floor_is_exact);
+        # the guard doubled the cost of a 10M-row histogram.
+        q = v.copy() if b.start == 0.0 else exp.Paren(this=exp.Sub(this=v.copy(),
+                                                                   expression=start.copy()))
+        idx = d.floor(exp.Div(this=q, expression=width.copy()))
+        if fast:  # the closed last bin: values on the upper edge go into the last bin
+            idx = exp.Case(ifs=[exp.If(this=exp.GTE(this=v.copy(), expression=d.real(fast)),
+                                       true=d.number(b.count - 1))], default=idx)
+        return idx
+
+    def edge(i: exp.Expression) -> exp.Expression:
+        return exp.Add(this=start.copy(), expression=exp.Mul(this=exp.Paren(this=i),
+                                                              expression=width.copy()))
+
+    i0 = d.floor(exp.Div(this=exp.Paren(this=exp.Sub(this=v.copy(), expression=start.copy())),
+                         expression=width.copy()))
+    # floating-point guard: move by one bin when the quotient fell on the wrong side of
+    # an edge, so every value obeys edge_i <= v < edge_(i+1) exactly.
+    idx = exp.Add(this=i0, expression=exp.Paren(this=exp.Case(ifs=[
+        exp.If(this=exp.GTE(this=v.copy(), expression=edge(exp.Add(
+            this=i0.copy(), expression=exp.Literal.number(1)))), true=exp.Literal.number(1)),
+        exp.If(this=exp.LT(this=v.copy(), expression=edge(i0.copy())),
+               true=exp.Neg(this=exp.Literal.number(1)))],
+        default=exp.Literal.number(0))))
+    if b.count is not None:  # closed last bin; clamp float noise at the lower edge
+        top = d.number(b.count - 1)
+        idx = exp.Case(ifs=[exp.If(this=exp.GT(this=idx.copy(), expression=top),
+                                   true=top.copy()),
+                            exp.If(this=exp.LT(this=idx.copy(), expression=exp.Literal.number(0)),
+                                   true=exp.Literal.number(0))],
+                       default=idx)
+    return idx
 
 
 SUB_DAY_UNITS = ("hour", "minute", "second")
@@ -1177,23 +1322,27 @@ def _top_cte(plan: Plan, k: Key) -> exp.Select:
     return q
 
 
-def _numbers_table(values: list[exp.Expression], name: str) -> exp.Expression:
-    """A derived table of literal rows (UNION ALL of SELECTs: valid on every target)."""
-    selects = [exp.select(exp.alias_(v, name, quoted=True)) for v in values]
-    node: exp.Expression = selects[0]
-    for s in selects[1:]:
-        node = exp.union(node, s, distinct=False)
-    return node
-
-
-def _bin_values(d: Dialect, k: Key) -> list[exp.Expression]:
+def _bin_series(d: Dialect, k: Key) -> exp.Select:
+    """Every bin of a binned key as its internal key value, from the dialect's integer series
+    (``Dialect.int_series``): bin number i (numbers), start + i * step seconds (fixed time
+    steps) or the first start + i calendar units (naive wall-clock times)."""
+    i_name = f"{INTERNAL}i"
+    i = _ref(i_name)
     if k.mode == "nbin":
         assert k.nbins is not None and k.nbins.count is not None
-        return [d.real(i) for i in range(k.nbins.count)]
-    starts = _time_bin_starts(k)
-    if k.tstep is not None and k.tstep.is_fixed:
-        return [d.real(s) for s in starts]
-    return [d.local_literal(s) for s in starts]
+        count = k.nbins.count
+        value = d.double(i)
+    else:
+        assert k.tstep is not None and k.tcount is not None
+        count = k.tcount
+        if k.tstep.is_fixed:
+            value = exp.Add(this=d.real(k.tstart), expression=exp.Mul(
+                this=d.double(i), expression=d.real(k.tstep.seconds)))
+        else:
+            value = d.add_units(d.local_literal(k.tstart), i, k.tstep.unit)
+    series = exp.alias_(exp.Subquery(this=d.int_series(count, i_name)), f"{INTERNAL}n",
+                        table=True, quoted=True)
+    return exp.select(exp.alias_(value, k.internal, quoted=True)).from_(series)
 
 
 def _main_statement(plan: Plan) -> exp.Select:
@@ -1308,7 +1457,7 @@ def _main_statement(plan: Plan) -> exp.Select:
         outer = outer.order_by(*terms)
     outer = outer.limit(d.number(req.limit))
     for name, q in ctes:
-        outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q)
+        outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q, copy=False)
     return outer
 
 
@@ -1393,44 +1542,51 @@ def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
         raise PlanError(pointer("empty_bins"), f"empty_bins would emit {cells} bins "
                         f"(more than {MAX_DENSE_CELLS}); use fewer bins or tighter limits")
     sources: list[exp.Expression] = []
-    for k in binned:
+    for k in binned:  # every bin of the layout, generated in SQL (linear, bounded planning)
         name = f"{INTERNAL}bins{k.index}"
-        # every bin of the layout, plus the values the data has outside it (the NULL
-        # group): UNION removes the duplicates, so a NULL key keeps its own row.
-        present = exp.select(_ref(k.internal)).from_(_table(current)).where(
-            exp.Is(this=_ref(k.internal), expression=exp.Null()))
-        ctes.append((name, exp.union(_numbers_table(_bin_values(d, k), k.internal), present,
-                                     distinct=True)))
+        ctes.append((name, _bin_series(d, k)))
         sources.append(_table(name))
     if others:
         name = f"{INTERNAL}others"
         ctes.append((name, exp.select(*[_ref(k.internal) for k in others]).distinct()
                      .from_(_table(current))))
         sources.append(_table(name))
-    q = exp.select().from_(sources[0])
+    order = binned + others
+    q = exp.select(*[_ref(k.internal) for k in order]).from_(sources[0])
     for s in sources[1:]:
         q = q.join(s, join_type="cross")
-    q = q.select(exp.Star())
     gname = f"{INTERNAL}grid"
     ctes.append((gname, q))
+    # The grid's rows and the data's rows, grouped by the keys (NULLs group together, like a
+    # null-safe join, but one hash aggregation instead of a join: MariaDB ran the join
+    # quadratically). A NULL bin (a NULL value, or inf / NaN) thus appears only where the data
+    # has one, never one per group -- the grid holds only the bins of the layout.
+    has = f"{INTERNAL}has"
+    n, matched = f"{INTERNAL}n", f"{INTERNAL}matched"
+    outs = [f"{INTERNAL}out{k.index}" for k in flags]
+    keys = [k.internal for k in plan.keys]
+    data = exp.select(*[_ref(c) for c in keys], *[_ref(m.internal) for m in plan.measures],
+                      _ref(n), _ref(matched), *[_ref(o) for o in outs],
+                      exp.alias_(exp.Literal.number(1), has, quoted=True)).from_(_table(current))
+    empty = exp.select(*[_ref(c) for c in keys],
+                       *[exp.alias_(exp.Null(), m.internal, quoted=True) for m in plan.measures],
+                       exp.alias_(exp.Literal.number(0), n, quoted=True),
+                       exp.alias_(exp.Null(), matched, quoted=True),
+                       *[exp.alias_(exp.Null(), o, quoted=True) for o in outs],
+                       exp.alias_(exp.Literal.number(0), has, quoted=True)).from_(_table(gname))
+    uname = f"{INTERNAL}cells"
+    ctes.append((uname, exp.union(data, empty, distinct=False)))
     fill = exp.Literal.number(0) if plan.request.empty_bins == "zero" else exp.Null()
-    missing = exp.Is(this=_ref(f"{INTERNAL}n", "c"), expression=exp.Null())
-    dense = (exp.select(*[exp.alias_(_ref(k.internal, "g"), k.internal, quoted=True) for k in plan.keys])
-             .from_(exp.alias_(_table(gname), "g", quoted=True))
-             .join(exp.alias_(_table(current), "c", quoted=True),
-                   on=exp.and_(*[d.null_safe_eq(_ref(k.internal, "g"), _ref(k.internal, "c"))
-                                 for k in plan.keys]),
-                   join_type="left"))
-    for m in plan.measures:
+    missing = exp.EQ(this=exp.Max(this=_ref(has)), expression=exp.Literal.number(0))
+    dense = exp.select(*[_ref(c) for c in keys]).from_(_table(uname))
+    for m in plan.measures:  # one data row per cell at most: MAX returns its value unchanged
         dense = dense.select(exp.alias_(exp.Case(ifs=[exp.If(this=missing.copy(), true=fill.copy())],
-                                                 default=_ref(m.internal, "c")), m.internal, quoted=True))
-    dense = dense.select(
-        exp.alias_(exp.Coalesce(this=_ref(f"{INTERNAL}n", "c"), expressions=[exp.Literal.number(0)]),
-                   f"{INTERNAL}n", quoted=True),
-        exp.alias_(_ref(f"{INTERNAL}matched", "c"), f"{INTERNAL}matched", quoted=True))
-    for k in flags:
-        dense = dense.select(exp.alias_(_ref(f"{INTERNAL}out{k.index}", "c"),
-                                        f"{INTERNAL}out{k.index}", quoted=True))
+                                                 default=exp.Max(this=_ref(m.internal))),
+                                        m.internal, quoted=True))
+    dense = dense.select(exp.alias_(exp.Sum(this=_ref(n)), n, quoted=True),
+                         exp.alias_(exp.Max(this=_ref(matched)), matched, quoted=True),
+                         *[exp.alias_(exp.Max(this=_ref(o)), o, quoted=True) for o in outs])
+    dense = dense.group_by(*[_ref(c) for c in keys])
     name = f"{INTERNAL}dense"
     ctes.append((name, dense))
     return name

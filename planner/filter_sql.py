@@ -96,8 +96,10 @@ def _col_kind(col: ColumnInfo) -> str:
 
 
 class _Builder:
-    def __init__(self, schema: SourceSchema, d: Dialect, max_in_list: int) -> None:
+    def __init__(self, schema: SourceSchema, d: Dialect, max_in_list: int,
+                 tz: str | None = None) -> None:
         self.schema, self.d, self.max_in_list = schema, d, max_in_list
+        self.tz = tz  # zone of offset-less TIMESTAMP literals (None: the request's, else UTC)
         self.nodes = 0
 
     # ---- helpers -----------------------------------------------------------------
@@ -124,8 +126,10 @@ class _Builder:
 
         assert t.literal_text is not None
         try:
-            value = _parse_instant(t.literal_text, PTR)
-        except PlanError:
+            value = _parse_instant(t.literal_text, PTR, self.tz)
+        except PlanError as e:
+            if e.slug == "out-of-range":
+                raise _fail(e.detail, slug="out-of-range") from None
             raise _fail(f"{_quote(t.literal_text)} is compared with a {kind} but is not an ISO "
                         f"8601 date or timestamp (in {_quote(self._text(node))})",
                         slug="type-mismatch") from None
@@ -461,7 +465,8 @@ def _short(e: Exception) -> str:
 
 
 def compile_filter_sql(text: str, schema: SourceSchema, d: Dialect, *,
-                       max_chars: int = MAX_CHARS, max_in_list: int = MAX_IN_LIST) -> exp.Expression:
+                       max_chars: int = MAX_CHARS, max_in_list: int = MAX_IN_LIST,
+                       tz: str | None = None) -> exp.Expression:
     """Parse, check and rebuild ``text``; the result is a boolean expression over ``"s"``."""
     if len(text) > max_chars:
         raise _fail(f"filter_sql has {len(text)} characters; the limit is {max_chars}",
@@ -489,7 +494,7 @@ def compile_filter_sql(text: str, schema: SourceSchema, d: Dialect, *,
             raise _fail(f"filter_sql must be a single SQL condition such as \"fee > 10 AND "
                         f"depot IN ('North Yard')\"; cannot read {_quote(text)} "
                         f"({_short(e)})") from None
-        built = _Builder(schema, d, max_in_list).build(parsed)
+        built = _Builder(schema, d, max_in_list, tz).build(parsed)
     except RecursionError:
         raise _fail("filter_sql is nested too deeply", slug="limit-exceeded") from None
     if built.kind not in ("boolean",):

@@ -321,6 +321,12 @@ class ChartRequest(_Strict):
     empty_bins: Literal["omit", "zero", "null"] = "omit"
     sort: list[SortItem] = Field(default_factory=list, max_length=16)
     limit: int = Field(10_000, ge=1, le=1_000_000)
+    tz: Text | None = Field(
+        None, min_length=1, max_length=64,
+        description="The request's IANA time zone: the default tz of every temporal key and "
+        "the zone in which instants without an offset in where, limits and filter_sql are "
+        "read. A key's own tz overrides it for that key. Default UTC.",
+        examples=["Europe/Berlin"])
     reduce: Reduce | None = Field(
         None, description="Line reduction: {\"method\": \"m4\", \"width_px\": W} answers at most "
         "4*W raw points (x, y) that draw the same pixels as the whole series (Jugel et al., "
@@ -372,4 +378,7 @@ class BatchRequest(_Strict):
     """Several charts on one source, answered together (each answer or problem in order)."""
 
     source: Text = Field(min_length=1, max_length=256)
+    tz: Text | None = Field(None, min_length=1, max_length=64,
+                            description="The dashboard's IANA time zone: the tz of every chart "
+                            "that does not name its own.")
     charts: list[BatchChart] = Field(min_length=1, max_length=32)

@@ -186,6 +186,45 @@ CASES: dict[str, dict] = {
     "high_cardinality": {"channels": {"x": key("k"), "color": key("flag"), "y": agg("max", "x")}},
 }
 
+# --- bins, time limits, empty bins, request tz (issues 9.1-9.6, 10.10; engineer "bins") -----
+# The same answer as DuckDB on every engine; DuckDB itself is checked against numpy / pandas /
+# zoneinfo in tests/test_reference_bins.py and tests/test_reference_time.py.
+CASES.update({
+    "bins9_rule_limits_sturges": {"channels": {"x": key("x", bin={"rule": "sturges", "limits": [-20, 30]}),
+                                               "y": COUNT}},
+    "bins9_rule_limits_sqrt_int": {"channels": {"x": key("n", bin={"rule": "sqrt", "limits": [-10, 40]}),
+                                                "y": COUNT}},
+    "bins9_nice_close_to_n": {"channels": {"x": key("x", bin={"bins": 30}), "y": COUNT}},
+    "bins9_width_from_data": {"channels": {"x": key("x", bin={"width": 2.5, "origin": 0.5}), "y": COUNT}},
+    # day edges: rows on the upper limit go into the closed last bin, no bin past the limits
+    "bins9_tbin_days_closed": {"channels": {"x": key("day", bin={"bins": 40, "limits": [
+        "2026-03-01", "2026-03-31"]}), "y": COUNT}, "empty_bins": "zero"},
+    "bins9_tbin_hours_closed_tz": {"channels": {"x": key("ts", bin={"bins": 30, "limits": [
+        "2026-03-28T20:00:00", "2026-03-29T20:00:00"]}), "y": COUNT}, "empty_bins": "null",
+        "tz": BERLIN},
+    "bins9_tbin_months_dense": {"channels": {"x": key("tsn", bin={"bins": 12, "limits": [
+        "2026-01-01T00:00:00", "2027-01-01T00:00:00"]}, tz=NEW_YORK), "y": agg("sum", "n")},
+        "empty_bins": "zero"},
+    # a NULL bin only where the data has one (grp has NULLs, x has NULLs)
+    "bins9_empty_nulls_by_group": {"channels": {"x": key("x", bin={"width": 10, "origin": 0,
+                                                                    "limits": [-50, 50]}),
+                                                "color": key("grp"), "y": COUNT},
+                                   "empty_bins": "zero"},
+    "bins9_empty_2d": {"channels": {"x": key("x", bin={"bins": 5, "limits": [-30, 30]}),
+                                    "y": key("n", bin={"bins": 4, "limits": [-40, 40]}), "color": COUNT},
+                       "empty_bins": "null"},
+    # 2,000 bins from the SQL series of every engine (10,000 plan in < 50 ms,
+    # tests/test_bins_planning.py; MariaDB's window stage over them grows quadratically)
+    "bins9_dense_2k": {"channels": {"x": key("x", bin={"width": 0.05, "limits": [-50, 50]}),
+                                    "y": COUNT}, "empty_bins": "zero"},
+    "bins9_request_tz_months": {"channels": {"x": key("ts", trunc="month"), "y": COUNT},
+                                "tz": "Europe/London",
+                                "where": [{"column": "ts", "gte": "2026-01-01", "lt": "2026-07-01"}]},
+    "bins9_request_tz_filter_sql": {"channels": {"x": key("grp"), "y": COUNT}, "tz": NEW_YORK,
+                                    "filter_sql": "tsn >= TIMESTAMP '2026-03-08 01:30:00' AND "
+                                                  "ts < '2026-03-09' AND day <= DATE '2026-03-08'"},
+})
+
 
 def features(body: dict) -> set[str]:
     """Capability-table features a request needs (independent of the dialect code)."""
@@ -201,6 +240,9 @@ def features(body: dict) -> set[str]:
         if ch.bin is not None and ch.bin.rule == "fd":
             out.add("quantile")
         if ch.tz not in (None, "UTC"):
+            out.add("tz")
+        if ch.tz is None and req.tz not in (None, "UTC") and (ch.trunc or ch.extract or ch.bin) \
+                and ch.column in ("ts", "tsn", "day"):  # the request's zone on a temporal key
             out.add("tz")
         if ch.trunc == "week":
             out.add("trunc_week")

@@ -7,6 +7,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pandas as pd
 import pytest
 
 # ---------------------------------------------------------------------------------------------
@@ -38,7 +39,41 @@ def nicenum(x: float, round_: bool) -> float:
     return nf * 10.0**expv
 
 
+def nice_reference(lo: float, hi: float, n: int):
+    """`bins: N` as README states it, computed exactly with fractions: among the widths
+    d = {1, 2, 5} x 10^k (Heckbert's nice numbers), bins on the multiples of d (each edge the
+    double nearest to the decimal k*d) covering [lo, hi], the width whose bin count is the
+    largest one <= N (ties: the finer width; none <= N: the fewest bins)."""
+    from fractions import Fraction
+
+    span = hi - lo
+    e0 = math.floor(math.log10(span / n)) - 2
+    best = fewest = None
+    for e in range(e0, math.floor(math.log10(max(span, abs(lo), abs(hi)))) + 2):
+        for m in (1, 2, 5):
+            d = Fraction(m) * Fraction(10) ** e
+            first = math.floor(Fraction(lo) / d)
+            while float(first * d) > lo:
+                first -= 1
+            while float((first + 1) * d) <= lo:
+                first += 1
+            last = math.ceil(Fraction(hi) / d)
+            while float((last - 1) * d) >= hi:
+                last -= 1
+            while float(last * d) < hi:
+                last += 1
+            count = max(1, last - first)
+            cand = (count, float(d), float(first * d))
+            if count <= n and (best is None or count > best[0]):
+                best = cand
+            if fewest is None or count < fewest[0]:
+                fewest = cand
+    count, d, start = best or fewest
+    return start, start + count * d, d, count
+
+
 def heckbert_bins(lo: float, hi: float, n: int):
+    """Heckbert's loose labelling (the paper's worked example; no longer sluice's count rule)."""
     d = nicenum(nicenum(hi - lo, False) / n, True)
     start = math.floor(lo / d) * d
     stop = math.ceil(hi / d) * d
@@ -87,10 +122,14 @@ def _histogram_rows_match(rows, edges, counts_np, ch="x"):
 
 
 def test_bins_heckbert_worked_example_range(api, ref):
-    # ranges.a spans exactly 105..543: with 4 target bins the paper's labels are 100..600 step 100
+    # ranges.a spans exactly 105..543. Heckbert's loose labelling with 4 intervals gives
+    # 100..600 step 100 = 5 bins, more than the 4 asked for; the count rule (closest to N
+    # without exceeding it, README) takes the next nice width, 200: 0..600, 3 bins.
+    assert heckbert_bins(105, 543, 4)[3] == 5  # reference: Heckbert 1990 worked example (from memory)
+    assert nice_reference(105, 543, 4) == (0, 600, 200, 3)  # reference: the README rule, exact
     resp = api.chart({"source": "ranges", "channels": {"x": {"column": "a", "bin": {"bins": 4}}, "y": {"agg": "count"}}})
-    _check_bins_meta(resp["bins"]["x"], 100, 600, 100, 5, "nice")  # reference: Heckbert 1990 worked example (from memory)
-    edges = np.arange(100, 601, 100, dtype=float)
+    _check_bins_meta(resp["bins"]["x"], 0, 600, 200, 3, "nice")
+    edges = np.arange(0, 601, 200, dtype=float)
     counts, _ = np.histogram(ref.ranges["a"].to_numpy(), bins=edges)
     _histogram_rows_match(api.rows(resp), edges, counts)  # reference: numpy.histogram
 
@@ -102,7 +141,7 @@ NICE_CASES = [("a", 10), ("a", 20), ("b", 10), ("b", 7), ("c", 20), ("c", 3), ("
 def test_bins_nice_width_follows_heckbert(api, ref, column, n):
     vals = ref.ranges[column].to_numpy()
     lo, hi = float(vals.min()), float(vals.max())
-    start, stop, d, count = heckbert_bins(lo, hi, n)  # reference: Heckbert 1990 (independent implementation above)
+    start, stop, d, count = nice_reference(lo, hi, n)  # reference: Heckbert 1990 widths, README count rule (exact, above)
     resp = api.chart(
         {"source": "ranges", "channels": {"x": {"column": column, "bin": {"bins": n}}, "y": {"agg": "count"}}}
     )
@@ -116,14 +155,14 @@ def test_bins_nice_width_follows_heckbert(api, ref, column, n):
 
 def test_bins_default_is_20_target(api, ref):
     vals = ref.t["x"].dropna().to_numpy()
-    start, stop, d, count = heckbert_bins(float(vals.min()), float(vals.max()), 20)  # reference: Heckbert 1990
+    start, stop, d, count = nice_reference(float(vals.min()), float(vals.max()), 20)  # reference: Heckbert widths, README rule
     resp = api.chart({"channels": {"x": {"column": "x", "bin": {}}, "y": {"agg": "count"}}})
     _check_bins_meta(resp["bins"]["x"], start, stop, d, count, "nice")
 
 
 def test_bins_nice_on_column_with_nulls(api, ref):
     vals = ref.t["x"].dropna().to_numpy()
-    start, stop, d, count = heckbert_bins(float(vals.min()), float(vals.max()), 15)  # reference: Heckbert 1990
+    start, stop, d, count = nice_reference(float(vals.min()), float(vals.max()), 15)  # reference: Heckbert widths, README rule
     resp = api.chart({"channels": {"x": {"column": "x", "bin": {"bins": 15}}, "y": {"agg": "count"}}})
     _check_bins_meta(resp["bins"]["x"], start, stop, d, count, "nice")
     edges = start + d * np.arange(count + 1)
@@ -271,3 +310,135 @@ def test_histogram_of_integer_column_with_width(api, ref):
     counts, _ = np.histogram(vals, bins=edges)
     assert counts.sum() == len(vals)
     _histogram_rows_match(api.rows(resp), edges, counts)  # reference: numpy.histogram
+
+
+# ---------------------------------------------------------------------------------------------
+# issue 9.1: every rule, with and without limits == numpy.histogram_bin_edges(a, rule, range)
+# numpy (numpy/lib/_histograms_impl.py, _get_bin_edges): the rule's width comes from the values
+# inside the range (a[(a >= lo) & (a <= hi)]), the count is ceil((hi - lo) / width), integer
+# data get a width of at least 1, and the edges are linspace(lo, hi, count + 1).
+# ---------------------------------------------------------------------------------------------
+
+RULE_LIMITS = [(20.0, 80.0), (-100.0, 200.0), (0.0, 10.0), (-3.0, 47.5)]
+
+
+@pytest.mark.parametrize("rule", ["sturges", "sqrt", "scott", "fd"])
+@pytest.mark.parametrize("limits", RULE_LIMITS, ids=[f"{a:g}..{b:g}" for a, b in RULE_LIMITS])
+@pytest.mark.parametrize("column", ["x", "n"])
+def test_rule_with_limits_every_rule_matches_numpy(api, ref, rule, limits, column):
+    series = ref.t[column].dropna()  # NULLs: numpy never sees them; sluice's NULL bin
+    vals = series.to_numpy(dtype=np.int64 if column == "n" else float)  # integer column: int array
+    lo, hi = limits
+    edges = np.histogram_bin_edges(vals, bins=rule, range=(lo, hi))  # reference: numpy.histogram_bin_edges(range=)
+    counts, _ = np.histogram(vals, bins=edges)  # reference: numpy.histogram
+    resp = api.chart({"channels": {"x": {"column": column, "bin": {"rule": rule, "limits": [lo, hi]}},
+                                   "y": {"agg": "count"}}})
+    _check_bins_meta(resp["bins"]["x"], lo, hi, edges[1] - edges[0], len(edges) - 1, rule)
+    rows = api.rows(resp)
+    _histogram_rows_match(rows, edges, counts)
+    assert resp["stats"]["outside_limits"]["x"] == int(((vals < lo) | (vals > hi)).sum())  # reference: numpy mask
+    nulls = [r["count"] for r in rows if r["x_lo"] is None]
+    assert nulls == [int(ref.t[column].isna().sum())]  # reference: pandas isna
+
+
+@pytest.mark.parametrize("rule", ["sturges", "sqrt", "scott", "fd"])
+def test_rule_on_integer_column_matches_numpy_int_array(api, ref, rule):
+    vals = ref.t["n"].dropna().to_numpy(dtype=np.int64)  # numpy clamps the width of integer data to >= 1
+    edges = np.histogram_bin_edges(vals, bins=rule)  # reference: numpy.histogram_bin_edges
+    resp = api.chart({"channels": {"x": {"column": "n", "bin": {"rule": rule}}, "y": {"agg": "count"}}})
+    _check_bins_meta(resp["bins"]["x"], edges[0], edges[-1], edges[1] - edges[0], len(edges) - 1, rule)
+
+
+# ---------------------------------------------------------------------------------------------
+# issue 9.5: bins: N -> the nice width whose count is closest to N without exceeding it
+# ---------------------------------------------------------------------------------------------
+
+def _layouts():
+    rng = np.random.default_rng(20261203)
+    out = [(105.0, 543.0), (0.0, 21.0), (-1.0, 1.0), (0.3, 0.7), (1e-6, 3.7e-6), (2.5e9, 2.9e9),
+           (-40.0, 40.0), (17.2, 17.9), (0.0, 1e6)]
+    for _ in range(120):
+        lo = float(rng.uniform(-1e4, 1e4))
+        out.append((lo, lo + float(10 ** rng.uniform(-3, 5))))
+    return out
+
+
+def test_nice_bin_count_is_closest_to_target_without_exceeding():
+    from planner.bins import nice_bins
+
+    for lo, hi in _layouts():
+        for n in (1, 2, 3, 5, 7, 10, 12, 20, 30, 50, 100, 500):
+            b = nice_bins(lo, hi, n)
+            start, stop, d, count = nice_reference(lo, hi, n)  # reference: README rule, exact fractions
+            assert (b.count, b.width) == (count, d), (lo, hi, n, b)
+            assert math.isclose(b.start, start, rel_tol=1e-12, abs_tol=d * 1e-9)
+            assert b.start <= lo and b.stop >= hi  # the bins cover the data
+            if n >= 2:
+                assert b.count <= n
+            # 1-2-5 steps are at most 2.5x apart and a finer width gave > n bins, so at least
+            # (n - 1) / 2.5 bins (the +-1 edge bins): common practice bound of the 1-2-5 series
+            assert b.count >= (n - 1) / 2.5, (lo, hi, n, b.count)
+
+
+# ---------------------------------------------------------------------------------------------
+# issue 9.4 / 10.5: layouts that cannot bin anything are a 422 naming the field
+# ---------------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("bin_,ptr", [
+    ({"width": 1e-300, "origin": 1e300}, "/channels/x/bin/width"),
+    ({"width": 1e-300, "origin": 1e300, "limits": [0, 100]}, "/channels/x/bin/width"),
+    ({"bins": 20, "limits": [0, 5e-324]}, "/channels/x/bin/limits"),
+    ({"rule": "sturges", "limits": [1.0, 1.0000000000000002]}, "/channels/x/bin/limits"),
+    ({"width": 1e-9, "limits": [0, 100]}, "/channels/x/bin/width"),
+])
+def test_layouts_that_bin_nothing_are_422(api, bin_, ptr):
+    r = api.post({"channels": {"x": {"column": "x", "bin": bin_}, "y": {"agg": "count"}}})
+    assert r.status_code == 422, r.text  # RFC 9457 problem, never a 5xx or an empty 200
+    body = r.json()
+    assert r.headers["content-type"].startswith("application/problem+json")
+    assert body["pointer"] == ptr, body  # RFC 6901 pointer to the field
+
+
+def test_subnormal_data_span_answers_one_bin(api, ref):
+    # data-driven layouts never refuse legal data: a span too narrow to split is one bin
+    # holding every value (numpy's zero-range rule: [v - 0.5, v + 0.5])
+    resp = api.chart({"channels": {"x": {"column": "x", "bin": {"bins": 10}}, "y": {"agg": "count"}},
+                      "where": [{"column": "x", "gte": 0, "lte": 5e-324}]})
+    vals = ref.t["x"].dropna().to_numpy()
+    want = int(((vals >= 0) & (vals <= 5e-324)).sum())  # reference: numpy mask
+    assert sum(r["count"] for r in api.rows(resp)) == want
+
+
+# ---------------------------------------------------------------------------------------------
+# issue 9.3: empty_bins with a key beside the bin fills the layout's bins only; a NULL bin
+# appears only where the data has one (reference: pandas groupby over pd.cut categories)
+# ---------------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("fill", ["zero", "null"])
+def test_empty_bins_with_a_group_adds_no_null_bins(api, ref, fill):
+    df = ref.t[["x", "cat"]].copy()
+    assert df["x"].isna().any() and df["cat"].isna().any()
+    # one group without NULL x values: a NULL-bin row for it would be invented
+    lone = sorted(df["cat"].dropna().unique())[0]
+    where = [{"any": [{"column": "cat", "ne": lone}, {"column": "cat", "is_null": True},
+                      {"column": "x", "is_null": False}]}]
+    df = df[(df["cat"] != lone) | df["cat"].isna() | df["x"].notna()]
+    keep = df["x"].isna() | ((df["x"] >= 0) & (df["x"] <= 100))  # rows outside the limits drop out
+    df = df[keep]
+    assert not df[(df["cat"] == lone) & df["x"].isna()].shape[0]
+    edges = np.arange(0, 101, 10, dtype=float)
+    bins = pd.cut(df["x"], edges, right=False, include_lowest=True)
+    bins = bins.where(df["x"] != 100, pd.Interval(90.0, 100.0, closed="left"))  # closed last bin (numpy)
+    full = df.groupby([bins, df["cat"]], observed=False, dropna=False).size()  # reference: pandas
+    # the bins of the layout for every group; NULL-bin rows only where observed (size > 0)
+    want = {(None if pd.isna(b) else b.left, None if pd.isna(c) else c): int(n)
+            for (b, c), n in full.items() if not pd.isna(b) or n > 0}
+    resp = api.chart({"channels": {"x": {"column": "x", "bin": {"width": 10, "origin": 0, "limits": [0, 100]}},
+                                   "color": {"column": "cat"}, "y": {"agg": "count"}}, "empty_bins": fill,
+                      "where": where})
+    got = {(r["x_lo"], r["cat"]): r["count"] for r in api.rows(resp)}
+    if fill == "null":  # added rows carry null measures (DEVELOPERS: empty_bins)
+        want = {k: (n if n > 0 else None) for k, n in want.items()}
+    assert set(got) == set(want)  # no invented NULL-bin rows (reference: pandas)
+    assert got == want  # reference: pandas groupby sizes
+    assert (None, lone) not in got and any(k[1] == lone for k in got)

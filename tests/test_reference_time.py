@@ -276,3 +276,187 @@ def test_calendar_bins_subday_aligned_to_utc_epoch(api, ref):
         got[s] = r["count"]
     assert got == want  # reference: integer flooring of POSIX seconds
     assert sum(got.values()) == len(sel) == resp["stats"]["matched_rows"]
+
+
+# ---------------------------------------------------------------------------------------------
+# issue 9.2: time bins with limits close the last bin (numeric convention: numpy.histogram)
+# ---------------------------------------------------------------------------------------------
+
+HOUR_LO, HOUR_HI = dt.datetime(2026, 10, 29, 20, tzinfo=UTC), dt.datetime(2026, 10, 30, 20, tzinfo=UTC)
+
+
+def _hourly_reference(ts):
+    """numpy.histogram on POSIX seconds with hourly edges lo..hi: [e_i, e_i+1) and the last
+    bin closed [e_23, hi] -- the convention numeric bins follow."""
+    import numpy as np
+
+    secs = np.array([t.timestamp() for t in ts if t is not None])
+    edges = np.arange(HOUR_LO.timestamp(), HOUR_HI.timestamp() + 1, 3600.0)
+    counts, _ = np.histogram(secs, bins=edges)  # reference: numpy.histogram (closed last bin)
+    return edges, counts
+
+
+@pytest.mark.parametrize("empty_bins", ["omit", "zero"])
+@pytest.mark.parametrize("limits,tz", [
+    (["2026-10-29T20:00:00Z", "2026-10-30T20:00:00Z"], None),
+    # offset-less limits are wall-clock times of the request's zone (Berlin is UTC+1 then)
+    (["2026-10-29T21:00:00", "2026-10-30T21:00:00"], "Europe/Berlin"),
+])
+def test_time_bins_value_on_upper_limit_lands_in_closed_last_bin(api, ref, empty_bins, limits, tz):
+    assert HOUR_HI in ref.ts  # the fixture has a row exactly on the upper limit
+    body = {"channels": {"x": {"column": "ts", "bin": {"bins": 24, "limits": limits}},
+                         "y": {"agg": "count"}}, "empty_bins": empty_bins}
+    if tz:
+        body["tz"] = tz
+    resp = api.chart(body)
+    b = resp["bins"]["x"]
+    assert b["step"] == "PT1H" and b["count"] == 24
+    assert parse_ts(b["start"]).astimezone(UTC) == HOUR_LO and parse_ts(b["stop"]).astimezone(UTC) == HOUR_HI
+    edges, counts = _hourly_reference(ref.ts)
+    got = {}
+    for r in api.rows(resp):
+        if r["x_lo"] is None:
+            continue
+        s, e = parse_ts(r["x_lo"]).astimezone(UTC), parse_ts(r["x_hi"]).astimezone(UTC)
+        assert HOUR_LO <= s and e <= HOUR_HI  # never a bin past the limits
+        got[s.timestamp()] = r["count"]
+    want = {float(e): int(c) for e, c in zip(edges[:-1], counts) if c or empty_bins == "zero"}
+    assert got == want  # reference: numpy.histogram
+    inside = sum(1 for t in ref.ts if t is not None and HOUR_LO <= t <= HOUR_HI)
+    assert resp["stats"]["matched_rows"] - resp["stats"]["outside_limits"]["x"] - ref.t["ts"].isna().sum() == inside
+
+
+def test_calendar_bins_closed_last_month_with_limits(api, ref):
+    # monthly bins over [Jan 1, Jul 1) in Berlin: exactly 6 bins, the last one closed at Jul 1
+    resp = api.chart({"channels": {"x": {"column": "ts", "bin": {"bins": 6, "limits": [
+        "2026-01-01T00:00:00", "2026-07-01T00:00:00"]}}, "y": {"agg": "count"}},
+        "tz": "Europe/Berlin", "empty_bins": "zero"})
+    b = resp["bins"]["x"]
+    assert b["step"] == "P1M" and b["count"] == 6
+    rows = [r for r in api.rows(resp) if r["x_lo"] is not None]
+    assert len(rows) == 6
+    lo = dt.datetime(2026, 1, 1, tzinfo=BERLIN)
+    hi = dt.datetime(2026, 7, 1, tzinfo=BERLIN)
+    want = expected_counts([t for t in ref.ts if t is not None and lo <= t <= hi],
+                           lambda t: min(local_trunc(t, "month", BERLIN),
+                                         dt.datetime(2026, 6, 1, tzinfo=BERLIN).astimezone(UTC)))
+    got = {check_offset(r["x_lo"], BERLIN): r["count"] for r in rows}
+    assert {k: v for k, v in got.items() if v} == want  # reference: zoneinfo month starts
+
+
+# ---------------------------------------------------------------------------------------------
+# issue 9.6: the request's tz -- default of every temporal key, and the zone of offset-less
+# instants in where, limits and filter_sql (channel tz overrides for its key)
+# ---------------------------------------------------------------------------------------------
+
+LONDON = ZoneInfo("Europe/London")
+
+
+def _months(resp, api, tz):
+    return {check_offset(r["ts"], tz): r["count"] for r in api.rows(resp) if r["ts"] is not None}
+
+
+@pytest.mark.parametrize("filt", [
+    {"where": [{"column": "ts", "gte": "2026-01-01", "lt": "2026-07-01"}]},
+    {"filter_sql": "ts >= TIMESTAMP '2026-01-01 00:00:00' AND ts < TIMESTAMP '2026-07-01 00:00:00'"},
+    {"where": [{"column": "ts", "gte": "2026-01-01T00:00:00"}], "filter_sql": "ts < '2026-07-01'"},
+], ids=["where", "filter_sql", "mixed"])
+def test_request_tz_reads_where_and_filter_sql_in_that_zone(api, ref, filt):
+    resp = api.chart({"channels": {"x": {"column": "ts", "trunc": "month"}, "y": {"agg": "count"}},
+                      "tz": "Europe/London", **filt})
+    got = _months(resp, api, LONDON)
+    lo = dt.datetime(2026, 1, 1, tzinfo=LONDON)  # reference: zoneinfo (GMT in January)
+    hi = dt.datetime(2026, 7, 1, tzinfo=LONDON)  # BST: 2026-06-30T23:00Z
+    want = expected_counts([t for t in ref.ts if t is not None and lo <= t < hi],
+                           lambda t: local_trunc(t, "month", LONDON))
+    assert len(got) == 6  # January .. June, no seventh point holding one hour of July
+    assert got == want  # reference: zoneinfo
+
+
+def test_channel_tz_overrides_request_tz_for_its_key(api, ref):
+    resp = api.chart({"channels": {"x": {"column": "ts", "trunc": "day", "tz": "UTC"}, "y": {"agg": "count"}},
+                      "tz": "Europe/London",
+                      "where": [{"column": "ts", "gte": "2026-06-10", "lt": "2026-06-12"}]})
+    lo = dt.datetime(2026, 6, 10, tzinfo=LONDON)  # the filter is still read in London time
+    hi = dt.datetime(2026, 6, 12, tzinfo=LONDON)
+    want = expected_counts([t for t in ref.ts if t is not None and lo <= t < hi],
+                           lambda t: local_trunc(t, "day", UTC))
+    got = {parse_ts(r["ts"]).astimezone(UTC): r["count"] for r in api.rows(resp)}
+    assert got == want  # reference: zoneinfo (UTC days of the London window: 3 of them)
+    assert len(got) == 3
+
+
+@pytest.mark.parametrize("text,want", [
+    ("2026-03-29T01:30:00", dt.datetime(2026, 3, 29, 1, 30, tzinfo=LONDON)),  # in the spring gap
+    ("2026-10-25T01:30:00", dt.datetime(2026, 10, 25, 1, 30, tzinfo=LONDON)),  # repeated hour, fold=0
+    ("2026-03-29T01:30:00+02:00", dt.datetime(2026, 3, 28, 23, 30, tzinfo=UTC)),  # offset wins
+])
+def test_request_tz_dst_edges_follow_zoneinfo(api, ref, text, want):
+    resp = api.chart({"channels": {"y": {"agg": "count"}}, "tz": "Europe/London",
+                      "where": [{"column": "ts", "gte": text}]})
+    n = sum(1 for t in ref.ts if t is not None and t >= want)  # reference: zoneinfo, fold=0
+    assert resp["data"]["count"] == [n]
+
+
+def test_batch_tz_is_every_charts_default(client, ref):
+    r = client.post("/v1/batch", json={"source": "fixture", "tz": "Europe/London", "charts": [
+        {"channels": {"x": {"column": "ts", "trunc": "month"}, "y": {"agg": "count"}},
+         "where": [{"column": "ts", "gte": "2026-01-01", "lt": "2026-07-01"}]},
+        {"channels": {"x": {"column": "ts", "trunc": "month"}, "y": {"agg": "count"}}, "tz": "UTC",
+         "where": [{"column": "ts", "gte": "2026-01-01", "lt": "2026-07-01"}]}]})
+    assert r.status_code == 200, r.text
+    london, utc = r.json()["results"]
+    assert len(london["data"]["ts"]) == 6  # reference: zoneinfo (as above)
+    assert all(check_offset(s, LONDON) for s in london["data"]["ts"])
+    assert len(utc["data"]["ts"]) == 6 and all(s.endswith("Z") for s in utc["data"]["ts"])
+
+
+# ---------------------------------------------------------------------------------------------
+# issues 10.3 / 10.5: instants near year 1 / 9999 and non-canonical zone names -> 422
+# ---------------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("body,ptr", [
+    ({"where": [{"column": "ts", "gte": "0001-01-01T00:00:00+01:00"}]}, "/where/0/gte"),
+    ({"where": [{"column": "ts", "lt": "9999-12-31T23:30:00-01:00"}]}, "/where/0/lt"),
+    ({"where": [{"column": "ts", "gte": "0001-01-01T00:30:00"}], "tz": "Europe/Berlin"}, "/where/0/gte"),
+    ({"filter_sql": "ts > TIMESTAMP '0001-01-01 00:00:00+01:00'"}, "/filter_sql"),
+    ({"channels": {"x": {"column": "ts", "bin": {"bins": 5, "limits": ["0001-01-01T00:00:00Z",
+                                                                        "0001-06-01T00:00:00Z"]},
+                         "tz": "America/New_York"}, "y": {"agg": "count"}}}, "/channels/x/bin/limits"),
+])
+def test_instants_outside_years_1_to_9999_are_422(api, body, ptr):
+    body = {"channels": {"y": {"agg": "count"}}, **body}
+    r = api.post(body)
+    assert r.status_code == 422, r.text  # RFC 9457 problem with an RFC 6901 pointer, never a 500
+    assert r.json()["pointer"] == ptr
+
+
+def test_year_one_in_utc_is_an_answer(api):
+    resp = api.chart({"channels": {"y": {"agg": "count"}},
+                      "where": [{"column": "ts", "lt": "0001-01-01T00:00:00Z"}]})
+    assert resp["data"]["count"] == [0]  # no fixture row before year 1 (reference: the data)
+
+
+@pytest.mark.parametrize("name,suggest", [
+    ("Factory", None), ("posixrules", None), ("localtime", None),
+    ("right/UTC", "UTC"), ("posix/Europe/Berlin", "Europe/Berlin"), ("Europe/Berln", "Europe/Berlin"),
+])
+@pytest.mark.parametrize("where", ["channel", "request"])
+def test_only_canonical_iana_zones(api, name, suggest, where):
+    import zoneinfo
+
+    body = {"channels": {"x": {"column": "ts", "trunc": "day"}, "y": {"agg": "count"}}}
+    if where == "channel":
+        body["channels"]["x"]["tz"] = name
+        ptr = "/channels/x/tz"
+    else:
+        body["tz"] = name
+        ptr = "/tz"
+    r = api.post(body)
+    assert r.status_code == 422, r.text
+    p = r.json()
+    assert p["pointer"] == ptr
+    valid = zoneinfo.available_timezones()  # reference: the IANA database zoneinfo ships
+    assert all(s in valid and not s.startswith(("posix/", "right/")) for s in p.get("suggestions") or [])
+    if suggest:
+        assert suggest in p["suggestions"]

@@ -88,10 +88,13 @@ def _parse_text_timestamps(arr: pa.ChunkedArray) -> pa.ChunkedArray:
         if v is None:
             values.append(None)
             continue
-        text = v.strip().replace("T", " ").rstrip("Z")
-        t = dt.datetime.fromisoformat(text)
-        values.append(t.replace(tzinfo=dt.timezone.utc) if t.tzinfo is None
-                      else t.astimezone(dt.timezone.utc))
+        try:
+            text = str(v).strip().replace("T", " ").rstrip("Z")
+            t = dt.datetime.fromisoformat(text)
+            values.append(t.replace(tzinfo=dt.timezone.utc) if t.tzinfo is None
+                          else t.astimezone(dt.timezone.utc))
+        except (ValueError, OverflowError):  # a cell outside the storage convention: NULL
+            values.append(None)
     return pa.chunked_array([pa.array(values, UTC_US)], UTC_US)
 
 
@@ -248,7 +251,9 @@ def conform_column(arr: pa.ChunkedArray, target: pa.DataType | None) -> pa.Chunk
                                      tz=target.tz))
     if pa.types.is_date(target):
         if pa.types.is_string(t) or pa.types.is_large_string(t):
-            return pc.strptime(arr, format="%Y-%m-%d", unit="s").cast(pa.date32())
+            # a cell outside the storage convention (not YYYY-MM-DD) reads as NULL
+            return pc.strptime(arr, format="%Y-%m-%d", unit="s",
+                               error_is_null=True).cast(pa.date32())
         if pa.types.is_timestamp(t) or pa.types.is_null(t) or pa.types.is_date(t):
             return arr.cast(pa.date32())
         return arr

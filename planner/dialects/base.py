@@ -13,6 +13,7 @@ the feature in ``unsupported`` so the request is refused with a clear 422.
 from __future__ import annotations
 
 import datetime as dt
+import sys
 from typing import ClassVar
 
 from sqlglot import exp
@@ -128,6 +129,12 @@ class Dialect:
     def bigint(self, e: exp.Expression) -> exp.Expression:
         return exp.Cast(this=e, to=exp.DataType.build("BIGINT"))
 
+    @staticmethod
+    def wall_text(t: dt.datetime, micro: bool = False) -> str:
+        """``YYYY-MM-DD HH:MM:SS[.ffffff]`` of the wall-clock digits of ``t`` (the year always
+        4 digits: strftime writes year 1 as ``1``)."""
+        return t.replace(tzinfo=None).isoformat(" ", "microseconds" if micro else "seconds")
+
     # --- names and literals -----------------------------------------------------------
     @staticmethod
     def ident(name: str) -> exp.Identifier:
@@ -166,7 +173,7 @@ class Dialect:
     def local_literal(self, value: dt.datetime) -> exp.Expression:
         """A naive wall-clock time as the dialect's naive timestamp value (the type that
         ``to_local`` / ``trunc`` produce), e.g. a calendar bin start in empty_bins grids."""
-        return self.cast(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")), self.naive_type)
+        return self.cast(self.lit(self.wall_text(value)), self.naive_type)
 
     def boolean(self, v: bool) -> exp.Expression:
         return exp.Boolean(this=v)
@@ -175,12 +182,12 @@ class Dialect:
         return exp.Cast(this=e, to=exp.DataType.build("DOUBLE"))
 
     def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
-        """An instant (aware, UTC) as a literal comparable with a column of ``kind``: typed
+        """An instant (aware) as a literal comparable with a column of ``kind``: typed
         with ``instant_type`` (text + ``instant_suffix`` names UTC) or ``naive_type``."""
         utc = value.astimezone(dt.timezone.utc)
         if kind == "date":
-            return self.cast(self.lit(utc.date().isoformat()), "DATE")
-        text = utc.strftime("%Y-%m-%d %H:%M:%S.%f")
+            return self.cast(self.lit(value.date().isoformat()), "DATE")
+        text = self.wall_text(utc, True)
         if kind == "timestamptz":
             return self.cast(self.lit(text + self.instant_suffix), self.instant_type)
         return self.cast(self.lit(text), self.naive_type)
@@ -213,14 +220,75 @@ class Dialect:
         """date_trunc of a naive timestamp; ``week`` is the ISO week (Monday)."""
         return exp.TimestampTrunc(this=naive, unit=exp.Var(this=unit.upper()))
 
-    def add_units(self, naive: exp.Expression, n: int, unit: str) -> exp.Expression:
-        """naive + n calendar units (day, week, month, quarter, year)."""
+    def add_units(self, naive: exp.Expression, n: int | exp.Expression,
+                  unit: str) -> exp.Expression:
+        """naive + n calendar units (day, week, month, quarter, year); ``n`` is a number or
+        an integer expression (a bin number of an ``int_series``)."""
         if unit == "quarter":
-            n, unit = 3 * n, "month"
+            n, unit = self.times(n, 3), "month"
         if unit == "week":
-            n, unit = 7 * n, "day"
+            n, unit = self.times(n, 7), "day"
+        if isinstance(n, exp.Expression):  # n * INTERVAL '1' UNIT
+            return exp.Add(this=naive, expression=exp.Mul(this=self.paren(n), expression=exp.Interval(
+                this=exp.Literal.string("1"), unit=exp.Var(this=unit.upper()))))
         return exp.Add(this=naive, expression=exp.Interval(
             this=exp.Literal.string(str(n)), unit=exp.Var(this=unit.upper())))
+
+    def times(self, n: int | exp.Expression, k: int) -> int | exp.Expression:
+        """n * k for a number or an expression."""
+        if isinstance(n, exp.Expression):
+            return exp.Mul(this=self.paren(n), expression=exp.Literal.number(k))
+        return n * k
+
+    def count_arg(self, n: int | exp.Expression) -> exp.Expression:
+        """A count argument of a date function: the literal, or the expression itself."""
+        return n if isinstance(n, exp.Expression) else self.lit(n)
+
+    # --- generated rows -------------------------------------------------------------
+    def int_series(self, n: int, name: str) -> exp.Select:
+        """A SELECT of the integers 0 .. n-1 in column ``name`` (the bins of empty_bins).
+
+        Portable form: the cross join of ceil(log10 n) ten-row digit tables, so the SQL grows
+        with log n, not n; dialects with a series function override it."""
+        sel = [exp.select(exp.alias_(exp.Literal.number(i), "d", quoted=True)) for i in range(10)]
+        node: exp.Expression = sel[0]
+        for q in sel[1:]:
+            node = exp.union(node, q, distinct=False)
+        places = max(1, len(str(max(n - 1, 0))))
+        tables = [exp.alias_(exp.Subquery(this=node.copy()), f"p{j}", table=True, quoted=True)
+                  for j in range(places)]
+        value: exp.Expression = exp.column("d", "p0", quoted=True)
+        for j in range(1, places):
+            value = exp.Add(this=value, expression=exp.Mul(
+                this=exp.column("d", f"p{j}", quoted=True), expression=exp.Literal.number(10 ** j)))
+        q = exp.select(exp.alias_(value, name, quoted=True)).from_(tables[0])
+        for t in tables[1:]:
+            q = q.join(t, join_type="cross")
+        return q.where(exp.LT(this=value.copy(), expression=exp.Literal.number(n)))
+
+    #: The engine's timestamps can lie outside years 1..9999 (year 12000, 'infinity'), which
+    #: neither Python nor RFC 3339 can write: time keys treat them as NULL (``instant_range``).
+    wide_instants: ClassVar[bool] = False
+
+    def instant_range(self, e: exp.Expression, kind: str) -> exp.Expression | None:
+        """``e`` lies in years 1..9999 (UTC), or None when the engine cannot hold others."""
+        if not self.wide_instants:
+            return None
+        lo = dt.datetime(1, 1, 1, tzinfo=dt.timezone.utc)
+        hi = dt.datetime(9999, 12, 31, 23, 59, 59, 999999, tzinfo=dt.timezone.utc)
+        return exp.Between(this=e, low=self.timestamp_literal(lo, kind),
+                           high=self.timestamp_literal(hi, kind))
+
+    def number_cell(self, col: exp.Expression) -> exp.Expression:
+        """A number column's value as bins read it; engines whose columns can hold cells of
+        another type (SQLite) turn those into NULL."""
+        return col
+
+    def finite(self, e: exp.Expression) -> exp.Expression:
+        """``e`` (a DOUBLE) is neither infinite nor NaN (NaN compares above every number in
+        PostgreSQL and DuckDB, false everywhere else; SQLite stores NaN as NULL)."""
+        big = sys.float_info.max
+        return exp.Between(this=e, low=self.real(-big), high=self.real(big))
 
     def extract(self, field: str, naive: exp.Expression) -> exp.Expression:
         return exp.Extract(this=exp.Var(this=field.upper()), expression=naive)

@@ -50,7 +50,8 @@ class BigQuery(Dialect):
         return self.fn("DATETIME_TRUNC", naive, self.var(part))
 
     def add_units(self, naive, n, unit):
-        return self.fn("DATETIME_ADD", naive, exp.Interval(this=self.lit(n), unit=self.var(unit.upper())))
+        return self.fn("DATETIME_ADD", naive, exp.Interval(this=self.count_arg(n),
+                                                           unit=self.var(unit.upper())))
 
     def extract(self, field, naive):
         parts = {"year": "YEAR", "quarter": "QUARTER", "month": "MONTH", "week": "ISOWEEK",

@@ -53,11 +53,11 @@ class ClickHouse(Dialect):
     def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
         utc = value.astimezone(dt.timezone.utc)
         if kind == "date":
-            return self.fn("toDate32", self.lit(utc.date().isoformat()))
-        return self._dt64(self.lit(utc.strftime("%Y-%m-%d %H:%M:%S.%f")))
+            return self.fn("toDate32", self.lit(value.date().isoformat()))
+        return self._dt64(self.lit(self.wall_text(utc, True)))
 
     def local_literal(self, value: dt.datetime) -> exp.Expression:
-        return self._dt64(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")))
+        return self._dt64(self.lit(self.wall_text(value)))
 
     def to_local(self, e, kind, tz):
         inst = self._dt64(e)
@@ -80,7 +80,15 @@ class ClickHouse(Dialect):
     def add_units(self, naive, n, unit):
         fns = {"day": "addDays", "week": "addWeeks", "month": "addMonths",
                "quarter": "addQuarters", "year": "addYears"}
-        return self.fn(fns[unit], naive, self.lit(n))
+        return self.fn(fns[unit], naive, self.count_arg(n))
+
+    def int_series(self, n, name):
+        # numbers(n): the table function of the integers 0 .. n-1 (column "number")
+        return exp.select(exp.alias_(self.column("number"), name, quoted=True)).from_(
+            exp.Table(this=self.fn("numbers", self.lit(n))))
+
+    def finite(self, e):
+        return self.fn("isFinite", e)
 
     def extract(self, field, naive):
         fns = {"year": "toYear", "quarter": "toQuarter", "month": "toMonth", "week": "toISOWeek",

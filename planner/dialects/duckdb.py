@@ -10,6 +10,7 @@ from planner.dialects.base import Dialect
 class DuckDB(Dialect):
     name = "duckdb"
     sqlglot = "duckdb"
+    wide_instants = True  # 'infinity' and years past 9999 are legal values
     # DuckDB's approx_count_distinct is a HyperLogLog sketch. Relative error measured here
     # (DuckDB 2.0.1, 20 runs of 1e3..1e6 distinct hashed integers): RMS 3.0 %, worst 7 %.
     approx_distinct = ("hyperloglog", 0.03)
@@ -67,6 +68,14 @@ class DuckDB(Dialect):
     def quantile(self, arg: exp.Expression, q: float) -> exp.Expression:
         # quantile_cont interpolates linearly: Hyndman & Fan type 7.
         return exp.Anonymous(this="quantile_cont", expressions=[self.double(arg), self.number(q)])
+
+    def int_series(self, n: int, name: str) -> exp.Select:
+        # range(n): the table function of the integers 0 .. n-1 (column "range")
+        return exp.select(exp.alias_(exp.column("range", quoted=True), name, quoted=True)).from_(
+            exp.Table(this=exp.Anonymous(this="range", expressions=[exp.Literal.number(n)])))
+
+    def finite(self, e: exp.Expression) -> exp.Expression:
+        return exp.Anonymous(this="isfinite", expressions=[e])
 
     def agg(self, name, arg, q):
         if name == "approx_count_distinct":

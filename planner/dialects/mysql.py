@@ -54,13 +54,13 @@ class MySQL(Dialect):
         return self.cast(e, "DATETIME(6)")
 
     def local_literal(self, value: dt.datetime) -> exp.Expression:
-        return self._dt(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")))
+        return self._dt(self.lit(self.wall_text(value)))
 
     def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
         utc = value.astimezone(dt.timezone.utc)
         if kind == "date":
-            return self.cast(self.lit(utc.date().isoformat()), "DATE")
-        return self._dt(self.lit(utc.strftime("%Y-%m-%d %H:%M:%S.%f")))
+            return self.cast(self.lit(value.date().isoformat()), "DATE")
+        return self._dt(self.lit(self.wall_text(utc, True)))
 
     def to_local(self, e: exp.Expression, kind: str, tz: str) -> exp.Expression:
         naive = self._dt(e) if kind == "date" else e
@@ -96,10 +96,11 @@ class MySQL(Dialect):
 
     def add_units(self, naive: exp.Expression, n: int, unit: str) -> exp.Expression:
         if unit == "quarter":
-            n, unit = 3 * n, "month"
+            n, unit = self.times(n, 3), "month"
         if unit == "week":
-            n, unit = 7 * n, "day"
-        return self.fn("DATE_ADD", naive, exp.Interval(this=self.lit(n), unit=self.var(unit.upper())))
+            n, unit = self.times(n, 7), "day"
+        return self.fn("DATE_ADD", naive, exp.Interval(this=self.count_arg(n),
+                                                       unit=self.var(unit.upper())))
 
     def extract(self, field: str, naive: exp.Expression) -> exp.Expression:
         simple = {"year": "YEAR", "quarter": "QUARTER", "month": "MONTH", "day": "DAYOFMONTH",

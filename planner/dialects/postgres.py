@@ -16,6 +16,7 @@ from planner.dialects.base import Dialect
 class Postgres(Dialect):
     name = "postgres"
     sqlglot = "postgres"
+    wide_instants = True  # 'infinity' and years past 9999 are legal values
     approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
     notes = {
         "quantile": "PERCENTILE_CONT WITHIN GROUP",
@@ -66,6 +67,12 @@ class Postgres(Dialect):
 
     def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
         return self.fn("TO_TIMESTAMP", seconds)
+
+    def int_series(self, n: int, name: str) -> exp.Select:
+        # generate_series(0, n - 1) AS t(name)
+        alias = exp.TableAlias(this=self.ident("t"), columns=[self.ident(name)])
+        return exp.select(self.column(name)).from_(exp.Table(
+            this=self.fn("generate_series", self.lit(0), self.lit(max(n - 1, 0))), alias=alias))
 
     def contains(self, col: exp.Expression, s: str) -> exp.Expression:
         return exp.GT(this=self.fn("STRPOS", col, self.string(s)), expression=self.lit(0))

@@ -55,8 +55,16 @@ class Snowflake(Dialect):
                            self.fn("DATE_TRUNC", self.lit("DAY"), naive.copy()))
         return self.fn("DATE_TRUNC", self.lit(unit.upper()), naive)
 
+    def int_series(self, n, name):
+        # GENERATOR rows numbered by ROW_NUMBER (SEQ4 alone may have gaps)
+        rows = exp.Anonymous(this="TABLE", expressions=[exp.Anonymous(this="GENERATOR", expressions=[
+            exp.Kwarg(this=self.var("ROWCOUNT"), expression=self.lit(n))])])
+        i = exp.Sub(this=exp.Window(this=exp.RowNumber(), order=exp.Order(expressions=[
+            exp.Ordered(this=self.fn("SEQ4"))])), expression=self.lit(1))
+        return exp.select(exp.alias_(i, name, quoted=True)).from_(exp.Table(this=rows))
+
     def add_units(self, naive, n, unit):
-        return self.fn("DATEADD", self.var(unit.upper()), self.lit(n), naive)
+        return self.fn("DATEADD", self.var(unit.upper()), self.count_arg(n), naive)
 
     def extract(self, field, naive):
         fns = {"year": "YEAR", "quarter": "QUARTER", "month": "MONTH", "week": "WEEKISO",

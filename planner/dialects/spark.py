@@ -22,6 +22,7 @@ from planner.dialects.base import Dialect
 class Spark(Dialect):
     name = "spark"
     sqlglot = "spark"
+    wide_instants = True  # 'infinity' and years past 9999 are legal values
     approx_distinct = ("hyperloglog++", 0.05)
     notes = {
         "engine": "live engine (local mode and a Spark Connect server)",
@@ -43,12 +44,12 @@ class Spark(Dialect):
     def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
         utc = value.astimezone(dt.timezone.utc)
         if kind == "date":
-            return self.cast(self.lit(utc.date().isoformat()), "DATE")
+            return self.cast(self.lit(value.date().isoformat()), "DATE")
         # an explicit offset: the same instant whatever the session time zone
-        return self.cast(self.lit(utc.strftime("%Y-%m-%d %H:%M:%S.%f") + "+00:00"), "TIMESTAMP")
+        return self.cast(self.lit(self.wall_text(utc, True) + "+00:00"), "TIMESTAMP")
 
     def local_literal(self, value: dt.datetime) -> exp.Expression:
-        return self.cast(self.lit(value.strftime("%Y-%m-%d %H:%M:%S") + "+00:00"), "TIMESTAMP")
+        return self.cast(self.lit(self.wall_text(value) + "+00:00"), "TIMESTAMP")
 
     def to_local(self, e, kind, tz):
         inst = self._ts(e, kind)
@@ -66,11 +67,20 @@ class Spark(Dialect):
 
     def add_units(self, naive, n, unit):
         if unit == "quarter":
-            n, unit = 3 * n, "month"
+            n, unit = self.times(n, 3), "month"
         if unit == "week":
-            n, unit = 7 * n, "day"
+            n, unit = self.times(n, 7), "day"
+        if isinstance(n, exp.Expression):  # make_interval(years, months, weeks, days)
+            zero = self.lit(0)
+            parts = {"year": [n], "month": [zero, n], "day": [zero, zero.copy(), zero.copy(), n]}
+            return exp.Add(this=naive, expression=self.fn("make_interval", *parts[unit]))
         return exp.Add(this=naive, expression=exp.Interval(this=self.lit(str(n)),
                                                            unit=self.var(unit.upper())))
+
+    def int_series(self, n, name):
+        # range(n): the table-valued function of the integers 0 .. n-1 (column "id")
+        return exp.select(exp.alias_(self.column("id"), name, quoted=True)).from_(
+            exp.Table(this=self.fn("range", self.lit(n))))
 
     def extract(self, field, naive):
         fns = {"year": "year", "quarter": "quarter", "month": "month", "week": "weekofyear",

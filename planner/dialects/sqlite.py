@@ -6,8 +6,11 @@ Storage convention for timestamps (SQLite has no timestamp type): a column decla
 ``YYYY-MM-DD HH:MM:SS.SSS`` (SQLite's own ``strftime('%Y-%m-%d %H:%M:%f')``: always three
 fraction digits); a ``DATE`` column holds ``YYYY-MM-DD``. Filters compare that text with
 literals written in the same fixed-width form, so the comparison is exact (and can use an
-index); values stored in another form would compare wrongly. Results come back as text and
-the service types them from the plan.
+index); values stored in another form would compare wrongly in filters. Keys never group
+them wrongly: a cell that breaks the convention (text in a REAL/INTEGER column, an integer or
+text SQLite's date functions cannot read in a TIMESTAMP/DATE column) is NULL for bins and
+time keys (``number_cell``, ``instant_range``) and reads as NULL in results. Results come
+back as text and the service types them from the plan.
 
 SQLite has no time zone database: only UTC is accepted (``tz`` other than UTC -> 422). It has
 no percentile or standard deviation aggregates: median, quantile, stddev/variance and the
@@ -42,6 +45,19 @@ class SQLite(Dialect):
     def double(self, e: exp.Expression) -> exp.Expression:
         return exp.Cast(this=e, to=exp.DataType.build("DOUBLE"))
 
+    def instant_range(self, e: exp.Expression, kind: str) -> exp.Expression | None:
+        # a cell outside the storage convention (not text SQLite's date functions read:
+        # 'garbage', an integer) is NULL for every time key
+        check = self.fn("date" if kind == "date" else "datetime", e)
+        return exp.and_(exp.EQ(this=self.fn("typeof", e.copy()), expression=self.lit("text")),
+                        exp.Not(this=exp.Is(this=check, expression=exp.Null())))
+
+    def number_cell(self, col: exp.Expression) -> exp.Expression:
+        # a REAL / INTEGER column may hold text ('abc' CASTs to 0.0): such cells are NULL
+        kinds = [self.lit("integer"), self.lit("real")]
+        return exp.Case(ifs=[exp.If(this=exp.In(this=self.fn("typeof", col), expressions=kinds),
+                                    true=col.copy())])
+
     def floor(self, e: exp.Expression) -> exp.Expression:
         # FLOOR needs the optional math functions; CAST truncates toward zero.
         e = self.paren(e)
@@ -52,14 +68,14 @@ class SQLite(Dialect):
     def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
         utc = value.astimezone(dt.timezone.utc)
         if kind == "date":
-            return self.lit(utc.date().isoformat())
+            return self.lit(value.date().isoformat())
         # the storage form (3 fraction digits); a sub-millisecond instant keeps 6 digits,
         # which still orders correctly against the 3-digit stored text
         frac = f"{utc.microsecond:06d}"
-        return self.lit(utc.strftime("%Y-%m-%d %H:%M:%S.") + (frac[:3] if frac.endswith("000") else frac))
+        return self.lit((self.wall_text(utc) + ".") + (frac[:3] if frac.endswith("000") else frac))
 
     def local_literal(self, value: dt.datetime) -> exp.Expression:
-        return self.lit(value.strftime("%Y-%m-%d %H:%M:%S"))
+        return self.lit(self.wall_text(value))
 
     def _f(self, fmt: str, e: exp.Expression, *mods: str) -> exp.Expression:
         return self.fn("strftime", self.lit(fmt), e, *[self.lit(m) for m in mods])
@@ -98,9 +114,13 @@ class SQLite(Dialect):
 
     def add_units(self, naive, n, unit):
         if unit == "quarter":
-            n, unit = 3 * n, "month"
+            n, unit = self.times(n, 3), "month"
         if unit == "week":
-            n, unit = 7 * n, "day"
+            n, unit = self.times(n, 7), "day"
+        if isinstance(n, exp.Expression):  # the modifier '+<n> <unit>s' built in SQL
+            mod = exp.DPipe(this=exp.DPipe(this=self.lit("+"), expression=self.cast(n, "TEXT")),
+                            expression=self.lit(f" {unit}s"))
+            return self.fn("strftime", self.lit("%Y-%m-%d %H:%M:%S"), naive, mod)
         return self._f("%Y-%m-%d %H:%M:%S", naive, f"{n:+d} {unit}s")
 
     def extract(self, field, naive):

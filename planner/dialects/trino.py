@@ -53,7 +53,7 @@ class Trino(Dialect):
         return self.fn("date_trunc", self.lit(unit), naive)
 
     def add_units(self, naive, n, unit):
-        return self.fn("date_add", self.lit(unit), self.lit(n), naive)
+        return self.fn("date_add", self.lit(unit), self.count_arg(n), naive)
 
     def extract(self, field, naive):
         fns = {"year": "year", "quarter": "quarter", "month": "month", "week": "week",

@@ -43,14 +43,14 @@ class TSQL(Dialect):
     def timestamp_literal(self, value: dt.datetime, kind: str) -> exp.Expression:
         utc = value.astimezone(dt.timezone.utc)
         if kind == "date":
-            return self.cast(self.lit(utc.date().isoformat()), "DATE")
-        text = utc.strftime("%Y-%m-%d %H:%M:%S.%f")
+            return self.cast(self.lit(value.date().isoformat()), "DATE")
+        text = self.wall_text(utc, True)
         if kind == "timestamptz":
             return self.cast(self.lit(text + " +00:00"), "DATETIMEOFFSET")
         return self.cast(self.lit(text), "DATETIME2")
 
     def local_literal(self, value: dt.datetime) -> exp.Expression:
-        return self.cast(self.lit(value.strftime("%Y-%m-%d %H:%M:%S")), "DATETIME2")
+        return self.cast(self.lit(self.wall_text(value)), "DATETIME2")
 
     def to_local(self, e, kind, tz):
         if kind == "timestamptz":  # the UTC wall clock of a DATETIMEOFFSET
@@ -63,8 +63,13 @@ class TSQL(Dialect):
     def trunc(self, unit, naive):
         return self.fn("DATETRUNC", self.var("iso_week" if unit == "week" else unit), naive)
 
+    def int_series(self, n, name):
+        # GENERATE_SERIES (SQL Server 2022): column "value"
+        return exp.select(exp.alias_(self.column("value"), name, quoted=True)).from_(
+            exp.Table(this=self.fn("GENERATE_SERIES", self.lit(0), self.lit(max(n - 1, 0)))))
+
     def add_units(self, naive, n, unit):
-        return self.fn("DATEADD", self.var(unit), self.lit(n), naive)
+        return self.fn("DATEADD", self.var(unit), self.count_arg(n), naive)
 
     def _weekday0(self, naive, monday_first: bool) -> exp.Expression:
         """0-based day of week independent of SET DATEFIRST."""

@@ -1,0 +1,302 @@
+"""Legal data values that have no place in a bin (issue 10.8): DOUBLE inf / -inf / NaN and
+timestamps outside years 1..9999 ('infinity', '-infinity', year 12000).
+
+Convention (README "Bins"): such a value is treated like NULL by every key -- it lands in the
+NULL bin (bin keys null), never widens a layout read from the data, and is never counted as
+outside explicit limits. Outside references: numpy.histogram_bin_edges / numpy.histogram on
+the finite values (numpy refuses a non-finite range) and pandas.cut, which maps inf and NaN
+to NaN (the NULL bin). Engines: DuckDB, PostgreSQL, SQLite (inf as REAL 9e999; SQLite stores
+NaN as NULL), MariaDB (no inf or NaN: finite values and NULL only), ClickHouse through chdb
+(in a subprocess: chdb allows one data folder per process).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import math
+import os
+import sqlite3
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pytest
+
+from planner.model import ChartRequest
+
+UTC = dt.timezone.utc
+FINITE = [round((i * 7.31) % 53.0 - 3.0, 3) for i in range(240)]
+WORKER = os.environ.get("PYTEST_XDIST_WORKER", "main")
+PG_DSN = "postgresql://postgres@127.0.0.1:5432/test"
+MYSQL_DSN = "mysql://root@127.0.0.1:3306/test"
+TIMES = [dt.datetime(2026, 1, 1, tzinfo=UTC) + dt.timedelta(hours=37 * i) for i in range(120)]
+
+
+def values(engine: str) -> list:
+    extra = {"mysql": [None, None], "sqlite": [math.inf, -math.inf, None, None]}.get(
+        engine, [math.inf, -math.inf, math.nan, None])
+    return FINITE + extra
+
+
+def _load_duckdb(root: Path) -> dict:
+    path = root / "legal.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute("CREATE TABLE t (v DOUBLE, ts TIMESTAMPTZ)")
+    con.executemany("INSERT INTO t VALUES (?, ?)", [(v, None) for v in values("duckdb")])
+    con.executemany("INSERT INTO t VALUES (NULL, ?)", [(t,) for t in TIMES])
+    con.execute("INSERT INTO t VALUES (NULL, 'infinity'), (NULL, '-infinity'), "
+                "(NULL, '12000-01-01 00:00:00+00'), (NULL, NULL)")
+    con.close()
+    return {"engine": "duckdb", "path": str(path), "table": "t"}
+
+
+def _load_postgres() -> dict:
+    import psycopg
+
+    schema = f"sluice_legal_{WORKER}"
+    with psycopg.connect(PG_DSN, autocommit=True) as conn:
+        conn.execute(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE')
+        conn.execute(f'CREATE SCHEMA "{schema}"')
+        conn.execute(f'CREATE TABLE "{schema}".t (v double precision, ts timestamptz)')
+        with conn.cursor() as cur:
+            cur.executemany(f'INSERT INTO "{schema}".t VALUES (%s, NULL)', [(v,) for v in values("postgres")])
+            cur.executemany(f'INSERT INTO "{schema}".t VALUES (NULL, %s)', [(t,) for t in TIMES])
+        conn.execute(f"""INSERT INTO "{schema}".t VALUES (NULL, 'infinity'), (NULL, '-infinity'),
+                         (NULL, '12000-01-01 00:00:00+00'), (NULL, NULL)""")
+    return {"engine": "postgres", "dsn": PG_DSN, "table": f"{schema}.t"}
+
+
+def _load_sqlite(root: Path) -> dict:
+    path = root / "legal.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE t (v REAL, ts TIMESTAMP)")
+    conn.executemany("INSERT INTO t VALUES (?, NULL)", [(v,) for v in values("sqlite")])
+    conn.executemany("INSERT INTO t VALUES (NULL, ?)",
+                     [(t.strftime("%Y-%m-%d %H:%M:%S.000"),) for t in TIMES] + [(None,)])
+    conn.commit()
+    conn.close()
+    return {"engine": "sqlite", "path": str(path), "table": "t"}
+
+
+def _load_mysql() -> dict:
+    import pymysql
+
+    name = f"sluice_legal_{WORKER}"
+    conn = pymysql.connect(host="127.0.0.1", user="root", password="", database="test", autocommit=True)
+    with conn.cursor() as cur:
+        cur.execute(f"DROP TABLE IF EXISTS `{name}`")
+        cur.execute(f"CREATE TABLE `{name}` (v DOUBLE, ts DATETIME(3))")
+        cur.executemany(f"INSERT INTO `{name}` VALUES (%s, NULL)", [(v,) for v in values("mysql")])
+        cur.executemany(f"INSERT INTO `{name}` VALUES (NULL, %s)",
+                        [(t.replace(tzinfo=None),) for t in TIMES] + [(None,)])
+    conn.close()
+    return {"engine": "mysql", "dsn": MYSQL_DSN, "table": f"test.{name}"}
+
+
+@pytest.fixture(scope="module")
+def service(tmp_path_factory):
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    root = tmp_path_factory.mktemp("legal")
+    sources = {"duckdb": _load_duckdb(root), "postgres": _load_postgres(),
+               "sqlite": _load_sqlite(root), "mysql": _load_mysql()}
+    catalog = Catalog(parse_settings({"sources": sources}, "<legal data>"))
+    yield ChartService(catalog)
+    catalog.close()
+
+
+def run(service, engine: str, body: dict) -> dict:
+    out = service.to_json(service.run(ChartRequest.model_validate({"source": engine, **body})))
+    names = [c["name"] for c in out["columns"]]
+    n = len(out["data"][names[0]])
+    out["rows"] = [{k: out["data"][k][i] for k in names} for i in range(n)]
+    return out
+
+
+def column_v(engine: str) -> list:
+    """The whole v column: the values, then NULL on every time row."""
+    time_rows = len(TIMES) + (4 if engine in ("duckdb", "postgres") else 1)
+    return values(engine) + [None] * time_rows
+
+
+def check_rule(out: dict, engine: str) -> None:
+    finite = np.array(FINITE)
+    edges = np.histogram_bin_edges(finite, bins="sturges")  # reference: numpy on the finite values
+    counts, _ = np.histogram(finite, bins=edges)  # reference: numpy.histogram
+    b = out["bins"]["x"]
+    assert b["count"] == len(edges) - 1 and math.isclose(b["start"], edges[0]) \
+        and math.isclose(b["stop"], edges[-1]), (engine, b)
+    got = [r["count"] for r in out["rows"] if r["x_lo"] is not None]
+    assert got == [int(c) for c in counts if c], engine
+    nulls = [r["count"] for r in out["rows"] if r["x_lo"] is None]
+    cut = pd.cut(pd.Series(column_v(engine), dtype=float), edges, include_lowest=True)
+    assert nulls == [int(cut.isna().sum())], engine  # reference: pandas.cut (inf / NaN -> NaN)
+
+
+def check_limits(out: dict, engine: str) -> None:
+    finite = np.array(FINITE)
+    assert out["stats"]["outside_limits"]["x"] == int(((finite < 0) | (finite > 40)).sum())  # reference: numpy mask
+    inside = [r for r in out["rows"] if r["x_lo"] is not None]
+    assert len(inside) == 8 and all(0 <= r["x_lo"] and r["x_hi"] <= 40 for r in inside)
+    assert sum(r["count"] for r in inside) == int(((finite >= 0) & (finite <= 40)).sum())  # reference: numpy mask
+
+
+def check_times(out: dict, engine: str) -> None:
+    in_range = [r for r in out["rows"] if r["ts_lo"] is not None]
+    assert sum(r["count"] for r in in_range) == len(TIMES)  # every instant of years 1..9999 is binned
+    b = out["bins"]["x"]
+    assert dt.datetime.fromisoformat(b["start"]) <= TIMES[0] < TIMES[-1] <= dt.datetime.fromisoformat(b["stop"])
+    nulls = [r["count"] for r in out["rows"] if r["ts_lo"] is None]
+    assert nulls == [len(values(engine)) + (4 if engine in ("duckdb", "postgres") else 1)]
+
+
+BODIES = {
+    "rule": ({"channels": {"x": {"column": "v", "bin": {"rule": "sturges"}}, "y": {"agg": "count"}}}, check_rule),
+    "limits": ({"channels": {"x": {"column": "v", "bin": {"bins": 8, "limits": [0, 40]}}, "y": {"agg": "count"}},
+                "empty_bins": "zero"}, check_limits),
+    "times": ({"channels": {"x": {"column": "ts", "bin": {"bins": 12}, "name": "ts"},
+                            "y": {"agg": "count"}}}, check_times),
+}
+
+
+@pytest.mark.parametrize("case", list(BODIES))
+@pytest.mark.parametrize("engine", ["duckdb", "postgres", "sqlite", "mysql"])
+def test_non_finite_values_go_to_the_null_bin(service, engine, case):
+    body, check = BODIES[case]
+    check(run(service, engine, body), engine)
+
+
+CLICKHOUSE = textwrap.dedent('''
+    import json, math, sys
+    from chdb import session as chs
+    folder, values = sys.argv[1], json.loads(sys.argv[2])
+    s = chs.Session(folder)
+    s.query("CREATE DATABASE IF NOT EXISTS legal")
+    s.query("CREATE TABLE legal.t (v Nullable(Float64)) ENGINE = MergeTree ORDER BY tuple()")
+    rows = ", ".join("(NULL)" if v is None else f"({v!r})" if isinstance(v, float) else f"({v})"
+                     for v in values)
+    s.query("INSERT INTO legal.t VALUES " + rows.replace("inf", "inf").replace("nan", "nan"))
+    s.close()
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+    from planner.model import ChartRequest
+    cat = Catalog(parse_settings({"sources": {"ch": {"engine": "clickhouse", "path": folder,
+                                                      "table": "legal.t"}}}, "<ch>"))
+    svc = ChartService(cat)
+    out = {}
+    for name, body in json.loads(sys.argv[3]).items():
+        out[name] = svc.to_json(svc.run(ChartRequest.model_validate({"source": "ch", **body})))
+    print(json.dumps(out))
+''')
+
+
+def test_clickhouse_non_finite_values_go_to_the_null_bin(tmp_path):
+    vals = [v if v is None or math.isfinite(v) else ("inf" if v > 0 else "-inf") if not math.isnan(v)
+            else "nan" for v in values("clickhouse")]
+    bodies = {k: b for k, (b, _) in BODIES.items() if k != "times"}
+    proc = subprocess.run([sys.executable, "-c", CLICKHOUSE, str(tmp_path / "ch"), json.dumps(vals),
+                           json.dumps(bodies)], capture_output=True, text=True, timeout=300,
+                          env={**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])})
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    out = json.loads(proc.stdout.strip().splitlines()[-1])
+    for name, (_, check) in BODIES.items():
+        if name == "times":
+            continue
+        o = out[name]
+        cols = [c["name"] for c in o["columns"]]
+        o["rows"] = [{k: o["data"][k][i] for k in cols} for i in range(len(o["data"][cols[0]]))]
+        if name == "rule":  # no time rows in this table
+            finite = np.array(FINITE)
+            edges = np.histogram_bin_edges(finite, bins="sturges")  # reference: numpy
+            counts, _ = np.histogram(finite, bins=edges)
+            assert [r["count"] for r in o["rows"] if r["x_lo"] is not None] == [int(c) for c in counts if c]
+            cut = pd.cut(pd.Series(values("clickhouse"), dtype=float), edges, include_lowest=True)
+            assert [r["count"] for r in o["rows"] if r["x_lo"] is None] == [int(cut.isna().sum())]  # reference: pandas.cut
+        else:
+            check(o, "clickhouse")
+
+
+def test_ubigint_key_above_int64_is_exact(tmp_path):
+    """A UBIGINT of 2^64 - 1 as a key answers the exact integer (JSON numbers are unbounded,
+    RFC 8259 section 6; Arrow keeps uint64) instead of failing a cast to int64 or double."""
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    path = tmp_path / "u.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute("CREATE TABLE t AS SELECT * FROM (VALUES (18446744073709551615::UBIGINT), "
+                "(18446744073709551615::UBIGINT), (7::UBIGINT), (NULL)) v(u)")
+    con.close()
+    cat = Catalog(parse_settings({"sources": {"u": {"engine": "duckdb", "path": str(path),
+                                                    "table": "t"}}}, "<u>"))
+    try:
+        svc = ChartService(cat)
+        out = run(svc, "u", {"channels": {"x": {"column": "u"}, "y": {"agg": "count"}}})
+    finally:
+        cat.close()
+    assert out["data"]["u"] == [7, 2 ** 64 - 1, None]  # reference: the stored values (DuckDB UBIGINT max)
+    assert out["data"]["count"] == [1, 2, 1]
+    assert out["domains"]["u"] == [7, 2 ** 64 - 1]
+
+
+def test_sqlite_cells_outside_the_storage_convention_are_null(tmp_path):
+    """planner/dialects/sqlite.py documents the storage convention (UTC text timestamps,
+    YYYY-MM-DD dates, numbers as INTEGER / REAL). A cell that breaks it -- text in a REAL
+    column ('abc' would CAST to 0.0), an integer or unreadable text in a TIMESTAMP or DATE
+    column -- reads as NULL: one NULL group, never a 500, never a wrong bin. Reference: the
+    convention applied in Python (datetime.fromisoformat / date.fromisoformat)."""
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    rows = [("2026-01-01 10:00:00.000", 1.5, "2026-01-01"), ("2026-01-02 11:00:00.000", 2.5, "2026-01-02"),
+            (1767225600, "abc", 20260101), ("garbage", 3.0, "2026/01/03"), (None, None, None)]
+    path = tmp_path / "bad.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE t (ts TIMESTAMP, v REAL, d DATE)")
+    conn.executemany("INSERT INTO t VALUES (?, ?, ?)", rows)
+    conn.commit()
+    conn.close()
+    cat = Catalog(parse_settings({"sources": {"bad": {"engine": "sqlite", "path": str(path),
+                                                      "table": "t"}}}, "<bad>"))
+
+    def iso(v):  # reference: the documented convention, read in Python
+        try:
+            return dt.datetime.fromisoformat(v).replace(tzinfo=UTC) if isinstance(v, str) else None
+        except ValueError:
+            return None
+
+    try:
+        svc = ChartService(cat)
+        plain = run(svc, "bad", {"channels": {"x": {"column": "ts"}, "y": {"agg": "count"}}})
+        want = collections_counter([iso(r[0]) for r in rows])
+        got = {None if t is None else dt.datetime.fromisoformat(t): n
+               for t, n in zip(plain["data"]["ts"], plain["data"]["count"])}
+        assert got == want
+        days = run(svc, "bad", {"channels": {"x": {"column": "d", "trunc": "month"}, "y": {"agg": "count"}}})
+        assert days["data"]["count"] == [2, 3]  # 2026-01-01 and 2026-01-02; three NULL-like cells
+        binned = run(svc, "bad", {"channels": {"x": {"column": "v", "bin": {"width": 1, "origin": 0}},
+                                               "y": {"agg": "count"}}})
+        nums = [r[1] for r in rows if isinstance(r[1], float)]
+        edges = np.array([1.0, 2.0, 3.0])  # the origin grid over the data 1.5 .. 3.0 (closed last bin)
+        counts, _ = np.histogram(nums, bins=edges)  # reference: numpy on the REAL cells only
+        assert [r["count"] for r in binned["rows"] if r["x_lo"] is not None] == [int(c) for c in counts if c]
+        assert [r["count"] for r in binned["rows"] if r["x_lo"] is None] == [2]  # 'abc' and NULL
+    finally:
+        cat.close()
+
+
+def collections_counter(items):
+    out: dict = {}
+    for i in items:
+        out[i] = out.get(i, 0) + 1
+    return out
