@@ -30,6 +30,7 @@ import datetime as dt
 import functools
 import json
 import math
+import re
 import sys
 import zoneinfo
 from dataclasses import dataclass, field

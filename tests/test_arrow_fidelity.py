@@ -23,7 +23,6 @@ from __future__ import annotations
 
 import datetime as dt
 import decimal
-import importlib.util
 import json
 import os
 import shutil

@@ -10,7 +10,6 @@ from __future__ import annotations
 import importlib.util
 import shutil
 import subprocess
-import sys
 from pathlib import Path
 
 import pytest
