@@ -108,6 +108,12 @@ PROBLEM_TYPES: dict[str, tuple[str, str, str]] = {
     "bad-name": ("Output name not allowed", "422",
                  "An output `name` starts or ends with white space, holds a control character, "
                  "or (on MariaDB) a character beyond U+FFFF; `pointer` names it."),
+    "out-of-range": ("Value outside the comparable range", "422",
+                     "An instant falls outside years 1 to 9999 in UTC (after applying its "
+                     "offset or the request's `tz`), so no engine can compare it."),
+    "bad-layout": ("Bin layout cannot bin the data", "422",
+                   "The bin width, origin or limits give edges that are not distinct finite "
+                   "numbers (or more than 10,000 bins); `pointer` names the field."),
 }
 
 

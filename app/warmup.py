@@ -26,7 +26,8 @@ log = logging.getLogger("sluice")
 def _requests(source: str, columns: list[Any]) -> list[dict[str, Any]]:
     """Representative chart requests on ``source``'s own columns: a binned histogram with a
     time range and a category filter, a truncated time series with an average, and a
-    width/origin histogram grouped by a category."""
+    width/origin histogram grouped by a category. Every layout has limits, so no extents
+    statement runs at start-up."""
     num = next((c.name for c in columns if c.is_number), None)
     tim = next((c.name for c in columns if c.is_temporal), None)
     cat = next((c.name for c in columns if c.kind == "string"), None)
@@ -42,7 +43,8 @@ def _requests(source: str, columns: list[Any]) -> list[dict[str, Any]]:
                                  "y": {"agg": "count"}}})
         by = {"color": {"column": cat}} if cat is not None else {}
         out.append({"source": source, "where": where[:1],
-                    "channels": {"x": {"column": num, "bin": {"width": 5, "origin": 0}},
+                    "channels": {"x": {"column": num, "bin": {"width": 5, "origin": 0,
+                                                                  "limits": [0, 100]}},
                                  "y": {"agg": "count"}, **by}})
     if tim is not None:
         measure = {"agg": "avg", "column": num} if num is not None else {"agg": "count"}

@@ -272,6 +272,12 @@ export interface components {
             source?: string | null;
             /** Stack */
             stack?: ("sum" | "fraction" | "centered") | null;
+            /**
+             * Tz
+             * @description The request's IANA time zone: the default tz of every temporal key and the zone in which instants without an offset in where, limits and filter_sql are read. A key's own tz overrides it for that key. Default UTC.
+             * @example Europe/Berlin
+             */
+            tz?: string | null;
             /** Where */
             where?: (components["schemas"]["Predicate"] | components["schemas"]["AnyOf"] | components["schemas"]["NotOf"])[];
         };
@@ -284,6 +290,11 @@ export interface components {
             charts: components["schemas"]["BatchChart"][];
             /** Source */
             source: string;
+            /**
+             * Tz
+             * @description The dashboard's IANA time zone: the tz of every chart that does not name its own.
+             */
+            tz?: string | null;
         };
         /**
          * Bin
@@ -585,6 +596,12 @@ export interface components {
             source: string;
             /** Stack */
             stack?: ("sum" | "fraction" | "centered") | null;
+            /**
+             * Tz
+             * @description The request's IANA time zone: the default tz of every temporal key and the zone in which instants without an offset in where, limits and filter_sql are read. A key's own tz overrides it for that key. Default UTC.
+             * @example Europe/Berlin
+             */
+            tz?: string | null;
             /** Where */
             where?: (components["schemas"]["Predicate"] | components["schemas"]["AnyOf"] | components["schemas"]["NotOf"])[];
         };
