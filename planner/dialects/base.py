@@ -73,6 +73,16 @@ class Dialect:
     checked: ClassVar[str] = "live"
     #: Cell text of the capability table for constructs written the target's own way.
     notes: ClassVar[dict[str, str]] = {}
+    #: Exact quantiles (median, quantile, the Freedman-Diaconis rule): "native" -- the
+    #: target's own type 7 percentile aggregate (``quantile``) -- or "window": Hyndman & Fan
+    #: (1996) type 7 built by the planner from ROW_NUMBER() and COUNT() windows per group,
+    #: interpolating between the order statistics floor(h) and floor(h) + 1, h = (n - 1) q
+    #: (planner/compile.py, ``_window_stage``), where the target has no such aggregate.
+    quantile_method: ClassVar[str] = "native"
+    #: Standard deviation / variance: "native" aggregates or "two_pass": the group mean
+    #: first (a window AVG), then the corrected sum of squared deviations (Chan, Golub &
+    #: LeVeque 1983), for targets without them.
+    stddev_method: ClassVar[str] = "native"
 
     # --- rendering ------------------------------------------------------------------
     def render(self, node: exp.Expression) -> str:
@@ -87,6 +97,10 @@ class Dialect:
             return "live engine" if self.checked == "live" else "golden SQL + parse"
         if feature == "quantile" and not self.supports("quantile"):
             return "no (422)"
+        if feature == "quantile" and self.quantile_method == "window":
+            return "built from ROW_NUMBER / COUNT"
+        if feature == "stddev" and self.supports("stddev") and self.stddev_method == "two_pass":
+            return "built: two-pass (window AVG)"
         if feature in self.unsupported:
             return "no (422)" if feature != "tz" else "UTC only (422)"
         if feature == "nulls_order" and "nulls_order" not in self.notes:

@@ -7,7 +7,8 @@
 * Epoch arithmetic with TIMESTAMPDIFF / TIMESTAMPADD in microseconds, independent of the
   session time zone (naive DATETIME values are read as UTC).
 * No exact continuous percentile aggregate (MariaDB's PERCENTILE_CONT is a window function
-  only, MySQL has none): median, quantile and the Freedman–Diaconis rule are refused.
+  only, MySQL has none): median, quantile and the Freedman–Diaconis rule are built from
+  ROW_NUMBER() / COUNT() windows (Hyndman & Fan type 7, ``quantile_method = "window"``).
 * No NULLS FIRST/LAST: emulated with a CASE term.
 * Filters on text (eq, ne, lt.., in, not_in, contains, starts_with) compare bytes (a BINARY
   operand), so they are case- and accent-sensitive like DuckDB whatever the column's
@@ -30,7 +31,7 @@ _EPOCH = "1970-01-01 00:00:00"
 class MySQL(Dialect):
     name = "mysql"
     sqlglot = "mysql"
-    unsupported = frozenset({"median", "quantile"})
+    quantile_method = "window"
     nulls_order_native = False
     approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
     notes = {

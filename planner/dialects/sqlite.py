@@ -10,8 +10,11 @@ index); values stored in another form would compare wrongly. Results come back a
 the service types them from the plan.
 
 SQLite has no time zone database: only UTC is accepted (``tz`` other than UTC -> 422). It has
-no percentile or standard deviation aggregates: median, quantile, stddev/variance and the
-Scott / Freedman–Diaconis rules are refused. approx_count_distinct is exact.
+no percentile or standard deviation aggregates: median, quantile and the Freedman–Diaconis
+rule are built from ROW_NUMBER() / COUNT() windows (Hyndman & Fan type 7), stddev / variance
+and Scott's rule in two passes (a window mean, then the squared deviations); the standard
+deviations need SQRT (SQLite's math functions, built in by default since 3.35).
+approx_count_distinct is exact.
 """
 
 from __future__ import annotations
@@ -26,7 +29,9 @@ from planner.dialects.base import Dialect
 class SQLite(Dialect):
     name = "sqlite"
     sqlglot = "sqlite"
-    unsupported = frozenset({"median", "quantile", "stddev", "tz"})
+    unsupported = frozenset({"tz"})
+    quantile_method = "window"
+    stddev_method = "two_pass"
     approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
     notes = {
         "approx_count_distinct": "exact COUNT(DISTINCT)",

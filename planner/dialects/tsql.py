@@ -3,7 +3,7 @@
 SQL Server names time zones with Windows names, not IANA names: only UTC is accepted.
 DATETRUNC (2022) with iso_week for the ISO week; day of week built with @@DATEFIRST so it
 does not depend on the session's SET DATEFIRST. PERCENTILE_CONT is a window function only:
-median / quantile are refused. No NULLS FIRST/LAST: emulated with a CASE term. String
+median / quantile are built from ROW_NUMBER() / COUNT() windows (type 7). No NULLS FIRST/LAST: emulated with a CASE term. String
 matches use a binary collation (case- and accent-sensitive like DuckDB) and N'' literals.
 """
 
@@ -22,7 +22,8 @@ class TSQL(Dialect):
     name = "tsql"
     sqlglot = "tsql"
     checked = "golden"
-    unsupported = frozenset({"median", "quantile", "tz"})
+    unsupported = frozenset({"tz"})
+    quantile_method = "window"
     nulls_order_native = False
     approx_distinct = ("hyperloglog", 0.02)
     notes = {
