@@ -613,8 +613,7 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
     src: exp.Expression = exp.alias_(d.table(plan.schema.table), "s", quoted=True)
     windows = _window_columns(d, [], built)
     if windows:  # the source rows with their window columns, still called "s"
-        inner = exp.select(exp.Column(this=exp.Star(), table=exp.to_identifier("s", quoted=True)),
-                           *windows).from_(src)
+        inner = exp.select(*_columns_of(*[v for v, _ in built.values()]), *windows).from_(src)
         if plan.where is not None:
             inner = inner.where(plan.where.copy())
         return exp.select(*sel).from_(exp.alias_(exp.Subquery(this=inner), "s", quoted=True))
@@ -945,8 +944,8 @@ def _top_cte(plan: Plan, k: Key) -> exp.Select:
         windows = _window_columns(d, [ref.copy()], {f"{INTERNAL}w": (arg, m.spec.agg)}
                                   if arg is not None else {})
         if windows:  # order statistics / group means per key value first (one pass)
-            inner = (exp.select(exp.Column(this=exp.Star(), table=exp.to_identifier("s", quoted=True)),
-                                *windows).from_(src).where(exp.and_(*where)))
+            inner = (exp.select(*_columns_of(ref, arg), *windows).from_(src)
+                     .where(exp.and_(*where)))
             src, where = exp.alias_(exp.Subquery(this=inner), "s", quoted=True), []
         score = _measure_agg(d, m.spec.agg, arg, m.spec.q, f"{INTERNAL}w")
     else:
@@ -1001,16 +1000,29 @@ def _window_columns(d: Dialect, partition: list[exp.Expression],
             continue
         part = [p.copy() for p in partition] or None
         if need == "quantile":
-            rn = exp.Window(this=exp.RowNumber(), partition_by=part,
-                            order=exp.Order(expressions=d.order(_double(d, arg), False, False)))
+            order = exp.Order(expressions=d.order(_double(d, arg), False, False))
+            rn = exp.Window(this=exp.RowNumber(), partition_by=part, order=order)
             out.append(exp.alias_(rn, f"{prefix}_r", quoted=True))
+            # the same window (one sort), whole partition as the frame
+            whole = exp.WindowSpec(kind="ROWS", start="UNBOUNDED", start_side="PRECEDING",
+                                   end="UNBOUNDED", end_side="FOLLOWING")
             out.append(exp.alias_(exp.Window(this=exp.Count(this=arg.copy()),
-                                             partition_by=[p.copy() for p in partition] or None),
+                                             partition_by=[p.copy() for p in partition] or None,
+                                             order=order.copy(), spec=whole),
                                   f"{prefix}_c", quoted=True))
         else:
             out.append(exp.alias_(exp.Window(this=exp.Avg(this=_double(d, arg)), partition_by=part),
                                   f"{prefix}_mu", quoted=True))
     return out
+
+
+def _columns_of(*exprs: exp.Expression | None) -> list[exp.Column]:
+    """The distinct column references in ``exprs`` (what a narrowed sub-query must keep)."""
+    seen: dict[str, exp.Column] = {}
+    for e in exprs:
+        for c in (e.find_all(exp.Column) if e is not None else ()):
+            seen.setdefault(c.sql(), c.copy())
+    return list(seen.values())
 
 
 def _double(d: Dialect, e: exp.Expression) -> exp.Expression:
