@@ -94,8 +94,24 @@ def numacc_table(values: list[float]) -> pa.Table:
     return pa.table({"y": pa.array(values, pa.float64())})
 
 
+TEXTS = ["alpha", "Alpha", "ALPHA", "a%b", "a_b", "a\\b", "a\\xb", "ab", "aXb", "axb", "a!b",
+         "Zürich", "zürich", "ZÜRICH", "東京", "東", "", "100%", "50% off", "under_score",
+         "a[b]", "a*b", "a?b", "[x]", "Ωmega", "ωmega", "a b", "a ", " a", None]
+ROUND_X = [87 / 60, -87 / 60, 1.45, 0.125, -0.125, 0.375, 2.5, -2.5, 0.5, -0.5, 1.5,
+           0.49999999999999994, -0.49999999999999994, 1.005, 2.675, 15.0, 25.0, -25.0, 1234.5,
+           4503599627370497.0, 1e300, -1e300, 0.0, 7.0, 1e-300, None]
+
+
+def texts_table() -> pa.Table:
+    n = max(len(TEXTS), len(ROUND_X))
+    return pa.table({"id": pa.array(range(n), pa.int64()),
+                     "s": pa.array([TEXTS[i] if i < len(TEXTS) else None for i in range(n)], pa.string()),
+                     "x": pa.array([ROUND_X[i] if i < len(ROUND_X) else None for i in range(n)],
+                                   pa.float64())})
+
+
 def tables() -> dict[str, pa.Table]:
-    out = {"stats": stats_table(), "wide": wide_table()}
+    out = {"stats": stats_table(), "wide": wide_table(), "texts": texts_table()}
     for name, values in refdata.numacc_sets().items():
         out[name] = numacc_table(values)
     return out
@@ -364,7 +380,129 @@ def check_top_high_cardinality(service, engine: str, data) -> dict[str, float]:
     return timings
 
 
+# --- 9.8: filter_sql means one thing everywhere -------------------------------------------
+
+def ref_round(x: float, n: int = 0) -> float:
+    """planner/filter_sql.py's round: y = x * 10^n in doubles, nearest whole number with ties
+    away from zero, taken on y's exact binary value (decimal.Decimal(y) quantized
+    ROUND_HALF_UP -- Python's decimal module rounds half away from zero), scaled back."""
+    from decimal import ROUND_HALF_UP, Decimal
+
+    if n >= 0 and abs(x) >= 2.0 ** 52:
+        return x
+    y = x * 10.0 ** n if n >= 0 else x / 10.0 ** -n
+    r = float(Decimal(y).to_integral_value(rounding=ROUND_HALF_UP))
+    return r / 10.0 ** n if n >= 0 else r * 10.0 ** -n
+
+
+def ref_like(value: str, pattern: str, escape: str | None = None, fold: bool = False) -> bool:
+    """LIKE by the SQL standard's definition, written out here (no fnmatch / re): the value
+    matches when it splits into consecutive substrings, one per pattern unit, where ``%``
+    takes any substring, ``_`` exactly one character and every other unit (an escaped
+    character included) the same single character. ILIKE: ASCII letters compared lower-cased."""
+    units: list[str | None] = []  # None = %, "" = _, else the literal character
+    i = 0
+    while i < len(pattern):
+        ch = pattern[i]
+        if escape is not None and ch == escape:
+            units.append(pattern[i + 1])
+            i += 2
+            continue
+        units.append(None if ch == "%" else "" if ch == "_" else ch)
+        i += 1
+
+    def low(c: str) -> str:
+        return chr(ord(c) + 32) if fold and "A" <= c <= "Z" else c
+
+    # match[j] = the value's prefix of length j matches the units so far
+    match = [True] + [False] * len(value)
+    for u in units:
+        nxt = [False] * (len(value) + 1)
+        for j in range(len(value) + 1):
+            if u is None:
+                nxt[j] = any(match[: j + 1])
+            elif j > 0 and match[j - 1] and (u == "" or low(value[j - 1]) == low(u)):
+                nxt[j] = True
+        match = nxt
+    return match[len(value)]
+
+
+def _sql_float(v: float) -> str:
+    return repr(v)
+
+
+ROUND_CASES = [(n, op) for n in (0, 1, 2, -1) for op in ("=", ">", "<")]
+# (filter_sql, predicate over a row's s): the Python reference of every case
+LIKE_CASES = [
+    ("s LIKE 'a%'", lambda s: ref_like(s, "a%")),
+    ("s LIKE 'A%'", lambda s: ref_like(s, "A%")),
+    ("s ILIKE 'a%'", lambda s: ref_like(s, "a%", fold=True)),
+    ("s NOT LIKE 'a%'", lambda s: not ref_like(s, "a%")),
+    ("s NOT ILIKE '%A%'", lambda s: not ref_like(s, "%A%", fold=True)),
+    ("NOT (s LIKE 'a%')", lambda s: not ref_like(s, "a%")),
+    ("s LIKE 'a_b'", lambda s: ref_like(s, "a_b")),
+    ("s LIKE '__'", lambda s: ref_like(s, "__")),
+    ("s LIKE '_'", lambda s: ref_like(s, "_")),
+    ("s LIKE 'z_rich'", lambda s: ref_like(s, "z_rich")),
+    ("s ILIKE 'zürich'", lambda s: ref_like(s, "zürich", fold=True)),
+    ("s ILIKE 'ZÜRICH'", lambda s: ref_like(s, "ZÜRICH", fold=True)),
+    ("s ILIKE 'ωMEGA'", lambda s: ref_like(s, "ωMEGA", fold=True)),
+    ("s LIKE 'a\\b'", lambda s: ref_like(s, "a\\b")),
+    ("s LIKE 'a\\_b'", lambda s: ref_like(s, "a\\_b")),
+    ("s LIKE '%\\%'", lambda s: ref_like(s, "%\\%")),
+    ("s LIKE 'a!%b' ESCAPE '!'", lambda s: ref_like(s, "a!%b", "!")),
+    ("s LIKE '%!_%' ESCAPE '!'", lambda s: ref_like(s, "%!_%", "!")),
+    ("s LIKE 'a!!b' ESCAPE '!'", lambda s: ref_like(s, "a!!b", "!")),
+    ("s NOT LIKE '%!%%' ESCAPE '!'", lambda s: not ref_like(s, "%!%%", "!")),
+    ("s LIKE '100#%' ESCAPE '#'", lambda s: ref_like(s, "100#%", "#")),
+    ("s LIKE 'a\\%' ESCAPE '\\'", lambda s: ref_like(s, "a\\%", "\\")),
+    ("s ILIKE 'A\\_B' ESCAPE '\\'", lambda s: ref_like(s, "A\\_B", "\\", fold=True)),
+    ("s LIKE 'a*b'", lambda s: ref_like(s, "a*b")),
+    ("s LIKE 'a?b'", lambda s: ref_like(s, "a?b")),
+    ("s LIKE 'a[b]'", lambda s: ref_like(s, "a[b]")),
+    ("s LIKE '[x]'", lambda s: ref_like(s, "[x]")),
+    ("s LIKE '%'", lambda s: ref_like(s, "%")),
+    ("s LIKE ''", lambda s: ref_like(s, "")),
+    ("s LIKE 'a '", lambda s: ref_like(s, "a ")),
+    ("s LIKE 'a'", lambda s: ref_like(s, "a")),
+    ("s LIKE '%%b'", lambda s: ref_like(s, "%%b")),
+    ("s LIKE '東%'", lambda s: ref_like(s, "東%")),
+]
+
+
+def matched_ids(service, engine: str, text: str) -> set[int]:
+    out = run(service, engine, "texts", {"channels": {"x": {"column": "id"}, "y": {"agg": "count"}},
+                                         "filter_sql": text, "limit": 1000})
+    return set(out["data"]["id"])
+
+
+def check_filter_sql(service, engine: str, data) -> None:
+    t = data["texts"]
+    ids, ss, xs = (t.column(c).to_pylist() for c in ("id", "s", "x"))
+    bad = []
+    for text, pred in LIKE_CASES:
+        # SQL: NULL LIKE p is NULL, a row not kept (NOT NULL too)
+        want = {i for i, s in zip(ids, ss) if s is not None and pred(s)}
+        got = matched_ids(service, engine, text)
+        if got != want:
+            bad.append(f"{text}: extra {sorted(ss[i] for i in got - want)}, "
+                       f"missing {sorted(ss[i] for i in want - got)}")
+    for n, op in ROUND_CASES:
+        for x0 in (87 / 60, 1.5, 0.13, -0.13, 2.5, 20.0, -30.0, 0.0, 1.0):
+            target = ref_round(x0, n)
+            call = f"round(x, {n})" if n else "round(x)"
+            text = f"{call} {op} {_sql_float(target)}"
+            cmp = {"=": lambda a, b: a == b, ">": lambda a, b: a > b, "<": lambda a, b: a < b}[op]
+            want = {i for i, x in zip(ids, xs) if x is not None and cmp(ref_round(x, n), target)}
+            got = matched_ids(service, engine, text)
+            if got != want:
+                bad.append(f"{text}: extra {sorted(xs[i] for i in got - want)}, "
+                           f"missing {sorted(xs[i] for i in want - got)}")
+    assert not bad, f"{engine}: {len(bad)} filter_sql answers differ from the reference:\n" + "\n".join(bad)
+
+
 def check_all(service, engine: str, data) -> dict[str, float]:
+    check_filter_sql(service, engine, data)
     check_quantiles(service, engine, data)
     check_deviations(service, engine, data)
     check_nist(service, engine)
@@ -396,3 +534,23 @@ def test_fd_and_scott_rules_match_numpy(sem, sem_data, engine):
 def test_top_on_high_cardinality_key(sem, sem_data, engine):
     timings = check_top_high_cardinality(sem, engine, sem_data)
     print(f"top on 4000 keys, {engine}: " + ", ".join(f"{a} {s:.2f} s" for a, s in timings.items()))
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_filter_sql_round_and_like_match_the_reference(sem, sem_data, engine):
+    check_filter_sql(sem, engine, sem_data)
+
+
+def test_reference_round_ties():
+    """The reference itself on the issue's examples (values as doubles)."""
+    assert ref_round(87 / 60, 1) == 1.5  # 87/60 is 1.4500000000000000178 as a double
+    assert ref_round(0.125, 2) == 0.13 and ref_round(-0.125, 2) == -0.13  # exact ties
+    assert ref_round(2.5) == 3.0 and ref_round(-2.5) == -3.0
+    assert ref_round(0.49999999999999994) == 0.0  # below one half: down
+    assert ref_round(25.0, -1) == 30.0
+
+
+def test_spark_filter_quantiles_deviations_top(sem, sem_data):
+    """Every check above on Spark (pyspark local[2]), in one test: one JVM."""
+    timings = check_all(sem, "spark", sem_data)
+    print("top on 4000 keys, spark: " + ", ".join(f"{a} {s:.2f} s" for a, s in timings.items()))

@@ -79,6 +79,12 @@ class BigQuery(Dialect):
     def starts_with(self, col, s):
         return self.fn("STARTS_WITH", col, self.string(s))
 
+    def like(self, e, parts, fold):
+        # no ESCAPE clause: the backslash escapes % _ and itself
+        if fold:
+            e = self.ascii_lower(e)
+        return exp.Like(this=e, expression=self.string(self.like_text(parts, "\\", "%_")))
+
     def agg(self, name, arg, q):
         if name == "approx_count_distinct":
             return self.fn("APPROX_COUNT_DISTINCT", arg)

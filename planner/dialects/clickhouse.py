@@ -110,6 +110,12 @@ class ClickHouse(Dialect):
     def starts_with(self, col, s):
         return self.fn("startsWith", col, self.string(s))
 
+    def like(self, e, parts, fold):
+        # no ESCAPE clause: the backslash escapes % _ and itself; lower() folds ASCII only
+        if fold:
+            e = self.fn("lower", e)
+        return exp.Like(this=e, expression=self.string(self.like_text(parts, "\\", "%_")))
+
     def quantile(self, arg, q):
         return exp.ParameterizedAgg(this="quantileExactInclusive", expressions=[self.number(q)],
                                     params=[self.double(arg)])

@@ -128,6 +128,20 @@ class MySQL(Dialect):
                            "SIGNED")
         return self.fn("TIMESTAMPADD", self.var("MICROSECOND"), micros, self._dt(self.lit(_EPOCH)))
 
+    def _bin_text(self, e: exp.Expression) -> exp.Expression:
+        """``CONVERT(e USING utf8mb4) COLLATE utf8mb4_bin``: compared by characters, case-
+        and accent-sensitive, whatever the column's character set and collation."""
+        charset = exp.DataType(this=exp.DataType.Type.CHARACTER_SET, kind=exp.Var(this="utf8mb4"))
+        return exp.Collate(this=exp.Cast(this=e, to=charset), expression=exp.Var(this="utf8mb4_bin"))
+
+    def like(self, e, parts, fold):
+        e = self._bin_text(e)
+        if fold:
+            e = self.replace_ascii_lower(e)
+        esc = self.like_escape
+        return exp.Escape(this=exp.Like(this=e, expression=self.string(self.like_text(parts, esc, "%_"))),
+                          expression=self.string(esc))
+
     def contains(self, col: exp.Expression, s: str) -> exp.Expression:
         return exp.GT(this=self.fn("INSTR", self.cast(col, "BINARY"), self.cast(self.string(s), "BINARY")),
                       expression=self.lit(0))

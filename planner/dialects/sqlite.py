@@ -141,5 +141,20 @@ class SQLite(Dialect):
                                                 expression=millis)),
                        expression=self.real(1000.0))
 
+    def like(self, e, parts, fold):
+        # LIKE folds ASCII case in SQLite (and only ASCII, by default), which is ILIKE here;
+        # LIKE itself is GLOB, case-sensitive, with * ? [ written as [*] [?] [[]
+        if fold:
+            return exp.Escape(this=exp.Like(this=e, expression=self.string(
+                self.like_text(parts, self.like_escape, "%_"))), expression=self.string(self.like_escape))
+        glob = []
+        for kind, text in parts:
+            glob.append("*" if kind == "any" else "?" if kind == "one" else
+                        "".join(f"[{ch}]" if ch in "*?[" else ch for ch in text))
+        return exp.Paren(this=exp.Glob(this=e, expression=self.string("".join(glob))))
+
+    def ascii_lower(self, e):
+        return self.replace_ascii_lower(e)
+
     def from_epoch(self, seconds):
         return self._f("%Y-%m-%d %H:%M:%f", seconds, "unixepoch")

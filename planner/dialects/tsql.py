@@ -112,6 +112,17 @@ class TSQL(Dialect):
     def starts_with(self, col, s):
         return exp.EQ(this=self._bin(self.fn("LEFT", col, self.lit(len(s)))), expression=self.string(s))
 
+    def like(self, e, parts, fold):
+        # a binary collation (case- and accent-sensitive); % _ [ written as [%] [_] [[]
+        e = self._bin(e)
+        if fold:
+            e = self.ascii_lower(e)
+        pattern = []
+        for kind, text in parts:
+            pattern.append("%" if kind == "any" else "_" if kind == "one" else
+                           "".join(f"[{ch}]" if ch in "%_[" else ch for ch in text))
+        return exp.Like(this=e, expression=self.string("".join(pattern)))
+
     def agg(self, name, arg, q):
         fns = {"stddev_samp": "STDEV", "stddev_pop": "STDEVP", "var_samp": "VAR", "var_pop": "VARP"}
         if name in fns:
