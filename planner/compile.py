@@ -1000,7 +1000,7 @@ def _window_columns(d: Dialect, partition: list[exp.Expression],
             continue
         part = [p.copy() for p in partition] or None
         if need == "quantile":
-            order = exp.Order(expressions=d.order(_double(d, arg), False, False))
+            order = exp.Order(expressions=d.order_nulls_last_plain(_double(d, arg)))
             rn = exp.Window(this=exp.RowNumber(), partition_by=part, order=order)
             out.append(exp.alias_(rn, f"{prefix}_r", quoted=True))
             # the same window (one sort), whole partition as the frame

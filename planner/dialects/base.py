@@ -352,6 +352,14 @@ class Dialect:
                 exp.Ordered(this=e.copy(), desc=desc,
                             nulls_first=self._default_nulls_first(desc))]
 
+    def order_nulls_last_plain(self, e: exp.Expression) -> list[exp.Ordered]:
+        """Ascending, NULLs last, written without NULLS FIRST/LAST on every target (a CASE
+        term first): usable in every window, aggregate windows included."""
+        isnull = exp.Case(ifs=[exp.If(this=exp.Is(this=e, expression=exp.Null()),
+                                      true=exp.Literal.number(1))], default=exp.Literal.number(0))
+        return [exp.Ordered(this=isnull, nulls_first=self._default_nulls_first(False)),
+                exp.Ordered(this=e.copy(), nulls_first=self._default_nulls_first(False))]
+
     def _default_nulls_first(self, desc: bool) -> bool:
         """Where the target puts NULLs when ORDER BY says nothing (sqlglot's knowledge)."""
         from sqlglot.dialects.dialect import Dialect as SqlglotDialect
