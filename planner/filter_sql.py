@@ -23,6 +23,7 @@ these definitions exactly (``Dialect.like`` / ``Dialect.round_half_away``):
   So ``round(87/60, 1)`` is 1.5 and ``round(-0.125, 2)`` is -0.13 everywhere (PostgreSQL's
   own round of a double ties to even; SQLite's rounds 0.49999999999999994 up). Reference:
   Python ``decimal.Decimal(y)`` (the exact binary value) quantized ROUND_HALF_UP.
+  Written out, the rounding repeats its operand: round() may nest two deep.
 * ``x LIKE 'pattern'``: case- and accent-sensitive, character by character (a character is a
   code point, whatever the encoding or collation): ``%`` any run of characters, ``_``
   exactly one. There is **no escape character** unless the text says ``ESCAPE 'c'``; then

@@ -216,7 +216,7 @@ def test_warehouse_engine_without_library_says_what_to_install(engine, module, e
 FILTERS_EVERYWHERE = [
     "cat NOT LIKE 'a%'", "cat NOT ILIKE 'A!_%' ESCAPE '!'", "NOT (cat LIKE 'a\\b')",
     "cat LIKE '[x]*?%_'", "round(x, -1) = 20 AND round(x) > 1 AND round(n, 2) < 3",
-    "round(round(round(x, 2), 1)) = 1",
+    "round(round(x, 2), 1) = 1",
 ]
 
 
