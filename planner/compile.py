@@ -613,7 +613,7 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
     src: exp.Expression = exp.alias_(d.table(plan.schema.table), "s", quoted=True)
     windows = _window_columns(d, [], built)
     if windows:  # the source rows with their window columns, still called "s"
-        inner = exp.select(*_columns_of(*[v for v, _ in built.values()]), *windows).from_(src)
+        inner = exp.select(*_columns_of(*sel), *windows).from_(src)
         if plan.where is not None:
             inner = inner.where(plan.where.copy())
         return exp.select(*sel).from_(exp.alias_(exp.Subquery(this=inner), "s", quoted=True))
@@ -1021,7 +1021,8 @@ def _columns_of(*exprs: exp.Expression | None) -> list[exp.Column]:
     seen: dict[str, exp.Column] = {}
     for e in exprs:
         for c in (e.find_all(exp.Column) if e is not None else ()):
-            seen.setdefault(c.sql(), c.copy())
+            if c.table == "s":  # source columns, not the window columns named by the caller
+                seen.setdefault(c.sql(), c.copy())
     return list(seen.values())
 
 

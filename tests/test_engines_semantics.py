@@ -327,6 +327,12 @@ def check_rules(service, engine: str, data) -> None:
         assert close(b["width"], edges[1] - edges[0]) and close(b["start"], edges[0]), (engine, rule, b)
         got = [c for lo, c in zip(out["data"]["x_lo"], out["data"]["count"]) if lo is not None]
         assert sum(got) == len(x) and sorted(got) == sorted(c for c in counts.tolist() if c), (engine, rule)
+        # beside another data-driven bin (both statistics in ONE extents statement)
+        two = run(service, engine, "stats", {"channels": {
+            "x": {"column": "x", "bin": {"rule": rule}}, "color": {"column": "n", "bin": {"bins": 5}},
+            "y": {"agg": "count"}}})
+        assert two["bins"]["x"] == b, (engine, rule, two["bins"]["x"], b)
+        assert sum(two["data"]["count"]) == len(data["stats"])  # every row counted once
 
 
 # --- 9.10: top on a high-cardinality key --------------------------------------------------------
