@@ -12,7 +12,8 @@ outside references -- not against DuckDB:
   references written here from their definitions (planner/filter_sql.py).
 
 Each engine gets the same small tables (loaded below, the shared chdb folder of
-tests/engine_fixtures.py); Spark runs every check in ONE test (one JVM).
+tests/engine_fixtures.py); Spark runs every check in ONE test in tests/test_engines_matrix.py
+(the JVM of the matrix's Spark test).
 """
 
 from __future__ import annotations
@@ -50,14 +51,11 @@ refdata = _load("refdata")
 ENGINES = ["duckdb", "postgres", "mysql", "sqlite", "clickhouse"]
 SEED = 909
 
-# NIST StRD univariate NumAcc1..4: data and certified values as in tests/test_reference_aggs.py
-# (typed from NIST's summary pages from memory; the certified values also follow exactly from
-# the data: e.g. NumAcc2 = 1.2 plus 500 pairs (1.1, 1.3): mean 1.2, sample SD 0.1).
-NIST = {"numacc1": (10000002.0, 1.0), "numacc2": (1.2, 0.1), "numacc3": (1000000.2, 0.1),
-        "numacc4": (10000000.2, 0.1)}
-#: the stored doubles of NumAcc4 have an exact SD 5.6e-9 (relative) away from 0.1 (see
-#: tests/test_reference_aggs.py); every SD is also checked against the exact SD of the doubles
-SD_TOL = {"numacc1": 1e-9, "numacc2": 1e-9, "numacc3": 1e-9, "numacc4": 1e-8}
+# NIST StRD univariate NumAcc1..4: the data (tests/refdata.py) and certified mean / SD with
+# their tolerances are the ones of tests/test_reference_aggs.py (typed from NIST's summary
+# pages; the certified values also follow exactly from the data, see there).
+_aggs = _load("test_reference_aggs")
+NIST, SD_TOL = _aggs.NIST, _aggs.SD_TOL
 
 
 # --- the tables ---------------------------------------------------------------------------
@@ -127,8 +125,21 @@ def _cols(t: pa.Table, types: dict[str, str]) -> str:
     return ", ".join(f"{f.name} {types[str(f.type)]}" for f in t.schema)
 
 
+def spark_sources(root: Path, data: dict[str, pa.Table]) -> dict[str, dict]:
+    """The tables as Parquet files read by Spark (source name ``spark_<table>``)."""
+    out = {}
+    for name, t in data.items():
+        parquet = root / f"sem_{name}.parquet"
+        pq.write_table(t, parquet)
+        spark = fx.load_spark(root, t)
+        spark["path"] = str(parquet)
+        spark["table"] = f"sluice_sem_{name}"
+        out[f"spark_{name}"] = spark
+    return out
+
+
 def load_all(root: Path, data: dict[str, pa.Table]) -> dict[str, dict]:
-    """Every table into every engine; source name ``<engine>_<table>``."""
+    """Every table into every engine but Spark; source name ``<engine>_<table>``."""
     import duckdb
     import psycopg
     import pymysql
@@ -183,10 +194,6 @@ def load_all(root: Path, data: dict[str, pa.Table]) -> dict[str, dict]:
         ch.query(f"INSERT INTO sluice_sem.{name} SELECT * FROM file('{parquet}', Parquet)")
         sources[f"clickhouse_{name}"] = {"engine": "clickhouse", "path": str(fx.chdb_folder(root)),
                                          "table": f"sluice_sem.{name}"}
-        spark = fx.load_spark(root, t)
-        spark["path"] = str(parquet)
-        spark["table"] = f"sluice_sem_{name}"
-        sources[f"spark_{name}"] = spark
     con.close()
     sq.commit()
     sq.close()
@@ -555,8 +562,5 @@ def test_reference_round_ties():
     assert ref_round(0.49999999999999994) == 0.0  # below one half: down
     assert ref_round(25.0, -1) == 30.0
 
-
-def test_spark_filter_quantiles_deviations_top(sem, sem_data):
-    """Every check above on Spark (pyspark local[2]), in one test: one JVM."""
-    timings = check_all(sem, "spark", sem_data)
-    print("top on 4000 keys, spark: " + ", ".join(f"{a} {s:.2f} s" for a, s in timings.items()))
+# Spark: every check above runs in tests/test_engines_matrix.py::test_spark_semantics, beside
+# the matrix's own Spark test, so that one pytest-xdist worker (--dist loadfile) starts a JVM.
