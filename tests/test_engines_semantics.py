@@ -344,7 +344,11 @@ def check_rules(service, engine: str, data) -> None:
 
 # --- 9.10: top on a high-cardinality key --------------------------------------------------------
 
-TOP_LIMIT_S = 30.0  # per chart; before: >60 s on SQLite for 340k rows x 4k groups (issue 9.10)
+#: top costs one pass over the rows plus work on the groups: at most this many times the same
+#: chart without top (every key its own group) plus a constant. The former plan (a join to the
+#: ranking, re-scanned per row) took 24 s here on SQLite for top 10 by avg where the chart
+#: without top took 0.16 s; the issue saw past a minute at 340k rows. (Rule of thumb margins.)
+TOP_FACTOR, TOP_SLACK_S = 10.0, 5.0
 
 
 def check_top_high_cardinality(service, engine: str, data) -> dict[str, float]:
@@ -365,10 +369,15 @@ def check_top_high_cardinality(service, engine: str, data) -> dict[str, float]:
             score = {k: (float(np.mean(v)) if agg == "avg" else float(np.median(v))) if v else None
                      for k, v in per_key.items()}  # reference: numpy mean / median
         body = {"channels": {"x": {"column": "k", "top": 10}, "y": measure, "color": {"column": "c"}}}
+        plain = {"channels": {"x": {"column": "k"}, "y": measure, "color": {"column": "c"}},
+                 "limit": 100000}
+        t0 = time.perf_counter()
+        run(service, engine, "wide", plain)
+        t_plain = time.perf_counter() - t0
         t0 = time.perf_counter()
         out = run(service, engine, "wide", body)
         timings[agg] = time.perf_counter() - t0
-        assert timings[agg] < TOP_LIMIT_S, (engine, agg, timings[agg])
+        assert timings[agg] <= TOP_FACTOR * t_plain + TOP_SLACK_S, (engine, agg, timings[agg], t_plain)
         # DEVELOPERS: top ranks by the first measure descending, ties by value ascending,
         # NULL kept as its own group (reference: Python sorted over the per-key scores)
         ranked = sorted((k for k in score if k is not None and score[k] is not None),
