@@ -14,6 +14,34 @@ module does not know cannot reach the engine. What is allowed:
   (optionally with ``ESCAPE``), ``+ - * / %`` and unary minus, parentheses;
 * the scalar functions ``lower upper trim length abs round floor ceil coalesce``.
 
+The same text means the same thing on every engine (issue 9.8); per-dialect SQL implements
+these definitions exactly (``Dialect.like`` / ``Dialect.round_half_away``):
+
+* ``round(x, n)`` (n a whole number from -15 to 15, default 0) reads x as a double, forms
+  y = x * 10^n (x / 10^-n for n < 0) in double arithmetic, takes the whole number nearest y
+  with **ties away from zero** and scales back (``r / 10^n``); |x| >= 2^52 is left as it is.
+  So ``round(87/60, 1)`` is 1.5 and ``round(-0.125, 2)`` is -0.13 everywhere (PostgreSQL's
+  own round of a double ties to even; SQLite's rounds 0.49999999999999994 up). Reference:
+  Python ``decimal.Decimal(y)`` (the exact binary value) quantized ROUND_HALF_UP.
+  Written out, the rounding repeats its operand: round() may nest two deep.
+* ``x LIKE 'pattern'``: case- and accent-sensitive, character by character (a character is a
+  code point, whatever the encoding or collation): ``%`` any run of characters, ``_``
+  exactly one. There is **no escape character** unless the text says ``ESCAPE 'c'``; then
+  ``c%``, ``c_`` and ``cc`` are literal and c before anything else is refused. A backslash
+  is an ordinary character. The pattern must be a string literal.
+* ``x ILIKE 'pattern'``: the same, with the ASCII letters A-Z and a-z equal; every other
+  character (``Ü`` / ``ü``, ``Σ`` / ``σ``) still compares exactly, on every engine and
+  locale (MariaDB has no ILIKE and folds by collation; PostgreSQL's by locale).
+* ``NOT LIKE`` / ``NOT ILIKE`` are the negations (NULL stays NULL).
+
+How each target writes them: standard ``LIKE ... ESCAPE '!'`` (the planner's own escape
+character) on DuckDB, PostgreSQL, Spark, Snowflake, Trino, Redshift; MySQL/MariaDB compare
+``CONVERT(x USING utf8mb4) COLLATE utf8mb4_bin``; SQLite uses ``GLOB`` for LIKE (its LIKE
+folds ASCII case, which is exactly ILIKE there); ClickHouse and BigQuery escape with a
+backslash (no ESCAPE clause); T-SQL writes ``[%] [_] [[]`` under a BIN2 collation. ILIKE
+lower-cases the pattern's ASCII letters here and the value's with ``TRANSLATE`` (ClickHouse:
+``lower``, ASCII-only; MySQL/SQLite: 26 ``REPLACE`` calls).
+
 Everything else (sub-queries, other functions such as ``read_csv`` or ``pg_read_file``,
 casts to other types, placeholders, comments, several statements, ...) is refused with a
 :class:`~planner.errors.PlanError` (422) whose pointer is ``/filter_sql`` and whose detail
@@ -24,8 +52,7 @@ error: arithmetic needs numbers, ``LIKE`` needs text, both sides of a comparison
 one kind (a string literal compared with a timestamp column must be an ISO 8601 instant and
 becomes a typed timestamp literal). Division is always true division (``CAST(a AS DOUBLE) /
 NULLIF(b, 0)``) and ``%`` needs integers (``a % NULLIF(b, 0)``), so ``x / 0`` is NULL on every
-engine instead of an error on some and infinity on others. ``round(x, n)`` is written as
-``ROUND(x * 10^n) / 10^n`` over doubles, which every target accepts.
+engine instead of an error on some and infinity on others.
 
 This module is pure (no I/O); the service calls it through ``planner.compile``.
 """
@@ -51,6 +78,8 @@ MAX_CHARS = 4096
 MAX_DEPTH = 48
 MAX_NODES = 2000
 MAX_IN_LIST = 10_000
+#: cap on the size of one rebuilt round() operand tree (round repeats its operand)
+MAX_BUILT_NODES = 20_000
 
 PTR = pointer("filter_sql")
 
@@ -346,17 +375,20 @@ class _Builder:
             self._only_args(node, {"this", "decimals"})
             a = sub(node.this)
             self._need(a, ("integer", "number"), "round", node)
+            # the written-out rounding repeats its operand: nested rounds grow fast
+            if sum(1 for _ in a.node.walk()) * 10 > MAX_BUILT_NODES:
+                raise _fail("round() is nested too deeply in filter_sql", slug="limit-exceeded")
             places = node.args.get("decimals")
             if places is None:
-                return _Typed(exp.Round(this=a.node), a.kind)
+                return _Typed(round_half_away(d, a.node, 0), "number")
+            sign = 1
+            if isinstance(places, exp.Neg):  # round(x, -1): a negated literal
+                sign, places = -1, places.this
             if not (isinstance(places, exp.Literal) and not places.is_string
                     and _INT.fullmatch(places.this) and -15 <= int(places.this) <= 15):
                 raise _fail("round(x, n) needs n as a whole number from -15 to 15: "
                             f"{_quote(self._text(node))}")
-            scale = d.real(10.0 ** int(places.this))
-            scaled = exp.Round(this=exp.Mul(this=d.double(a.node), expression=scale))
-            return _Typed(exp.Div(this=scaled, expression=scale.copy(), typed=False, safe=False),
-                          "number")
+            return _Typed(round_half_away(d, a.node, sign * int(places.this)), "number")
 
         if isinstance(node, exp.Coalesce):
             self._only_args(node, {"this", "expressions"})
@@ -420,19 +452,87 @@ class _Builder:
         raise self._refuse(node, "casts (other than DATE '...' and TIMESTAMP '...' literals)")
 
     def _like(self, node: exp.Expression, escape: str | None, depth: int) -> _Typed:
-        self._only_args(node, {"this", "expression"})
+        """[NOT] [I]LIKE with the semantics of the module docstring, written per dialect."""
+        self._only_args(node, {"this", "expression", "negate"})
         a = self.build(node.this, depth + 1)
-        p = self.build(node.expression, depth + 1)
         self._need(a, ("string",), "LIKE", node)
-        self._need(p, ("string",), "LIKE pattern", node)
-        out: exp.Expression = type(node)(this=a.node, expression=p.node)
-        if escape is not None:
-            out = exp.Escape(this=out, expression=self.d.string(escape))
+        pat = node.expression
+        if not (isinstance(pat, exp.Literal) and pat.is_string):
+            raise _fail(f"a LIKE pattern must be a string literal: {_quote(self._text(node))}",
+                        slug="type-mismatch")
+        if "\x00" in pat.this:
+            raise _fail("strings in filter_sql may not contain NUL characters", slug="bad-value")
+        fold = isinstance(node, exp.ILike)
+        parts = like_parts(pat.this, escape, fold, self._text(node))
+        out = self.d.like(a.node, parts, fold)
+        if node.args.get("negate"):
+            out = exp.Not(this=exp.Paren(this=out))
         return _Typed(out, "boolean")
 
     @staticmethod
     def _nonzero(e: exp.Expression) -> exp.Expression:
         return exp.Nullif(this=e, expression=exp.Literal.number(0))
+
+
+def like_parts(pattern: str, escape: str | None, fold: bool, where: str
+               ) -> tuple[tuple[str, str], ...]:
+    """A LIKE pattern read by the SQL standard's rules: ``%`` any run of characters, ``_`` one
+    character; with ``ESCAPE 'c'`` the pairs ``c%``, ``c_`` and ``cc`` are literal characters
+    and c before anything else is an error; without ESCAPE every other character (the
+    backslash too) is itself. ``fold`` (ILIKE) lower-cases the ASCII letters of literals."""
+    parts: list[tuple[str, str]] = []
+    lit: list[str] = []
+    i = 0
+    while i < len(pattern):
+        ch = pattern[i]
+        if escape is not None and ch == escape:
+            nxt = pattern[i + 1] if i + 1 < len(pattern) else None
+            if nxt not in ("%", "_", escape):
+                raise _fail(f"in a LIKE pattern the ESCAPE character {escape!r} must come before "
+                            f"%, _ or itself: {_quote(where)}")
+            lit.append(nxt)
+            i += 2
+            continue
+        if ch in "%_":
+            if lit:
+                parts.append(("lit", "".join(lit)))
+                lit = []
+            if not (ch == "%" and parts and parts[-1][0] == "any"):  # %% is %
+                parts.append(("any" if ch == "%" else "one", ""))
+        else:
+            lit.append(ch)
+        i += 1
+    if lit:
+        parts.append(("lit", "".join(lit)))
+    if fold:
+        parts = [(k, _ascii_lower(t)) for k, t in parts]
+    return tuple(parts)
+
+
+def _ascii_lower(text: str) -> str:
+    return "".join(chr(ord(c) + 32) if "A" <= c <= "Z" else c for c in text)
+
+
+#: |x| at and above which every double is a whole number
+_WHOLE = 2.0 ** 52
+
+
+def round_half_away(d: Dialect, x: exp.Expression, n: int) -> exp.Expression:
+    """``round(x, n)``: y = x * 10^n (x / 10^-n for n < 0) in double arithmetic, the whole
+    number nearest y with ties away from zero, scaled back; |x| >= 2^52 is already whole."""
+    v = d.double(x)
+    if n == 0:
+        return d.round_half_away(v)
+    if n > 0:
+        scale = d.real(10.0 ** n)
+        y = exp.Mul(this=d.paren(v.copy()), expression=scale)
+        back = exp.Div(this=d.round_half_away(y), expression=scale.copy(), typed=False, safe=False)
+        return exp.Case(ifs=[exp.If(this=exp.GTE(this=exp.Abs(this=v.copy()),
+                                                 expression=d.real(_WHOLE)), true=v.copy())],
+                        default=back)
+    scale = d.real(10.0 ** -n)
+    y = exp.Div(this=d.paren(v.copy()), expression=scale, typed=False, safe=False)
+    return exp.Mul(this=exp.Paren(this=d.round_half_away(y)), expression=scale.copy())
 
 
 _COMPARISONS = (exp.EQ, exp.NEQ, exp.LT, exp.LTE, exp.GT, exp.GTE, exp.NullSafeEQ,

@@ -200,10 +200,21 @@ def load_sqlite(root: Path, rows: list[dict]) -> dict:
     return {"engine": "sqlite", "path": str(path), "table": "t"}
 
 
+_CHDB_FOLDER: list[Path] = []
+
+
+def chdb_folder(root: Path) -> Path:
+    """chdb opens ONE data folder per process: every loader of a test session uses the first
+    folder asked for (tables of other test files go into other databases there)."""
+    if not _CHDB_FOLDER:
+        _CHDB_FOLDER.append(root / "chdb")
+    return _CHDB_FOLDER[0]
+
+
 def load_chdb(root: Path, table: pa.Table) -> dict:
     from chdb import session as chs
 
-    folder = root / "chdb"
+    folder = chdb_folder(root)
     parquet = root / "engines_ch.parquet"
     pq.write_table(table, parquet)
     s = chs.Session(str(folder))

@@ -51,6 +51,18 @@ CASES: dict[str, tuple[dict, dict]] = {
                                "size": {"agg": "median", "column": "amount"}}}, {}),
     "top_other": ({"channels": {"x": {"column": "cat", "top": 5, "other_label": "(other)"},
                                 "y": {"agg": "sum", "column": "x"}}}, {}),
+    # top by a measure that cannot be folded after grouping: ranked from one grouped pass,
+    # membership by IN (SELECT ...); the median is built from windows where there is no
+    # percentile aggregate
+    "top_median": ({"channels": {"x": {"column": "cat", "top": 5}, "color": {"column": "grp"},
+                                 "y": {"agg": "median", "column": "x"}}}, {}),
+    # filter_sql semantics (planner/filter_sql.py): round ties away from zero, LIKE with the
+    # planner's own escaping, ILIKE folding ASCII letters only, NOT LIKE
+    "filter_sql_semantics": ({"channels": {"x": {"column": "grp"}, "y": {"agg": "count"}},
+                              "filter_sql": "round(x, 1) = 1.5 AND cat LIKE 'a!%[b]*_' ESCAPE '!' "
+                                            "AND cat NOT ILIKE 'Z\\ü%'"}, {}),
+    # avg folds from its sum / count partials
+    "top_avg": ({"channels": {"x": {"column": "cat", "top": 5}, "y": {"agg": "avg", "column": "n"}}}, {}),
     "stack": ({"channels": {"x": {"column": "ts", "trunc": "month"}, "color": {"column": "cat"},
                             "y": {"agg": "count"}},
                "stack": "fraction", "facet": {"row": {"column": "grp"}, "max_groups": 50},

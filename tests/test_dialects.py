@@ -209,3 +209,43 @@ def test_warehouse_engine_without_library_says_what_to_install(engine, module, e
     with pytest.raises(EngineUnavailable) as err:
         open_engine(SourceConfig(name="w", engine=engine, table="t", dsn=f"{engine}://x"))
     assert f"sluice-charts[{extra}]" in err.value.message
+
+
+# --- filter_sql: one meaning everywhere (issue 9.8), checked live in test_engines_semantics --
+
+FILTERS_EVERYWHERE = [
+    "cat NOT LIKE 'a%'", "cat NOT ILIKE 'A!_%' ESCAPE '!'", "NOT (cat LIKE 'a\\b')",
+    "cat LIKE '[x]*?%_'", "round(x, -1) = 20 AND round(x) > 1 AND round(n, 2) < 3",
+    "round(round(x, 2), 1) = 1",
+]
+
+
+@pytest.mark.parametrize("dialect", ALL)
+@pytest.mark.parametrize("text", FILTERS_EVERYWHERE)
+def test_filter_sql_semantics_render_and_parse_everywhere(dialect, text):
+    """NOT LIKE is accepted (it was refused), and every target's form of LIKE / ILIKE /
+    round parses back with sqlglot's parser for that target (outside reference)."""
+    d = get_dialect(dialect)
+    plan = prepare(ChartRequest.model_validate({"source": "sales", "channels": {
+        "x": {"column": "grp"}, "y": {"agg": "count"}}, "filter_sql": text}), regen.SCHEMA, d)
+    plan.finish({})
+    sql = plan.main_sql
+    assert "ROUND(" not in sql.upper().replace("_ROUND", "")  # no engine round: ours is written out
+    sqlglot.parse_one(sql, read=d.sqlglot)
+
+
+@pytest.mark.parametrize("text,words", [
+    ("cat LIKE 'a!' ESCAPE '!'", "must come before"),
+    ("cat LIKE 'a!x' ESCAPE '!'", "must come before"),
+    ("cat LIKE grp", "string literal"),
+    ("cat LIKE NULL", "string literal"),
+    ("round(round(round(round(round(x, 1), 1), 1), 1), 1) = 1", "nested too deeply"),
+])
+def test_filter_sql_like_and_round_refusals(text, words):
+    from planner.errors import PlanError
+
+    with pytest.raises(PlanError) as err:
+        prepare(ChartRequest.model_validate({"source": "sales", "channels": {
+            "y": {"agg": "count"}}, "filter_sql": text}), regen.SCHEMA, get_dialect("duckdb"))
+    assert err.value.status == 422 and err.value.pointer == "/filter_sql"  # RFC 6901 pointer
+    assert words in err.value.detail, err.value.detail

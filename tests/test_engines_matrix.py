@@ -643,3 +643,24 @@ def test_mysql_text_filters_compare_bytes_on_a_ci_collation(engine_sources):
             assert got == sum(1 for v in values if fn(v)), pred
     finally:
         svc.catalog.close()
+
+
+# --- issue 9 items 8-10 on Spark: the checks of tests/test_engines_semantics.py ----------------
+# (filter_sql round / LIKE semantics, quantiles, deviations, NIST StRD, fd / scott rules, top on
+# 4,000 keys against numpy / pandas / the hand-written references there), run here so that
+# the JVM of test_spark_matches_duckdb_every_case serves them: one Spark per test session.
+
+def test_spark_semantics(tmp_path_factory):
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    sem = _load("test_engines_semantics")
+    data = sem.tables()
+    root = tmp_path_factory.mktemp("semantics_spark")
+    catalog = Catalog(parse_settings({"sources": sem.spark_sources(root, data)}, "<semantics spark>"))
+    try:
+        timings = sem.check_all(ChartService(catalog), "spark", data)
+    finally:
+        catalog.close()
+    print("top on 4000 keys, spark: " + ", ".join(f"{a} {s:.2f} s" for a, s in timings.items()))

@@ -18,6 +18,7 @@ from typing import ClassVar
 
 from sqlglot import exp
 
+_UPPER = "ABCDEFGHIJKLMNOPQRSTUVWXYZ"
 #: Features a dialect may refuse, with the words used in the error message.
 FEATURES: dict[str, str] = {
     "median": "exact median",
@@ -74,6 +75,16 @@ class Dialect:
     checked: ClassVar[str] = "live"
     #: Cell text of the capability table for constructs written the target's own way.
     notes: ClassVar[dict[str, str]] = {}
+    #: Exact quantiles (median, quantile, the Freedman-Diaconis rule): "native" -- the
+    #: target's own type 7 percentile aggregate (``quantile``) -- or "window": Hyndman & Fan
+    #: (1996) type 7 built by the planner from ROW_NUMBER() and COUNT() windows per group,
+    #: interpolating between the order statistics floor(h) and floor(h) + 1, h = (n - 1) q
+    #: (planner/compile.py, ``_window_stage``), where the target has no such aggregate.
+    quantile_method: ClassVar[str] = "native"
+    #: Standard deviation / variance: "native" aggregates or "two_pass": the group mean
+    #: first (a window AVG), then the corrected sum of squared deviations (Chan, Golub &
+    #: LeVeque 1983), for targets without them.
+    stddev_method: ClassVar[str] = "native"
 
     # --- rendering ------------------------------------------------------------------
     def render(self, node: exp.Expression) -> str:
@@ -90,6 +101,10 @@ class Dialect:
             return self.notes.get("engine", "live engine")
         if feature == "quantile" and not self.supports("quantile"):
             return "no (422)"
+        if feature == "quantile" and self.quantile_method == "window":
+            return "built from ROW_NUMBER / COUNT"
+        if feature == "stddev" and self.supports("stddev") and self.stddev_method == "two_pass":
+            return "built: two-pass (window AVG)"
         if feature in self.unsupported:
             return "no (422)" if feature != "tz" else "UTC only (422)"
         if feature == "nulls_order" and "nulls_order" not in self.notes:
@@ -206,6 +221,60 @@ class Dialect:
             this=exp.Substring(this=col, start=exp.Literal.number(1),
                                length=exp.Literal.number(len(s))),
             expression=self.string(s))
+
+    # --- filter_sql: LIKE and round (semantics in planner/filter_sql.py) ----------------
+    #: escape character of the LIKE patterns the planner writes (never the user's)
+    like_escape: ClassVar[str] = "!"
+
+    @staticmethod
+    def like_text(parts: tuple[tuple[str, str], ...], escape: str, specials: str) -> str:
+        """A LIKE pattern from parts (``("lit", text)``, ``("any", "")`` for %, ``("one", "")``
+        for _): every character of ``specials`` and the escape itself escaped in literals."""
+        out = []
+        for kind, text in parts:
+            if kind == "any":
+                out.append("%")
+            elif kind == "one":
+                out.append("_")
+            else:
+                out.append("".join(escape + ch if ch in specials + escape else ch for ch in text))
+        return "".join(out)
+
+    def like(self, e: exp.Expression, parts: tuple[tuple[str, str], ...],
+             fold: bool) -> exp.Expression:
+        """``e`` matches the pattern: case-sensitive, character by character; with ``fold``
+        ASCII letters of ``e`` compare lower-cased (the pattern's literals already are).
+        Standard LIKE with an explicit ESCAPE (so no engine's default escape applies)."""
+        if fold:
+            e = self.ascii_lower(e)
+        esc = self.like_escape
+        return exp.Escape(this=exp.Like(this=e, expression=self.string(self.like_text(parts, esc, "%_"))),
+                          expression=self.string(esc))
+
+    def ascii_lower(self, e: exp.Expression) -> exp.Expression:
+        """``e`` with A-Z turned into a-z and every other character unchanged (no locale)."""
+        return self.fn("TRANSLATE", e, self.string(_UPPER), self.string(_UPPER.lower()))
+
+    def replace_ascii_lower(self, e: exp.Expression) -> exp.Expression:
+        """ascii_lower from 26 case-sensitive REPLACE calls (targets without TRANSLATE)."""
+        for ch in _UPPER:
+            e = self.fn("REPLACE", e, self.string(ch), self.string(ch.lower()))
+        return e
+
+    def round_half_away(self, y: exp.Expression) -> exp.Expression:
+        """The whole number nearest the double ``y``, ties away from zero. Exact: for
+        a = |y| >= 0, a - floor(a) is computed without rounding, and a >= 2^52 is whole."""
+        a = exp.Abs(this=y.copy())
+        f = self.floor(a.copy())
+        r = exp.Case(ifs=[
+            exp.If(this=exp.GTE(this=a.copy(), expression=self.real(2.0 ** 52)), true=a.copy()),
+            exp.If(this=exp.GTE(this=exp.Sub(this=a.copy(), expression=f.copy()),
+                                expression=self.real(0.5)),
+                   true=exp.Add(this=f.copy(), expression=exp.Literal.number(1)))],
+            default=f.copy())
+        return exp.Case(ifs=[exp.If(this=exp.LT(this=y.copy(), expression=exp.Literal.number(0)),
+                                    true=exp.Neg(this=exp.Paren(this=r.copy())))],
+                        default=r)
 
     # --- time -----------------------------------------------------------------------
     def to_local(self, e: exp.Expression, kind: str, tz: str) -> exp.Expression:
@@ -352,6 +421,14 @@ class Dialect:
         return [exp.Ordered(this=isnull, nulls_first=self._default_nulls_first(False)),
                 exp.Ordered(this=e.copy(), desc=desc,
                             nulls_first=self._default_nulls_first(desc))]
+
+    def order_nulls_last_plain(self, e: exp.Expression) -> list[exp.Ordered]:
+        """Ascending, NULLs last, written without NULLS FIRST/LAST on every target (a CASE
+        term first): usable in every window, aggregate windows included."""
+        isnull = exp.Case(ifs=[exp.If(this=exp.Is(this=e, expression=exp.Null()),
+                                      true=exp.Literal.number(1))], default=exp.Literal.number(0))
+        return [exp.Ordered(this=isnull, nulls_first=self._default_nulls_first(False)),
+                exp.Ordered(this=e.copy(), nulls_first=self._default_nulls_first(False))]
 
     def _default_nulls_first(self, desc: bool) -> bool:
         """Where the target puts NULLs when ORDER BY says nothing (sqlglot's knowledge)."""

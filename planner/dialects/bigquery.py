@@ -3,7 +3,7 @@
 DATETIME is the naive wall clock, TIMESTAMP the instant: ``DATETIME(ts, tz)`` /
 ``TIMESTAMP(datetime, tz)`` convert; DATETIME_TRUNC(x, ISOWEEK) is the ISO week. BigQuery's
 PERCENTILE_CONT is an analytic (window) function only and APPROX_QUANTILES is approximate, so
-median / quantile are refused. approx_count_distinct is HyperLogLog++.
+median / quantile are built from ROW_NUMBER() / COUNT() windows (type 7). approx_count_distinct is HyperLogLog++.
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ class BigQuery(Dialect):
     instant_type = "TIMESTAMP"
     naive_type = "DATETIME"
     checked = "golden"
-    unsupported = frozenset({"median", "quantile"})
+    quantile_method = "window"
     approx_distinct = ("hyperloglog++", None)
     notes = {
         "approx_count_distinct": "APPROX_COUNT_DISTINCT (HLL++)",
@@ -79,6 +79,12 @@ class BigQuery(Dialect):
 
     def starts_with(self, col, s):
         return self.fn("STARTS_WITH", col, self.string(s))
+
+    def like(self, e, parts, fold):
+        # no ESCAPE clause: the backslash escapes % _ and itself
+        if fold:
+            e = self.ascii_lower(e)
+        return exp.Like(this=e, expression=self.string(self.like_text(parts, "\\", "%_")))
 
     def agg(self, name, arg, q):
         if name == "approx_count_distinct":

@@ -6,7 +6,8 @@
   wall-clock text in the zone.
 * Truncation: toStartOf* / toMonday (ISO week), re-typed to DateTime64(6, 'UTC').
 * Exact type 7 quantiles: ``quantileExactInclusive`` (R7, linear interpolation).
-* Variance / standard deviation: the numerically stable ``*Stable`` variants.
+* Variance / standard deviation: the numerically stable ``*Stable`` variants, NULL (not inf /
+  nan) for groups with too few values, as in SQL.
 * approx_count_distinct: ``uniqCombined`` (HyperLogLog-based, ~1% error).
 * Outer joins fill missing columns with default values unless ``join_use_nulls = 1``: every
   statement carries ``SETTINGS join_use_nulls = 1`` so unmatched rows read as NULL.
@@ -117,6 +118,12 @@ class ClickHouse(Dialect):
     def starts_with(self, col, s):
         return self.fn("startsWith", col, self.string(s))
 
+    def like(self, e, parts, fold):
+        # no ESCAPE clause: the backslash escapes % _ and itself; lower() folds ASCII only
+        if fold:
+            e = self.fn("lower", e)
+        return exp.Like(this=e, expression=self.string(self.like_text(parts, "\\", "%_")))
+
     def quantile(self, arg, q):
         return exp.ParameterizedAgg(this="quantileExactInclusive", expressions=[self.number(q)],
                                     params=[self.double(arg)])
@@ -125,7 +132,12 @@ class ClickHouse(Dialect):
         stable = {"stddev_samp": "stddevSampStable", "stddev_pop": "stddevPopStable",
                   "var_samp": "varSampStable", "var_pop": "varPopStable"}
         if name in stable:
-            return self.fn(stable[name], self.double(arg))
+            # ClickHouse answers inf / nan where SQL answers NULL (one value for *_samp, none
+            # for *_pop): NULL unless there are enough values
+            need = 2 if name.endswith("_samp") else 1
+            return exp.Case(ifs=[exp.If(this=exp.GTE(this=exp.Count(this=arg.copy()),
+                                                     expression=self.lit(need)),
+                                        true=self.fn(stable[name], self.double(arg)))])
         if name == "approx_count_distinct":
             return self.fn("uniqCombined", arg)
         return super().agg(name, arg, q)

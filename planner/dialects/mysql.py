@@ -7,7 +7,8 @@
 * Epoch arithmetic with TIMESTAMPDIFF / TIMESTAMPADD in microseconds, independent of the
   session time zone (naive DATETIME values are read as UTC).
 * No exact continuous percentile aggregate (MariaDB's PERCENTILE_CONT is a window function
-  only, MySQL has none): median, quantile and the Freedman–Diaconis rule are refused.
+  only, MySQL has none): median, quantile and the Freedman–Diaconis rule are built from
+  ROW_NUMBER() / COUNT() windows (Hyndman & Fan type 7, ``quantile_method = "window"``).
 * No NULLS FIRST/LAST: emulated with a CASE term.
 * Filters on text (eq, ne, lt.., in, not_in, contains, starts_with) compare bytes (a BINARY
   operand), so they are case- and accent-sensitive like DuckDB whatever the column's
@@ -30,7 +31,7 @@ _EPOCH = "1970-01-01 00:00:00"
 class MySQL(Dialect):
     name = "mysql"
     sqlglot = "mysql"
-    unsupported = frozenset({"median", "quantile"})
+    quantile_method = "window"
     nulls_order_native = False
     approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
     notes = {
@@ -127,6 +128,20 @@ class MySQL(Dialect):
         micros = self.cast(exp.Round(this=exp.Mul(this=self.paren(seconds), expression=self.lit(1000000))),
                            "SIGNED")
         return self.fn("TIMESTAMPADD", self.var("MICROSECOND"), micros, self._dt(self.lit(_EPOCH)))
+
+    def _bin_text(self, e: exp.Expression) -> exp.Expression:
+        """``CONVERT(e USING utf8mb4) COLLATE utf8mb4_bin``: compared by characters, case-
+        and accent-sensitive, whatever the column's character set and collation."""
+        charset = exp.DataType(this=exp.DataType.Type.CHARACTER_SET, kind=exp.Var(this="utf8mb4"))
+        return exp.Collate(this=exp.Cast(this=e, to=charset), expression=exp.Var(this="utf8mb4_bin"))
+
+    def like(self, e, parts, fold):
+        e = self._bin_text(e)
+        if fold:
+            e = self.replace_ascii_lower(e)
+        esc = self.like_escape
+        return exp.Escape(this=exp.Like(this=e, expression=self.string(self.like_text(parts, esc, "%_"))),
+                          expression=self.string(esc))
 
     def contains(self, col: exp.Expression, s: str) -> exp.Expression:
         return exp.GT(this=self.fn("INSTR", self.cast(col, "BINARY"), self.cast(self.string(s), "BINARY")),

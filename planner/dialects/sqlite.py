@@ -13,8 +13,11 @@ time keys (``number_cell``, ``instant_range``) and reads as NULL in results. Res
 back as text and the service types them from the plan.
 
 SQLite has no time zone database: only UTC is accepted (``tz`` other than UTC -> 422). It has
-no percentile or standard deviation aggregates: median, quantile, stddev/variance and the
-Scott / Freedman–Diaconis rules are refused. approx_count_distinct is exact.
+no percentile or standard deviation aggregates: median, quantile and the Freedman–Diaconis
+rule are built from ROW_NUMBER() / COUNT() windows (Hyndman & Fan type 7), stddev / variance
+and Scott's rule in two passes (a window mean, then the squared deviations); the standard
+deviations need SQRT (SQLite's math functions, built in by default since 3.35).
+approx_count_distinct is exact.
 """
 
 from __future__ import annotations
@@ -29,7 +32,9 @@ from planner.dialects.base import Dialect
 class SQLite(Dialect):
     name = "sqlite"
     sqlglot = "sqlite"
-    unsupported = frozenset({"median", "quantile", "stddev", "tz"})
+    unsupported = frozenset({"tz"})
+    quantile_method = "window"
+    stddev_method = "two_pass"
     approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
     notes = {
         "approx_count_distinct": "exact COUNT(DISTINCT)",
@@ -155,6 +160,21 @@ class SQLite(Dialect):
         return exp.Div(this=self.double(exp.Add(this=exp.Mul(this=secs, expression=self.lit(1000)),
                                                 expression=millis)),
                        expression=self.real(1000.0))
+
+    def like(self, e, parts, fold):
+        # LIKE folds ASCII case in SQLite (and only ASCII, by default), which is ILIKE here;
+        # LIKE itself is GLOB, case-sensitive, with * ? [ written as [*] [?] [[]
+        if fold:
+            return exp.Escape(this=exp.Like(this=e, expression=self.string(
+                self.like_text(parts, self.like_escape, "%_"))), expression=self.string(self.like_escape))
+        glob = []
+        for kind, text in parts:
+            glob.append("*" if kind == "any" else "?" if kind == "one" else
+                        "".join(f"[{ch}]" if ch in "*?[" else ch for ch in text))
+        return exp.Paren(this=exp.Glob(this=e, expression=self.string("".join(glob))))
+
+    def ascii_lower(self, e):
+        return self.replace_ascii_lower(e)
 
     def from_epoch(self, seconds):
         return self._f("%Y-%m-%d %H:%M:%f", seconds, "unixepoch")

@@ -3,7 +3,7 @@
 SQL Server names time zones with Windows names, not IANA names: only UTC is accepted.
 DATETRUNC (2022) with iso_week for the ISO week; day of week built with @@DATEFIRST so it
 does not depend on the session's SET DATEFIRST. PERCENTILE_CONT is a window function only:
-median / quantile are refused. No NULLS FIRST/LAST: emulated with a CASE term. String
+median / quantile are built from ROW_NUMBER() / COUNT() windows (type 7). No NULLS FIRST/LAST: emulated with a CASE term. String
 matches use a binary collation (case- and accent-sensitive like DuckDB) and N'' literals.
 """
 
@@ -22,7 +22,8 @@ class TSQL(Dialect):
     name = "tsql"
     sqlglot = "tsql"
     checked = "golden"
-    unsupported = frozenset({"median", "quantile", "tz"})
+    unsupported = frozenset({"tz"})
+    quantile_method = "window"
     nulls_order_native = False
     approx_distinct = ("hyperloglog", 0.02)
     notes = {
@@ -115,6 +116,17 @@ class TSQL(Dialect):
 
     def starts_with(self, col, s):
         return exp.EQ(this=self._bin(self.fn("LEFT", col, self.lit(len(s)))), expression=self.string(s))
+
+    def like(self, e, parts, fold):
+        # a binary collation (case- and accent-sensitive); % _ [ written as [%] [_] [[]
+        e = self._bin(e)
+        if fold:
+            e = self.ascii_lower(e)
+        pattern = []
+        for kind, text in parts:
+            pattern.append("%" if kind == "any" else "_" if kind == "one" else
+                           "".join(f"[{ch}]" if ch in "%_[" else ch for ch in text))
+        return exp.Like(this=e, expression=self.string("".join(pattern)))
 
     def agg(self, name, arg, q):
         fns = {"stddev_samp": "STDEV", "stddev_pop": "STDEVP", "var_samp": "VAR", "var_pop": "VARP"}
