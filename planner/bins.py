@@ -1,9 +1,13 @@
 """Bin layouts: nice widths, bin-count rules and calendar steps.
 
-* Nice numbers: P. S. Heckbert, "Nice Numbers for Graph Labels", Graphics Gems (1990): widths
-  of the form {1, 2, 5} x 10^k (``nicenum``). ``bins: N`` picks, among those widths, the one
-  whose bins (edges on multiples of the width, covering the data) number closest to N
-  without exceeding it (``nice_bins``).
+* Nice numbers: P. S. Heckbert, "Nice Numbers for Graph Labels", Graphics Gems (1990):
+  {1, 2, 5} x 10^k (``nicenum``). ``bins: N`` widens Heckbert's set to the two-digit steps
+  ``NICE_MANTISSAS`` = {1, 1.2, 1.5, 2, 2.5, 3, 4, 5, 6, 8} x 10^k (every edge still a short
+  decimal) and picks the width whose bins (edges on multiples of the width, covering the
+  data) number closest to N without exceeding it (``nice_bins``). With 1-2-5 alone the
+  steps are up to 2.5x apart and the count can fall to 0.4 N (N = 10 over [0, 21] gives 5);
+  neighbouring steps of this set are at most 4/3 apart, so the count stays within
+  [0.7 N, N] for N >= 5 (tests/test_reference_bins.py checks it on a table of layouts).
 * Bin-count rules as ``numpy.histogram_bin_edges`` implements them
   (numpy/lib/_histograms_impl.py, ``_hist_bin_*`` and ``_get_bin_edges``): H. A. Sturges
   (1926), D. W. Scott (1979), D. Freedman & P. Diaconis (1981), and the square-root choice.
@@ -117,8 +121,12 @@ def nice_step_count(lo: float, hi: float, step: float) -> tuple[float, int]:
     return _edge(first, step), max(1, last - first)
 
 
+#: mantissas of the nice widths ``bins: N`` chooses from (module docstring)
+NICE_MANTISSAS = (1.0, 1.2, 1.5, 2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 8.0)
+
+
 def nice_bins(lo: float, hi: float, target: int) -> NumericBins:
-    """Nice bins covering [lo, hi]: among the widths {1, 2, 5} x 10^k (Heckbert 1990), the one
+    """Nice bins covering [lo, hi]: among the widths NICE_MANTISSAS x 10^k, the one
     whose bin count is closest to ``target`` without exceeding it (ties: the finer width).
     When no width gives at most ``target`` bins (target 1 with data across a multiple of
     every width, e.g. around 0), the width giving the fewest bins."""
@@ -140,7 +148,7 @@ def nice_bins(lo: float, hi: float, target: int) -> NumericBins:
     best: tuple[int, float, float] | None = None  # (count, step, start)
     fewest: tuple[int, float, float] | None = None
     for e in range(e_lo, e_hi + 1):
-        for m in (1.0, 2.0, 5.0):
+        for m in NICE_MANTISSAS:
             step = _nice(m, e)
             if not (step >= _TINY and math.isfinite(lo / step) and math.isfinite(hi / step)):
                 continue
