@@ -889,7 +889,7 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
         p = f"{INTERNAL}e{k.index}_"
         if k.mode == "tbin":
             if k.tlimits is None:
-                ep = d.epoch(_instant_in_range(d, k, ref), k.col.kind)
+                ep = d.epoch(_instant_in_range(d, k.col, ref), k.col.kind)
                 sel += [exp.alias_(exp.Min(this=ep), p + "min", quoted=True),
                         exp.alias_(exp.Max(this=ep.copy()), p + "max", quoted=True)]
             continue
@@ -1135,10 +1135,11 @@ def _outside_expr(d: Dialect, k: Key) -> exp.Expression | None:
                     default=exp.Literal.number(0))
 
 
-def _instant_in_range(d: Dialect, k: Key, ref: exp.Expression) -> exp.Expression:
-    """A temporal column as a time key sees it: instants outside years 1..9999 (UTC), such
-    as 'infinity' or year 12000, are NULL (their own NULL group, never in a layout)."""
-    ok = d.instant_range(ref, k.col.kind)
+def _instant_in_range(d: Dialect, col: ColumnInfo, ref: exp.Expression) -> exp.Expression:
+    """A temporal column as a time key (or min/max) sees it: instants outside years 1..9999
+    (UTC), such as 'infinity' or year 12000, and cells outside the engine's storage
+    convention are NULL (their own NULL group, never in a layout, never a min/max)."""
+    ok = d.instant_range(ref, col.kind)
     if ok is None:
         return ref
     return exp.Case(ifs=[exp.If(this=ok, true=ref.copy())])
@@ -1148,7 +1149,7 @@ def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
     """The internal grouping value of a key, computed per source row."""
     ref = d.column(k.col.name, "s")
     if k.col.is_temporal:  # plain, trunc, extract and time bins alike
-        ref = _instant_in_range(d, k, ref)
+        ref = _instant_in_range(d, k.col, ref)
     if k.mode == "plain":
         if top_alias is None:
             return ref
@@ -1516,6 +1517,8 @@ def _main_statement(plan: Plan) -> exp.Select:
             base = base.select(exp.alias_(flag, k.outside_flag, quoted=True))
     for m in measures:
         arg = d.column(m.col.name, "s") if m.col is not None else exp.Null()
+        if m.col is not None and m.col.is_temporal and m.spec.agg in ("min", "max"):
+            arg = _instant_in_range(d, m.col, arg)  # the same instants a time key shows
         base = base.select(exp.alias_(arg, f"{INTERNAL}m{m.index}", quoted=True))
     if not keys and not measures:  # pragma: no cover - the model requires a channel
         base = base.select(exp.Literal.number(1))

@@ -86,7 +86,10 @@ def plan_profile(schema: SourceSchema, name: str, dialect, top: int | None = Non
     table = dialect.table(schema.table)
     value = dialect.column(col.name)
     if top == 0:
-        stmt = _aggregate(dialect, value, table, has_range)
+        ok = dialect.instant_range(value.copy(), col.kind) if col.is_temporal else None
+        # min/max over the instants a chart can show (not 'infinity' / year 12000)
+        ranged = value if ok is None else exp.Case(ifs=[exp.If(this=ok, true=value.copy())])
+        stmt = _aggregate(dialect, value, table, has_range, ranged)
         method, err = dialect.approx_distinct
         approximate = not method.startswith("exact")
     else:
@@ -100,12 +103,13 @@ def _alias(e: exp.Expression, name: str) -> exp.Alias:
     return exp.alias_(e, name, quoted=True)
 
 
-def _aggregate(d, value: exp.Expression, table: exp.Table, has_range: bool) -> exp.Select:
+def _aggregate(d, value: exp.Expression, table: exp.Table, has_range: bool,
+               ranged: exp.Expression) -> exp.Select:
     cols = [_alias(exp.Count(this=exp.Star()), ROWS),
             _alias(exp.Count(this=value.copy()), f"{P}non_null"),
             _alias(d.agg("approx_count_distinct", value.copy(), None), DISTINCT)]
     if has_range:
-        cols += [_alias(exp.Min(this=value.copy()), LO), _alias(exp.Max(this=value.copy()), HI)]
+        cols += [_alias(exp.Min(this=ranged.copy()), LO), _alias(exp.Max(this=ranged.copy()), HI)]
     return exp.select(*cols).from_(table)
 
 
