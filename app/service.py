@@ -22,7 +22,7 @@ from app import auth
 from app.engines import Engine
 from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
 from app.engines.arrow import conform, key_zone, request_zone
-from planner.compile import (INTERNAL, PARAM_FORMS, Plan, bind_sql, bind_values, display_sql,
+from planner.compile import (INTERNAL, Plan, bind_sql, bind_values, display_sql,
                              param_shape, prepare)
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
@@ -301,7 +301,7 @@ class ChartService:
         dialect = prep.plan.dialect
         # this request's values for the plan's parameter slots (long IN lists), checked
         values = bind_values(req, entry.schema, dialect) if prep.plan.slots else []
-        style = PARAM_FORMS.get(dialect.name, ("", "qmark"))[1]
+        style = dialect.param_form[1] if dialect.param_form else "qmark"
         timing["plan"] = _ms(t0)
         t1 = time.perf_counter()
         statements = []

@@ -204,7 +204,7 @@ class Plan:
 def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
             params: bool = False) -> Plan:
     """``params``: long ``in`` / ``not_in`` lists become bound parameters (see
-    ``PARAM_FORMS``) instead of literals, so the SQL text does not depend on their values."""
+    ``Dialect.param_form``) instead of literals, so the SQL text does not depend on their values."""
     keys: list[Key] = []
     measures: list[Measure] = []
     request_tz = _check_tz(request.tz, pointer("tz"))
@@ -217,7 +217,7 @@ def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
         else:
             keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
                                    request_tz))
-    slots: list[Any] | None = [] if params and dialect.name in PARAM_FORMS else None
+    slots: list[Any] | None = [] if params and dialect.param_form is not None else None
     where = _compile_where(request, schema, dialect, slots)
     plan = Plan(request, schema, dialect, keys, measures, where, slots=len(slots or ()))
     _check_options(plan)
@@ -474,18 +474,14 @@ def _assign_names(plan: Plan) -> None:
     _check_name_lengths(plan)
 
 
-#: identifier caps (bytes) of engines that silently CUT longer names (the answer would then
-#: lack the column); a dialect may set ``max_identifier_bytes`` itself
-_IDENT_BYTES = {"postgres": 63, "redshift": 127}
-#: engines whose identifiers hold only the Basic Multilingual Plane (MariaDB/MySQL: utf8mb3
-#: system charset; a name with U+10000 or above is error 1300 "Invalid utf8mb4 character")
-_IDENT_BMP_ONLY = {"mysql"}
 
 
 def _check_name_lengths(plan: Plan) -> None:
     d = plan.dialect
-    cap = getattr(d, "max_identifier_bytes", None) or _IDENT_BYTES.get(d.name)
-    if cap is None and d.name not in _IDENT_BMP_ONLY:
+    # dialect data: identifier caps (engines that cut longer names) and BMP-only identifiers
+    # (MariaDB/MySQL: a name with U+10000 or above is error 1300 "Invalid utf8mb4 character")
+    cap = d.max_identifier_bytes
+    if cap is None and not d.identifiers_bmp_only:
         return
     stack = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
     items = [(k.path, k.spec, list(k.names)) for k in plan.keys]
@@ -493,7 +489,7 @@ def _check_name_lengths(plan: Plan) -> None:
               for m in plan.measures]
     for path, spec, names in items:
         for n in names:
-            if d.name in _IDENT_BMP_ONLY and any(ord(c) > 0xFFFF for c in n):
+            if d.identifiers_bmp_only and any(ord(c) > 0xFFFF for c in n):
                 raise PlanError(pointer(*path, "name" if spec.name else "column"),
                                 f"output column name {n!r} has a character beyond U+FFFF; "
                                 f"{d.name} identifiers cannot hold one (MariaDB/MySQL keep "
@@ -666,9 +662,6 @@ def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect,
 
 PARAM_MIN_VALUES = 16
 #: dialect -> (form, driver paramstyle)
-PARAM_FORMS = {"duckdb": ("list", "qmark"), "postgres": ("list", "format"),
-               "sqlite": ("json", "qmark"), "mysql": ("each", "format")}
-_PG_ARRAY = {str: "TEXT[]", int: "BIGINT[]", float: "DOUBLE PRECISION[]", bool: "BOOLEAN[]"}
 _SLOT = re.compile(r"\x00(\d+)(?:\.(\d+))?\x00")
 
 
@@ -690,7 +683,7 @@ def _leaf(e: exp.Expression) -> exp.Expression:
 def _param_values(d: Dialect, col: ColumnInfo, values: list[Any], ptr: str) -> list[Any] | None:
     """The driver values of a long in/not_in list (each what its literal denotes), or None
     when the list stays literals. Checks every value as ``_literal`` would (same pointers)."""
-    if d.name not in PARAM_FORMS or not _bindable(values):
+    if d.param_form is None or not _bindable(values):
         return None
     if col.is_number:
         for j, v in enumerate(values):
@@ -730,7 +723,7 @@ def _bindable(values: list[Any]) -> bool:
 
 def _param_in(d: Dialect, col: ColumnInfo, ref: exp.Expression, first: Any, ptr: str,
               slot: int, raw: list[Any]) -> exp.In:
-    form = PARAM_FORMS[d.name][0]
+    form = d.param_form[0]
     template = _literal(d, col, first, ptr)
 
     def put(e: exp.Expression) -> exp.Expression:
@@ -748,8 +741,7 @@ def _param_in(d: Dialect, col: ColumnInfo, ref: exp.Expression, first: Any, ptr:
             exp.Anonymous(this="json_each", expressions=[_marker(slot)]))
         return exp.In(this=ref, query=exp.Subquery(this=sel))
     arg = _marker(slot)
-    if d.name == "postgres":
-        arg = d.cast(arg, _PG_ARRAY[type(raw[0])])
+    arg = d.param_array(arg, type(raw[0]))
     unnest = exp.Unnest(expressions=[arg], alias=exp.TableAlias(
         this=exp.to_identifier("p", quoted=True), columns=[exp.to_identifier("u", quoted=True)]))
     sel = exp.select(put(exp.column("u", quoted=True))).from_(unnest)
@@ -764,7 +756,7 @@ def param_shape(req: ChartRequest, d: Dialect) -> Any:
     """The request as plain JSON with every list that ``prepare(..., params=True)`` may bind
     replaced by its padded length: equal shapes render the same SQL text."""
     doc = req.model_dump(mode="json", by_alias=True, exclude_none=True)
-    if d.name not in PARAM_FORMS:
+    if d.param_form is None:
         return doc
 
     def walk(f: Any) -> None:
@@ -787,9 +779,9 @@ def param_shape(req: ChartRequest, d: Dialect) -> Any:
 def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any]:
     """The value of every parameter slot of ``prepare(req, schema, d, params=True)``, in slot
     order (the same walk as ``_compile_filter``), checked like literals."""
-    if d.name not in PARAM_FORMS:
+    if d.param_form is None:
         return []
-    form = PARAM_FORMS[d.name][0]
+    form = d.param_form[0]
     out: list[Any] = []
 
     def walk(f: Any, path: tuple) -> None:

@@ -38,15 +38,13 @@ from planner.errors import PlanError, Unsupported, pointer
 if TYPE_CHECKING:  # no import cycle at run time: compile imports this module
     from planner.compile import Plan
 
-#: dialects whose arg_min / arg_max (min_by / max_by) sqlglot renders and we have checked
-SUPPORTED = frozenset({"duckdb"})
 PREFIX = "_sluice_"
 
 
 def check(plan: "Plan") -> None:
     """The request shape M4 accepts, with pointers to what does not fit."""
     req, d = plan.request, plan.dialect
-    if d.name not in SUPPORTED:
+    if not d.arg_min_max:  # dialect data (planner/dialects)
         raise Unsupported(pointer("reduce"), d.name, "M4 reduction (needs arg_min/arg_max)")
     ch = req.channels
     if ch.x is None or ch.y is None:

@@ -29,7 +29,7 @@ from pathlib import Path
 
 import pytest
 
-from planner.compile import PARAM_FORMS, bind_sql, bind_values, prepare
+from planner.compile import bind_sql, bind_values, prepare
 from planner.dialects import get_dialect
 from planner.model import MAX_FILTER_DEPTH, ChartRequest
 
@@ -410,7 +410,7 @@ def _literal_and_param(service, engine: str, body: dict):
     d = get_dialect(eng.dialect)
     lit = prepare(req, entry.schema, d).finish(None)
     par = prepare(req, entry.schema, d, params=True).finish(None)
-    sql, args = bind_sql(par.main_sql, bind_values(req, entry.schema, d), PARAM_FORMS[d.name][1])
+    sql, args = bind_sql(par.main_sql, bind_values(req, entry.schema, d), d.param_form[1])
     assert "\x00" not in sql
     return eng.execute(lit.main_sql), eng.execute(sql, args) if args else eng.execute(sql), len(args)
 

@@ -75,6 +75,17 @@ class Dialect:
     checked: ClassVar[str] = "live"
     #: Cell text of the capability table for constructs written the target's own way.
     notes: ClassVar[dict[str, str]] = {}
+    #: Long IN lists as bound parameters (planner.compile ``bind_sql``): (form, driver
+    #: paramstyle), or None for literals. Forms: "list" (one array parameter under UNNEST),
+    #: "json" (one JSON array under json_each), "each" (one placeholder per value).
+    param_form: ClassVar[tuple[str, str] | None] = None
+    #: Identifier cap in bytes where the engine silently CUTS longer names (the answer would
+    #: then lack the column); None: no cap that matters.
+    max_identifier_bytes: ClassVar[int | None] = None
+    #: Identifiers hold only the Basic Multilingual Plane (MariaDB/MySQL keep names in utf8mb3).
+    identifiers_bmp_only: ClassVar[bool] = False
+    #: arg_min / arg_max (min_by / max_by) render and are checked here: M4 reduction (planner/m4.py).
+    arg_min_max: ClassVar[bool] = False
     #: Exact quantiles (median, quantile, the Freedman-Diaconis rule): "native" -- the
     #: target's own type 7 percentile aggregate (``quantile``) -- or "window": Hyndman & Fan
     #: (1996) type 7 built by the planner from ROW_NUMBER() and COUNT() windows per group,
@@ -85,6 +96,10 @@ class Dialect:
     #: first (a window AVG), then the corrected sum of squared deviations (Chan, Golub &
     #: LeVeque 1983), for targets without them.
     stddev_method: ClassVar[str] = "native"
+
+    def param_array(self, marker: exp.Expression, value_type: type) -> exp.Expression:
+        """The array parameter of the "list" form as the engine needs it typed."""
+        return marker
 
     # --- rendering ------------------------------------------------------------------
     def render(self, node: exp.Expression) -> str:

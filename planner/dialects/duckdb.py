@@ -10,6 +10,8 @@ from planner.dialects.base import Dialect
 class DuckDB(Dialect):
     name = "duckdb"
     sqlglot = "duckdb"
+    param_form = ("list", "qmark")
+    arg_min_max = True
     wide_instants = True  # 'infinity' and years past 9999 are legal values
     # DuckDB's approx_count_distinct is a HyperLogLog sketch. Relative error measured here
     # (DuckDB 2.0.1, 20 runs of 1e3..1e6 distinct hashed integers): RMS 3.0 %, worst 7 %.

@@ -31,6 +31,8 @@ _EPOCH = "1970-01-01 00:00:00"
 class MySQL(Dialect):
     name = "mysql"
     sqlglot = "mysql"
+    param_form = ("each", "format")
+    identifiers_bmp_only = True
     quantile_method = "window"
     nulls_order_native = False
     approx_distinct = ("exact (COUNT DISTINCT)", 0.0)

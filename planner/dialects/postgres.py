@@ -16,6 +16,8 @@ from planner.dialects.base import Dialect
 class Postgres(Dialect):
     name = "postgres"
     sqlglot = "postgres"
+    param_form = ("list", "format")
+    max_identifier_bytes = 63  # NAMEDATALEN - 1: longer names are cut
     wide_instants = True  # 'infinity' and years past 9999 are legal values
     approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
     notes = {
@@ -31,6 +33,11 @@ class Postgres(Dialect):
         "quoting": '"name"',
     }
 
+
+    _ARRAY_TYPES = {str: "TEXT[]", int: "BIGINT[]", float: "DOUBLE PRECISION[]", bool: "BOOLEAN[]"}
+
+    def param_array(self, marker, value_type):
+        return self.cast(marker, self._ARRAY_TYPES[value_type])
     def _as_timestamp(self, e: exp.Expression, kind: str) -> exp.Expression:
         return self.cast(e, "TIMESTAMP") if kind == "date" else e
 

@@ -12,6 +12,8 @@ from planner.dialects.postgres import Postgres
 class Redshift(Postgres):
     name = "redshift"
     sqlglot = "redshift"
+    param_form = None  # generated only: no driver here
+    max_identifier_bytes = 127
     checked = "golden"
     approx_distinct = ("hyperloglog", 0.02)
     notes = {**Postgres.notes,

@@ -32,6 +32,7 @@ from planner.dialects.base import Dialect
 class SQLite(Dialect):
     name = "sqlite"
     sqlglot = "sqlite"
+    param_form = ("json", "qmark")
     unsupported = frozenset({"tz"})
     quantile_method = "window"
     stddev_method = "two_pass"
