@@ -7,28 +7,16 @@ The pandas/numpy copies of the same rows (`ref`) are what the expected answers c
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import math
-import sys
 from pathlib import Path
 
 import pytest
 
 
-def _load_refdata():
-    # Loaded by file path so it works whether or not tests/ is a package.
-    name = "sluice_test_refdata"
-    if name in sys.modules:
-        return sys.modules[name]
-    spec = importlib.util.spec_from_file_location(name, Path(__file__).with_name("refdata.py"))
-    mod = importlib.util.module_from_spec(spec)
-    sys.modules[name] = mod
-    spec.loader.exec_module(mod)
-    return mod
+from testmods import load  # noqa: E402 - tests/ is on sys.path (pytest rootdir)
 
-
-refdata = _load_refdata()
+refdata = load("refdata")  # the one copy every test module shares (tests/testmods.py)
 
 
 @pytest.fixture(scope="session")

@@ -18,11 +18,9 @@ tests/engine_fixtures.py); Spark runs every check in ONE test in tests/test_engi
 
 from __future__ import annotations
 
-import importlib.util
 import math
 import random
 import sqlite3
-import sys
 import time
 from pathlib import Path
 
@@ -34,15 +32,7 @@ import pytest
 from planner.model import ChartRequest
 
 
-def _load(name: str):
-    key = f"sluice_test_{name}"
-    if key in sys.modules:
-        return sys.modules[key]
-    spec = importlib.util.spec_from_file_location(key, Path(__file__).with_name(f"{name}.py"))
-    mod = importlib.util.module_from_spec(spec)
-    sys.modules[key] = mod
-    spec.loader.exec_module(mod)
-    return mod
+from testmods import load as _load  # noqa: E402 - one loader for tests/ helpers
 
 
 fx = _load("engine_fixtures")

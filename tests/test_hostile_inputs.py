@@ -20,10 +20,8 @@ engines' documented identifier rules.
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import random
-import sys
 import time
 from pathlib import Path
 
@@ -34,15 +32,7 @@ from planner.dialects import get_dialect
 from planner.model import MAX_FILTER_DEPTH, ChartRequest
 
 
-def _load(name: str):
-    key = f"sluice_test_{name}"
-    if key in sys.modules:
-        return sys.modules[key]
-    spec = importlib.util.spec_from_file_location(key, Path(__file__).with_name(f"{name}.py"))
-    mod = importlib.util.module_from_spec(spec)
-    sys.modules[key] = mod
-    spec.loader.exec_module(mod)
-    return mod
+from testmods import load as _load  # noqa: E402 - one loader for tests/ helpers
 
 
 fx = _load("engine_fixtures")

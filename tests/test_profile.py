@@ -12,7 +12,6 @@ ClickHouse runs in its own process (tests/chdb_http_server.py) behind its HTTP i
 from __future__ import annotations
 
 import datetime as dt
-import importlib.util
 import subprocess
 import sys
 from pathlib import Path
@@ -21,15 +20,7 @@ import pandas as pd
 import pytest
 
 
-def _load(name: str):
-    key = f"sluice_test_{name}"
-    if key in sys.modules:
-        return sys.modules[key]
-    spec = importlib.util.spec_from_file_location(key, Path(__file__).with_name(f"{name}.py"))
-    mod = importlib.util.module_from_spec(spec)
-    sys.modules[key] = mod
-    spec.loader.exec_module(mod)
-    return mod
+from testmods import load as _load  # noqa: E402 - one loader for tests/ helpers
 
 
 fx = _load("engine_fixtures")
