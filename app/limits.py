@@ -46,7 +46,7 @@ from app import deadline
 from app.engines.base import EngineError, EngineUnavailable
 from app.problems import PROBLEM_JSON, Problem
 from planner.errors import PlanError, pointer
-from planner.model import AnyOf, ChartRequest, NotOf, Predicate
+from planner.model import ChartRequest
 
 #: per-source keys (``[sources.NAME]``) that override the ``[limits]`` defaults
 SOURCE_LIMIT_KEYS = ("statement_timeout_ms", "max_concurrent", "queue_wait_ms")
@@ -129,19 +129,7 @@ def check_request(req: ChartRequest, limits: Limits) -> None:
         path = chans[limits.max_channels][0]
         raise _too_many(pointer(*path), "too many channels", len(chans), limits.max_channels,
                         "max_channels")
-    count = 0
-
-    def walk(f: Any, path: tuple) -> None:
-        nonlocal count
-        if isinstance(f, AnyOf):
-            for j, g in enumerate(f.any):
-                walk(g, path + ("any", j))
-            return
-        if isinstance(f, NotOf):
-            walk(f.not_, path + ("not",))
-            return
-        assert isinstance(f, Predicate)
-        count += 1
+    for count, (path, f) in enumerate(req.predicates(), 1):
         if count > limits.max_filters:
             raise _too_many(pointer(*path), "too many filter predicates", count,
                             limits.max_filters, "max_filters")
@@ -150,9 +138,6 @@ def check_request(req: ChartRequest, limits: Limits) -> None:
             if values is not None and len(values) > limits.max_in_list:
                 raise _too_many(pointer(*path, op), f"too many values in {op}", len(values),
                                 limits.max_in_list, "max_in_list")
-
-    for i, f in enumerate(req.where):
-        walk(f, ("where", i))
     if req.filter_sql is not None and len(req.filter_sql) > limits.max_filter_sql_chars:
         raise _too_many(pointer("filter_sql"), "filter_sql is too long (characters)",
                         len(req.filter_sql), limits.max_filter_sql_chars, "max_filter_sql_chars")

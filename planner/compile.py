@@ -784,14 +784,7 @@ def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any
     form = d.param_form[0]
     out: list[Any] = []
 
-    def walk(f: Any, path: tuple) -> None:
-        if isinstance(f, AnyOf):
-            for j, g in enumerate(f.any):
-                walk(g, path + ("any", j))
-            return
-        if isinstance(f, NotOf):
-            walk(f.not_, path + ("not",))
-            return
+    def bind(f: Predicate, path: tuple) -> None:
         col = None
         for op, value in f.operators():
             if op not in ("in", "not_in") or not value:
@@ -808,8 +801,8 @@ def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any
 
     token = _READ_TZ.set(_check_tz(req.tz, pointer("tz")))  # as _compile_where reads them
     try:
-        for i, f in enumerate(req.where):
-            walk(f, ("where", i))
+        for path, f in req.predicates():
+            bind(f, path)
     finally:
         _READ_TZ.reset(token)
     return out
@@ -1137,19 +1130,13 @@ def _instant_in_range(d: Dialect, col: ColumnInfo, ref: exp.Expression) -> exp.E
     return exp.Case(ifs=[exp.If(this=ok, true=ref.copy())])
 
 
-def _key_expr(d: Dialect, k: Key, top_alias: str | None) -> exp.Expression:
+def _key_expr(d: Dialect, k: Key) -> exp.Expression:
     """The internal grouping value of a key, computed per source row."""
     ref = d.column(k.col.name, "s")
     if k.col.is_temporal:  # plain, trunc, extract and time bins alike
         ref = _instant_in_range(d, k.col, ref)
-    if k.mode == "plain":
-        if top_alias is None:
-            return ref
-        return exp.Case(
-            ifs=[exp.If(this=exp.Is(this=ref.copy(), expression=exp.Null()), true=exp.Null()),
-                 exp.If(this=exp.Not(this=exp.Is(this=_ref("v", top_alias), expression=exp.Null())),
-                        true=ref.copy())],
-            default=d.string(k.spec.other_label))
+    if k.mode == "plain":  # a top key folds in _top_key_expr / _fold_top
+        return ref
     if k.mode == "trunc":
         return _trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz)
     if k.mode == "extract":
@@ -1499,7 +1486,7 @@ def _main_statement(plan: Plan) -> exp.Select:
             ctes.append((rank_name, _top_cte(plan, k)))
             key_value = _top_key_expr(d, k, rank_name)
         else:
-            key_value = _key_expr(d, k, None)
+            key_value = _key_expr(d, k)
         base = base.select(exp.alias_(key_value, k.internal, quoted=True))
     flags = []
     for k in keys:

@@ -350,6 +350,24 @@ class ChartRequest(_Strict):
                              f"{MAX_FILTER_DEPTH}")
         return v
 
+    def predicates(self) -> list[tuple[tuple[str | int, ...], "Predicate"]]:
+        """Every predicate of ``where`` with its path in the request, depth first in request
+        order (inside ``any`` and ``not`` too): the order the planner binds values in."""
+        out: list[tuple[tuple[str | int, ...], Predicate]] = []
+
+        def walk(f: Any, path: tuple[str | int, ...]) -> None:
+            if isinstance(f, AnyOf):
+                for j, g in enumerate(f.any):
+                    walk(g, path + ("any", j))
+            elif isinstance(f, NotOf):
+                walk(f.not_, path + ("not",))
+            else:
+                out.append((path, f))
+
+        for i, f in enumerate(self.where):
+            walk(f, ("where", i))
+        return out
+
     def keyed_channels(self) -> list[tuple[tuple[str | int, ...], str, Channel]]:
         """Every channel with its path in the request and its channel name, in order:
         x, y, color, size, shape, opacity, by[i], facet row, facet col."""
