@@ -312,20 +312,20 @@ class ChartService:
             row = self._plans.extents_row(entry, extents_sql, args)
             if row is None:  # not known for this data version yet: one more statement
                 statements.append(display_sql(extents_sql))
-                row = engine.fetch_row(sql, args) if args else engine.fetch_row(sql)
+                row = engine.fetch_row(sql, args)  # GuardedEngine: no args, no params
                 self._plans.remember_extents(entry, extents_sql, args, row)
         t2 = time.perf_counter()
         plan, main_sql = self._plans.finished(prep, entry, row)
         plan_more = _ms(t2)
         statements.append(display_sql(main_sql))
         sql, args = bind_sql(main_sql, values, style)
-        raw = engine.execute(sql, args) if args else engine.execute(sql)
+        raw = engine.execute(sql, args)
         extra = None
         if raw.num_rows == 0:
             count_sql = plan.count_sql()
             statements.append(display_sql(count_sql))
             sql, args = bind_sql(count_sql, values, style)
-            extra = engine.fetch_row(sql, args) if args else engine.fetch_row(sql)
+            extra = engine.fetch_row(sql, args)
         timing["execute"] = round(_ms(t1) - plan_more, 3)
         timing["plan"] = round(timing["plan"] + plan_more, 3)
         t3 = time.perf_counter()
