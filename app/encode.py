@@ -15,6 +15,7 @@ import datetime as dt
 import decimal
 from typing import Any
 
+import numpy as np
 import orjson
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -160,10 +161,39 @@ def arrow_schema(table: pa.Table, meta: dict[str, Any]) -> pa.Schema:
     return pa.schema(fields, metadata={"sluice": dumps(meta)})
 
 
+def _fixed_width(t: pa.DataType) -> bool:
+    return (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)
+            or pa.types.is_temporal(t))
+
+
+def zero_null_slots(arr: pa.Array) -> pa.Array:
+    """The array with every null slot's value bytes set to zero.
+
+    The Arrow format leaves a null slot's value undefined, and engines leave whatever was in
+    memory there (DuckDB: the neighbouring group's key, a NaN, a pointer). A client that reads
+    the value buffer directly (``Vector.toArray()`` in the JavaScript library, ``numpy`` views)
+    would see those bytes as numbers, and the same answer would differ byte for byte between
+    runs. Zeros make the bytes deterministic and harmless."""
+    t = arr.type
+    if arr.null_count == 0 or not _fixed_width(t) or arr.buffers()[1] is None:
+        return arr
+    width = t.bit_width // 8
+    n = len(arr)
+    values = np.frombuffer(arr.buffers()[1], dtype=np.uint8)[
+        arr.offset * width:(arr.offset + n) * width].reshape(n, width).copy()
+    valid = arr.is_valid().to_numpy(zero_copy_only=False)
+    values[~valid] = 0
+    bitmap = pa.array(valid, type=pa.bool_()).buffers()[1]
+    return pa.Array.from_buffers(t, n, [bitmap, pa.py_buffer(values)], null_count=arr.null_count)
+
+
 def arrow_stream(table: pa.Table, meta: dict[str, Any]) -> bytes:
     schema = arrow_schema(table, meta)
+    # one record batch: answers are small, and clients then see a single chunk per column
+    table = table.cast(schema).combine_chunks()
+    batch = pa.record_batch([zero_null_slots(c.combine_chunks()) for c in table.columns],
+                            schema=schema)
     sink = pa.BufferOutputStream()
     with pa.ipc.new_stream(sink, schema) as writer:
-        # one record batch: answers are small, and clients then see a single chunk per column
-        writer.write_table(table.cast(schema).combine_chunks())
+        writer.write_batch(batch)
     return sink.getvalue().to_pybytes()

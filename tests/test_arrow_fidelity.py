@@ -97,7 +97,9 @@ def load(engine: str, root: Path, rows: list[dict]) -> dict:
         return {"engine": "postgres", "dsn": dsn, "table": f"{schema}.t"}
     if engine == "mysql":
         import pymysql
+        from testmods import load as load_helper  # tests/ is on sys.path (pytest rootdir)
 
+        load_helper("engine_fixtures").ensure_mysql_time_zones()  # CONVERT_TZ needs them
         name = f"sluice_fid_{_worker()}"
         conn = pymysql.connect(host="127.0.0.1", user="root", password="", database="test",
                                autocommit=True)
@@ -267,6 +269,27 @@ def test_arrow_types_and_field_metadata(answers):
     assert f.schema.field("max_rating").type == pa.int16()
     q = pa.ipc.open_stream(got["quarters.arrow"]).read_all()
     assert q.schema.field("ts").type == pa.timestamp("us", tz=zone_of(engine)), engine
+
+
+def test_null_slots_hold_zero_bytes(answers):
+    """The Arrow columnar format (arrow.apache.org/docs/format/Columnar.html, "Validity
+    bitmaps") leaves the value of a null slot undefined; engines leave stale memory there
+    (DuckDB: a neighbouring key, NaN). Answers zero those bytes, so a reader of the raw value
+    buffer (JavaScript ``Vector.toArray()``, numpy views) never sees a stray number and the
+    same answer has the same bytes."""
+    engine, got = answers
+    for name in ("by_rating.arrow", "by_fee.arrow", "quarters.arrow"):
+        t = pa.ipc.open_stream(got[name]).read_all()
+        for col in t.column_names:
+            for a in t.column(col).chunks:
+                if not a.null_count or a.type.num_buffers != 2 or pa.types.is_boolean(a.type):
+                    continue
+                w = a.type.bit_width // 8
+                raw = a.buffers()[1].to_pybytes()
+                for i in range(len(a)):
+                    if not a[i].is_valid:
+                        slot = raw[(a.offset + i) * w:(a.offset + i + 1) * w]
+                        assert slot == bytes(w), (engine, name, col, i, slot.hex())
 
 
 def test_values_are_exact_in_arrow_and_json(answers):
