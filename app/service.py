@@ -103,7 +103,8 @@ class PlanCache:
     * ``extents_row``: the extents statement's answer per (source, version, SQL, bound
       values digest): a data-driven bin costs ONE statement once its extents are known;
     * ``finished``: the finished Plan (without its rendered sqlglot trees) and its main SQL
-      text per (shape key, extents row), read-only once built.
+      text per (shape key, what the main statement takes from the extents row:
+      ``Plan.layout_key``, e.g. the bin layouts), read-only once built.
 
     Each is an LRU bounded by bytes (``max_bytes`` split 4:1:4): a miss only costs planning.
     """
@@ -119,12 +120,13 @@ class PlanCache:
         return self._prepared.nbytes + self._extents.nbytes + self._finished.nbytes
 
     def prepared(self, req: ChartRequest, entry: SourceEntry, dialect: Any) -> "Prepared":
-        shape = orjson.dumps(param_shape(req, dialect), option=orjson.OPT_SORT_KEYS)
+        shape = orjson.dumps(param_shape(req, dialect, entry.schema), option=orjson.OPT_SORT_KEYS)
         key = (shape, dialect.name, entry.schema.name, entry.version)
         prep = self._prepared.get(key)
         if prep is None:
             plan = prepare(req, entry.schema, dialect, params=True)
-            bound = sum(len(v) if isinstance(v, list) else v.count(",") + 1  # (JSON text)
+            bound = sum(len(v) if isinstance(v, list) else  # (SQLite: JSON text; else one value)
+                        v.count(",") + 1 if isinstance(v, str) and v.startswith("[") else 1
                         for v in bind_values(req, entry.schema, dialect)) if plan.slots else 0
             prep = Prepared(plan, key, plan.extents_sql, bound)
             plan.extents = None  # rendered once: the text is what is reused
@@ -141,7 +143,7 @@ class PlanCache:
 
     def finished(self, prep: "Prepared", entry: SourceEntry, row: dict[str, Any] | None
                  ) -> tuple[Plan, str]:
-        key = (prep.key, tuple(sorted((row or {}).items(), key=lambda kv: kv[0])))
+        key = (prep.key, prep.plan.layout_key(row))  # not the row: a brush keeps its layout
         hit = self._finished.get(key)
         if hit is None:
             plan = prepare(prep.plan.request, entry.schema, prep.plan.dialect,

@@ -142,6 +142,23 @@ def nice_bins(lo: float, hi: float, target: int) -> NumericBins:
         if not start + width > hi:
             start = lo
         return check_layout(NumericBins(start, width, 1, "nice"))
+    best, fewest = _nice_search(lo, hi, target, prune=True)
+    if best is None:  # only then does the fewest-bins fallback matter: the full search
+        best, fewest = _nice_search(lo, hi, target, prune=False)
+    chosen = best or fewest
+    if chosen is None:
+        raise LayoutError(f"no nice width splits [{lo!r}, {hi!r}]")
+    count, step, start = chosen
+    return check_layout(NumericBins(start, step, count, "nice"))
+
+
+def _nice_search(lo: float, hi: float, target: int, prune: bool
+                 ) -> tuple[tuple[int, float, float] | None, tuple[int, float, float] | None]:
+    """(best, fewest) as (count, step, start) over the nice widths in increasing order.
+    ``prune``: a width's count lies within ``span/step`` and ``span/step + 2`` (its grid
+    edges are the doubles nearest k x step; ``slack`` covers their rounding), so widths
+    whose count must exceed the target are not laid out, and the search stops once no
+    wider width can give more bins than the best so far (fewest is then not complete)."""
     span = hi - lo
     e_lo = Decimal(span / target).adjusted() - 1
     e_hi = Decimal(max(span, abs(lo), abs(hi))).adjusted() + 1  # up to widths that hold all
@@ -152,16 +169,19 @@ def nice_bins(lo: float, hi: float, target: int) -> NumericBins:
             step = _nice(m, e)
             if not (step >= _TINY and math.isfinite(lo / step) and math.isfinite(hi / step)):
                 continue
+            if prune:
+                q = span / step
+                slack = 2.0 + (abs(lo) + abs(hi)) / step * 1e-12
+                if q > target + slack:
+                    continue
+                if best is not None and q + 2.0 + slack < best[0]:
+                    return best, fewest
             start, count = nice_step_count(lo, hi, step)
             if count <= target and (best is None or count > best[0]):
                 best = (count, step, start)
             if fewest is None or count < fewest[0]:
                 fewest = (count, step, start)
-    chosen = best or fewest
-    if chosen is None:
-        raise LayoutError(f"no nice width splits [{lo!r}, {hi!r}]")
-    count, step, start = chosen
-    return check_layout(NumericBins(start, step, count, "nice"))
+    return best, fewest
 
 
 def rule_width(rule: str, n: int, ptp: float, std_pop: float | None, iqr: float | None) -> float:

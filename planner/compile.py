@@ -26,6 +26,7 @@ Main statement shape::
 from __future__ import annotations
 
 import contextvars
+import dataclasses
 import datetime as dt
 import functools
 import json
@@ -179,6 +180,29 @@ class Plan:
         self.main = _main_statement(self)
         return self
 
+    def layout_key(self, extents_row: dict[str, Any] | None = None) -> tuple:
+        """What ``finish(extents_row)`` takes from the row: equal keys (same request shape)
+        give the same main statement, so a brush whose new extents keep the bin layout
+        reuses it. Numeric bins: the layout and whether the plain floor is exact over the
+        row's range (``_plain_floor_is_exact``); time bins: step, first bin, count, closed
+        stop. M4 reductions read the whole row. Raises what ``finish`` raises (bad layouts)."""
+        row = extents_row or {}
+        if self.request.reduce is not None:
+            return ("row",) + tuple(sorted(row.items(), key=lambda kv: kv[0]))
+        out: list[Any] = []
+        for k in self.keys:
+            if k.mode == "nbin":
+                k = dataclasses.replace(k)  # this plan may be shared: lay out a copy
+                _layout_numeric(k, row)
+                b = k.nbins
+                out.append((b.start, b.width, b.count, b.method,
+                            _plain_floor_is_exact(b, k.vrange)))
+            elif k.mode == "tbin":
+                k = dataclasses.replace(k)
+                _layout_time(k, row)
+                out.append((k.tstep.iso, k.tstart, k.tcount, k.tclosed))
+        return tuple(out)
+
     def bins_meta(self) -> dict[str, dict[str, Any]]:
         """``bins`` of the response: the layout of every binned key, by channel name."""
         out: dict[str, dict[str, Any]] = {}
@@ -203,8 +227,9 @@ class Plan:
 
 def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
             params: bool = False) -> Plan:
-    """``params``: long ``in`` / ``not_in`` lists become bound parameters (see
-    ``Dialect.param_form``) instead of literals, so the SQL text does not depend on their values."""
+    """``params``: long ``in`` / ``not_in`` lists and comparison values become bound
+    parameters (see ``Dialect.param_form``) instead of literals, so the SQL text does not
+    depend on their values."""
     keys: list[Key] = []
     measures: list[Measure] = []
     request_tz = _check_tz(request.tz, pointer("tz"))
@@ -588,12 +613,15 @@ def _literal(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> exp.Expressio
 
 _COMPARE = {"eq": exp.EQ, "ne": exp.NEQ, "lt": exp.LT, "lte": exp.LTE, "gt": exp.GT,
             "gte": exp.GTE}
+#: operators whose one value may be a bound parameter (``_scalar_bindable``)
+_SCALAR_OPS = frozenset(_COMPARE) | {"contains", "starts_with"}
 
 
 def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect,
                     slots: list[Any] | None = None) -> exp.Expression:
-    """``slots``: when a list, long in/not_in lists become parameter slots appended to it
-    (their values: ``bind_values``); None writes every value as a literal."""
+    """``slots``: when a list, long in/not_in lists and bindable comparison values become
+    parameter slots appended to it (their values: ``bind_values``); None writes every value
+    as a literal."""
     if isinstance(f, AnyOf):
         parts = [_compile_filter(g, path + ("any", j), schema, d, slots)
                  for j, g in enumerate(f.any)]
@@ -608,7 +636,11 @@ def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect,
     for op, value in f.operators():
         ptr = pointer(*path, op)
         if op in _COMPARE:
-            terms.append(_COMPARE[op](this=ref.copy(), expression=_literal(d, col, value, ptr)))
+            lit = _literal(d, col, value, ptr)
+            if slots is not None and _scalar_bindable(d, col, value):
+                lit = _put(lit, _marker(len(slots)))
+                slots.append(None)
+            terms.append(_COMPARE[op](this=ref.copy(), expression=lit))
         elif op in ("in", "not_in"):
             if not value:
                 terms.append(exp.false() if op == "in" else exp.true())
@@ -631,7 +663,11 @@ def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect,
                                 slug="type-mismatch")
             _literal(d, col, value, ptr)
             fn = d.contains if op == "contains" else d.starts_with
-            terms.append(fn(ref.copy(), value))
+            node = fn(ref.copy(), value)
+            if slots is not None and _scalar_bindable(d, col, value):
+                node = _put(node, _marker(len(slots)))  # (starts_with: its length is in the shape)
+                slots.append(None)
+            terms.append(node)
     return exp.Paren(this=exp.and_(*terms)) if len(terms) > 1 else terms[0]
 
 
@@ -651,6 +687,10 @@ def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect,
 #   each  (MariaDB/MySQL, no arrays): one ``%s`` per value, escaped by the driver; the list
 #         is padded to a power of two by repeating its last value (``x IN (a, b, b)`` is
 #         ``x IN (a, b)``), so few SQL texts exist per request shape.
+#
+# Single comparison values (eq..gte, contains, starts_with) become one parameter each, in
+# the same literal form (``_scalar_bindable``): a brushed chart (a new window per request)
+# reuses one plan.
 #
 # "<literal form of u>" is the dialect's own literal for the column kind with the literal
 # replaced by the parameter (e.g. MySQL's CAST(... AS BINARY) for text, the timestamp casts),
@@ -678,6 +718,57 @@ def _leaf(e: exp.Expression) -> exp.Expression:
         if isinstance(node, exp.Boolean) or (isinstance(node, exp.Literal) and node.is_string):
             return node
     raise AssertionError(f"no literal in {e!r}")
+
+
+def _put(template: exp.Expression, e: exp.Expression) -> exp.Expression:
+    """``template`` (a literal form, or a predicate holding one) with its literal replaced
+    by ``e`` (a parameter marker or column)."""
+    t = template.copy()
+    leaf = _leaf(t)
+    if leaf is t:
+        return e
+    leaf.replace(e)
+    return t
+
+
+def _float64(d: Dialect, col: ColumnInfo) -> bool:
+    """A column of 64-bit doubles: a number literal (DECIMAL on DuckDB, NUMERIC on PostgreSQL,
+    DECIMAL on MariaDB) compared with it is converted to the nearest double -- the very double
+    a bound float is -- so both compare alike. Against integer, decimal or 32-bit float columns
+    a decimal literal compares exactly (or in single precision) and a bound double would not.
+    SQLite stores every REAL as an 8-byte double."""
+    return col.kind == "double" and (d.name == "sqlite"
+                                     or col.sql_type.strip().lower() in _FLOAT64_TYPES)
+
+
+_FLOAT64_TYPES = frozenset({"double", "double precision", "float8", "float64"})
+
+
+def _scalar_bindable(d: Dialect, col: ColumnInfo | None, value: Any) -> bool:
+    """Whether one comparison value (eq..gte, contains, starts_with) is bound as a parameter
+    (decided from the value and the column's kind alone, so that ``param_shape`` and
+    ``prepare`` always agree). Values of the wrong JSON type stay literals (and fail there)."""
+    if d.param_form is None or col is None:
+        return False
+    if col.is_number:
+        if isinstance(value, bool):
+            return False
+        if isinstance(value, int):
+            return -2 ** 63 <= value < 2 ** 63
+        return isinstance(value, float) and math.isfinite(value) and _float64(d, col)
+    if col.kind == "string" or col.is_temporal:
+        return isinstance(value, str) and "\x00" not in value
+    if col.kind == "boolean":
+        return isinstance(value, bool)
+    return False
+
+
+def _scalar_value(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> Any:
+    """The driver value of a bound comparison value: what its literal denotes (the
+    dialect's timestamp text for instants, read in the request's zone), checked like it."""
+    if col.is_temporal:
+        return _leaf(_literal(d, col, value, ptr)).this
+    return value
 
 
 def _param_values(d: Dialect, col: ColumnInfo, values: list[Any], ptr: str) -> list[Any] | None:
@@ -727,12 +818,7 @@ def _param_in(d: Dialect, col: ColumnInfo, ref: exp.Expression, first: Any, ptr:
     template = _literal(d, col, first, ptr)
 
     def put(e: exp.Expression) -> exp.Expression:
-        t = template.copy()
-        leaf = _leaf(t)
-        if leaf is t:
-            return e
-        leaf.replace(e)
-        return t
+        return _put(template, e)
 
     if form == "each":
         return exp.In(this=ref, expressions=[put(_marker(slot, j)) for j in range(_padded(len(raw)))])
@@ -752,9 +838,11 @@ def _padded(n: int) -> int:
     return 1 << max(0, n - 1).bit_length()
 
 
-def param_shape(req: ChartRequest, d: Dialect) -> Any:
+def param_shape(req: ChartRequest, d: Dialect, schema: SourceSchema | None = None) -> Any:
     """The request as plain JSON with every list that ``prepare(..., params=True)`` may bind
-    replaced by its padded length: equal shapes render the same SQL text."""
+    replaced by its padded length and every bound comparison value (``_scalar_bindable``,
+    which needs the ``schema``'s column kinds) by its JSON type: equal shapes render the
+    same SQL text."""
     doc = req.model_dump(mode="json", by_alias=True, exclude_none=True)
     if d.param_form is None:
         return doc
@@ -770,6 +858,13 @@ def param_shape(req: ChartRequest, d: Dialect) -> Any:
                 v = f.get(op)
                 if v is not None and _bindable(v):
                     f[op] = ["\x00", _padded(len(v)), sorted({type(x).__name__ for x in v})]
+            col = schema.column(f["column"]) if schema is not None else None
+            for op in _SCALAR_OPS:
+                v = f.get(op)
+                if v is not None and _scalar_bindable(d, col, v):
+                    # starts_with writes the prefix's length (characters; MariaDB: bytes)
+                    f[op] = ["\x00", type(v).__name__] + (
+                        [len(v), len(v.encode("utf-8"))] if op == "starts_with" else [])
 
     for f in doc.get("where", []):
         walk(f)
@@ -787,6 +882,11 @@ def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any
     def bind(f: Predicate, path: tuple) -> None:
         col = None
         for op, value in f.operators():
+            if op in _SCALAR_OPS:
+                col = col or _resolve(f.column, schema, pointer(*path, "column"))
+                if _scalar_bindable(d, col, value):
+                    out.append(_scalar_value(d, col, value, pointer(*path, op)))
+                continue
             if op not in ("in", "not_in") or not value:
                 continue
             col = col or _resolve(f.column, schema, pointer(*path, "column"))
@@ -1230,11 +1330,17 @@ def _plain_floor_is_exact(b: binning.NumericBins, vrange: tuple[float, float] | 
     if b.count is None or vrange is None:
         return None
     lo, hi = vrange
-    return _exact_layout(b.start, b.width, b.count, lo, hi)
+    # (the per-bin checks depend on the layout alone: cached across a brush's new ranges)
+    if not lo >= b.start + 0.0 * b.width or not _exact_layout(b.start, b.width, b.count):
+        return None
+    top = b.start + float(b.count) * b.width
+    if hi < top:
+        return 0.0
+    return top  # values in [edge_count, hi] go to the last bin, as the guarded form clamps
 
 
 @functools.lru_cache(maxsize=4096)
-def _exact_layout(start: float, width: float, count: int, lo: float, hi: float) -> float | None:
+def _exact_layout(start: float, width: float, count: int) -> bool:
     def idx(v: float) -> int:
         return math.floor((v - start) / width)
 
@@ -1242,17 +1348,12 @@ def _exact_layout(start: float, width: float, count: int, lo: float, hi: float) 
         return start + float(i) * width
 
     if not (math.isfinite(start) and math.isfinite(width) and width > 0):
-        return None
-    if not lo >= edge(0):
-        return None
+        return False
     for i in range(count):
         e0, e1 = edge(i), edge(i + 1)
         if not e1 > e0 or idx(e0) != i or idx(math.nextafter(e1, -math.inf)) != i:
-            return None
-    top = edge(count)
-    if hi < top:
-        return 0.0
-    return top  # values in [edge_count, hi] go to the last bin, as the guarded form clamps
+            return False
+    return True
 
 
 def _trunc_key(d: Dialect, unit: str, ref: exp.Expression, kind: str, tz: str) -> exp.Expression:

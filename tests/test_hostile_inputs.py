@@ -389,6 +389,27 @@ PARAM_CASES = {
     # ints and floats together stay literals (rows hold x exactly on -40, -10, 0, ...)
     "mixed_numbers_stay_literals": [{"column": "x", "in": [-40, -10, 0, 10, 20, 40] + sorted(
         {r["x"] for r in ROWS if r["x"] is not None})[:12]}],
+    # single comparison values (eq..gte, contains, starts_with) are bound too (brushing)
+    # text: MariaDB compares the bound value as bytes like its literal (no case folding,
+    # no PAD SPACE): 'Alpha' != 'alpha', 'beta ' != 'beta'
+    "scalar_text": [{"any": [{"column": "cat", "eq": "Alpha"}, {"column": "cat", "eq": "beta "},
+                             {"column": "cat", "gte": "Z", "lt": "zz"},
+                             {"column": "cat", "ne": "alpha", "lte": "a_b"}]},
+                    {"column": "k", "gt": KS[5], "lt": KS[900]}],
+    "scalar_contains": [{"any": [{"column": "cat", "contains": "ü"},
+                                 {"column": "cat", "contains": "a_"},
+                                 {"column": "k", "starts_with": "k00"},
+                                 {"column": "cat", "starts_with": "東"}]}],
+    # rows hold x exactly on -10 and 20 (edge values, one of each comparison)
+    "scalar_int_float": [{"column": "n", "gt": -9223372036854775808, "lte": 9223372036854775807,
+                          "ne": 3}, {"column": "x", "gte": -10.0, "lt": 20, "ne": 0.1}],
+    # a float against a DECIMAL column stays a literal (exact decimal comparison); ints bind
+    "scalar_decimal": [{"column": "amount", "gt": 12.25, "lte": 1500, "ne": 99.99}],
+    "scalar_bool": [{"column": "flag", "eq": True}, {"column": "n", "lt": 40}],
+    # instants: offset-less ones in the request's tz (tz_ cases), across a DST change
+    "tz_scalar_ts": [{"column": "ts", "gte": "2026-03-29T01:30:00", "lt": "2026-10-25T02:30:00"}],
+    "tz_scalar_tsn": [{"column": "tsn", "gt": "2026-03-28T20:00:00Z", "lte": "2026-03-30"}],
+    "tz_scalar_day": [{"column": "day", "gte": "2026-03-08", "lt": "2026-11-01T03:00:00-05:00"}],
 }
 
 
@@ -412,6 +433,8 @@ def test_bound_lists_equal_literal_lists(service, engine, case):
                          "size": {"agg": "sum", "column": "n"}}, "where": PARAM_CASES[case]}
     if case == "percent_in_sql":
         body["filter_sql"] = "n % 2 = 0 AND cat LIKE '%a%'"
+    if case.startswith("tz_"):
+        body["tz"] = "Europe/Berlin"
     lit, par, nargs = _literal_and_param(service, engine, body)
     if case == "mixed_numbers_stay_literals":
         assert nargs == 0

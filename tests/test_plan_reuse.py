@@ -1,0 +1,146 @@
+"""Brushing: a request that differs from an earlier one only in its filter values reuses the
+cached plan (issue 11 item 5). The values are bound parameters of the cached statements
+(planner.compile ``_scalar_bindable`` / ``bind_values``), and the finished main statement is
+keyed by the bin layout the extents row gives (``Plan.layout_key``), not by the row.
+
+Reuse is shown by counting calls of ``prepare`` and of SQL rendering (no timing); answers
+are checked against numpy.histogram over the rows the window keeps (counted in Python) and
+the extents row against Python's min/max of those rows.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import duckdb
+import numpy as np
+import pytest
+
+from planner.dialects.base import Dialect
+from planner.errors import PlanError
+from planner.model import ChartRequest
+
+N = 4000
+T0 = dt.datetime(2026, 1, 1, tzinfo=dt.timezone.utc)
+
+
+def _rows() -> list[tuple[dt.datetime, float, int]]:
+    # one row a minute; v runs over [0.5, 99.4] in a scrambled order, so every window of a
+    # few hundred minutes has a slightly different min and max but the same nice layout
+    return [(T0 + dt.timedelta(minutes=i), 0.5 + ((i * 37) % 990) / 10.0, i % 11 - 5)
+            for i in range(N)]
+
+
+ROWS = _rows()
+
+
+@pytest.fixture(scope="module")
+def service(tmp_path_factory):
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    path = tmp_path_factory.mktemp("reuse") / "t.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute("SET TimeZone = 'UTC'")
+    con.execute("CREATE TABLE t (ts TIMESTAMPTZ, v DOUBLE, n INTEGER)")
+    con.executemany("INSERT INTO t VALUES (?, ?, ?)", ROWS)
+    con.close()
+    catalog = Catalog(parse_settings({"sources": {"t": {"engine": "duckdb", "path": str(path),
+                                                         "table": "t"}}}, "<reuse>"))
+    yield ChartService(catalog)
+    catalog.close()
+
+
+def _window(i: int) -> tuple[dt.datetime, dt.datetime]:
+    lo = T0 + dt.timedelta(minutes=300 + 41 * i)
+    return lo, lo + dt.timedelta(minutes=150 + i)
+
+
+def _request(i: int, bin_spec: dict) -> ChartRequest:
+    lo, hi = _window(i)
+    return ChartRequest.model_validate({
+        "source": "t", "channels": {"x": {"column": "v", "bin": bin_spec}, "y": {"agg": "count"}},
+        "where": [{"column": "ts", "gte": lo.isoformat(), "lt": hi.isoformat()},
+                  {"column": "n", "ne": i % 3}]})
+
+
+def _kept(i: int) -> list[float]:
+    lo, hi = _window(i)
+    return [v for t, v, n in ROWS if lo <= t < hi and n != i % 3]
+
+
+@pytest.fixture()
+def counted(monkeypatch):
+    """Calls of app.service's ``prepare`` and of ``Dialect.render`` (every SQL text)."""
+    import app.service as service_mod
+
+    calls = {"prepare": 0, "render": 0}
+    real_prepare, real_render = service_mod.prepare, Dialect.render
+
+    def prepare(*a, **k):
+        calls["prepare"] += 1
+        return real_prepare(*a, **k)
+
+    def render(self, node):
+        calls["render"] += 1
+        return real_render(self, node)
+
+    monkeypatch.setattr(service_mod, "prepare", prepare)
+    monkeypatch.setattr(Dialect, "render", render)
+    return calls
+
+
+@pytest.mark.parametrize("bin_spec", [{"bins": 20}, {"width": 2.5, "origin": 0.5}])
+def test_new_filter_values_reuse_the_plan(service, counted, bin_spec):
+    first = service.run(_request(0, bin_spec))
+    assert counted["prepare"] >= 1 and counted["render"] >= 1  # the first one plans
+    counted["prepare"] = counted["render"] = 0
+    extents = set()
+    for i in range(1, 12):
+        res = service.run(_request(i, bin_spec))
+        kept = _kept(i)
+        # reference: numpy.histogram over the answer's edges of the rows Python keeps
+        b = res.meta["bins"]["x"]
+        edges = [b["start"] + j * b["width"] for j in range(b["count"] + 1)]
+        want, _ = np.histogram(kept, bins=edges)
+        got = dict(zip(res.table.column("x_lo").to_pylist(), res.table.column("count").to_pylist()))
+        assert [got.get(e, 0) for e in edges[:-1]] == want.tolist()
+        assert res.meta["stats"]["matched_rows"] == len(kept)
+        assert res.meta["sql"][-1] == first.meta["sql"][-1]  # one text, values bound
+        assert b == first.meta["bins"]["x"]  # the layout repeats ...
+        extents.add((min(kept), max(kept)))
+    assert len(extents) > 5  # ... over extents rows that do not
+    # neither a new plan nor any new SQL text for any of the new values
+    assert counted == {"prepare": 0, "render": 0}
+
+
+def test_a_new_bin_layout_renders_again(service, counted):
+    service.run(_request(0, {"bins": 20}))
+    counted["render"] = 0
+    # a window over 5 rows only: another extents row and another nice layout
+    lo = T0 + dt.timedelta(minutes=2)
+    req = ChartRequest.model_validate({
+        "source": "t", "channels": {"x": {"column": "v", "bin": {"bins": 20}}, "y": {"agg": "count"}},
+        "where": [{"column": "ts", "gte": lo.isoformat(), "lt": (lo + dt.timedelta(minutes=5)).isoformat()},
+                  {"column": "n", "ne": 0}]})
+    res = service.run(req)
+    kept = [v for t, v, n in ROWS if lo <= t < lo + dt.timedelta(minutes=5) and n != 0]
+    assert res.meta["stats"]["matched_rows"] == len(kept)
+    assert res.meta["bins"]["x"]["width"] < 2.5  # narrower data: a finer nice width
+    assert counted["prepare"] == 1 and counted["render"] == 1  # the main statement only
+
+
+@pytest.mark.parametrize("where,ptr", [
+    ([{"column": "ts", "gte": "yesterday", "lt": "2026-01-02T00:00:00Z"}, {"column": "n", "ne": 1}],
+     "/where/0/gte"),
+    ([{"column": "ts", "gte": "2026-01-01T00:00:00Z", "lt": "10000-01-01"}, {"column": "n", "ne": 1}],
+     "/where/0/lt"),
+])
+def test_bad_values_of_a_cached_shape_keep_their_pointer(service, where, ptr):
+    service.run(_request(0, {"bins": 20}))  # the shape is cached with good values
+    req = ChartRequest.model_validate({"source": "t", "channels": {
+        "x": {"column": "v", "bin": {"bins": 20}}, "y": {"agg": "count"}}, "where": where})
+    with pytest.raises(PlanError) as e:
+        service.run(req)
+    assert e.value.pointer == ptr
