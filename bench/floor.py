@@ -17,7 +17,20 @@ FLOOR_RUNS rounds:
 
 service vs service_plain is the guard's cost in place; hand_guarded vs hand_plain is the
 same without the rest of the statement. ``equal`` says whether the four answers agree on
-this data (bin index and count per bin).
+this data (bin index and count per bin). (The planner now proves the plain floor exact for
+width 2.5 over this data, so ``service`` may hold no guard; then only service vs hand.)
+
+Candidates (``candidates``, same interleaved rounds): formulations of the exact index for a
+width the plain floor cannot be proved for (CANDIDATE_WIDTH = 0.1, a non-dyadic width;
+layout over the data's min/max), each inside the finiteness CASE the planner writes for a
+DOUBLE column, as hand-written grouped counts:
+
+  cand_plain        FLOOR((v - o) / w)                          (not exact: the reference cost)
+  cand_index_clamp  guard, clamped on the guarded index         (the planner before)
+  cand_value_clamp  guard, clamped on v against the first/last edge (the planner now)
+  cand_bool_clamp   the guard as CAST(comparison AS INTEGER) sums, clamped on v
+
+``cand_equal`` says whether each answer equals cand_index_clamp's (the exact reference).
 """
 
 from __future__ import annotations
@@ -60,8 +73,9 @@ def variants(sql: str) -> dict[str, str]:
 
     tree = sqlglot.parse_one(sql, read="duckdb")
     guarded = None
-    for alias in tree.find_all(exp.Alias):  # the key: a FLOOR corrected by a CASE
-        if alias.this.find(exp.Floor) is not None and alias.this.find(exp.Case) is not None:
+    for alias in tree.find_all(exp.Alias):  # the key: a FLOOR corrected by a CASE (the
+        # guard repeats the FLOOR; the finiteness CASE around a plain FLOOR is no guard)
+        if len(list(alias.this.find_all(exp.Floor))) > 1 and alias.this.find(exp.Case) is not None:
             guarded = alias
             break
     hand = ("SELECT {k} AS k, count(*) AS n FROM deliveries AS s GROUP BY 1 ORDER BY 1 NULLS LAST")
@@ -73,6 +87,45 @@ def variants(sql: str) -> dict[str, str]:
         out["service_plain"] = tree.sql("duckdb")
         out["hand_guarded"] = hand.format(k=guard_sql)
     return out
+
+
+CANDIDATE_WIDTH = 0.1
+
+
+def candidates(con: Any) -> dict[str, str]:
+    """The candidate statements (module docstring) over the data's own min/max layout."""
+    import math
+
+    lo, hi = con.sql(f"SELECT min({COLUMN}), max({COLUMN}) FROM deliveries").fetchall()[0]
+    w, o = CANDIDATE_WIDTH, ORIGIN
+    first = math.floor((lo - o) / w)
+    start = o + first * w
+    count = max(1, math.ceil((hi - o) / w) - first)
+    v = f"CAST(s.{COLUMN} AS DOUBLE)"
+    S, W = f"CAST({start!r} AS DOUBLE)", f"CAST({w!r} AS DOUBLE)"
+    i0 = f"FLOOR(({v} - {S}) / {W})"
+    case_guard = (f"{i0} + (CASE WHEN {v} >= {S} + ({i0} + 1) * {W} THEN 1 "
+                  f"WHEN {v} < {S} + ({i0}) * {W} THEN -1 ELSE 0 END)")
+    bool_guard = (f"{i0} + CAST({v} >= {S} + ({i0} + 1) * {W} AS INTEGER) "
+                  f"- CAST({v} < {S} + {i0} * {W} AS INTEGER)")
+    top = count - 1
+    stop = repr(start + float(count) * w)
+
+    def index_clamp(g: str) -> str:
+        return f"CASE WHEN {g} > {top} THEN {top} WHEN {g} < 0 THEN 0 ELSE {g} END"
+
+    def value_clamp(g: str) -> str:
+        return (f"CASE WHEN {v} >= CAST({stop} AS DOUBLE) THEN {top} WHEN {v} < {S} THEN 0 "
+                f"ELSE {g} END")
+
+    def finite(e: str) -> str:
+        return f"CASE WHEN ISFINITE({v}) THEN {e} END"
+
+    hand = "SELECT {k} AS k, count(*) AS n FROM deliveries AS s GROUP BY 1 ORDER BY 1 NULLS LAST"
+    keys = {"cand_plain": finite(i0), "cand_index_clamp": finite(index_clamp(case_guard)),
+            "cand_value_clamp": finite(value_clamp(case_guard)),
+            "cand_bool_clamp": finite(value_clamp(bool_guard))}
+    return {name: hand.format(k=k) for name, k in keys.items()}
 
 
 def measure(con: Any, qs: dict[str, str], runs: int = RUNS) -> dict[str, Any]:
@@ -89,20 +142,28 @@ def measure(con: Any, qs: dict[str, str], runs: int = RUNS) -> dict[str, Any]:
 
     def counts(name: str) -> list[tuple]:
         t = answers[name]
-        if name.startswith("hand"):
+        if name.startswith(("hand", "cand")):
             return [(r["k"], r["n"]) for r in t.to_pylist()]
         return [(r["x_lo"], r["count"]) for r in t.to_pylist()]
 
-    hand = [((None if k is None else ORIGIN + k * WIDTH), n) for k, n in counts("hand_plain")]
+    hand = ([((None if k is None else ORIGIN + k * WIDTH), n) for k, n in counts("hand_plain")]
+            if "hand_plain" in qs else None)
     equal = {name: (counts(name) if not name.startswith("hand") else
                     [((None if k is None else ORIGIN + k * WIDTH), n) for k, n in counts(name)]) == hand
-             for name in qs}
+             for name in qs if not name.startswith("cand")}
+    cand_equal = {name: counts(name) == counts("cand_index_clamp") for name in qs
+                  if name.startswith("cand") and "cand_index_clamp" in qs}
     med = {k: round(statistics.median(v), 2) for k, v in times.items()}
     guarded = "hand_guarded" in med
+    plain = "hand_plain" in med
+    cands = {k: v for k, v in med.items() if k.startswith("cand")}
     return {"runs": runs, "median_ms": med, "equal_to_hand_plain": equal, "guarded": guarded,
+            "cand_equal": cand_equal,
+            "cand_over_plain": {k: round(v / cands["cand_plain"], 3) for k, v in cands.items()}
+            if cands else None,
             "guard_cost_in_statement": round(med["service"] / med["service_plain"], 3) if guarded else None,
             "guard_cost_alone": round(med["hand_guarded"] / med["hand_plain"], 3) if guarded else None,
-            "service_over_hand_plain": round(med["service"] / med["hand_plain"], 3),
+            "service_over_hand_plain": round(med["service"] / med["hand_plain"], 3) if plain else None,
             "samples_ms": {k: [round(x, 2) for x in v] for k, v in times.items()}}
 
 
@@ -114,6 +175,7 @@ def main() -> None:
     db, _walk = bench.build_data()
     qs = variants(service_sql(bench.plan_data()))
     con = runner.reference_connection(db)
+    qs.update(candidates(con))
     res = measure(con, qs)
     res["rows"] = bench.ROWS
     res["sql"] = qs

@@ -1303,11 +1303,16 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
         exp.If(this=exp.LT(this=v.copy(), expression=edge(i0.copy())),
                true=exp.Neg(this=exp.Literal.number(1)))],
         default=exp.Literal.number(0))))
-    if b.count is not None:  # closed last bin; clamp float noise at the lower edge
-        top = d.number(b.count - 1)
-        idx = exp.Case(ifs=[exp.If(this=exp.GT(this=idx.copy(), expression=top),
-                                   true=top.copy()),
-                            exp.If(this=exp.LT(this=idx.copy(), expression=exp.Literal.number(0)),
+    if b.count is not None:
+        # closed last bin: values from the upper edge on go into the last bin; values below
+        # the first edge (a start snapped above the data's min) into the first. Tested on v
+        # against the edges, not on the guarded index: the index appears once (the clamp
+        # on the index repeated it three times; bench/floor.py: 2M rows, 5-7x -> 3.4x plain)
+        # and, as the index is exact, idx > count - 1 <=> v >= edge_count, idx < 0 <=> v < start.
+        idx = exp.Case(ifs=[exp.If(this=exp.GTE(this=v.copy(), expression=d.real(
+                                       b.start + float(b.count) * b.width)),
+                                   true=d.number(b.count - 1)),
+                            exp.If(this=exp.LT(this=v.copy(), expression=start.copy()),
                                    true=exp.Literal.number(0))],
                        default=idx)
     return idx
