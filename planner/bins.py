@@ -17,6 +17,7 @@
 
 from __future__ import annotations
 
+import functools
 import math
 import sys
 from dataclasses import dataclass
@@ -125,6 +126,7 @@ def nice_step_count(lo: float, hi: float, step: float) -> tuple[float, int]:
 NICE_MANTISSAS = (1.0, 1.2, 1.5, 2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 8.0)
 
 
+@functools.lru_cache(maxsize=4096)  # (the plan cache asks for the layout of every extents row)
 def nice_bins(lo: float, hi: float, target: int) -> NumericBins:
     """Nice bins covering [lo, hi]: among the widths NICE_MANTISSAS x 10^k, the one
     whose bin count is closest to ``target`` without exceeding it (ties: the finer width).

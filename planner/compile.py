@@ -138,6 +138,8 @@ class Plan:
     #: number of bound-parameter slots in the SQL (``prepare(..., params=True)``); their
     #: values come from ``bind_values(request, ...)``, the text from ``bind_sql``
     slots: int = 0
+    #: ``layout_key`` by extents row (a shared prepared plan answers it for many requests)
+    _layouts: dict = field(default_factory=dict, repr=False, compare=False)
 
     # ---- SQL text --------------------------------------------------------------------
     @property
@@ -187,8 +189,12 @@ class Plan:
         row's range (``_plain_floor_is_exact``); time bins: step, first bin, count, closed
         stop. M4 reductions read the whole row. Raises what ``finish`` raises (bad layouts)."""
         row = extents_row or {}
+        raw = tuple(sorted(row.items(), key=lambda kv: kv[0]))
         if self.request.reduce is not None:
-            return ("row",) + tuple(sorted(row.items(), key=lambda kv: kv[0]))
+            return ("row",) + raw
+        hit = self._layouts.get(raw)  # (a repeated row: no layout work)
+        if hit is not None:
+            return hit
         out: list[Any] = []
         for k in self.keys:
             if k.mode == "nbin":
@@ -201,7 +207,10 @@ class Plan:
                 k = dataclasses.replace(k)
                 _layout_time(k, row)
                 out.append((k.tstep.iso, k.tstart, k.tcount, k.tclosed))
-        return tuple(out)
+        if len(self._layouts) >= 256:
+            self._layouts.clear()
+        self._layouts[raw] = key = tuple(out)
+        return key
 
     def bins_meta(self) -> dict[str, dict[str, Any]]:
         """``bins`` of the response: the layout of every binned key, by channel name."""
@@ -767,8 +776,14 @@ def _scalar_value(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> Any:
     """The driver value of a bound comparison value: what its literal denotes (the
     dialect's timestamp text for instants, read in the request's zone), checked like it."""
     if col.is_temporal:
-        return _leaf(_literal(d, col, value, ptr)).this
+        return _instant_value(d, col, value, ptr, _READ_TZ.get())
     return value
+
+
+@functools.lru_cache(maxsize=4096)
+def _instant_value(d: Dialect, col: ColumnInfo, value: str, ptr: str, tz: str) -> Any:
+    """(``_scalar_value`` of an instant; ``tz``: the zone it is read in, part of the key)"""
+    return _leaf(_literal(d, col, value, ptr)).this
 
 
 def _param_values(d: Dialect, col: ColumnInfo, values: list[Any], ptr: str) -> list[Any] | None:
