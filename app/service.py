@@ -94,9 +94,10 @@ class PlanCache:
     """Planning without re-planning: the SQL of a request is a pure function of (request
     shape, dialect, source data version, extents row), so sqlglot builds and renders it
     once and later requests reuse the text. The *shape* is the canonical request with every
-    long ``in``/``not_in`` list replaced by its padded length: those lists are bound
-    parameters (``planner.compile.bind_values``), so requests that differ only in their
-    values share one plan, and a stream of requests with new 5,000-value lists plans once.
+    long ``in``/``not_in`` list replaced by its padded length and every bindable comparison
+    value (eq..gte, contains, starts_with) by its JSON type: those are bound parameters
+    (``planner.compile.bind_values``), so requests that differ only in their values share
+    one plan -- a brush plans once, and so does a stream of new 5,000-value lists.
 
     * ``prepared``: the checked, never-finished Plan per (shape, dialect, version) --
       shared read-only (only its extents SQL is used);
