@@ -1,8 +1,9 @@
 """HTTP API. ``uvicorn app.main:app`` serves it; ``create_app(settings)`` builds one.
 
 ``create_app`` only assembles: settings -> catalog -> service -> the app's state, its
-exception handlers (``app.handlers``), its middleware (``middleware``) and the routers, one
-module per noun: ``app.routes_charts``, ``app.routes_sources``, ``app.routes_operations``.
+exception handlers (``app.handlers``), its middleware (``middleware``) and its routes
+(``routes``: the routers of one module per noun, ``app.routes_charts``,
+``app.routes_sources``, ``app.routes_operations``).
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ from typing import Any
 from fastapi import FastAPI
 from starlette.middleware import Middleware
 from starlette.middleware.cors import CORSMiddleware
+from starlette.routing import BaseRoute
 
 from app import auth, observability, routes_charts, routes_operations, routes_sources
 from app.cache import ResultCache
@@ -35,6 +37,12 @@ CORS_EXPOSE_HEADERS = ["X-Request-ID", "Retry-After", "X-Sluice-Truncated",
                        "X-Sluice-Approximate"]
 #: the routers, in the order their paths appear in the OpenAPI document
 ROUTERS = (routes_charts.router, routes_sources.router, routes_operations.router)
+
+
+def routes() -> list[BaseRoute]:
+    """Every router's routes, then the static folders, as one list on the app itself (so
+    ``app.routes`` lists every path; FastAPI 0.16x keeps an included router as one entry)."""
+    return [*(r for router in ROUTERS for r in router.routes), *routes_operations.mounts()]
 
 
 def middleware(settings: Settings, metrics: observability.Metrics) -> list[Middleware]:
@@ -76,15 +84,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         docs_url=None, redoc_url=None,  # offline docs pages: app/routes_operations.py
         exception_handlers=HANDLERS,
         middleware=middleware(settings, metrics),
+        routes=routes(),
     )
     st: Any = app.state  # what the routes read (request.app.state)
     st.settings, st.catalog, st.service, st.metrics = settings, catalog, service, metrics
     st.cache = ResultCache.from_config(getattr(settings, "cache", None) or {})  # + Redis
     st.readiness = Readiness(catalog, settings.ready_timeout_s, settings.ready_ttl_s)
-    for router in ROUTERS:
-        app.include_router(router)
-    for path, files, name in routes_operations.mounts():
-        app.mount(path, files, name=name)
     return app
 
 

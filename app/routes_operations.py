@@ -21,6 +21,7 @@ from pathlib import Path
 from fastapi import APIRouter, Request
 from fastapi.openapi.docs import get_redoc_html, get_swagger_ui_html
 from starlette.responses import FileResponse, HTMLResponse, Response
+from starlette.routing import Mount
 from starlette.staticfiles import StaticFiles
 
 from app import answers, auth
@@ -130,7 +131,7 @@ def problem_page(slug: str) -> HTMLResponse:
     return HTMLResponse(_PAGE.format(title=html.escape(title), body=body))
 
 
-def mounts() -> list[tuple[str, StaticFiles, str]]:
-    """(path, files, name) of the static folders: the preview page's, the docs pages'."""
-    return [("/static", StaticFiles(directory=STATIC_DIR), "static"),
-            (ASSETS, StaticFiles(directory=assets_dir()), "docs-assets")]
+def mounts() -> list[Mount]:
+    """The static folders: the preview page's files and the docs pages' assets."""
+    return [Mount("/static", StaticFiles(directory=STATIC_DIR), name="static"),
+            Mount(ASSETS, StaticFiles(directory=assets_dir()), name="docs-assets")]
