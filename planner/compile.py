@@ -416,9 +416,9 @@ def _check_options(plan: Plan) -> None:
         m = plan.stack_measure
         if not m.aggregate.stacks:
             raise PlanError(pointer(*m.path, "agg"),
-                            f"stack piles the values of {m.spec.agg} on one another, which "
-                            f"means nothing for {m.spec.agg}: use a count, sum or other "
-                            f"additive measure on {m.channel}, or no stack")
+                            f"stack cannot pile {m.spec.agg} values (a pile of them means "
+                            f"nothing): stack a count, sum or other additive measure on "
+                            f"{m.channel}, or drop stack")
     if req.facet is not None and req.facet.max_groups is not None and not d.supports("window"):
         raise Unsupported(pointer("facet", "max_groups"), d.name, "max_groups (window functions)")
     if req.empty_bins != "omit" and not any(k.binned for k in plan.keys):

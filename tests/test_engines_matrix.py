@@ -177,6 +177,9 @@ CASES: dict[str, dict] = {
     "share_by_group": {"channels": {"x": key("grp"), "color": key("cat"), "y": agg("share", "flag")}},
     "share_top_other": {"channels": {"x": key("cat", top=3), "y": agg("share", "flag"),
                                      "size": agg("share", condition="n > 0"), "opacity": COUNT}},
+    # share first, median too: top ranks the source rows (_top_cte), no fold
+    "share_top_ranked": {"channels": {"x": key("cat", top=3), "y": agg("share", "flag"),
+                                      "size": agg("median", "x")}},
     "share_condition_nulls": {"channels": {"x": key("grp"),
                                            "y": agg("share", condition="x > 10 AND n < 20")}},
 }
