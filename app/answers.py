@@ -10,10 +10,20 @@ from __future__ import annotations
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
+from starlette.responses import Response
 
-from app.encode import ARROW_STREAM
+from app.encode import ARROW_STREAM, dumps
 from app.formats import CSV, PARQUET
 from app.problems import PROBLEM_JSON
+
+
+class JSONResponse(Response):
+    """A JSON answer encoded with orjson (``app.encode.dumps``: decimals keep their digits)."""
+
+    media_type = "application/json"
+
+    def render(self, content: Any) -> bytes:
+        return dumps(content)
 
 
 class _Open(BaseModel):

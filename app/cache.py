@@ -37,6 +37,8 @@ from typing import Any, Callable
 
 import orjson
 
+from app.engines import ENGINES
+
 try:  # issue 5's metrics; the cache works without them
     from app import observability as _obs
 except Exception:  # noqa: BLE001 - optional
@@ -44,8 +46,6 @@ except Exception:  # noqa: BLE001 - optional
 
 DEFAULT_MAX_BYTES = 64 * 1024 * 1024
 DEFAULT_TTL_S = 60.0
-#: engines whose data_version() is the identity of local files: exact, no TTL needed
-FILE_ENGINES = frozenset({"duckdb", "sqlite"})
 
 
 def source_version(engine_kind: str, engine: Any, ttl_s: float = DEFAULT_TTL_S,
@@ -55,7 +55,8 @@ def source_version(engine_kind: str, engine: Any, ttl_s: float = DEFAULT_TTL_S,
     have one, may lag or miss changes) plus a time bucket of ``ttl_s`` seconds, so no
     answer outlives ``[cache] ttl_s`` (0 disables caching for server sources)."""
     version = engine.data_version()
-    if engine_kind in FILE_ENGINES:
+    kind = ENGINES.get(engine_kind)
+    if kind is not None and kind.file:  # data_version() is the files' identity: exact
         return version
     if ttl_s <= 0:
         return f"{version}|nocache|{time.time_ns()}"

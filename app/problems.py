@@ -18,7 +18,7 @@ PROBLEM_JSON = "application/problem+json"
 
 #: Every problem ``type`` this service answers (``/problems/<slug>``, RFC 9457 section 3.1.1):
 #: slug -> (title, HTTP status(es), what it means and what to do). ``/problems/<slug>`` serves
-#: the entry as a short page (app/routes_docs.py); a test checks that every slug raised in
+#: the entry as a short page (app/routes_operations.py); a test checks that every slug raised in
 #: app/ and planner/ is listed here.
 PROBLEM_TYPES: dict[str, tuple[str, str, str]] = {
     "invalid-request": ("The request does not match the chart request schema", "422",

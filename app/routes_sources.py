@@ -1,6 +1,8 @@
-"""``GET /v1/sources/{name}/columns/{column}``: a column profile for filter widgets.
+"""``GET /v1/sources``, ``/v1/sources/{name}`` and ``/v1/sources/{name}/columns/{column}``:
+the sources a key may read, one source's columns and row count, and a column profile for
+filter widgets.
 
-The statement comes from ``planner.profile`` (one per profile); it runs here through the
+A column profile's statement comes from ``planner.profile`` (one per profile); it runs here through the
 service's limiter (statement timeout, ``max_concurrent``) and the answer is kept in the
 result cache by (source, column, top) and the source's data version, like a chart answer.
 Access follows ``GET /v1/sources/{name}``: 403 for a source the key does not grant (before
@@ -18,7 +20,8 @@ from fastapi import APIRouter, Query, Request
 from pydantic import BaseModel, Field
 from starlette.responses import Response
 
-from app import auth, observability
+from app import answers, auth, observability
+from app.answers import JSONResponse
 from app.cache import Entry, open_json, source_version, stamp_json
 from app.catalog import UnknownSource
 from app.encode import column_values, normalize_column
@@ -73,6 +76,45 @@ class ColumnProfile(BaseModel):
     timing_ms: dict[str, float]
 
 
+@router.get("/v1/sources", response_model=None,
+            responses={**answers.ok(answers.SourcesAnswer, "The sources the key may read"),
+                       **answers.problem_responses(401)})
+def sources(request: Request) -> Response:
+    """Configured sources (only those the API key grants)."""
+    catalog = request.app.state.catalog
+    out = []
+    for name in auth.filter_names(catalog.names()):  # only the sources the key grants
+        cfg = catalog.config(name)
+        out.append({"name": name, "engine": cfg.engine, "table": cfg.table})
+    return JSONResponse({"sources": out})
+
+
+@router.get("/v1/sources/{name}", response_model=None,
+            responses={**answers.ok(answers.SourceDetail, "Columns, kinds and row count"),
+                       **answers.problem_responses(401, 403, 404, 503)})
+def source(name: str, request: Request) -> Response:
+    """A source's introspected columns (engine type and kind) and row count."""
+    st = request.app.state
+    cfg = _config(st.catalog, name, ptr="")  # its 404 carries pointer "" (a column's: none)
+    with st.service.limiter.deadline(name):  # a frozen warehouse answers on time
+        entry = st.catalog.entry(name)
+    cols = [{"name": c.name, "type": c.sql_type, "kind": c.kind}
+            for c in entry.schema.columns.values()]
+    return JSONResponse({"name": name, "engine": cfg.engine, "table": cfg.table,
+                         "columns": cols, "row_count": entry.row_count})
+
+
+def _config(catalog: Any, name: str, ptr: str | None = None) -> Any:
+    """The source's config: 403 for a source the key does not grant, before 404 for an
+    unknown one (names cannot be probed), with the nearest granted names."""
+    auth.require(name, None)
+    try:
+        return catalog.config(name)
+    except UnknownSource as e:
+        raise Problem(404, "unknown-source", "Unknown source", f"unknown source {name!r}", ptr,
+                      suggestions=nearest(name, auth.filter_names(e.known))) from None
+
+
 def _problems() -> dict[int | str, dict[str, Any]]:
     desc = {401: "No or bad API key (when keys are configured)",
             403: "The API key is not granted this source",
@@ -96,12 +138,7 @@ def column_profile(name: str, column: str, request: Request,
     t_in = time.perf_counter()
     st = request.app.state
     catalog, service = st.catalog, st.service
-    auth.require(name, None)  # 403 before 404: names cannot be probed
-    try:
-        cfg = catalog.config(name)
-    except UnknownSource as e:
-        raise Problem(404, "unknown-source", "Unknown source", f"unknown source {name!r}",
-                      suggestions=nearest(name, auth.filter_names(e.known))) from None
+    cfg = _config(catalog, name)
     observability.note_source(name)
     engine = catalog.engine(name)
     entry = catalog.entry(name)

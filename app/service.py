@@ -181,7 +181,8 @@ def _extents_only(req: ChartRequest, schema: Any) -> ChartRequest:
         if ch is None:
             return None
         if ch.is_measure:
-            return ch.model_copy(update={"agg": "count", "column": None, "q": None})
+            return ch.model_copy(update={"agg": "count", "column": None, "q": None,
+                                         "condition": None})
         col = schema.column(ch.column)
         return ch.model_copy(update={"tz": "UTC" if col is not None and col.is_temporal
                                      else None, "top": None})

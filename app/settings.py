@@ -37,8 +37,6 @@ from pathlib import Path
 from typing import Any
 
 DEFAULT_DEMO = Path("data/demo.duckdb")
-ENGINES = ("duckdb", "postgres", "mysql", "sqlite", "clickhouse", "spark", "trino",
-           "bigquery", "snowflake")
 
 
 class ConfigError(Exception):
@@ -97,14 +95,7 @@ class Settings:
 
 #: keys every source may carry; ``options`` is a free table passed to the engine unchecked
 SOURCE_KEYS = ("engine", "table", "path", "dsn", "options")
-#: engine options a source may carry at its top level (checked); anything else engine-specific
-#: goes under ``[sources.NAME.options]``. Engine authors: list your options here.
-ENGINE_OPTIONS: dict[str, tuple[str, ...]] = {
-    "duckdb": ("memory_limit", "threads"),
-    "postgres": ("pool_min", "pool_max", "connect_timeout_s"),
-    "mysql": ("connect_timeout_s",),
-    "spark": ("master", "shuffle_partitions"),
-}
+#: engine kinds, and the options each may carry at its top level: ``app.engines.ENGINES``
 TOP_KEYS = ("sources", "server", "limits", "keys", "cache")
 #: per-source overrides of [limits] (see app/limits.py)
 SOURCE_LIMIT_KEYS = ("statement_timeout_ms", "max_concurrent", "queue_wait_ms")
@@ -187,6 +178,8 @@ def _check_unknown(ctx: _Ctx, prefix: tuple[str, ...], got: dict[str, Any], vali
 def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | None = None,
                    origins: dict[tuple[str, ...], str] | None = None) -> Settings:
     """Validate a parsed config and build Settings. Raises ConfigError naming file, key, fix."""
+    from app.engines import ENGINES  # the engine registry (lazy: engines import SourceConfig)
+
     base = base or Path.cwd()
     ctx = _Ctx(path, origins)
     _check_unknown(ctx, (), data, TOP_KEYS)
@@ -201,11 +194,12 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
             raise ctx.fail(key, "must be a table with engine, table and path or dsn",
                            f"write [sources.{name}] on its own line, then engine = ..., table = ...")
         engine = s.get("engine")
-        if engine not in ENGINES:
+        if not isinstance(engine, str) or engine not in ENGINES:
             near = _nearest_key(str(engine), ENGINES) if isinstance(engine, str) else ""
             raise ctx.fail(key + ("engine",), f"is {engine!r}" if engine is not None else "is missing",
                            f"{near}use one of {', '.join(ENGINES)}")
-        valid = list(SOURCE_KEYS) + list(ENGINE_OPTIONS.get(engine, ())) + list(SOURCE_LIMIT_KEYS)
+        kind = ENGINES[engine]
+        valid = list(SOURCE_KEYS) + list(kind.options) + list(SOURCE_LIMIT_KEYS)
         _check_unknown(ctx, key, s, valid,
                        f" (an engine-specific option goes under [sources.{name}.options])")
         table = s.get("table")
@@ -218,7 +212,7 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
             src_path = _coerce(ctx, key + ("path",), src_path, str, '"data/demo.duckdb"')
             p = Path(src_path).expanduser()
             src_path = str(p if p.is_absolute() else (base / p))
-        if engine in ("duckdb", "sqlite") and not src_path:
+        if kind.file and not src_path:
             raise ctx.fail(key + ("path",), "is missing", f'a {engine} source needs path = "FILE"')
         dsn = s.get("dsn")
         if dsn is not None:

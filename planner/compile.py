@@ -39,6 +39,7 @@ from typing import Any
 
 from sqlglot import exp
 
+from planner import aggregates
 from planner import bins as binning
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
@@ -48,10 +49,6 @@ from planner.schema import ColumnInfo, SourceSchema
 #: Prefix of the planner's own columns in a result; the service strips them.
 INTERNAL = "_sluice_"
 MAX_DENSE_CELLS = 200_000
-NUMERIC_AGGS = {"sum", "avg", "median", "quantile", "stddev_samp", "stddev_pop",
-                "var_samp", "var_pop"}
-ORDERABLE_KINDS = {"integer", "double", "decimal", "string", "boolean", "timestamp",
-                   "timestamptz", "date"}
 
 
 @dataclass
@@ -107,10 +104,21 @@ class Measure:
     spec: Channel
     col: ColumnInfo | None
     name: str = ""
+    #: the compiled ``condition`` (filter_sql text) of an aggregate over truth values (share)
+    condition: exp.Expression | None = None
 
     @property
     def internal(self) -> str:
         return f"{INTERNAL}a{self.index}"
+
+    @property
+    def aggregate(self) -> aggregates.Aggregate:
+        return aggregates.get(self.spec.agg)
+
+    @property
+    def has_input(self) -> bool:
+        """The aggregate reads a per-row value (a column or a condition; not count(*))."""
+        return self.col is not None or self.condition is not None
 
 
 @dataclass
@@ -247,7 +255,8 @@ def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
             raise PlanError(pointer(*path, "agg"), f"facet {channel} must be a key (a column), "
                             "not a measure (agg)")
         if ch.is_measure:
-            measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect))
+            measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect,
+                                           request_tz))
         else:
             keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
                                    request_tz))
@@ -302,26 +311,31 @@ def _check_tz(tz: str | None, ptr: str, default: str = "UTC") -> str:
 
 
 def _check_measure(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
-                   d: Dialect) -> Measure:
+                   d: Dialect, request_tz: str = "UTC") -> Measure:
+    entry = aggregates.get(ch.agg)  # what the aggregate accepts: planner/aggregates.py
     col = None
     if ch.column is not None:
         col = _resolve(ch.column, schema, pointer(*path, "column"))
-        if ch.agg in NUMERIC_AGGS and not col.is_number:
+        if not entry.accepts(col.kind):
             raise PlanError(pointer(*path, "agg"),
-                            f"{ch.agg} needs a number column; {col.name!r} is {col.kind}",
-                            slug="type-mismatch", title="Aggregate does not fit the column type")
-        if ch.agg in ("min", "max") and col.kind not in ORDERABLE_KINDS:
-            raise PlanError(pointer(*path, "agg"), f"{ch.agg} cannot order {col.kind} values",
+                            entry.mismatch.format(agg=ch.agg, column=col.name, kind=col.kind),
                             slug="type-mismatch", title="Aggregate does not fit the column type")
     if ch.tz is not None:
         raise PlanError(pointer(*path, "tz"), "tz applies to temporal keys, not to a measure")
-    feature = {"median": "median", "quantile": "quantile",
-               "approx_count_distinct": "approx_count_distinct",
-               "count_distinct": "count_distinct", "stddev_samp": "stddev",
-               "stddev_pop": "stddev", "var_samp": "stddev", "var_pop": "stddev"}.get(ch.agg)
-    if feature and not d.supports(feature):
+    if entry.feature and not d.supports(entry.feature):
         raise Unsupported(pointer(*path, "agg"), d.name, f"{ch.agg}")
-    return Measure(i, path, channel, ch, col)
+    condition = None
+    if ch.condition is not None:  # the allow-list of filter_sql, pointed at this field
+        from planner.filter_sql import compile_filter_sql
+
+        try:
+            condition = compile_filter_sql(ch.condition, schema, d, tz=request_tz)
+        except PlanError as e:
+            raise PlanError(pointer(*path, "condition"),
+                            e.detail.replace("filter_sql", "condition"), slug=e.slug,
+                            title="condition is not allowed", status=e.status,
+                            suggestions=e.suggestions) from None
+    return Measure(i, path, channel, ch, col, condition=condition)
 
 
 def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
@@ -433,9 +447,12 @@ def _check_options(plan: Plan) -> None:
             plan.stack_measure = next(m for m in plan.measures if m.channel == "x")
         else:
             raise PlanError(pointer("stack"), "stack needs a measure (agg) on y or on x")
-        if plan.stack_measure.spec.agg not in NUMERIC_AGGS | {"count", "count_distinct",
-                                                              "approx_count_distinct"}:
-            raise PlanError(pointer("stack"), f"cannot stack {plan.stack_measure.spec.agg}")
+        m = plan.stack_measure
+        if not m.aggregate.stacks:
+            raise PlanError(pointer(*m.path, "agg"),
+                            f"stack cannot pile {m.spec.agg} values (a pile of them means "
+                            f"nothing): stack a count, sum or other additive measure on "
+                            f"{m.channel}, or drop stack")
     if req.facet is not None and req.facet.max_groups is not None and not d.supports("window"):
         raise Unsupported(pointer("facet", "max_groups"), d.name, "max_groups (window functions)")
     if req.empty_bins != "omit" and not any(k.binned for k in plan.keys):
@@ -447,7 +464,7 @@ def _check_options(plan: Plan) -> None:
                 raise PlanError(pointer(*k.path, "bin", "limits"),
                                 "empty_bins with a fixed width needs limits (the bins to emit)")
     for m in plan.measures:
-        if m.spec.agg == "approx_count_distinct":
+        if m.aggregate.approximate:
             plan.approximate.append(m.internal)
 
 
@@ -543,8 +560,8 @@ def _path_rank(path: tuple) -> tuple:
 
 
 def _measure_name(ch: Channel) -> str:
-    if ch.agg == "count" and ch.column is None:
-        return "count"
+    if ch.column is None:  # count(*), share of a condition
+        return str(ch.agg)
     if ch.agg == "quantile":
         q = ch.q if ch.q is not None else 0.5
         pct = f"{q * 100:g}".replace(".", "_")
@@ -1432,7 +1449,7 @@ def _top_cte(plan: Plan, k: Key) -> exp.Select:
         where.append(plan.where.copy())
     if plan.measures:
         m = plan.measures[0]
-        arg = d.column(m.col.name, "s") if m.col is not None else None
+        arg = _measure_input(d, m)
         windows = _window_columns(d, [ref.copy()], {f"{INTERNAL}w": (arg, m.spec.agg)}
                                   if arg is not None else {})
         if windows:  # order statistics / group means per key value first (one pass)
@@ -1467,17 +1484,23 @@ def _top_key_expr(d: Dialect, k: Key, rank_name: str) -> exp.Expression:
 #: Hyndman & Fan (1996) type 7 quantiles (= numpy.percentile(method="linear")) and two-pass
 #: deviations, built from window columns computed over the rows before grouping.
 
-_QUANTILES = ("median", "quantile")
-_DEVIATIONS = ("stddev_samp", "stddev_pop", "var_samp", "var_pop")
-
-
 def _built(d: Dialect, agg: str) -> str | None:
-    """"quantile" / "deviation" when ``agg`` is built from windows on this target."""
-    if agg in _QUANTILES and d.quantile_method == "window":
+    """"quantile" / "deviation" when ``agg`` is built from windows on this target (the
+    registry's ``built``, keyed on the dialect's ``quantile_method`` / ``stddev_method``)."""
+    how = aggregates.get(agg).built
+    if how == "quantile" and d.quantile_method == "window":
         return "quantile"
-    if agg in _DEVIATIONS and d.stddev_method == "two_pass":
+    if how == "deviation" and d.stddev_method == "two_pass":
         return "deviation"
     return None
+
+
+def _measure_input(d: Dialect, m: Measure) -> exp.Expression | None:
+    """The per-row value measure ``m`` aggregates, over the source rows ``"s"``: its column,
+    or for share the 1 / 0 / NULL indicator (planner/aggregates.py ``measure_input``)."""
+    column = d.column(m.col.name, "s") if m.col is not None else None
+    cond = m.condition.copy() if m.condition is not None else None
+    return aggregates.measure_input(d, m.spec.agg, column, cond)
 
 
 def _window_columns(d: Dialect, partition: list[exp.Expression],
@@ -1616,8 +1639,8 @@ def _main_statement(plan: Plan) -> exp.Select:
             flags.append(k)
             base = base.select(exp.alias_(flag, k.outside_flag, quoted=True))
     for m in measures:
-        arg = d.column(m.col.name, "s") if m.col is not None else exp.Null()
-        if m.col is not None and m.col.is_temporal and m.spec.agg in ("min", "max"):
+        arg = _measure_input(d, m) if m.has_input else exp.Null()
+        if m.col is not None and m.col.is_temporal and m.aggregate.output == "input":
             arg = _instant_in_range(d, m.col, arg)  # the same instants a time key shows
         base = base.select(exp.alias_(arg, f"{INTERNAL}m{m.index}", quoted=True))
     if not keys and not measures:  # pragma: no cover - the model requires a channel
@@ -1632,20 +1655,20 @@ def _main_statement(plan: Plan) -> exp.Select:
     rows_name = f"{INTERNAL}base"
     windows = _window_columns(d, [_ref(c) for c in group_cols], {
         f"{INTERNAL}m{m.index}": (_ref(f"{INTERNAL}m{m.index}"), m.spec.agg)
-        for m in measures if m.col is not None})
+        for m in measures if m.has_input})
     if windows:
         ctes.append((f"{INTERNAL}ranked", exp.select(exp.Star(), *windows).from_(_table(rows_name))))
         rows_name = f"{INTERNAL}ranked"
     grouped = exp.select(*[_ref(c) for c in group_cols]).from_(_table(rows_name))
     for m in measures:
-        arg = _ref(f"{INTERNAL}m{m.index}") if m.col is not None else None
-        if fold and m.spec.agg == "avg":  # partials the fold re-aggregates (_fold_top)
+        arg = _ref(f"{INTERNAL}m{m.index}") if m.has_input else None
+        if fold and m.aggregate.fold == "mean":  # partials the fold re-aggregates (_fold_top)
             grouped = grouped.select(
                 exp.alias_(exp.Sum(this=d.double(arg)), f"{m.internal}_sum", quoted=True),
                 exp.alias_(exp.Count(this=arg.copy()), f"{m.internal}_cnt", quoted=True))
             continue
         agg = _measure_agg(d, m.spec.agg, arg, m.spec.q, f"{INTERNAL}m{m.index}")
-        if (m.spec.agg in ("median", "quantile") and m.col is not None and m.col.kind == "integer"
+        if (m.aggregate.built == "quantile" and m.col is not None and m.col.kind == "integer"
                 and getattr(d, "quantile_interpolates_integers", False)):
             # the engine interpolates integer input in DOUBLE itself: sorting the narrow
             # integers instead of their DOUBLE casts is ~1.5x faster (10M rows, DuckDB 2.0)
@@ -1718,29 +1741,28 @@ def _main_statement(plan: Plan) -> exp.Select:
     return outer
 
 
-#: aggregates whose per-group partials combine exactly into the aggregate of the union
-_REAGG = {"count": exp.Sum, "sum": exp.Sum, "min": exp.Min, "max": exp.Max}
-#: aggregates folded from partials the grouped stage carries: avg = sum / count
-_FOLDABLE = set(_REAGG) | {"avg"}
+#: how per-group partials combine exactly into the aggregate of the union (the registry's
+#: ``fold``; "mean" folds from the sum / count partials the grouped stage carries)
+_REAGG = {"sum": exp.Sum, "min": exp.Min, "max": exp.Max}
 
 
 def _fold_after_grouping(plan: Plan) -> bool:
     """``top`` by folding the small grouped result instead of ranking the source rows a
     second time: possible when every measure's partials combine exactly (count, sum, min,
-    max; avg from its sum and count partials). One pass over the rows plus work on the
-    groups. Measured on 10M rows: ~6x faster."""
+    max; avg and share from their sum and count partials). One pass over the rows plus work
+    on the groups. Measured on 10M rows: ~6x faster."""
     return (any(k.spec.top is not None for k in plan.keys)
-            and all(m.spec.agg in _FOLDABLE for m in plan.measures))
+            and all(m.aggregate.fold is not None for m in plan.measures))
 
 
 def _refold(m: Measure, table: str | None) -> exp.Expression:
     """A measure over several grouped rows, from their partials."""
-    if m.spec.agg == "avg":
+    if m.aggregate.fold == "mean":
         total = exp.Sum(this=_ref(f"{m.internal}_sum", table))
         cnt = exp.Sum(this=_ref(f"{m.internal}_cnt", table))
         return exp.Div(this=total, expression=exp.Nullif(this=cnt, expression=exp.Literal.number(0)),
                        typed=False, safe=False)
-    return _REAGG[m.spec.agg](this=_ref(m.internal, table))
+    return _REAGG[m.aggregate.fold](this=_ref(m.internal, table))
 
 
 def _fold_top(plan: Plan, ctes: list, group_cols: list[str]) -> str:
@@ -1781,7 +1803,7 @@ def _fold_top(plan: Plan, ctes: list, group_cols: list[str]) -> str:
             default=d.string(k.spec.other_label)))
     # relabel first, then group by plain columns (T-SQL allows no sub-query in GROUP BY)
     partials = [c for m in plan.measures
-                for c in ([f"{m.internal}_sum", f"{m.internal}_cnt"] if m.spec.agg == "avg"
+                for c in ([f"{m.internal}_sum", f"{m.internal}_cnt"] if m.aggregate.fold == "mean"
                           else [m.internal])] + [f"{INTERNAL}n"]
     folded = folded.select(*[exp.alias_(e, c, quoted=True) for e, c in zip(outs, group_cols)],
                            *[_ref(c, "g") for c in partials])

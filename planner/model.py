@@ -24,10 +24,10 @@ from pydantic import (
     model_validator,
 )
 
-AggName = Literal[
-    "count", "count_distinct", "approx_count_distinct", "sum", "avg", "min", "max",
-    "median", "quantile", "stddev_samp", "stddev_pop", "var_samp", "var_pop",
-]
+from planner import aggregates
+
+#: the aggregate names of the registry (planner/aggregates.py)
+AggName = Literal[aggregates.NAMES]  # type: ignore[valid-type]
 TruncUnit = Literal["year", "quarter", "month", "week", "day", "hour", "minute", "second"]
 ExtractField = Literal[
     "year", "quarter", "month", "week", "isoyear", "day", "dow", "isodow", "doy",
@@ -135,6 +135,11 @@ class Channel(_Strict):
     column: Text | None = Field(None, min_length=1, max_length=256)
     agg: AggName | None = None
     q: float | None = Field(None, ge=0, le=1, description="Quantile in [0, 1] for agg=quantile.")
+    condition: Text | None = Field(
+        None, min_length=1, max_length=4096,
+        description="For agg=share, in place of column: the condition whose share of the "
+        "group's rows is answered, written like filter_sql (the same allow-list). Rows where "
+        "it is NULL are left out.", examples=["delay_min > 15"])
     bin: Bin | None = None
     trunc: TruncUnit | None = None
     extract: ExtractField | None = None
@@ -153,15 +158,24 @@ class Channel(_Strict):
                 raise ValueError("a channel needs a column (a key) or an agg (a measure)")
             if self.q is not None:
                 raise ValueError("q goes with agg=quantile")
+            if self.condition is not None:
+                raise ValueError("condition goes with agg=share")
         else:
+            entry = aggregates.get(self.agg)
             key_opts = [k for k in ("bin", "trunc", "extract", "top") if getattr(self, k) is not None]
             if key_opts:
                 raise ValueError(f"{', '.join(key_opts)} applies to keys, not to a measure (agg)")
-            if self.agg != "count" and self.column is None:
+            if entry.takes_condition:
+                if (self.column is None) == (self.condition is None):
+                    raise ValueError(f"agg {self.agg} needs exactly one of column (a boolean "
+                                     "column) or condition (filter_sql text)")
+            elif self.condition is not None:
+                raise ValueError("condition goes with agg=share")
+            elif not entry.column_optional and self.column is None:
                 raise ValueError(f"agg {self.agg} needs a column")
-            if self.agg == "quantile" and self.q is None:
+            if entry.takes_q and self.q is None:
                 raise ValueError("agg quantile needs q (0..1)")
-            if self.agg != "quantile" and self.q is not None:
+            if not entry.takes_q and self.q is not None:
                 raise ValueError("q goes with agg=quantile")
         given = [k for k in ("bin", "trunc", "extract") if getattr(self, k) is not None]
         if len(given) > 1:

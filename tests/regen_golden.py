@@ -63,6 +63,12 @@ CASES: dict[str, tuple[dict, dict]] = {
                                             "AND cat NOT ILIKE 'Z\\ü%'"}, {}),
     # avg folds from its sum / count partials
     "top_avg": ({"channels": {"x": {"column": "cat", "top": 5}, "y": {"agg": "avg", "column": "n"}}}, {}),
+    # share (planner/aggregates.py): the mean of a 1 / 0 / NULL indicator of a boolean column
+    # or of a filter_sql-style condition; with top it folds from sum / count partials
+    "share": ({"channels": {"x": {"column": "cat", "top": 4},
+                            "y": {"agg": "share", "column": "flag"},
+                            "size": {"agg": "share", "condition": "x > 10 AND grp <> 'north'"}}},
+              {}),
     "stack": ({"channels": {"x": {"column": "ts", "trunc": "month"}, "color": {"column": "cat"},
                             "y": {"agg": "count"}},
                "stack": "fraction", "facet": {"row": {"column": "grp"}, "max_groups": 50},

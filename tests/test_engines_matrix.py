@@ -173,6 +173,15 @@ CASES: dict[str, dict] = {
     "sort_key_desc_limit": {"channels": {"x": key("k"), "y": COUNT},
                             "sort": [{"channel": "x", "desc": True}], "limit": 12},
     "high_cardinality": {"channels": {"x": key("k"), "color": key("flag"), "y": agg("max", "x")}},
+    # --- share (planner/aggregates.py; against pandas below: check_share_pandas) ------------
+    "share_by_group": {"channels": {"x": key("grp"), "color": key("cat"), "y": agg("share", "flag")}},
+    "share_top_other": {"channels": {"x": key("cat", top=3), "y": agg("share", "flag"),
+                                     "size": agg("share", condition="n > 0"), "opacity": COUNT}},
+    # share first, median too: top ranks the source rows (_top_cte), no fold
+    "share_top_ranked": {"channels": {"x": key("cat", top=3), "y": agg("share", "flag"),
+                                      "size": agg("median", "x")}},
+    "share_condition_nulls": {"channels": {"x": key("grp"),
+                                           "y": agg("share", condition="x > 10 AND n < 20")}},
 }
 
 # --- bins, time limits, empty bins, request tz (issues 9.1-9.6, 10.10; engineer "bins") -----
@@ -422,6 +431,10 @@ def test_spark_matches_duckdb_every_case(service):
         check_read_only(service, "spark")
     except AssertionError as e:
         failures.append(f"approx_count_distinct vs exact / read-only: {e}")
+    try:
+        check_share_pandas(service, "spark")
+    except AssertionError as e:
+        failures.append(f"share vs pandas: {e}")
     for case in CASES:
         try:
             check_case(service, "spark", case)
@@ -434,6 +447,81 @@ def test_spark_matches_duckdb_every_case(service):
 @pytest.mark.parametrize("engine", PER_CASE)
 def test_engine_matches_duckdb(service, engine: str, case: str):
     check_case(service, engine, case)
+
+
+# --- share against pandas, on every engine ---------------------------------------------------
+
+def _frame():
+    """The fixture rows as pandas nullable columns (flag: boolean, n: Int64, x: Float64)."""
+    import pandas as pd
+
+    df = pd.DataFrame(fx.make_rows())
+    return df.assign(flag=df["flag"].astype("boolean"), n=df["n"].astype("Int64"),
+                     x=df["x"].astype("Float64"))
+
+
+def _nullable(v):
+    import pandas as pd
+
+    return None if v is None or v is pd.NA or (isinstance(v, float) and math.isnan(v)) else v
+
+
+def _by_key(truth, keys) -> dict:
+    """{group key: share} of a nullable boolean Series. reference: pandas
+    ``SeriesGroupBy.mean()`` of a nullable boolean (skipna: NA rows leave numerator and
+    denominator; an all-NA group is NA), groupby(dropna=False) so NULL is its own group."""
+    means = truth.groupby(keys.rename("key"), dropna=False).mean()
+    return {_nullable(k): _nullable(v) for k, v in means.items()}
+
+
+def _got(resp: dict, key_name: str, measure: str) -> dict:
+    return {k: v for k, v in zip(resp["data"][key_name], resp["data"][measure])}
+
+
+def _assert_shares(got: dict, want: dict, what: str) -> None:
+    assert set(got) == set(want), f"{what}: groups {sorted(map(str, got))} != pandas {sorted(map(str, want))}"
+    for k, w in want.items():
+        g = got[k]
+        if w is None:
+            assert g is None, f"{what}[{k!r}]: got {g!r}, pandas NA"
+        else:
+            assert g is not None and 0.0 <= g <= 1.0 and math.isclose(g, float(w), rel_tol=1e-12), \
+                f"{what}[{k!r}]: got {g!r}, pandas {w!r}"
+
+
+def check_share_pandas(service, engine: str) -> None:
+    df = _frame()
+    # 1. a boolean column by a high-cardinality key: many single-row groups, some all-NULL
+    resp = answer(service, engine, {"channels": {"x": key("k"), "y": agg("share", "flag")},
+                                    "limit": 5000})
+    want = _by_key(df["flag"], df["k"])
+    assert sum(v is None for v in want.values()) >= 10  # all-NULL groups are present
+    _assert_shares(_got(resp, "k", "share_flag"), want, "share of flag by k")
+    col = next(c for c in resp["columns"] if c["name"] == "share_flag")
+    assert (col["role"], col["type"]) == ("measure", "double")
+    # 2. a condition whose value is NULL where x or n is (SQL three-valued AND = pandas'
+    #    Kleene logic of nullable booleans)
+    resp = answer(service, engine, {"channels": {"x": key("grp"), "y": {
+        "agg": "share", "condition": "x > 10 AND n < 20", "name": "s"}}})
+    _assert_shares(_got(resp, "grp", "s"), _by_key((df["x"] > 10) & (df["n"] < 20), df["grp"]),
+                   "share of x > 10 AND n < 20 by grp")
+    # 3. top 3 by share, the rest folded into (other): the share of the union of its rows
+    #    (true rows / non-NULL rows), not an average of the groups' shares
+    resp = answer(service, engine, {"channels": {"x": key("cat", top=3), "y": agg("share", "flag")}})
+    per_cat = _by_key(df["flag"], df["cat"])
+    ranked = sorted((k for k in per_cat if k is not None and per_cat[k] is not None),
+                    key=lambda k: (-per_cat[k], k))  # share descending, ties by value ascending
+    kept = set(ranked[:3])
+    folded = df["cat"].where(df["cat"].isin(kept) | df["cat"].isna(), "(other)")
+    want = _by_key(df["flag"], folded)
+    assert "(other)" in want and want["(other)"] != sum(
+        per_cat[k] for k in ranked[3:]) / len(ranked[3:])  # the fold is not a mean of shares
+    _assert_shares(_got(resp, "cat", "share_flag"), want, "share of flag, top 3 of cat")
+
+
+@pytest.mark.parametrize("engine", ["duckdb"] + PER_CASE)
+def test_share_matches_pandas(service, engine):
+    check_share_pandas(service, engine)
 
 
 WRITES = {

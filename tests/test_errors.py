@@ -89,6 +89,23 @@ CASES = [
     ("unknown_top_level_member", body(filters=[]), {"/filters"}, None),
     ("by_unknown_column", ch(x={"column": "cat"}, y={"agg": "count"}, by=[{"column": "grp2"}, {"column": "zone"}]),
      {"/channels/by/1/column"}, None),
+    # share (planner/aggregates.py): a boolean column or a condition, exactly one of them
+    ("share_of_number", ch(x={"column": "cat"}, y={"agg": "share", "column": "x"}), {"/channels/y/agg"}, None),
+    ("share_column_and_condition", ch(x={"column": "cat"}, y={"agg": "share", "column": "flag",
+                                                              "condition": "x > 1"}), {"/channels/y"}, None),
+    ("share_without_input", ch(x={"column": "cat"}, y={"agg": "share"}), {"/channels/y"}, None),
+    ("share_condition_unknown_column", ch(x={"column": "cat"}, y={"agg": "share", "condition": "xx > 1"}),
+     {"/channels/y/condition"}, "x"),
+    ("share_condition_not_boolean", ch(x={"column": "cat"}, y={"agg": "share", "condition": "x + 1"}),
+     {"/channels/y/condition"}, None),
+    ("share_condition_subquery", ch(x={"column": "cat"}, y={"agg": "share",
+                                                            "condition": "x IN (SELECT 1)"}),
+     {"/channels/y/condition"}, None),
+    ("condition_on_sum", ch(x={"column": "cat"}, y={"agg": "sum", "column": "x", "condition": "x > 1"}),
+     {"/channels/y"}, None),
+    ("stack_of_share", body(channels={"x": {"column": "grp2"}, "color": {"column": "cat"},
+                                      "y": {"agg": "share", "column": "flag"}}, stack="sum"),
+     {"/channels/y/agg"}, None),
 ]
 
 

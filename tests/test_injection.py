@@ -239,6 +239,9 @@ def _positions(source: str):
         ("trunc", lambda p: _set(ts, ("channels", "x", "trunc"), p), "4xx"),
         ("filter_sql", lambda p: _set(base, ("filter_sql",), p), "filter"),
         ("filter_sql_in_literal", lambda p: _set(base, ("filter_sql",), f"depot = '{p}'"), "filter"),
+        # share's condition passes the same allow-list (planner/aggregates.py, compile_filter_sql)
+        ("share_condition", lambda p: _set(base, ("channels", "y"), {"agg": "share", "condition": p}),
+         "share"),
     ]
 
 
@@ -278,6 +281,9 @@ def _check(resp, kind: str, payload: str, df, where: str) -> None:
         assert matched == len(df), where
     elif kind == "filter":
         assert 0 <= matched <= len(df), where
+    elif kind == "share":  # a condition measures, never filters: every row is matched
+        assert matched == len(df), where
+        assert all(v is None or 0.0 <= v <= 1.0 for v in out["data"]["share"]), where
 
 
 def _run_corpus(client, position: str, df) -> dict[int, int]:
@@ -409,6 +415,15 @@ def test_filter_sql_is_anded_with_where(duck_client, df):
                                             "where": [{"column": "region", "eq": "north"}]})
     assert r.status_code == 200
     assert r.json()["stats"]["matched_rows"] == int(((df.fee > 10) & (df.region == "north")).sum())
+
+
+@pytest.mark.parametrize("text", REFUSED)
+def test_share_condition_refused_with_its_pointer(duck_client, text):
+    body = {"source": "deliveries", **BASE}
+    body["channels"] = {**BASE["channels"], "y": {"agg": "share", "condition": text}}
+    r = duck_client.post("/v1/chart", json=body)
+    assert 400 <= r.status_code < 500, (text, r.status_code, r.text[:300])
+    assert r.json()["pointer"] == "/channels/y/condition", r.json()
 
 
 @pytest.mark.parametrize("text", REFUSED)

@@ -296,7 +296,8 @@ def output_types(plan: Any) -> dict[str, pa.DataType]:
 
     * keys and ``min``/``max`` keep the source column's type: integer width, decimal
       precision and scale, dates; timestamps are instants typed with the key's zone;
-    * bin edges, stack extents and ``avg``/``median``/``quantile``/deviations are float64;
+    * bin edges, stack extents and ``avg``/``median``/``quantile``/deviations/``share`` are
+      float64 (each aggregate's ``output`` in planner/aggregates.py);
     * counts are int64; ``sum`` is int64 over integers, decimal128(38, s) over decimals;
     * ``extract`` fields are int32; a ``top`` key is text (it holds the other-label).
     """
@@ -316,12 +317,12 @@ def output_types(plan: Any) -> dict[str, pa.DataType]:
             types = [_with_zone(declared_type(k.col, dialect), zone)]
         out.update(zip(k.names, types))
     for m in plan.measures:
-        agg = m.spec.agg
-        if agg in ("count", "count_distinct", "approx_count_distinct"):
+        output = m.aggregate.output  # the registry's answer type (planner/aggregates.py)
+        if output == "integer":
             out[m.name] = pa.int64()
-        elif agg in ("min", "max") and m.col is not None:
+        elif output == "input" and m.col is not None:
             out[m.name] = _with_zone(declared_type(m.col, dialect), request_zone(plan))
-        elif agg == "sum" and m.col is not None:
+        elif output == "sum" and m.col is not None:
             out[m.name] = _sum_type(declared_type(m.col, dialect))
         else:
             out[m.name] = pa.float64()

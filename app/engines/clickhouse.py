@@ -65,7 +65,7 @@ class ChdbEngine(_ClickHouseBase):
     _global_lock = threading.Lock()
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         try:
             from chdb import session as chs
         except ImportError:
@@ -75,14 +75,13 @@ class ChdbEngine(_ClickHouseBase):
             raise EngineUnavailable(cfg.name, "a clickhouse source needs path = \"chdb folder\" "
                                     "or dsn = \"http://host:8123/\"")
         self._lock = threading.Lock()
-        timeout_s = int(cfg.options.get("statement_timeout_ms", 30_000)) / 1000.0
         with ChdbEngine._global_lock:
             sess = ChdbEngine._sessions.get(cfg.path)
             if sess is None:
                 try:
                     sess = chs.Session(cfg.path)
                     sess.query("SET readonly = 2")
-                    sess.query(f"SET max_execution_time = {timeout_s:g}")
+                    sess.query(f"SET max_execution_time = {self.timeout_ms / 1000.0:g}")
                     sess.query("SET output_format_arrow_string_as_string = 1")
                 except Exception as e:  # noqa: BLE001 - chdb raises plain RuntimeError
                     raise EngineUnavailable(cfg.name, f"cannot open chdb at {cfg.path}: {e}") from None
@@ -110,7 +109,7 @@ class ClickHouseHttpEngine(_ClickHouseBase):
     """A ClickHouse server over its HTTP interface (stdlib urllib; Arrow IPC stream results)."""
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         u = urllib.parse.urlparse(cfg.dsn or "")
         if u.scheme not in ("http", "https"):
             raise EngineUnavailable(cfg.name, "a clickhouse dsn must be http://host:8123/ or https://")
@@ -121,11 +120,9 @@ class ClickHouseHttpEngine(_ClickHouseBase):
             token = f"{urllib.parse.unquote(u.username)}:{urllib.parse.unquote(u.password or '')}"
             self._headers["Authorization"] = "Basic " + base64.b64encode(token.encode()).decode()
         query = dict(urllib.parse.parse_qsl(u.query))
-        timeout_ms = int(cfg.options.get("statement_timeout_ms", 30_000))
         self._params = {**query, "readonly": "2", "default_format": "ArrowStream",
                         "output_format_arrow_string_as_string": "1",
-                        "max_execution_time": f"{timeout_ms / 1000.0:g}"}
-        self._timeout_s = timeout_ms / 1000.0 if timeout_ms > 0 else None
+                        "max_execution_time": f"{self.timeout_ms / 1000.0:g}"}
 
     def _query(self, sql: str) -> pa.Table:
         url = self._url + "?" + urllib.parse.urlencode(self._params)
@@ -134,7 +131,7 @@ class ClickHouseHttpEngine(_ClickHouseBase):
         try:
             # client-side deadline (app.deadline): a server that stops answering is a 503 on
             # time, not a hang; max_execution_time above is the server's own limit
-            secs = deadline.budget(self._timeout_s)
+            secs = self.budget()
             with urllib.request.urlopen(req, timeout=None if secs is None
                                         else secs + deadline.GRACE_S) as resp:
                 body = resp.read()

@@ -29,7 +29,7 @@ class DuckDBEngine(EngineBase):
     dialect = "duckdb"
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         self.path = Path(cfg.path or ":memory:")
         self._opened = self._identity()  # before connecting: a later swap is then noticed
         self._closing = False

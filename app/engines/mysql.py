@@ -18,18 +18,16 @@ is dropped and the answer is 504. The ``KILL QUERY`` connection of a timeout is 
 from __future__ import annotations
 
 import os
-import re
 import socket
 import threading
-from collections.abc import Sequence
 from typing import Any
 from urllib.parse import unquote, urlparse
 
 import pyarrow as pa
 
 from app import deadline
-from app.engines.arrow import UTC_US, rows_to_table
-from app.engines.base import EngineBase, EngineError, EngineUnavailable
+from app.engines.arrow import UTC_US
+from app.engines.base import EngineError, EngineUnavailable, RowEngine, Rows, cursor_rows
 from app.settings import SourceConfig
 
 # pymysql FIELD_TYPE codes -> Arrow types (DECIMAL and TINY are left to value inspection).
@@ -40,14 +38,14 @@ _FIELD_TYPES: dict[int, pa.DataType] = {
 }
 
 
-_READ = re.compile(r"^\s*(SELECT|WITH)\b", re.IGNORECASE)
-
-
-class MySQLEngine(EngineBase):
+class MySQLEngine(RowEngine):
     dialect = "mysql"
+    type_codes = _FIELD_TYPES
+    select_only = True  # a later SET could undo the session's READ ONLY
+    select_only_message = "the {engine} engine runs single SELECT statements only"
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         try:
             import pymysql
         except ImportError:
@@ -64,11 +62,9 @@ class MySQLEngine(EngineBase):
             "connect_timeout": int(cfg.options.get("connect_timeout_s", 10)),
             "autocommit": True,
         }
-        self._timeout_ms = int(cfg.options.get("statement_timeout_ms", 30_000))
-        self._timeout_s = self._timeout_ms / 1000.0 if self._timeout_ms > 0 else None
-        if self._timeout_s is not None:  # no driver call may outlive the statement timeout
-            self._connect_args["read_timeout"] = self._timeout_s + deadline.GRACE_S
-            self._connect_args["write_timeout"] = self._timeout_s + deadline.GRACE_S
+        if self.timeout_s is not None:  # no driver call may outlive the statement timeout
+            self._connect_args["read_timeout"] = self.timeout_s + deadline.GRACE_S
+            self._connect_args["write_timeout"] = self.timeout_s + deadline.GRACE_S
         self._local = threading.local()
         self._conns: list[Any] = []
         self._lock = threading.Lock()
@@ -106,32 +102,29 @@ class MySQLEngine(EngineBase):
             cur.execute("SET SESSION TRANSACTION READ ONLY")
             cur.execute("SET SESSION time_zone = '+00:00'")
             if mariadb:
-                cur.execute(f"SET SESSION max_statement_time = {self._timeout_ms / 1000.0:.3f}")
+                cur.execute(f"SET SESSION max_statement_time = {self.timeout_ms / 1000.0:.3f}")
             else:
-                cur.execute(f"SET SESSION max_execution_time = {self._timeout_ms:d}")
+                cur.execute(f"SET SESSION max_execution_time = {self.timeout_ms:d}")
         self._local.conn = conn
         with self._lock:
             self._conns.append(conn)
         return conn
 
-    def _run(self, sql: str, params: tuple | None = None):
-        if not _READ.match(sql):  # a later SET could undo the session's READ ONLY
-            raise EngineError(self.cfg.name, "the mysql engine runs single SELECT statements only")
+    def _rows(self, sql: str, params: tuple | None = None) -> Rows:
         if "CONVERT_TZ(" in sql and not self.tz_tables:
             raise EngineError(self.cfg.name, "the server's time zone tables are empty, so "
                               "CONVERT_TZ would answer NULL: load them with "
                               "`mysql_tzinfo_to_sql /usr/share/zoneinfo | mysql mysql`")
         pymysql = self._pymysql
         conn = self._conn()
-        secs = deadline.budget(self._timeout_s)
+        secs = self.budget()
         # pymysql applies _read_timeout / _write_timeout to the socket before each read/write
         conn._read_timeout = conn._write_timeout = (None if secs is None
                                                     else secs + deadline.GRACE_S)
         try:
             with conn.cursor() as cur:
                 cur.execute(sql, params)
-                rows = cur.fetchall()
-                desc = cur.description or []
+                answer = cursor_rows(cur)
         except pymysql.err.OperationalError as e:
             code = e.args[0] if e.args else 0
             if code in (1969, 3024, 1317):  # MariaDB / MySQL statement time limit, KILL QUERY
@@ -147,20 +140,12 @@ class MySQLEngine(EngineBase):
             raise EngineError(self.cfg.name, f"MySQL/MariaDB: {e}") from None
         except pymysql.Error as e:
             raise EngineError(self.cfg.name, f"MySQL/MariaDB: {e}") from None
-        return [d[0] for d in desc], [d[1] for d in desc], rows
-
-    def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
-        names, types, rows = self._run(sql, tuple(params) if params else None)
-        return rows_to_table(names, rows, [_FIELD_TYPES.get(t) for t in types])
-
-    def fetch_row(self, sql: str, params: Sequence[Any] | None = None) -> dict[str, Any]:
-        names, _, rows = self._run(sql, tuple(params) if params else None)
-        return dict(zip(names, rows[0])) if rows else {}
+        return answer
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
         schema_sql = "%s" if len(table) >= 2 else "DATABASE()"
         params = ((table[-2],) if len(table) >= 2 else ()) + (table[-1],)
-        _, _, rows = self._run(
+        _, _, rows = self.run(
             "SELECT column_name, column_type FROM information_schema.columns "
             f"WHERE table_schema = {schema_sql} AND table_name = %s ORDER BY ordinal_position",
             params)
@@ -170,7 +155,7 @@ class MySQLEngine(EngineBase):
         parts = self.split_table(self.cfg.table)
         schema_sql = "%s" if len(parts) >= 2 else "DATABASE()"
         params = ((parts[-2],) if len(parts) >= 2 else ()) + (parts[-1],)
-        _, _, rows = self._run(
+        _, _, rows = self.run(
             "SELECT create_time, update_time, table_rows FROM information_schema.tables "
             f"WHERE table_schema = {schema_sql} AND table_name = %s", params)
         return repr(rows[0]) if rows else "unknown"

@@ -23,14 +23,13 @@ import os
 import socket
 import threading
 import time
-from collections.abc import Sequence
 from typing import Any
 
 import pyarrow as pa
 
 from app import deadline
-from app.engines.arrow import UTC_US, rows_to_table
-from app.engines.base import EngineBase, EngineError, EngineUnavailable
+from app.engines.arrow import UTC_US
+from app.engines.base import EngineError, EngineUnavailable, RowEngine, Rows, cursor_rows
 from app.settings import SourceConfig
 
 # PostgreSQL type OIDs -> Arrow types (numeric is left to value inspection).
@@ -41,11 +40,12 @@ _OID_TYPES: dict[int, pa.DataType] = {
 }
 
 
-class PostgresEngine(EngineBase):
+class PostgresEngine(RowEngine):
     dialect = "postgres"
+    type_codes = _OID_TYPES
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         try:
             import psycopg
             from psycopg_pool import ConnectionPool
@@ -55,8 +55,7 @@ class PostgresEngine(EngineBase):
         if not cfg.dsn:
             raise EngineUnavailable(cfg.name, "a postgres source needs dsn = \"postgresql://...\"")
         self._psycopg = psycopg
-        timeout = int(cfg.options.get("statement_timeout_ms", 30_000))
-        options = (f"-c default_transaction_read_only=on -c statement_timeout={timeout} "
+        options = (f"-c default_transaction_read_only=on -c statement_timeout={self.timeout_ms} "
                    "-c TimeZone=UTC")
         self.pool = ConnectionPool(
             cfg.dsn, open=False, name=f"sluice-{cfg.name}",
@@ -67,7 +66,6 @@ class PostgresEngine(EngineBase):
             # a SET on a pooled connection (e.g. default_transaction_read_only = off) must not
             # outlive its statement: RESET ALL restores the read-only start-up options
             reset=lambda conn: conn.execute("RESET ALL"))
-        self._timeout_s = timeout / 1000.0 if timeout > 0 else None
         connect_s = float(cfg.options.get("connect_timeout_s", 10))
         try:
             self.pool.open(wait=True, timeout=max(min(connect_s, deadline.budget(connect_s) or connect_s), 0.1))
@@ -81,9 +79,9 @@ class PostgresEngine(EngineBase):
         self._version: tuple[float, str] | None = None
         self._active: dict[int, Any] = {}  # thread id -> connection running a statement
 
-    def _run(self, sql: str, params: tuple | None = None) -> tuple[list[str], list[Any], list[tuple]]:
+    def _rows(self, sql: str, params: tuple | None = None) -> Rows:
         psycopg = self._psycopg
-        secs = deadline.budget(self._timeout_s)  # client-side deadline (module docstring)
+        secs = self.budget()  # client-side deadline (module docstring)
         wait = self._wait_s if secs is None else max(min(self._wait_s, secs), 0.05)
         dog = _Watchdog(None if secs is None else secs + deadline.GRACE_S)
         try:
@@ -91,9 +89,7 @@ class PostgresEngine(EngineBase):
                 dog.arm(conn)
                 self._active[threading.get_ident()] = conn
                 try:
-                    cur = conn.execute(sql, params)
-                    rows = cur.fetchall() if cur.description else []
-                    desc = cur.description or []
+                    answer = cursor_rows(conn.execute(sql, params))
                 finally:
                     self._active.pop(threading.get_ident(), None)
         except psycopg.OperationalError as e:
@@ -108,15 +104,7 @@ class PostgresEngine(EngineBase):
             raise EngineUnavailable(self.cfg.name, f"PostgreSQL: {e}") from None
         finally:
             dog.disarm()
-        return [d.name for d in desc], [d.type_code for d in desc], rows
-
-    def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
-        names, oids, rows = self._run(sql, tuple(params) if params else None)
-        return rows_to_table(names, rows, [_OID_TYPES.get(o) for o in oids])
-
-    def fetch_row(self, sql: str, params: Sequence[Any] | None = None) -> dict[str, Any]:
-        names, _, rows = self._run(sql, tuple(params) if params else None)
-        return dict(zip(names, rows[0])) if rows else {}
+        return answer
 
     def _regclass_sql(self, table: tuple[str, ...]) -> tuple[str, tuple]:
         if len(table) >= 2:
@@ -125,7 +113,7 @@ class PostgresEngine(EngineBase):
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
         reg, params = self._regclass_sql(table)
-        _, _, rows = self._run(
+        _, _, rows = self._rows(
             "SELECT a.attname, format_type(a.atttypid, a.atttypmod) FROM pg_attribute a "
             f"WHERE a.attrelid = {reg} AND a.attnum > 0 AND NOT a.attisdropped "
             "ORDER BY a.attnum", params)
@@ -139,7 +127,7 @@ class PostgresEngine(EngineBase):
         if cached is not None and now - cached[0] < 1.0:
             return cached[1]
         reg, params = self._regclass_sql(self.split_table(self.cfg.table))
-        _, _, rows = self._run(
+        _, _, rows = self._rows(
             "SELECT n_tup_ins, n_tup_upd, n_tup_del, n_live_tup, last_analyze, last_autoanalyze "
             f"FROM pg_stat_all_tables WHERE relid = {reg}", params)
         version = repr(rows[0]) if rows else "unknown"

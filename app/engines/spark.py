@@ -133,14 +133,14 @@ class SparkEngine(EngineBase):
     dialect = "spark"
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         try:
             import pyspark  # noqa: F401
         except ImportError:
             raise EngineUnavailable(cfg.name, "the spark engine needs pyspark "
                                     "(pip install 'sluice-charts[engines]') and Java 17") from None
         self.remote = cfg.dsn if cfg.dsn and cfg.dsn.startswith("sc://") else None
-        self._timeout_s = int(cfg.options.get("statement_timeout_ms", 30_000)) / 1000.0
+        self._timeout_s = self.timeout_ms / 1000.0
         self._grace_s = int(cfg.options.get("cancel_grace_ms", 5000)) / 1000.0
         self.path = Path(cfg.path) if cfg.path else None
         self._local = threading.local()
@@ -213,8 +213,11 @@ class SparkEngine(EngineBase):
         sc = self.spark.sparkContext
         return lambda: sc.cancelJobGroup(tag)
 
-    def execute(self, sql: str) -> pa.Table:
+    def check_read(self, sql: str) -> None:  # parsed, not matched: Spark has no read-only session
         _check_read_only(self.cfg.name, sql)
+
+    def execute(self, sql: str) -> pa.Table:
+        self.check_read(sql)
         tag = getattr(self._local, "tag", None)
         self._local.tag = None
         if self.remote:

@@ -13,27 +13,20 @@ import sqlite3
 import threading
 import time
 from pathlib import Path
-from collections.abc import Sequence
-from typing import Any
 from urllib.parse import quote
 
-import pyarrow as pa
-
-from app import deadline
-from app.engines.arrow import rows_to_table
-from app.engines.base import EngineBase, EngineError, EngineUnavailable
+from app.engines.base import EngineError, EngineUnavailable, RowEngine, Rows, cursor_rows
 from app.settings import SourceConfig
 
 
-class SQLiteEngine(EngineBase):
+class SQLiteEngine(RowEngine):
     dialect = "sqlite"
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         self.path = Path(cfg.path or "")
         if not self.path.is_file():
             raise EngineUnavailable(cfg.name, f"SQLite file {self.path} does not exist")
-        self._timeout_s = int(cfg.options.get("statement_timeout_ms", 30_000)) / 1000.0
         self._local = threading.local()
         self._conns: list[sqlite3.Connection] = []
         self._lock = threading.Lock()
@@ -53,15 +46,13 @@ class SQLiteEngine(EngineBase):
                 self._conns.append(conn)
         return conn
 
-    def _run(self, sql: str, params: tuple = ()) -> tuple[list[str], list[tuple]]:
+    def _rows(self, sql: str, params: tuple | None = None) -> Rows:
         conn = self._conn()
-        secs = deadline.budget(self._timeout_s)  # the request's budget, else the source's
+        secs = self.budget()  # the request's budget, else the source's
         end = time.monotonic() + (secs if secs is not None else float("inf"))
         conn.set_progress_handler(lambda: 1 if time.monotonic() > end else 0, 10_000)
         try:
-            cur = conn.execute(sql, params)
-            rows = cur.fetchall()
-            names = [d[0] for d in cur.description or []]
+            answer = cursor_rows(conn.execute(sql, params or ()))
         except sqlite3.OperationalError as e:
             if "interrupted" in str(e):
                 raise EngineError(self.cfg.name, "SQLite: interrupted (maximum statement "
@@ -71,21 +62,14 @@ class SQLiteEngine(EngineBase):
             raise EngineError(self.cfg.name, f"SQLite: {e}") from None
         finally:
             conn.set_progress_handler(None, 0)
-        return names, rows
-
-    def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
-        names, rows = self._run(sql, tuple(params or ()))
-        return rows_to_table(names, rows)
-
-    def fetch_row(self, sql: str, params: Sequence[Any] | None = None) -> dict[str, Any]:
-        names, rows = self._run(sql, tuple(params or ()))
-        return dict(zip(names, rows[0])) if rows else {}
+        return answer
 
     def split_table(self, table: str) -> tuple[str, ...]:
         return (table,)
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
-        _, rows = self._run("SELECT name, type FROM pragma_table_info(?) ORDER BY cid", (table[-1],))
+        _, _, rows = self._rows("SELECT name, type FROM pragma_table_info(?) ORDER BY cid",
+                                (table[-1],))
         return [(r[0], r[1] or "") for r in rows]
 
     def data_version(self) -> str:

@@ -10,17 +10,13 @@ should be read-only; additionally only single SELECT / WITH statements are sent.
 
 from __future__ import annotations
 
-import re
 from typing import Any
 from urllib.parse import parse_qsl, unquote, urlparse
 
 import pyarrow as pa
 
-from app.engines.arrow import rows_to_table
-from app.engines.base import EngineBase, EngineError, EngineUnavailable
+from app.engines.base import EngineBase, EngineError, EngineUnavailable, RowEngine, Rows, cursor_rows
 from app.settings import SourceConfig
-
-_READ = re.compile(r"^\s*(SELECT|WITH)\b", re.IGNORECASE)
 
 
 def _need(cfg: SourceConfig, module: str, extra: str):
@@ -33,33 +29,18 @@ def _need(cfg: SourceConfig, module: str, extra: str):
                                 f"library: pip install 'sluice-charts[{extra}]'") from None
 
 
-class _DbApiEngine(EngineBase):
-    dialect = ""
-    cfg: SourceConfig
+class _DbApiEngine(RowEngine):
+    select_only = True  # the session itself is only as read-only as its credentials
     _conn: Any
 
-    def _check(self, sql: str) -> None:
-        if not _READ.match(sql):
-            raise EngineError(self.cfg.name, f"the {self.cfg.engine} engine runs SELECT statements only")
-
-    def _run(self, sql: str, params: Any = None) -> tuple[list[str], list[tuple]]:
-        self._check(sql)
+    def _rows(self, sql: str, params: tuple | None = None) -> Rows:
         try:
             cur = self._conn.cursor()
             cur.execute(sql, params) if params is not None else cur.execute(sql)
-            rows = cur.fetchall()
-            names = [d[0] for d in cur.description or []]
+            names, codes, rows = cursor_rows(cur)
         except Exception as e:  # noqa: BLE001 - each driver has its own error classes
             raise EngineError(self.cfg.name, f"{self.cfg.engine}: {e}") from None
-        return names, [tuple(r) for r in rows]
-
-    def execute(self, sql: str) -> pa.Table:
-        names, rows = self._run(sql)
-        return rows_to_table(names, rows)
-
-    def fetch_row(self, sql: str) -> dict[str, Any]:
-        names, rows = self._run(sql)
-        return dict(zip(names, rows[0])) if rows else {}
+        return names, codes, [tuple(r) for r in rows]
 
     def data_version(self) -> str:
         return "unversioned"  # warehouses: results are cached by time only
@@ -77,7 +58,7 @@ class TrinoEngine(_DbApiEngine):
     dialect = "trino"
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         trino = _need(cfg, "trino.dbapi", "trino")
         u = urlparse(cfg.dsn or "")
         path = [p for p in u.path.split("/") if p]
@@ -87,13 +68,12 @@ class TrinoEngine(_DbApiEngine):
                 user=unquote(u.username or "sluice"),
                 catalog=path[0] if path else None, schema=path[1] if len(path) > 1 else None,
                 http_scheme="https" if u.scheme in ("trinos", "https") else "http",
-                session_properties={"query_max_execution_time":
-                                    f"{int(cfg.options.get('statement_timeout_ms', 30000))}ms"})
+                session_properties={"query_max_execution_time": f"{self.timeout_ms}ms"})
         except Exception as e:  # noqa: BLE001
             raise EngineUnavailable(cfg.name, f"cannot connect to Trino: {e}") from None
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
-        names, rows = self._run(
+        _, _, rows = self.run(
             "SELECT column_name, data_type FROM information_schema.columns WHERE table_name = ?"
             + (" AND table_schema = ?" if len(table) >= 2 else "") + " ORDER BY ordinal_position",
             [table[-1]] + ([table[-2]] if len(table) >= 2 else []))
@@ -106,7 +86,7 @@ class SnowflakeEngine(_DbApiEngine):
     dialect = "snowflake"
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         sf = _need(cfg, "snowflake.connector", "snowflake")
         u = urlparse(cfg.dsn or "")
         path = [p for p in u.path.split("/") if p]
@@ -117,13 +97,12 @@ class SnowflakeEngine(_DbApiEngine):
                 database=path[0] if path else None, schema=path[1] if len(path) > 1 else None,
                 warehouse=q.get("warehouse"), role=q.get("role"),
                 session_parameters={"TIMEZONE": "UTC", "WEEK_START": 1,
-                                    "STATEMENT_TIMEOUT_IN_SECONDS":
-                                    int(cfg.options.get("statement_timeout_ms", 30000)) // 1000 or 1})
+                                    "STATEMENT_TIMEOUT_IN_SECONDS": self.timeout_ms // 1000 or 1})
         except Exception as e:  # noqa: BLE001
             raise EngineUnavailable(cfg.name, f"cannot connect to Snowflake: {e}") from None
 
-    def execute(self, sql: str) -> pa.Table:
-        self._check(sql)
+    def execute(self, sql: str) -> pa.Table:  # the connector's own Arrow answer
+        self.check_read(sql)
         try:
             cur = self._conn.cursor()
             cur.execute(sql)
@@ -132,7 +111,7 @@ class SnowflakeEngine(_DbApiEngine):
             raise EngineError(self.cfg.name, f"snowflake: {e}") from None
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
-        names, rows = self._run(
+        _, _, rows = self.run(
             "SELECT column_name, data_type FROM information_schema.columns WHERE table_name = %s"
             + (" AND table_schema = %s" if len(table) >= 2 else "") + " ORDER BY ordinal_position",
             [table[-1]] + ([table[-2]] if len(table) >= 2 else []))
@@ -143,12 +122,13 @@ class BigQueryEngine(EngineBase):
     """``dsn = "bigquery://project"``; credentials from the environment (ADC)."""
 
     dialect = "bigquery"
+    select_only = True
 
     def __init__(self, cfg: SourceConfig) -> None:
-        self.cfg = cfg
+        super().__init__(cfg)
         bq = _need(cfg, "google.cloud.bigquery", "bigquery")
         u = urlparse(cfg.dsn or "")
-        self._timeout = int(cfg.options.get("statement_timeout_ms", 30000)) / 1000.0
+        self._timeout = self.timeout_ms / 1000.0
         try:
             self._client = bq.Client(project=u.hostname or None)
         except Exception as e:  # noqa: BLE001
@@ -156,8 +136,7 @@ class BigQueryEngine(EngineBase):
         self._bq = bq
 
     def execute(self, sql: str) -> pa.Table:
-        if not _READ.match(sql):
-            raise EngineError(self.cfg.name, "the bigquery engine runs SELECT statements only")
+        self.check_read(sql)
         try:
             job = self._client.query(sql, job_config=self._bq.QueryJobConfig(
                 job_timeout_ms=int(self._timeout * 1000)))

@@ -368,10 +368,16 @@ export interface components {
          */
         Channel: {
             /** Agg */
-            agg?: ("count" | "count_distinct" | "approx_count_distinct" | "sum" | "avg" | "min" | "max" | "median" | "quantile" | "stddev_samp" | "stddev_pop" | "var_samp" | "var_pop") | null;
+            agg?: ("count" | "count_distinct" | "approx_count_distinct" | "sum" | "avg" | "min" | "max" | "median" | "quantile" | "stddev_samp" | "stddev_pop" | "var_samp" | "var_pop" | "share") | null;
             bin?: components["schemas"]["Bin"] | null;
             /** Column */
             column?: string | null;
+            /**
+             * Condition
+             * @description For agg=share, in place of column: the condition whose share of the group's rows is answered, written like filter_sql (the same allow-list). Rows where it is NULL are left out.
+             * @example delay_min > 15
+             */
+            condition?: string | null;
             /** Extract */
             extract?: ("year" | "quarter" | "month" | "week" | "isoyear" | "day" | "dow" | "isodow" | "doy" | "hour" | "minute" | "second") | null;
             /**

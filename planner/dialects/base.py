@@ -389,37 +389,16 @@ class Dialect:
         raise NotImplementedError
 
     # --- aggregates -----------------------------------------------------------------
+    #: How this target spells aggregates (planner/aggregates.py reads it): aggregate name ->
+    #: function name written as is, or a builder ``(dialect, arg, q) -> node``. Names not
+    #: listed use the registry's portable build.
+    agg_spellings: ClassVar[dict[str, object]] = {}
+
     def agg(self, name: str, arg: exp.Expression | None, q: float | None) -> exp.Expression:
-        if name == "count":
-            return exp.Count(this=arg if arg is not None else exp.Star())
-        if name == "count_distinct":
-            return exp.Count(this=exp.Distinct(expressions=[arg]))
-        if name == "approx_count_distinct":
-            if self.approx_distinct[0].startswith("exact"):  # no sketch here: answer exactly
-                return exp.Count(this=exp.Distinct(expressions=[arg]))
-            return exp.ApproxDistinct(this=arg)
-        if name == "sum":
-            return exp.Sum(this=arg)
-        if name == "avg":
-            return exp.Avg(this=self.double(arg))
-        if name == "min":
-            return exp.Min(this=arg)
-        if name == "max":
-            return exp.Max(this=arg)
-        if name == "median":
-            return self.quantile(arg, 0.5)
-        if name == "quantile":
-            assert q is not None
-            return self.quantile(arg, q)
-        if name == "stddev_samp":
-            return exp.StddevSamp(this=self.double(arg))
-        if name == "stddev_pop":
-            return exp.StddevPop(this=self.double(arg))
-        if name == "var_samp":
-            return exp.Variance(this=self.double(arg))
-        if name == "var_pop":
-            return exp.VariancePop(this=self.double(arg))
-        raise ValueError(name)
+        """The aggregate ``name`` (planner/aggregates.py) of ``arg`` as this target writes it."""
+        from planner import aggregates
+
+        return aggregates.spell(self, name, arg, q)
 
     def quantile(self, arg: exp.Expression, q: float) -> exp.Expression:
         """Exact continuous quantile, Hyndman & Fan (1996) type 7 (linear interpolation)."""

@@ -22,6 +22,7 @@ class BigQuery(Dialect):
     checked = "golden"
     quantile_method = "window"
     approx_distinct = ("hyperloglog++", None)
+    agg_spellings = {"approx_count_distinct": "APPROX_COUNT_DISTINCT"}
     notes = {
         "approx_count_distinct": "APPROX_COUNT_DISTINCT (HLL++)",
         "tz": "DATETIME(ts, tz) / TIMESTAMP(dt, tz)",
@@ -85,8 +86,3 @@ class BigQuery(Dialect):
         if fold:
             e = self.ascii_lower(e)
         return exp.Like(this=e, expression=self.string(self.like_text(parts, "\\", "%_")))
-
-    def agg(self, name, arg, q):
-        if name == "approx_count_distinct":
-            return self.fn("APPROX_COUNT_DISTINCT", arg)
-        return super().agg(name, arg, q)

@@ -23,10 +23,25 @@ from sqlglot import exp
 from planner.dialects.base import Dialect
 
 
+def _stable(fn: str, need: int):
+    """A numerically stable deviation; ClickHouse answers inf / nan where SQL answers NULL
+    (one value for *_samp, none for *_pop): NULL unless there are ``need`` values."""
+    def build(d, arg, q):
+        return exp.Case(ifs=[exp.If(this=exp.GTE(this=exp.Count(this=arg.copy()),
+                                                 expression=d.lit(need)),
+                                    true=d.fn(fn, d.double(arg)))])
+    return build
+
+
 class ClickHouse(Dialect):
     name = "clickhouse"
     sqlglot = "clickhouse"
     approx_distinct = ("hyperloglog (uniqCombined)", 0.01)
+    agg_spellings = {"stddev_samp": _stable("stddevSampStable", 2),
+                     "stddev_pop": _stable("stddevPopStable", 1),
+                     "var_samp": _stable("varSampStable", 2),
+                     "var_pop": _stable("varPopStable", 1),
+                     "approx_count_distinct": "uniqCombined"}
     notes = {
         "quantile": "quantileExactInclusive",
         "approx_count_distinct": "uniqCombined (HLL)",
@@ -127,17 +142,3 @@ class ClickHouse(Dialect):
     def quantile(self, arg, q):
         return exp.ParameterizedAgg(this="quantileExactInclusive", expressions=[self.number(q)],
                                     params=[self.double(arg)])
-
-    def agg(self, name, arg, q):
-        stable = {"stddev_samp": "stddevSampStable", "stddev_pop": "stddevPopStable",
-                  "var_samp": "varSampStable", "var_pop": "varPopStable"}
-        if name in stable:
-            # ClickHouse answers inf / nan where SQL answers NULL (one value for *_samp, none
-            # for *_pop): NULL unless there are enough values
-            need = 2 if name.endswith("_samp") else 1
-            return exp.Case(ifs=[exp.If(this=exp.GTE(this=exp.Count(this=arg.copy()),
-                                                     expression=self.lit(need)),
-                                        true=self.fn(stable[name], self.double(arg)))])
-        if name == "approx_count_distinct":
-            return self.fn("uniqCombined", arg)
-        return super().agg(name, arg, q)

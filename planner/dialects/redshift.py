@@ -64,8 +64,3 @@ class Redshift(Postgres):
         return exp.Add(this=self.cast(self.lit("1970-01-01 00:00:00"), "TIMESTAMP"),
                        expression=exp.Mul(this=self.paren(seconds), expression=exp.Interval(
                            this=self.lit("1"), unit=self.var("SECOND"))))
-
-    def agg(self, name, arg, q):
-        if name == "approx_count_distinct":
-            return exp.ApproxDistinct(this=arg)
-        return super().agg(name, arg, q)

@@ -22,6 +22,7 @@ class Snowflake(Dialect):
     naive_type = "TIMESTAMP_NTZ"
     checked = "golden"
     approx_distinct = ("hyperloglog", 0.016)
+    agg_spellings = {"approx_count_distinct": "APPROX_COUNT_DISTINCT"}
     notes = {
         "quantile": "PERCENTILE_CONT WITHIN GROUP",
         "approx_count_distinct": "APPROX_COUNT_DISTINCT (HLL)",
@@ -87,8 +88,3 @@ class Snowflake(Dialect):
 
     def starts_with(self, col, s):
         return self.fn("STARTSWITH", col, self.string(s))
-
-    def agg(self, name, arg, q):
-        if name == "approx_count_distinct":
-            return self.fn("APPROX_COUNT_DISTINCT", arg)
-        return super().agg(name, arg, q)

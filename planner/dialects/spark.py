@@ -24,6 +24,7 @@ class Spark(Dialect):
     sqlglot = "spark"
     wide_instants = True  # 'infinity' and years past 9999 are legal values
     approx_distinct = ("hyperloglog++", 0.05)
+    agg_spellings = {"approx_count_distinct": "approx_count_distinct"}
     notes = {
         "engine": "live engine (local mode and a Spark Connect server)",
         "quantile": "percentile()",
@@ -114,12 +115,6 @@ class Spark(Dialect):
 
     def quantile(self, arg, q):
         return self.fn("percentile", self.double(arg), self.number(q))
-
-    def agg(self, name, arg, q):
-        if name == "approx_count_distinct":
-            return self.fn("approx_count_distinct", arg)
-        return super().agg(name, arg, q)
-
 
 
 class Databricks(Spark):

@@ -23,6 +23,7 @@ class Trino(Dialect):
     checked = "golden"
     quantile_method = "window"
     approx_distinct = ("hyperloglog", 0.023)
+    agg_spellings = {"approx_count_distinct": "approx_distinct"}
     notes = {
         "approx_count_distinct": "approx_distinct (HLL)",
         "tz": "AT TIME ZONE / with_timezone",
@@ -75,8 +76,3 @@ class Trino(Dialect):
 
     def starts_with(self, col, s):
         return self.fn("starts_with", col, self.string(s))
-
-    def agg(self, name, arg, q):
-        if name == "approx_count_distinct":
-            return self.fn("approx_distinct", arg)
-        return super().agg(name, arg, q)

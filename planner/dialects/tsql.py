@@ -26,6 +26,8 @@ class TSQL(Dialect):
     quantile_method = "window"
     nulls_order_native = False
     approx_distinct = ("hyperloglog", 0.02)
+    agg_spellings = {"stddev_samp": "STDEV", "stddev_pop": "STDEVP", "var_samp": "VAR",
+                     "var_pop": "VARP", "approx_count_distinct": "APPROX_COUNT_DISTINCT"}
     notes = {
         "approx_count_distinct": "APPROX_COUNT_DISTINCT (HLL)",
         "stddev": "STDEV / STDEVP / VAR / VARP",
@@ -127,11 +129,3 @@ class TSQL(Dialect):
             pattern.append("%" if kind == "any" else "_" if kind == "one" else
                            "".join(f"[{ch}]" if ch in "%_[" else ch for ch in text))
         return exp.Like(this=e, expression=self.string("".join(pattern)))
-
-    def agg(self, name, arg, q):
-        fns = {"stddev_samp": "STDEV", "stddev_pop": "STDEVP", "var_samp": "VAR", "var_pop": "VARP"}
-        if name in fns:
-            return self.fn(fns[name], self.double(arg))
-        if name == "approx_count_distinct":
-            return self.fn("APPROX_COUNT_DISTINCT", arg)
-        return super().agg(name, arg, q)

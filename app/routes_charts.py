@@ -1,0 +1,163 @@
+"""``POST /v1/chart``, ``/v1/batch`` and ``/v1/sql``: charts, over the app's service.
+
+Every route reads the service, catalog and result cache from ``request.app.state`` (set by
+``app.main.create_app``). A JSON answer is cached as its encoded bytes; an Arrow, CSV or
+Parquet answer as its table and metadata, encoded per answer (``cache`` and ``timing_ms``
+are then true for each one).
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Any, Callable
+
+from fastapi import APIRouter, Query, Request
+from starlette.responses import Response
+
+from app import answers, formats, observability
+from app.answers import JSONResponse
+from app.cache import Entry, canonical, open_json, source_version, stamp_json
+from app.encode import ARROW_STREAM, arrow_stream, dumps
+from app.engines import EngineError
+from app.handlers import engine_problem
+from app.problems import Problem, from_plan_error
+from planner.dialects import DIALECTS
+from planner.errors import PlanError
+from planner.model import BatchRequest, ChartRequest
+
+router = APIRouter(tags=["charts"])
+
+
+def _ms_since(t: float) -> float:
+    return round((time.perf_counter() - t) * 1000.0, 3)
+
+
+@router.post("/v1/chart", response_model=None,
+             responses={**answers.ok(answers.ChartAnswer, "The chart's mark-ready table: JSON "
+                                     "by default; Arrow IPC stream, CSV or Parquet by Accept",
+                                     content=answers.CHART_FORMATS),
+                        **answers.problem_responses()})
+def chart(req: ChartRequest, request: Request) -> Response:
+    """Run a chart request and return the mark-ready table. The format follows
+    ``Accept`` (app/formats.py): ``application/json`` (default),
+    ``application/vnd.apache.arrow.stream``, ``text/csv`` or
+    ``application/vnd.apache.parquet``; anything else is a 406 problem."""
+    t_in = time.perf_counter()
+    st = request.app.state
+    fmt = formats.choose(request.headers.get("accept"))
+    st.service.check_source(req.source)  # auth before any cached answer
+    lookup = "no-cache" not in request.headers.get("cache-control", "").lower()
+    if fmt == formats.JSON:
+        return Response(json_answer(st, req, lookup, t_in), media_type="application/json",
+                        headers={"Vary": "Accept"})
+
+    def run() -> Entry:  # kept as (table, meta): the metadata is re-stamped per answer
+        result = st.service.run(req)
+        observability.record_chart(req.source, result.meta, result.timing)
+        return ArrowEntry(result.table, dict(result.meta), dict(result.timing))
+
+    entry, state = cached(st, req, "arrow", run, lookup)
+    meta = dict(entry.meta)
+    meta["cache"] = state
+    meta["timing_ms"] = entry.timing if state == "miss" else {"lookup": _ms_since(t_in)}
+    if fmt == ARROW_STREAM:
+        body = arrow_stream(entry.table, meta)
+    elif fmt == formats.CSV:
+        body = formats.csv_body(entry.table, {})  # zones: the Arrow timestamp types
+    else:
+        body = formats.parquet_body(entry.table, meta)
+    return Response(body, media_type=formats.MEDIA_TYPES[fmt],
+                    headers={"Vary": "Accept", **formats.table_headers(meta)})
+
+
+@router.post("/v1/batch", response_model=None,
+             responses={**answers.ok(answers.BatchAnswer, "One answer or problem per chart"),
+                        **answers.problem_responses()})
+def batch(req: BatchRequest, request: Request) -> Response:
+    """Several charts on one source. Each result is the chart's answer (cached like
+    /v1/chart), or its problem document (pointer prefixed with ``/charts/<i>``); the
+    batch itself answers 200."""
+    st = request.app.state
+    st.service.check_source(req.source)
+    results = []
+    for i, chart in enumerate(req.charts):
+        if chart.source is not None and chart.source != req.source:
+            results.append(dumps(Problem(422, "invalid-request", "Chart names another source",
+                                         f"a batch runs on one source ({req.source!r})",
+                                         f"/charts/{i}/source").body()))
+            continue
+        inherited = {"source": req.source}
+        if req.tz is not None and chart.tz is None:  # the dashboard's zone
+            inherited["tz"] = req.tz
+        full = ChartRequest.model_validate(
+            chart.model_dump(by_alias=True, exclude_none=True) | inherited)
+        try:
+            results.append(json_answer(st, full, True, time.perf_counter()))
+        except (PlanError, Problem, EngineError) as e:
+            # this chart's own problem (422, 403, 503, 504, ...); the others still answer
+            prob = (from_plan_error(e) if isinstance(e, PlanError)
+                    else engine_problem(e) if isinstance(e, EngineError) else e)
+            prob.ptr = f"/charts/{i}{prob.ptr}" if prob.ptr is not None else f"/charts/{i}"
+            results.append(dumps(prob.body()))
+    # the answers are already encoded (and may come from the cache): splice the bytes
+    head = dumps({"source": req.source})[:-1] + b',"results":['
+    return Response(head + b",".join(results) + b"]}", media_type="application/json")
+
+
+@router.post("/v1/sql", response_model=None,
+             responses={**answers.ok(answers.SqlAnswer, "The SQL for the dialect"),
+                        **answers.problem_responses()})
+def plan_sql(req: ChartRequest, request: Request,
+             dialect: str | None = Query(None, description="Target dialect; default: the "
+                                         "source's own engine. One of: " + ", ".join(sorted(DIALECTS)))
+             ) -> Response:
+    """Plan only: the SQL sluice would run, for ``dialect``."""
+    observability.note_source(req.source)
+    return JSONResponse(request.app.state.service.plan_sql(req, dialect))
+
+
+def cached(st: Any, req: ChartRequest, fmt: str, run: Callable[[], Entry],
+           lookup: bool) -> tuple[Entry, str]:
+    """The cached answer for ``req`` in ``fmt`` (single-flight), or ``run()``'s."""
+    cache = st.cache
+    if not cache.enabled:
+        return run(), "miss"
+    ttl_s = float((getattr(st.settings, "cache", None) or {}).get("ttl_s", 60.0))
+    with st.service.limiter.deadline(req.source):  # the data version is asked on time too
+        version = source_version(st.catalog.config(req.source).engine,
+                                 st.catalog.engine(req.source), ttl_s)
+        return cache.compute(cache.key(canonical(req), version, fmt), req.source, run,
+                             lookup=lookup)
+
+
+def json_answer(st: Any, req: ChartRequest, lookup: bool, t_in: float) -> bytes:
+    """The JSON answer bytes, from the cache when it has them (chart and batch routes)."""
+    def run() -> Entry:
+        result = st.service.run(req)
+        observability.record_chart(req.source, result.meta, result.timing)
+        t0 = time.perf_counter()
+        payload = st.service.to_json(result, wire=True)  # decimals: exact digits, vectorised
+        payload.pop("cache", None)
+        payload.pop("timing_ms", None)
+        body = open_json(payload)
+        timing = dict(result.timing)
+        timing["encode"] = _ms_since(t0)
+        return Entry(body, "application/json", timing)
+
+    entry, state = cached(st, req, "json", run, lookup)
+    timing = entry.timing if state == "miss" else {"lookup": _ms_since(t_in)}
+    return stamp_json(entry.body, state, timing)
+
+
+class ArrowEntry(Entry):
+    """A cached Arrow answer: the table and its metadata, encoded per answer (cheap for the
+    few hundred rows of a chart) so ``cache`` and ``timing_ms`` are true for each one."""
+
+    def __init__(self, table: Any, meta: dict[str, Any], timing: dict[str, float]) -> None:
+        super().__init__(b"", ARROW_STREAM, timing)
+        self.table = table
+        self.meta = meta
+
+    @property
+    def nbytes(self) -> int:
+        return int(self.table.nbytes) + len(dumps(self.meta)) + 128
