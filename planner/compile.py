@@ -1132,6 +1132,9 @@ def _instant_in_range(d: Dialect, col: ColumnInfo, ref: exp.Expression) -> exp.E
 
 def _key_expr(d: Dialect, k: Key) -> exp.Expression:
     """The internal grouping value of a key, computed per source row."""
+    unit_us = _trunc_micros(d, k)
+    if unit_us is not None:
+        return _micro_bin(d, k, unit_us)
     ref = d.column(k.col.name, "s")
     if k.col.is_temporal:  # plain, trunc, extract and time bins alike
         ref = _instant_in_range(d, k.col, ref)
@@ -1255,6 +1258,45 @@ def _exact_layout(start: float, width: float, count: int, lo: float, hi: float) 
     return top  # values in [edge_count, hi] go to the last bin, as the guarded form clamps
 
 
+#: Fixed-length ``trunc`` units in microseconds (the ISO week starts on a Monday).
+_UNIT_MICROS = {"week": 604_800_000_000, "day": 86_400_000_000, "hour": 3_600_000_000,
+                "minute": 60_000_000, "second": 1_000_000}
+#: Microseconds from 0001-01-01T00:00:00Z -- the first instant a time key shows, a Monday
+#: (proleptic Gregorian), a whole number of every unit above -- to 1970-01-01T00:00:00Z.
+_YEAR1_MICROS = 62_135_596_800_000_000
+#: Microseconds from 1970-01-01T00:00:00Z to 9999-12-31T23:59:59.999999Z, the last one shown.
+_YEAR9999_MICROS = 253_402_300_799_999_999
+
+
+def _trunc_micros(d: Dialect, k: Key) -> int | None:
+    """The unit in microseconds when a ``trunc`` key groups by an integer bin number (a
+    fixed-length unit in UTC on a dialect with integer epoch microseconds), else None."""
+    if k.mode != "trunc" or k.tz != "UTC" or k.spec.trunc not in _UNIT_MICROS:
+        return None
+    if d.epoch_micros(d.column(k.col.name), k.col.kind) is None:
+        return None
+    return _UNIT_MICROS[k.spec.trunc]
+
+
+def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
+    """``trunc`` of a fixed-length unit in UTC as the bin number since 0001-01-01T00:00:00Z:
+    ``(us + c) // unit`` on integer epoch microseconds ``us``, ``c`` = _YEAR1_MICROS. Every
+    instant shown has ``us + c >= 0``, so the integer quotient is the floor (engines round
+    it toward zero) and instants before 1970 land in the right bin; no float is involved,
+    and the bins are date_trunc's in UTC because ``c`` is a whole number of every unit (the
+    week: 0001-01-01 is a Monday). Instants outside years 1..9999 are NULL, as
+    _instant_in_range makes them for every other time key. _key_outputs turns the few
+    grouped bin numbers back into instants (``bin * unit - c``)."""
+    us = d.epoch_micros(d.column(k.col.name, "s"), k.col.kind)
+    assert us is not None
+    idx = d.int_div(exp.Paren(this=exp.Add(this=us, expression=d.number(_YEAR1_MICROS))),
+                    d.number(unit_us))
+    if not d.wide_instants:
+        return idx
+    ok = exp.Between(this=us.copy(), low=d.number(-_YEAR1_MICROS), high=d.number(_YEAR9999_MICROS))
+    return exp.Case(ifs=[exp.If(this=ok, true=idx)])
+
+
 def _trunc_key(d: Dialect, unit: str, ref: exp.Expression, kind: str, tz: str) -> exp.Expression:
     """Grouping value of ``trunc``. Day and longer units truncate the wall-clock time in tz
     (a naive timestamp, turned back into an instant on output). Hour and shorter units
@@ -1292,6 +1334,11 @@ def _key_outputs(d: Dialect, k: Key) -> list[exp.Expression]:
             hi = d.from_local(d.add_units(v.copy(), 1, step.unit), k.tz)
         return [exp.alias_(lo, k.names[0], quoted=True), exp.alias_(hi, k.names[1], quoted=True)]
     if k.mode == "trunc":
+        unit_us = _trunc_micros(d, k)
+        if unit_us is not None:
+            start = exp.Sub(this=exp.Mul(this=v, expression=d.number(unit_us)),
+                            expression=d.number(_YEAR1_MICROS))
+            return [exp.alias_(d.from_epoch_micros(start), k.names[0], quoted=True)]
         if k.spec.trunc in SUB_DAY_UNITS:
             return [exp.alias_(v, k.names[0], quoted=True)]
         return [exp.alias_(d.from_local(v, k.tz), k.names[0], quoted=True)]

@@ -460,3 +460,73 @@ def test_only_canonical_iana_zones(api, name, suggest, where):
     assert all(s in valid and not s.startswith(("posix/", "right/")) for s in p.get("suggestions") or [])
     if suggest:
         assert suggest in p["suggestions"]
+
+
+# ---------------------------------------------------------------------------------------------
+# UTC trunc of fixed-length units far from 1970 (integer bin numbers on DuckDB)
+# ---------------------------------------------------------------------------------------------
+
+#: instants around 1970, before it (negative epoch microseconds), at the first and last
+#: instant of years 1..9999, and a leap day
+EDGE_INSTANTS = [dt.datetime(1, 1, 1, tzinfo=UTC), dt.datetime(1, 1, 1, 0, 0, 0, 1, tzinfo=UTC),
+                 dt.datetime(1, 1, 7, 23, 59, 59, 999999, tzinfo=UTC),
+                 dt.datetime(1899, 12, 31, 23, 59, 59, 999999, tzinfo=UTC),
+                 dt.datetime(1960, 2, 29, 12, 34, 56, 789000, tzinfo=UTC),
+                 dt.datetime(1969, 12, 29, 0, 0, tzinfo=UTC),
+                 dt.datetime(1969, 12, 31, 23, 0, tzinfo=UTC),
+                 dt.datetime(1969, 12, 31, 23, 59, 59, 999999, tzinfo=UTC),
+                 dt.datetime(1970, 1, 1, tzinfo=UTC), dt.datetime(1970, 1, 1, 0, 0, 0, 1, tzinfo=UTC),
+                 dt.datetime(2026, 10, 25, 1, 30, tzinfo=UTC),
+                 dt.datetime(9999, 12, 31, 23, 59, 59, 999999, tzinfo=UTC)]
+
+
+def utc_trunc(t: dt.datetime, unit: str) -> dt.datetime:
+    """Floor of an instant to a UTC unit. reference: datetime arithmetic / isocalendar"""
+    if unit == "week":
+        d = t.date() - dt.timedelta(days=t.isoweekday() - 1)  # ISO 8601: weeks start on Monday
+        return dt.datetime(d.year, d.month, d.day, tzinfo=UTC)
+    if unit == "day":
+        return dt.datetime(t.year, t.month, t.day, tzinfo=UTC)
+    cut = {"hour": dict(minute=0, second=0, microsecond=0),
+           "minute": dict(second=0, microsecond=0), "second": dict(microsecond=0)}[unit]
+    return t.replace(**cut)
+
+
+@pytest.fixture(scope="module")
+def edge_service(tmp_path_factory):
+    import duckdb
+
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    path = tmp_path_factory.mktemp("edge_times") / "edge.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute("SET TimeZone = 'UTC'")
+    con.execute("CREATE TABLE t (ts TIMESTAMPTZ, tsn TIMESTAMP, d DATE)")
+    con.executemany("INSERT INTO t VALUES (?, ?, ?)",
+                    [(t, t.replace(tzinfo=None), t.date()) for t in EDGE_INSTANTS])
+    # legal values no time key shows (README "Bins"): NULL groups
+    con.execute("INSERT INTO t VALUES ('infinity', 'infinity', 'infinity'), "
+                "('-infinity', '-infinity', '-infinity'), "
+                "('12000-01-01 00:00:00+00', '12000-01-01 00:00:00', '12000-01-01'), (NULL, NULL, NULL)")
+    con.close()
+    catalog = Catalog(parse_settings({"sources": {"edge": {"engine": "duckdb", "path": str(path),
+                                                           "table": "t"}}}, "<edge times>"))
+    yield ChartService(catalog)
+    catalog.close()
+
+
+@pytest.mark.parametrize("unit", ["week", "day", "hour", "minute", "second"])
+@pytest.mark.parametrize("column", ["ts", "tsn", "d"])
+def test_utc_trunc_before_1970_and_at_years_1_and_9999(edge_service, unit, column):
+    from planner.model import ChartRequest
+
+    svc = edge_service
+    out = svc.to_json(svc.run(ChartRequest.model_validate(
+        {"source": "edge", "channels": {"x": {"column": column, "trunc": unit}, "y": {"agg": "count"}}})))
+    got = {None if s is None else parse_ts(s).astimezone(UTC): n
+           for s, n in zip(out["data"][column], out["data"]["count"])}
+    cells = [t if column != "d" else dt.datetime(t.year, t.month, t.day, tzinfo=UTC) for t in EDGE_INSTANTS]
+    want = expected_counts(cells + [None] * 4, lambda t: utc_trunc(t, unit))
+    assert got == want

@@ -385,6 +385,21 @@ class Dialect:
         """Timestamp with time zone for epoch seconds."""
         raise NotImplementedError
 
+    def epoch_micros(self, e: exp.Expression, kind: str) -> exp.Expression | None:
+        """Whole microseconds since 1970-01-01T00:00:00Z as a 64-bit integer (naive values
+        read as UTC; NULL for 'infinity'), or None: then UTC time keys of fixed-length units
+        group by a truncated timestamp instead of an integer bin number (planner/compile.py,
+        ``_trunc_micros``)."""
+        return None
+
+    def from_epoch_micros(self, micros: exp.Expression) -> exp.Expression:
+        """Timestamp with time zone for integer epoch microseconds (with ``epoch_micros``)."""
+        raise NotImplementedError
+
+    def int_div(self, a: exp.Expression, b: exp.Expression) -> exp.Expression:
+        """Integer quotient of two non-negative integers."""
+        return exp.IntDiv(this=a, expression=b)
+
     # --- aggregates -----------------------------------------------------------------
     def agg(self, name: str, arg: exp.Expression | None, q: float | None) -> exp.Expression:
         if name == "count":

@@ -67,6 +67,18 @@ class DuckDB(Dialect):
     def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
         return exp.Anonymous(this="to_timestamp", expressions=[seconds])
 
+    # Integer microseconds: an hourly key as (epoch_us + c) // 3600000000 groups a BIGINT
+    # instead of make_timestamptz(epoch_us(date_trunc(...))) per row; measured on 2M rows
+    # (one thread), the key's GROUP BY went from 1.36-1.59x to 1.09-1.10x of a hand-written
+    # epoch_us(t) // 3600000000.
+    def epoch_micros(self, e: exp.Expression, kind: str) -> exp.Expression:
+        if kind == "date":
+            e = exp.Cast(this=e, to=exp.DataType.build("TIMESTAMP"))
+        return exp.Anonymous(this="epoch_us", expressions=[e])
+
+    def from_epoch_micros(self, micros: exp.Expression) -> exp.Expression:
+        return exp.Anonymous(this="make_timestamptz", expressions=[micros])
+
     def quantile(self, arg: exp.Expression, q: float) -> exp.Expression:
         # quantile_cont interpolates linearly: Hyndman & Fan type 7.
         return exp.Anonymous(this="quantile_cont", expressions=[self.double(arg), self.number(q)])
