@@ -1180,6 +1180,10 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
     assert b is not None
     start, width = d.real(b.start), d.real(b.width)
     fast = _plain_floor_is_exact(b, k.vrange)
+    closed = bool(fast)
+    if fast is None and k.col.kind == "integer" and d.whole_integer_cells \
+            and _integer_floor_is_exact(b, k.vrange):
+        fast, closed = b.start + float(b.count) * b.width, True
     if fast is not None:
         # floor((v - start) / width) already puts every value of the range where the
         # guarded form below would (proved at plan time, see _plain_floor_is_exact);
@@ -1187,7 +1191,7 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
         q = v.copy() if b.start == 0.0 else exp.Paren(this=exp.Sub(this=v.copy(),
                                                                    expression=start.copy()))
         idx = d.floor(exp.Div(this=q, expression=width.copy()))
-        if fast:  # the closed last bin: values on the upper edge go into the last bin
+        if closed:  # the closed last bin: values on the upper edge go into the last bin
             idx = exp.Case(ifs=[exp.If(this=exp.GTE(this=v.copy(), expression=d.real(fast)),
                                        true=d.number(b.count - 1))], default=idx)
         return idx
@@ -1295,6 +1299,34 @@ def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
         return idx
     ok = exp.Between(this=us.copy(), low=d.number(-_YEAR1_MICROS), high=d.number(_YEAR9999_MICROS))
     return exp.Case(ifs=[exp.If(this=ok, true=idx)])
+
+
+def _integer_floor_is_exact(b: binning.NumericBins, vrange: tuple[float, float] | None) -> bool:
+    """Like _plain_floor_is_exact, for a column whose values are whole numbers (as DOUBLE):
+    only whole-number doubles must land right, so each bin is checked at the first and the
+    last whole number in it (the index is monotone in ``v``). A double just below an edge,
+    which makes the check fail for every layout whose top edge is 0, is no such value: a
+    histogram of an integer column gets the unguarded index (with the closed last bin's
+    CASE, whatever the range's maximum, so the statement depends on the layout alone)."""
+    if b.count is None or vrange is None or not vrange[0] >= b.start:
+        return False
+    return _exact_integer_layout(b.start, b.width, b.count)
+
+
+@functools.lru_cache(maxsize=4096)
+def _exact_integer_layout(start: float, width: float, count: int) -> bool:
+    if not (math.isfinite(start) and math.isfinite(width) and width > 0):
+        return False
+    for i in range(count):
+        e0, e1 = start + float(i) * width, start + float(i + 1) * width
+        if not e1 > e0:
+            return False
+        first, last = float(math.ceil(e0)), float(math.floor(math.nextafter(e1, -math.inf)))
+        if first > last:  # no whole number in this bin
+            continue
+        if math.floor((first - start) / width) != i or math.floor((last - start) / width) != i:
+            return False
+    return True
 
 
 def _trunc_key(d: Dialect, unit: str, ref: exp.Expression, kind: str, tz: str) -> exp.Expression:

@@ -92,6 +92,9 @@ class Dialect:
     #: interpolating between the order statistics floor(h) and floor(h) + 1, h = (n - 1) q
     #: (planner/compile.py, ``_window_stage``), where the target has no such aggregate.
     quantile_method: ClassVar[str] = "native"
+    #: Every value of an integer-kind column is a whole number (bins then check their plain
+    #: floor index at whole numbers only: planner/compile.py ``_integer_floor_is_exact``).
+    whole_integer_cells: ClassVar[bool] = True
     #: Standard deviation / variance: "native" aggregates or "two_pass": the group mean
     #: first (a window AVG), then the corrected sum of squared deviations (Chan, Golub &
     #: LeVeque 1983), for targets without them.
