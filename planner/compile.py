@@ -1613,6 +1613,10 @@ def _main_statement(plan: Plan) -> exp.Select:
     grouped = grouped.select(exp.alias_(exp.Count(this=exp.Star()), f"{INTERNAL}n", quoted=True))
     if group_cols:
         grouped = grouped.group_by(*[_ref(c) for c in group_cols])
+    pairs = _distinct_pairs(d, grouped, rows_name, group_cols)
+    if pairs is not None:
+        ctes.append((f"{INTERNAL}pairs", pairs[0]))
+        grouped = pairs[1]
     ctes.append((f"{INTERNAL}grouped", grouped))
     grouped_name = f"{INTERNAL}grouped"
     if fold:
@@ -1674,6 +1678,49 @@ def _main_statement(plan: Plan) -> exp.Select:
     for name, q in ctes:
         outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q, copy=False)
     return outer
+
+
+def _distinct_pairs(d: Dialect, grouped: exp.Select, rows_name: str, group_cols: list[str]
+                    ) -> tuple[exp.Select, exp.Select] | None:
+    """The grouped stage as two groupings when its aggregates are COUNT(DISTINCT m) of one
+    input ``m`` and the row count COUNT(*): first the distinct (keys, m) pairs with their row
+    counts, then per group COUNT(m) (the non-NULL distinct values) and SUM of the row counts.
+    Same answers; on dialects that say so (``distinct_pairs``). Returns (pairs, grouped)."""
+    if not d.distinct_pairs or not group_cols:
+        return None
+    arg = None
+    for e in grouped.expressions:
+        inner = e.this if isinstance(e, exp.Alias) else e
+        if isinstance(inner, exp.Column):
+            continue
+        if not isinstance(inner, exp.Count):
+            return None
+        if isinstance(inner.this, exp.Star):
+            continue
+        if not (isinstance(inner.this, exp.Distinct) and len(inner.this.expressions) == 1
+                and isinstance(inner.this.expressions[0], exp.Column)):
+            return None
+        col = inner.this.expressions[0]
+        if arg is not None and col != arg:
+            return None
+        arg = col
+    if arg is None:
+        return None
+    n = f"{INTERNAL}n"
+    keys = [_ref(c) for c in group_cols]
+    pairs = (exp.select(*keys, arg.copy(), exp.alias_(exp.Count(this=exp.Star()), n, quoted=True))
+             .from_(_table(rows_name)).group_by(*[k.copy() for k in keys], arg.copy()))
+    out = exp.select(*[k.copy() for k in keys]).from_(_table(f"{INTERNAL}pairs"))
+    for e in grouped.expressions:
+        inner = e.this if isinstance(e, exp.Alias) else e
+        if isinstance(inner, exp.Column):
+            continue
+        if isinstance(inner.this, exp.Star):
+            agg: exp.Expression = d.bigint(exp.Sum(this=_ref(n)))  # COUNT(*)'s type
+        else:
+            agg = exp.Count(this=arg.copy())
+        out = out.select(exp.alias_(agg, e.alias, quoted=True))
+    return pairs, out.group_by(*[k.copy() for k in keys])
 
 
 #: aggregates whose per-group partials combine exactly into the aggregate of the union

@@ -355,3 +355,21 @@ def test_single_row_groups_give_null_sample_deviation(api, ref):
         assert np.isnan(g["w"].std(ddof=1))  # reference: pandas std of one value is NaN
         assert r["stddev_samp_w"] is None
         assert r["var_pop_w"] == 0  # reference: pandas var(ddof=0) of one value is 0
+
+
+@pytest.mark.parametrize("where", [[], [{"column": "x", "gt": 0}]], ids=["all", "filtered"])
+def test_count_distinct_beside_count_matches_pandas(api, ref, where):
+    """COUNT(DISTINCT n) with the row count and a count measure (DuckDB groups the distinct
+    (key, value) pairs first: planner/compile.py _distinct_pairs), NULLs in key and value."""
+    resp = api.chart({"channels": {"x": {"column": "cat"}, "color": {"column": "grp2"},
+                                   "y": {"agg": "count_distinct", "column": "n"},
+                                   "size": {"agg": "count"}}, "where": where})
+    frame = ref.t if not where else ref.t[ref.t["x"].astype("Float64") > 0]
+    want = {}
+    for (c, g2), g in frame.groupby(["cat", "grp2"], dropna=False):  # reference: pandas groupby
+        want[(_key(c), _key(g2))] = (int(g["n"].nunique()), len(g))  # pandas nunique / size
+    got = {(r["cat"], r["grp2"]): (r["count_distinct_n"], r["count"]) for r in api.rows(resp)}
+    assert got == want
+    assert api.column(resp, "count")["type"] == api.column(resp, "count_distinct_n")["type"] == "integer"
+    assert resp["stats"]["matched_rows"] == len(frame)  # reference: pandas len
+    assert resp["stats"]["groups"] == len(want)

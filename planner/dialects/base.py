@@ -92,6 +92,9 @@ class Dialect:
     #: interpolating between the order statistics floor(h) and floor(h) + 1, h = (n - 1) q
     #: (planner/compile.py, ``_window_stage``), where the target has no such aggregate.
     quantile_method: ClassVar[str] = "native"
+    #: COUNT(DISTINCT m) beside the row count COUNT(*) is faster as a grouping of the
+    #: distinct (keys, m) pairs first (planner/compile.py ``_distinct_pairs``).
+    distinct_pairs: ClassVar[bool] = False
     #: Every value of an integer-kind column is a whole number (bins then check their plain
     #: floor index at whole numbers only: planner/compile.py ``_integer_floor_is_exact``).
     whole_integer_cells: ClassVar[bool] = True

@@ -19,6 +19,10 @@ class DuckDB(Dialect):
     #: quantile_cont of an integer column returns the DOUBLE interpolation (type 7) itself, so
     #: the planner may leave out the CAST (planner/compile.py; measured 480 -> 318 ms, 10M rows)
     quantile_interpolates_integers = True
+    #: DuckDB groups the (key, value) pairs itself for a lone COUNT(DISTINCT), but not beside
+    #: COUNT(*): measured on 10M rows (CPU time), 1.18x -> 1.11x of a hand-written
+    #: COUNT(DISTINCT) per group (bench count_distinct)
+    distinct_pairs = True
 
     def _utc(self, e: exp.Expression, kind: str) -> exp.Expression:
         """Column value as TIMESTAMPTZ (naive timestamps and dates are read as UTC)."""
