@@ -30,7 +30,9 @@ import datetime as dt
 import functools
 import json
 import math
+import os
 import re
+import struct
 import sys
 import zoneinfo
 from dataclasses import dataclass, field
@@ -1273,13 +1275,98 @@ _YEAR9999_MICROS = 253_402_300_799_999_999
 
 
 def _trunc_micros(d: Dialect, k: Key) -> int | None:
-    """The unit in microseconds when a ``trunc`` key groups by an integer bin number (a
-    fixed-length unit in UTC on a dialect with integer epoch microseconds), else None."""
-    if k.mode != "trunc" or k.tz != "UTC" or k.spec.trunc not in _UNIT_MICROS:
+    """The unit in microseconds when a ``trunc`` key groups by an integer (a fixed-length
+    unit in UTC, or a sub-day unit in a zone whose offsets are whole units from some instant
+    on: ``_whole_offsets_from``; on a dialect with integer epoch microseconds), else None."""
+    if k.mode != "trunc" or k.spec.trunc not in _UNIT_MICROS:
+        return None
+    if k.tz != "UTC" and (k.spec.trunc not in SUB_DAY_UNITS
+                          or _whole_offsets_from(k.tz, _UNIT_MICROS[k.spec.trunc]) is None):
         return None
     if d.epoch_micros(d.column(k.col.name), k.col.kind) is None:
         return None
     return _UNIT_MICROS[k.spec.trunc]
+
+
+#: POSIX TZ rule (the TZif footer, RFC 8536 section 3.3): std name, offset, [dst name [offset]]
+_TZ_RULE = re.compile(r"^(?:<[^>]*>|[A-Za-z]+)([+-]?\d{1,3}(?::\d{2}){0,2})"
+                      r"(?:(?:<[^>]*>|[A-Za-z]+)([+-]?\d{1,3}(?::\d{2}){0,2})?)?(?:,.*)?$")
+
+
+def _rule_seconds(text: str) -> int:
+    sign = -1 if text.startswith("-") else 1
+    parts = [int(x) for x in text.lstrip("+-").split(":")] + [0, 0]
+    return sign * (parts[0] * 3600 + parts[1] * 60 + parts[2])
+
+
+@functools.lru_cache(maxsize=512)
+def _whole_offsets_from(tz: str, unit_us: int) -> int | None:
+    """Epoch microseconds from which every UTC offset of ``tz`` -- its transitions and the
+    rule after them, read from the zone's TZif file (RFC 8536) where zoneinfo finds it --
+    is a whole number of the unit (-_YEAR1_MICROS: always), or None (never, or unreadable).
+    From there on, the wall-clock remainder of an instant equals its UTC remainder, so
+    ``trunc`` (the instant minus that remainder) is the UTC floor."""
+    unit = unit_us // 1_000_000
+    try:
+        data = _tzif_bytes(tz)
+        times, offsets, rule = _read_tzif(data)
+    except (OSError, ValueError, struct.error):
+        return None
+    if rule:
+        m = _TZ_RULE.match(rule)
+        if m is None:
+            return None
+        std = _rule_seconds(m.group(1))
+        dst = _rule_seconds(m.group(2)) if m.group(2) else std - 3600
+        if std % unit or dst % unit:
+            return None
+    # offsets[0] holds before times[0], offsets[i + 1] from times[i] on
+    bad = [i for i, off in enumerate(offsets) if off % unit]
+    if not bad:
+        return -_YEAR1_MICROS
+    last = bad[-1]
+    if last >= len(times):  # the offset in force after the last transition
+        return None
+    return max(times[last] * 1_000_000, -_YEAR1_MICROS)
+
+
+def _tzif_bytes(tz: str) -> bytes:
+    """The TZif file of ``tz``, searched like zoneinfo: TZPATH, then the tzdata package."""
+    parts = tz.split("/")
+    if any(p in ("", ".", "..") for p in parts):
+        raise ValueError(tz)
+    for root in zoneinfo.TZPATH:
+        path = os.path.join(root, *parts)
+        if os.path.isfile(path):
+            with open(path, "rb") as f:
+                return f.read()
+    import importlib.resources
+
+    return importlib.resources.files("tzdata").joinpath("zoneinfo", *parts).read_bytes()
+
+
+def _read_tzif(data: bytes) -> tuple[list[int], list[int], str]:
+    """(transition times in epoch seconds, the UTC offset before the first and after each
+    transition, the footer rule) of a version 2+ TZif file (RFC 8536: the v1 block is
+    skipped, the 64-bit block read)."""
+    def header(at: int) -> tuple[int, ...]:
+        if data[at:at + 4] != b"TZif" or data[at + 4] < ord("2"):
+            raise ValueError("not a version 2+ TZif file")
+        return struct.unpack(">6l", data[at + 20:at + 44])
+
+    isut, isstd, leap, timecnt, typecnt, charcnt = header(0)
+    at = 44 + timecnt * 5 + typecnt * 6 + charcnt + leap * 8 + isstd + isut
+    isut, isstd, leap, timecnt, typecnt, charcnt = header(at)
+    at += 44
+    times = list(struct.unpack(f">{timecnt}q", data[at:at + 8 * timecnt]))
+    at += 8 * timecnt
+    idx = list(data[at:at + timecnt])
+    at += timecnt
+    utoff = [struct.unpack(">l", data[at + 6 * i:at + 6 * i + 4])[0] for i in range(typecnt)]
+    at += 6 * typecnt + charcnt + leap * 12 + isstd + isut
+    footer = data[at:].split(b"\n")
+    rule = footer[1].decode("ascii") if len(footer) > 2 else ""
+    return times, [utoff[0]] + [utoff[i] for i in idx], rule
 
 
 def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
@@ -1295,6 +1382,20 @@ def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
     assert us is not None
     idx = d.int_div(exp.Paren(this=exp.Add(this=us, expression=d.number(_YEAR1_MICROS))),
                     d.number(unit_us))
+    if k.tz != "UTC":
+        # a zone: the bin start in epoch microseconds; from the instant on which the zone's
+        # offsets are whole units the UTC floor, before it the wall-clock form
+        since = _whole_offsets_from(k.tz, unit_us)
+        assert since is not None
+        start = exp.Sub(this=exp.Mul(this=idx, expression=d.number(unit_us)),
+                        expression=d.number(_YEAR1_MICROS))
+        fast = exp.If(this=exp.Between(this=us.copy(), low=d.number(since),
+                                       high=d.number(_YEAR9999_MICROS)), true=start)
+        if since <= -_YEAR1_MICROS:
+            return exp.Case(ifs=[fast])
+        ref = _instant_in_range(d, k.col, d.column(k.col.name, "s"))
+        slow = d.epoch_micros(_trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz), "timestamptz")
+        return exp.Case(ifs=[fast], default=slow)
     if not d.wide_instants:
         return idx
     ok = exp.Between(this=us.copy(), low=d.number(-_YEAR1_MICROS), high=d.number(_YEAR9999_MICROS))
@@ -1367,6 +1468,8 @@ def _key_outputs(d: Dialect, k: Key) -> list[exp.Expression]:
         return [exp.alias_(lo, k.names[0], quoted=True), exp.alias_(hi, k.names[1], quoted=True)]
     if k.mode == "trunc":
         unit_us = _trunc_micros(d, k)
+        if unit_us is not None and k.tz != "UTC":  # the bin start in microseconds
+            return [exp.alias_(d.from_epoch_micros(v), k.names[0], quoted=True)]
         if unit_us is not None:
             start = exp.Sub(this=exp.Mul(this=v, expression=d.number(unit_us)),
                             expression=d.number(_YEAR1_MICROS))
