@@ -373,3 +373,25 @@ def test_count_distinct_beside_count_matches_pandas(api, ref, where):
     assert api.column(resp, "count")["type"] == api.column(resp, "count_distinct_n")["type"] == "integer"
     assert resp["stats"]["matched_rows"] == len(frame)  # reference: pandas len
     assert resp["stats"]["groups"] == len(want)
+
+
+@pytest.mark.parametrize("empty_bins", ["omit", "zero"])
+def test_count_distinct_by_bins_with_limits_matches_pandas(api, ref, empty_bins):
+    """The same with a binned key whose limits leave rows outside (flags) and the empty-bins
+    grid: outside rows are counted in stats, never in a bin."""
+    resp = api.chart({"channels": {"x": {"column": "x", "bin": {"width": 10, "origin": 0, "limits": [-20, 20]}},
+                                   "y": {"agg": "count_distinct", "column": "grp2"}},
+                      "empty_bins": empty_bins})
+    x = ref.t["x"].astype("Float64")
+    inside = ref.t[(x >= -20) & (x <= 20)]
+    k = np.minimum(np.floor(inside["x"].astype(float) / 10), 1)  # the closed last bin [10, 20]
+    want = {float(b * 10): int(g["grp2"].nunique()) for b, g in inside.groupby(k)}  # pandas nunique
+    if empty_bins == "zero":
+        want = {float(lo): want.get(float(lo), 0) for lo in range(-20, 20, 10)}
+    nulls = ref.t[x.isna()]
+    got = {r["x_lo"]: r["count_distinct_grp2"] for r in api.rows(resp)}
+    assert got.pop(None, None) == (int(nulls["grp2"].nunique()) if len(nulls) else None)
+    assert got == want
+    outside = int(((x < -20) | (x > 20)).fillna(False).sum())
+    assert resp["stats"]["outside_limits"]["x"] == outside  # reference: pandas mask
+    assert resp["stats"]["matched_rows"] == len(ref.t)
