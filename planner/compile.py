@@ -31,7 +31,9 @@ import datetime as dt
 import functools
 import json
 import math
+import os
 import re
+import struct
 import sys
 import zoneinfo
 from dataclasses import dataclass, field
@@ -1264,6 +1266,9 @@ def _instant_in_range(d: Dialect, col: ColumnInfo, ref: exp.Expression) -> exp.E
 
 def _key_expr(d: Dialect, k: Key) -> exp.Expression:
     """The internal grouping value of a key, computed per source row."""
+    unit_us = _trunc_micros(d, k)
+    if unit_us is not None:
+        return _micro_bin(d, k, unit_us)
     ref = d.column(k.col.name, "s")
     if k.col.is_temporal:  # plain, trunc, extract and time bins alike
         ref = _instant_in_range(d, k.col, ref)
@@ -1309,6 +1314,10 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
     assert b is not None
     start, width = d.real(b.start), d.real(b.width)
     fast = _plain_floor_is_exact(b, k.vrange)
+    closed = bool(fast)
+    if fast is None and k.col.kind == "integer" and d.whole_integer_cells \
+            and _integer_floor_is_exact(b, k.vrange):
+        fast, closed = b.start + float(b.count) * b.width, True
     if fast is not None:
         # floor((v - start) / width) already puts every value of the range where the
         # guarded form below would (proved at plan time, see _plain_floor_is_exact);
@@ -1316,7 +1325,7 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
         q = v.copy() if b.start == 0.0 else exp.Paren(this=exp.Sub(this=v.copy(),
                                                                    expression=start.copy()))
         idx = d.floor(exp.Div(this=q, expression=width.copy()))
-        if fast:  # the closed last bin: values on the upper edge go into the last bin
+        if closed:  # the closed last bin: values on the upper edge go into the last bin
             idx = exp.Case(ifs=[exp.If(this=exp.GTE(this=v.copy(), expression=d.real(fast)),
                                        true=d.number(b.count - 1))], default=idx)
         return idx
@@ -1393,6 +1402,172 @@ def _exact_layout(start: float, width: float, count: int) -> bool:
     return True
 
 
+#: Fixed-length ``trunc`` units in microseconds (the ISO week starts on a Monday).
+_UNIT_MICROS = {"week": 604_800_000_000, "day": 86_400_000_000, "hour": 3_600_000_000,
+                "minute": 60_000_000, "second": 1_000_000}
+#: Microseconds from 0001-01-01T00:00:00Z -- the first instant a time key shows, a Monday
+#: (proleptic Gregorian), a whole number of every unit above -- to 1970-01-01T00:00:00Z.
+_YEAR1_MICROS = 62_135_596_800_000_000
+#: Microseconds from 1970-01-01T00:00:00Z to 9999-12-31T23:59:59.999999Z, the last one shown.
+_YEAR9999_MICROS = 253_402_300_799_999_999
+
+
+def _trunc_micros(d: Dialect, k: Key) -> int | None:
+    """The unit in microseconds when a ``trunc`` key groups by an integer (a fixed-length
+    unit in UTC, or a sub-day unit in a zone whose offsets are whole units from some instant
+    on: ``_whole_offsets_from``; on a dialect with integer epoch microseconds), else None."""
+    if k.mode != "trunc" or k.spec.trunc not in _UNIT_MICROS:
+        return None
+    if k.tz != "UTC" and (k.spec.trunc not in SUB_DAY_UNITS
+                          or _whole_offsets_from(k.tz, _UNIT_MICROS[k.spec.trunc]) is None):
+        return None
+    if d.epoch_micros(d.column(k.col.name), k.col.kind) is None:
+        return None
+    return _UNIT_MICROS[k.spec.trunc]
+
+
+#: POSIX TZ rule (the TZif footer, RFC 8536 section 3.3): std name, offset, [dst name [offset]]
+_TZ_RULE = re.compile(r"^(?:<[^>]*>|[A-Za-z]+)([+-]?\d{1,3}(?::\d{2}){0,2})"
+                      r"(?:(?:<[^>]*>|[A-Za-z]+)([+-]?\d{1,3}(?::\d{2}){0,2})?)?(?:,.*)?$")
+
+
+def _rule_seconds(text: str) -> int:
+    sign = -1 if text.startswith("-") else 1
+    parts = [int(x) for x in text.lstrip("+-").split(":")] + [0, 0]
+    return sign * (parts[0] * 3600 + parts[1] * 60 + parts[2])
+
+
+@functools.lru_cache(maxsize=512)
+def _whole_offsets_from(tz: str, unit_us: int) -> int | None:
+    """Epoch microseconds from which every UTC offset of ``tz`` -- its transitions and the
+    rule after them, read from the zone's TZif file (RFC 8536) where zoneinfo finds it --
+    is a whole number of the unit (-_YEAR1_MICROS: always), or None (never, or unreadable).
+    From there on, the wall-clock remainder of an instant equals its UTC remainder, so
+    ``trunc`` (the instant minus that remainder) is the UTC floor."""
+    unit = unit_us // 1_000_000
+    try:
+        data = _tzif_bytes(tz)
+        times, offsets, rule = _read_tzif(data)
+    except (OSError, ValueError, struct.error):
+        return None
+    if rule:
+        m = _TZ_RULE.match(rule)
+        if m is None:
+            return None
+        std = _rule_seconds(m.group(1))
+        dst = _rule_seconds(m.group(2)) if m.group(2) else std - 3600
+        if std % unit or dst % unit:
+            return None
+    # offsets[0] holds before times[0], offsets[i + 1] from times[i] on
+    bad = [i for i, off in enumerate(offsets) if off % unit]
+    if not bad:
+        return -_YEAR1_MICROS
+    last = bad[-1]
+    if last >= len(times):  # the offset in force after the last transition
+        return None
+    return max(times[last] * 1_000_000, -_YEAR1_MICROS)
+
+
+def _tzif_bytes(tz: str) -> bytes:
+    """The TZif file of ``tz``, searched like zoneinfo: TZPATH, then the tzdata package."""
+    parts = tz.split("/")
+    if any(p in ("", ".", "..") for p in parts):
+        raise ValueError(tz)
+    for root in zoneinfo.TZPATH:
+        path = os.path.join(root, *parts)
+        if os.path.isfile(path):
+            with open(path, "rb") as f:
+                return f.read()
+    import importlib.resources
+
+    return importlib.resources.files("tzdata").joinpath("zoneinfo", *parts).read_bytes()
+
+
+def _read_tzif(data: bytes) -> tuple[list[int], list[int], str]:
+    """(transition times in epoch seconds, the UTC offset before the first and after each
+    transition, the footer rule) of a version 2+ TZif file (RFC 8536: the v1 block is
+    skipped, the 64-bit block read)."""
+    def header(at: int) -> tuple[int, ...]:
+        if data[at:at + 4] != b"TZif" or data[at + 4] < ord("2"):
+            raise ValueError("not a version 2+ TZif file")
+        return struct.unpack(">6l", data[at + 20:at + 44])
+
+    isut, isstd, leap, timecnt, typecnt, charcnt = header(0)
+    at = 44 + timecnt * 5 + typecnt * 6 + charcnt + leap * 8 + isstd + isut
+    isut, isstd, leap, timecnt, typecnt, charcnt = header(at)
+    at += 44
+    times = list(struct.unpack(f">{timecnt}q", data[at:at + 8 * timecnt]))
+    at += 8 * timecnt
+    idx = list(data[at:at + timecnt])
+    at += timecnt
+    utoff = [struct.unpack(">l", data[at + 6 * i:at + 6 * i + 4])[0] for i in range(typecnt)]
+    at += 6 * typecnt + charcnt + leap * 12 + isstd + isut
+    footer = data[at:].split(b"\n")
+    rule = footer[1].decode("ascii") if len(footer) > 2 else ""
+    return times, [utoff[0]] + [utoff[i] for i in idx], rule
+
+
+def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
+    """``trunc`` of a fixed-length unit in UTC as the bin number since 0001-01-01T00:00:00Z:
+    ``(us + c) // unit`` on integer epoch microseconds ``us``, ``c`` = _YEAR1_MICROS. Every
+    instant shown has ``us + c >= 0``, so the integer quotient is the floor (engines round
+    it toward zero) and instants before 1970 land in the right bin; no float is involved,
+    and the bins are date_trunc's in UTC because ``c`` is a whole number of every unit (the
+    week: 0001-01-01 is a Monday). Instants outside years 1..9999 are NULL, as
+    _instant_in_range makes them for every other time key. _key_outputs turns the few
+    grouped bin numbers back into instants (``bin * unit - c``)."""
+    us = d.epoch_micros(d.column(k.col.name, "s"), k.col.kind)
+    assert us is not None
+    idx = d.int_div(exp.Paren(this=exp.Add(this=us, expression=d.number(_YEAR1_MICROS))),
+                    d.number(unit_us))
+    if k.tz != "UTC":
+        # a zone: the bin start in epoch microseconds; from the instant on which the zone's
+        # offsets are whole units the UTC floor, before it the wall-clock form
+        since = _whole_offsets_from(k.tz, unit_us)
+        assert since is not None
+        start = exp.Sub(this=exp.Mul(this=idx, expression=d.number(unit_us)),
+                        expression=d.number(_YEAR1_MICROS))
+        fast = exp.If(this=exp.Between(this=us.copy(), low=d.number(since),
+                                       high=d.number(_YEAR9999_MICROS)), true=start)
+        if since <= -_YEAR1_MICROS:
+            return exp.Case(ifs=[fast])
+        ref = _instant_in_range(d, k.col, d.column(k.col.name, "s"))
+        slow = d.epoch_micros(_trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz), "timestamptz")
+        return exp.Case(ifs=[fast], default=slow)
+    if not d.wide_instants:
+        return idx
+    ok = exp.Between(this=us.copy(), low=d.number(-_YEAR1_MICROS), high=d.number(_YEAR9999_MICROS))
+    return exp.Case(ifs=[exp.If(this=ok, true=idx)])
+
+
+def _integer_floor_is_exact(b: binning.NumericBins, vrange: tuple[float, float] | None) -> bool:
+    """Like _plain_floor_is_exact, for a column whose values are whole numbers (as DOUBLE):
+    only whole-number doubles must land right, so each bin is checked at the first and the
+    last whole number in it (the index is monotone in ``v``). A double just below an edge,
+    which makes the check fail for every layout whose top edge is 0, is no such value: a
+    histogram of an integer column gets the unguarded index (with the closed last bin's
+    CASE, whatever the range's maximum, so the statement depends on the layout alone)."""
+    if b.count is None or vrange is None or not vrange[0] >= b.start:
+        return False
+    return _exact_integer_layout(b.start, b.width, b.count)
+
+
+@functools.lru_cache(maxsize=4096)
+def _exact_integer_layout(start: float, width: float, count: int) -> bool:
+    if not (math.isfinite(start) and math.isfinite(width) and width > 0):
+        return False
+    for i in range(count):
+        e0, e1 = start + float(i) * width, start + float(i + 1) * width
+        if not e1 > e0:
+            return False
+        first, last = float(math.ceil(e0)), float(math.floor(math.nextafter(e1, -math.inf)))
+        if first > last:  # no whole number in this bin
+            continue
+        if math.floor((first - start) / width) != i or math.floor((last - start) / width) != i:
+            return False
+    return True
+
+
 def _trunc_key(d: Dialect, unit: str, ref: exp.Expression, kind: str, tz: str) -> exp.Expression:
     """Grouping value of ``trunc``. Day and longer units truncate the wall-clock time in tz
     (a naive timestamp, turned back into an instant on output). Hour and shorter units
@@ -1430,6 +1605,13 @@ def _key_outputs(d: Dialect, k: Key) -> list[exp.Expression]:
             hi = d.from_local(d.add_units(v.copy(), 1, step.unit), k.tz)
         return [exp.alias_(lo, k.names[0], quoted=True), exp.alias_(hi, k.names[1], quoted=True)]
     if k.mode == "trunc":
+        unit_us = _trunc_micros(d, k)
+        if unit_us is not None and k.tz != "UTC":  # the bin start in microseconds
+            return [exp.alias_(d.from_epoch_micros(v), k.names[0], quoted=True)]
+        if unit_us is not None:
+            start = exp.Sub(this=exp.Mul(this=v, expression=d.number(unit_us)),
+                            expression=d.number(_YEAR1_MICROS))
+            return [exp.alias_(d.from_epoch_micros(start), k.names[0], quoted=True)]
         if k.spec.trunc in SUB_DAY_UNITS:
             return [exp.alias_(v, k.names[0], quoted=True)]
         return [exp.alias_(d.from_local(v, k.tz), k.names[0], quoted=True)]
@@ -1678,6 +1860,10 @@ def _main_statement(plan: Plan) -> exp.Select:
     grouped = grouped.select(exp.alias_(exp.Count(this=exp.Star()), f"{INTERNAL}n", quoted=True))
     if group_cols:
         grouped = grouped.group_by(*[_ref(c) for c in group_cols])
+    pairs = _distinct_pairs(d, grouped, rows_name, group_cols)
+    if pairs is not None:
+        ctes.append((f"{INTERNAL}pairs", pairs[0]))
+        grouped = pairs[1]
     ctes.append((f"{INTERNAL}grouped", grouped))
     grouped_name = f"{INTERNAL}grouped"
     if fold:
@@ -1739,6 +1925,49 @@ def _main_statement(plan: Plan) -> exp.Select:
     for name, q in ctes:
         outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q, copy=False)
     return outer
+
+
+def _distinct_pairs(d: Dialect, grouped: exp.Select, rows_name: str, group_cols: list[str]
+                    ) -> tuple[exp.Select, exp.Select] | None:
+    """The grouped stage as two groupings when its aggregates are COUNT(DISTINCT m) of one
+    input ``m`` and the row count COUNT(*): first the distinct (keys, m) pairs with their row
+    counts, then per group COUNT(m) (the non-NULL distinct values) and SUM of the row counts.
+    Same answers; on dialects that say so (``distinct_pairs``). Returns (pairs, grouped)."""
+    if not d.distinct_pairs or not group_cols:
+        return None
+    arg = None
+    for e in grouped.expressions:
+        inner = e.this if isinstance(e, exp.Alias) else e
+        if isinstance(inner, exp.Column):
+            continue
+        if not isinstance(inner, exp.Count):
+            return None
+        if isinstance(inner.this, exp.Star):
+            continue
+        if not (isinstance(inner.this, exp.Distinct) and len(inner.this.expressions) == 1
+                and isinstance(inner.this.expressions[0], exp.Column)):
+            return None
+        col = inner.this.expressions[0]
+        if arg is not None and col != arg:
+            return None
+        arg = col
+    if arg is None:
+        return None
+    n = f"{INTERNAL}n"
+    keys = [_ref(c) for c in group_cols]
+    pairs = (exp.select(*keys, arg.copy(), exp.alias_(exp.Count(this=exp.Star()), n, quoted=True))
+             .from_(_table(rows_name)).group_by(*[k.copy() for k in keys], arg.copy()))
+    out = exp.select(*[k.copy() for k in keys]).from_(_table(f"{INTERNAL}pairs"))
+    for e in grouped.expressions:
+        inner = e.this if isinstance(e, exp.Alias) else e
+        if isinstance(inner, exp.Column):
+            continue
+        if isinstance(inner.this, exp.Star):
+            agg: exp.Expression = d.bigint(exp.Sum(this=_ref(n)))  # COUNT(*)'s type
+        else:
+            agg = exp.Count(this=arg.copy())
+        out = out.select(exp.alias_(agg, e.alias, quoted=True))
+    return pairs, out.group_by(*[k.copy() for k in keys])
 
 
 #: how per-group partials combine exactly into the aggregate of the union (the registry's

@@ -355,3 +355,43 @@ def test_single_row_groups_give_null_sample_deviation(api, ref):
         assert np.isnan(g["w"].std(ddof=1))  # reference: pandas std of one value is NaN
         assert r["stddev_samp_w"] is None
         assert r["var_pop_w"] == 0  # reference: pandas var(ddof=0) of one value is 0
+
+
+@pytest.mark.parametrize("where", [[], [{"column": "x", "gt": 0}]], ids=["all", "filtered"])
+def test_count_distinct_beside_count_matches_pandas(api, ref, where):
+    """COUNT(DISTINCT n) with the row count and a count measure (DuckDB groups the distinct
+    (key, value) pairs first: planner/compile.py _distinct_pairs), NULLs in key and value."""
+    resp = api.chart({"channels": {"x": {"column": "cat"}, "color": {"column": "grp2"},
+                                   "y": {"agg": "count_distinct", "column": "n"},
+                                   "size": {"agg": "count"}}, "where": where})
+    frame = ref.t if not where else ref.t[ref.t["x"].astype("Float64") > 0]
+    want = {}
+    for (c, g2), g in frame.groupby(["cat", "grp2"], dropna=False):  # reference: pandas groupby
+        want[(_key(c), _key(g2))] = (int(g["n"].nunique()), len(g))  # pandas nunique / size
+    got = {(r["cat"], r["grp2"]): (r["count_distinct_n"], r["count"]) for r in api.rows(resp)}
+    assert got == want
+    assert api.column(resp, "count")["type"] == api.column(resp, "count_distinct_n")["type"] == "integer"
+    assert resp["stats"]["matched_rows"] == len(frame)  # reference: pandas len
+    assert resp["stats"]["groups"] == len(want)
+
+
+@pytest.mark.parametrize("empty_bins", ["omit", "zero"])
+def test_count_distinct_by_bins_with_limits_matches_pandas(api, ref, empty_bins):
+    """The same with a binned key whose limits leave rows outside (flags) and the empty-bins
+    grid: outside rows are counted in stats, never in a bin."""
+    resp = api.chart({"channels": {"x": {"column": "x", "bin": {"width": 10, "origin": 0, "limits": [-20, 20]}},
+                                   "y": {"agg": "count_distinct", "column": "grp2"}},
+                      "empty_bins": empty_bins})
+    x = ref.t["x"].astype("Float64")
+    inside = ref.t[(x >= -20) & (x <= 20)]
+    k = np.minimum(np.floor(inside["x"].astype(float) / 10), 1)  # the closed last bin [10, 20]
+    want = {float(b * 10): int(g["grp2"].nunique()) for b, g in inside.groupby(k)}  # pandas nunique
+    if empty_bins == "zero":
+        want = {float(lo): want.get(float(lo), 0) for lo in range(-20, 20, 10)}
+    nulls = ref.t[x.isna()]
+    got = {r["x_lo"]: r["count_distinct_grp2"] for r in api.rows(resp)}
+    assert got.pop(None, None) == (int(nulls["grp2"].nunique()) if len(nulls) else None)
+    assert got == want
+    outside = int(((x < -20) | (x > 20)).fillna(False).sum())
+    assert resp["stats"]["outside_limits"]["x"] == outside  # reference: pandas mask
+    assert resp["stats"]["matched_rows"] == len(ref.t)

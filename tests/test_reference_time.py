@@ -460,3 +460,167 @@ def test_only_canonical_iana_zones(api, name, suggest, where):
     assert all(s in valid and not s.startswith(("posix/", "right/")) for s in p.get("suggestions") or [])
     if suggest:
         assert suggest in p["suggestions"]
+
+
+# ---------------------------------------------------------------------------------------------
+# UTC trunc of fixed-length units far from 1970 (integer bin numbers on DuckDB)
+# ---------------------------------------------------------------------------------------------
+
+#: instants around 1970, before it (negative epoch microseconds), at the first and last
+#: instant of years 1..9999, and a leap day
+EDGE_INSTANTS = [dt.datetime(1, 1, 1, tzinfo=UTC), dt.datetime(1, 1, 1, 0, 0, 0, 1, tzinfo=UTC),
+                 dt.datetime(1, 1, 7, 23, 59, 59, 999999, tzinfo=UTC),
+                 dt.datetime(1899, 12, 31, 23, 59, 59, 999999, tzinfo=UTC),
+                 dt.datetime(1960, 2, 29, 12, 34, 56, 789000, tzinfo=UTC),
+                 dt.datetime(1969, 12, 29, 0, 0, tzinfo=UTC),
+                 dt.datetime(1969, 12, 31, 23, 0, tzinfo=UTC),
+                 dt.datetime(1969, 12, 31, 23, 59, 59, 999999, tzinfo=UTC),
+                 dt.datetime(1970, 1, 1, tzinfo=UTC), dt.datetime(1970, 1, 1, 0, 0, 0, 1, tzinfo=UTC),
+                 dt.datetime(2026, 10, 25, 1, 30, tzinfo=UTC),
+                 dt.datetime(9999, 12, 31, 23, 59, 59, 999999, tzinfo=UTC)]
+
+
+def utc_trunc(t: dt.datetime, unit: str) -> dt.datetime:
+    """Floor of an instant to a UTC unit. reference: datetime arithmetic / isocalendar"""
+    if unit == "week":
+        d = t.date() - dt.timedelta(days=t.isoweekday() - 1)  # ISO 8601: weeks start on Monday
+        return dt.datetime(d.year, d.month, d.day, tzinfo=UTC)
+    if unit == "day":
+        return dt.datetime(t.year, t.month, t.day, tzinfo=UTC)
+    cut = {"hour": dict(minute=0, second=0, microsecond=0),
+           "minute": dict(second=0, microsecond=0), "second": dict(microsecond=0)}[unit]
+    return t.replace(**cut)
+
+
+@pytest.fixture(scope="module")
+def edge_service(tmp_path_factory):
+    import duckdb
+
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    path = tmp_path_factory.mktemp("edge_times") / "edge.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute("SET TimeZone = 'UTC'")
+    con.execute("CREATE TABLE t (ts TIMESTAMPTZ, tsn TIMESTAMP, d DATE)")
+    con.executemany("INSERT INTO t VALUES (?, ?, ?)",
+                    [(t, t.replace(tzinfo=None), t.date()) for t in EDGE_INSTANTS])
+    # legal values no time key shows (README "Bins"): NULL groups
+    con.execute("INSERT INTO t VALUES ('infinity', 'infinity', 'infinity'), "
+                "('-infinity', '-infinity', '-infinity'), "
+                "('12000-01-01 00:00:00+00', '12000-01-01 00:00:00', '12000-01-01'), (NULL, NULL, NULL)")
+    con.close()
+    catalog = Catalog(parse_settings({"sources": {"edge": {"engine": "duckdb", "path": str(path),
+                                                           "table": "t"}}}, "<edge times>"))
+    yield ChartService(catalog)
+    catalog.close()
+
+
+@pytest.mark.parametrize("unit", ["week", "day", "hour", "minute", "second"])
+@pytest.mark.parametrize("column", ["ts", "tsn", "d"])
+def test_utc_trunc_before_1970_and_at_years_1_and_9999(edge_service, unit, column):
+    from planner.model import ChartRequest
+
+    svc = edge_service
+    out = svc.to_json(svc.run(ChartRequest.model_validate(
+        {"source": "edge", "channels": {"x": {"column": column, "trunc": unit}, "y": {"agg": "count"}}})))
+    got = {None if s is None else parse_ts(s).astimezone(UTC): n
+           for s, n in zip(out["data"][column], out["data"]["count"])}
+    cells = [t if column != "d" else dt.datetime(t.year, t.month, t.day, tzinfo=UTC) for t in EDGE_INSTANTS]
+    want = expected_counts(cells + [None] * 4, lambda t: utc_trunc(t, unit))
+    assert got == want
+
+
+#: zones with offsets that are not whole hours (or minutes) before some year, half-hour and
+#: 45-minute zones, a half-hour DST shift (Lord Howe): sub-day trunc in these zones is the UTC
+#: floor only where every offset is a whole unit (planner/compile.py _whole_offsets_from)
+ZONE_CASES = ["America/New_York", "Europe/Amsterdam", "Asia/Kolkata", "Asia/Kathmandu",
+              "Australia/Lord_Howe", "Africa/Monrovia", "Europe/Berlin"]
+
+
+def _zone_instants() -> list[dt.datetime]:
+    out = []
+    # around the end of local mean time / odd offsets (1847 .. 1972), every 7 min 13 s
+    for start in ("1883-11-18T16:00:00", "1905-12-31T17:30:00", "1919-12-31T17:30:00",
+                  "1937-06-30T22:00:00", "1940-05-15T23:00:00", "1972-01-06T23:30:00",
+                  "1893-03-31T22:30:00", "1895-01-31T12:30:00"):
+        t0 = dt.datetime.fromisoformat(start).replace(tzinfo=UTC)
+        out += [t0 + dt.timedelta(seconds=433 * i) for i in range(20)]
+    # DST days of 2026 (New York, Berlin, Lord Howe) and the 1969/1970 boundary
+    for start in ("2026-03-08T05:00:00", "2026-11-01T04:30:00", "2026-03-29T00:00:00",
+                  "2026-10-25T00:00:00", "2026-04-04T14:00:00", "2026-10-03T14:30:00",
+                  "1969-12-31T22:00:00"):
+        t0 = dt.datetime.fromisoformat(start).replace(tzinfo=UTC)
+        out += [t0 + dt.timedelta(seconds=613 * i, microseconds=7 * i) for i in range(24)]
+    return out + [dt.datetime(1700, 6, 1, 12, 34, 56, tzinfo=UTC)]
+
+
+@pytest.fixture(scope="module")
+def zone_service(tmp_path_factory):
+    import duckdb
+
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    path = tmp_path_factory.mktemp("zone_times") / "zones.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute("SET TimeZone = 'UTC'")
+    con.execute("CREATE TABLE t (ts TIMESTAMPTZ)")
+    con.executemany("INSERT INTO t VALUES (?)", [(t,) for t in _zone_instants()])
+    con.execute("INSERT INTO t VALUES ('infinity'), ('12000-01-01 00:00:00+00'), (NULL)")
+    con.close()
+    catalog = Catalog(parse_settings({"sources": {"zones": {"engine": "duckdb", "path": str(path),
+                                                            "table": "t"}}}, "<zone times>"))
+    yield ChartService(catalog)
+    catalog.close()
+
+
+@pytest.mark.parametrize("unit", ["hour", "minute", "second"])
+@pytest.mark.parametrize("tzname", ZONE_CASES)
+def test_subday_trunc_in_zones_with_odd_offsets_matches_zoneinfo(zone_service, tzname, unit):
+    """Since 2000 against zoneinfo; on every instant (local mean time, the ends of odd
+    offsets) against the engine's own time zone database: DuckDB's ICU timezone() wall
+    clock, the instant minus its wall-clock remainder (the databases differ in places
+    before 1970, e.g. which side of New York's 1883 switch an instant's hour belongs to)."""
+    import duckdb
+
+    from planner.model import ChartRequest
+
+    svc, tz = zone_service, ZoneInfo(tzname)
+    res = svc.run(ChartRequest.model_validate(
+        {"source": "zones", "channels": {"x": {"column": "ts", "trunc": unit, "tz": tzname},
+                                         "y": {"agg": "count"}}}))
+    # the Arrow table's instants (RFC 3339 text shows whole-minute offsets only: local mean
+    # time's seconds, e.g. Berlin's +00:53:28, are not written)
+    got = {None if t is None else t.astimezone(UTC): n
+           for t, n in zip(res.table.column("ts").to_pylist(), res.table.column("count").to_pylist())}
+
+    def floor(t: dt.datetime) -> dt.datetime:
+        """The instant minus its wall-clock remainder (README: sub-day trunc keeps a repeated
+        hour apart). reference: zoneinfo wall clock"""
+        loc = t.astimezone(tz).replace(tzinfo=None)
+        cut = {"hour": dict(minute=0, second=0, microsecond=0),
+               "minute": dict(second=0, microsecond=0), "second": dict(microsecond=0)}[unit]
+        return t - (loc - loc.replace(**cut))
+
+    recent = [t for t in _zone_instants() if t.year >= 2000]
+    assert {t: n for t, n in got.items() if t is not None and t.year >= 2000} \
+        == expected_counts(recent, floor)
+
+    con = duckdb.connect()  # reference: the engine's own time zone database (ICU)
+    con.execute("SET TimeZone = 'UTC'")
+    con.execute("CREATE TABLE t (ts TIMESTAMPTZ)")
+    con.executemany("INSERT INTO t VALUES (?)", [(t,) for t in _zone_instants()])
+    want = dict(con.execute(f"""
+        SELECT make_timestamptz(epoch_us(ts) - (epoch_us(timezone('{tzname}', ts))
+                                - epoch_us(date_trunc('{unit}', timezone('{tzname}', ts))))) AS k,
+               count(*)
+        FROM t WHERE ts BETWEEN TIMESTAMPTZ '0001-01-01 00:00:00+00'
+                            AND TIMESTAMPTZ '9999-12-31 23:59:59.999999+00'
+        GROUP BY k""").fetchall())
+    con.close()
+    want = {t.astimezone(UTC): n for t, n in want.items()}
+    want[None] = 3  # infinity, year 12000, NULL
+    assert got == want

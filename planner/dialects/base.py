@@ -93,6 +93,12 @@ class Dialect:
     #: interpolating between the order statistics floor(h) and floor(h) + 1, h = (n - 1) q
     #: (planner/compile.py, ``_window_stage``), where the target has no such aggregate.
     quantile_method: ClassVar[str] = "native"
+    #: COUNT(DISTINCT m) beside the row count COUNT(*) is faster as a grouping of the
+    #: distinct (keys, m) pairs first (planner/compile.py ``_distinct_pairs``).
+    distinct_pairs: ClassVar[bool] = False
+    #: Every value of an integer-kind column is a whole number (bins then check their plain
+    #: floor index at whole numbers only: planner/compile.py ``_integer_floor_is_exact``).
+    whole_integer_cells: ClassVar[bool] = True
     #: Standard deviation / variance: "native" aggregates or "two_pass": the group mean
     #: first (a window AVG), then the corrected sum of squared deviations (Chan, Golub &
     #: LeVeque 1983), for targets without them.
@@ -387,6 +393,21 @@ class Dialect:
     def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
         """Timestamp with time zone for epoch seconds."""
         raise NotImplementedError
+
+    def epoch_micros(self, e: exp.Expression, kind: str) -> exp.Expression | None:
+        """Whole microseconds since 1970-01-01T00:00:00Z as a 64-bit integer (naive values
+        read as UTC; NULL for 'infinity'), or None: then UTC time keys of fixed-length units
+        group by a truncated timestamp instead of an integer bin number (planner/compile.py,
+        ``_trunc_micros``)."""
+        return None
+
+    def from_epoch_micros(self, micros: exp.Expression) -> exp.Expression:
+        """Timestamp with time zone for integer epoch microseconds (with ``epoch_micros``)."""
+        raise NotImplementedError
+
+    def int_div(self, a: exp.Expression, b: exp.Expression) -> exp.Expression:
+        """Integer quotient of two non-negative integers."""
+        return exp.IntDiv(this=a, expression=b)
 
     # --- aggregates -----------------------------------------------------------------
     #: How this target spells aggregates (planner/aggregates.py reads it): aggregate name ->

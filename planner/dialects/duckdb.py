@@ -20,6 +20,10 @@ class DuckDB(Dialect):
     #: quantile_cont of an integer column returns the DOUBLE interpolation (type 7) itself, so
     #: the planner may leave out the CAST (planner/compile.py; measured 480 -> 318 ms, 10M rows)
     quantile_interpolates_integers = True
+    #: DuckDB groups the (key, value) pairs itself for a lone COUNT(DISTINCT), but not beside
+    #: COUNT(*): measured on 10M rows (CPU time), 1.18x -> 1.11x of a hand-written
+    #: COUNT(DISTINCT) per group (bench count_distinct)
+    distinct_pairs = True
 
     def _utc(self, e: exp.Expression, kind: str) -> exp.Expression:
         """Column value as TIMESTAMPTZ (naive timestamps and dates are read as UTC)."""
@@ -67,6 +71,18 @@ class DuckDB(Dialect):
 
     def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
         return exp.Anonymous(this="to_timestamp", expressions=[seconds])
+
+    # Integer microseconds: an hourly key as (epoch_us + c) // 3600000000 groups a BIGINT
+    # instead of make_timestamptz(epoch_us(date_trunc(...))) per row; measured on 2M rows
+    # (one thread), the key's GROUP BY went from 1.36-1.59x to 1.09-1.10x of a hand-written
+    # epoch_us(t) // 3600000000.
+    def epoch_micros(self, e: exp.Expression, kind: str) -> exp.Expression:
+        if kind == "date":
+            e = exp.Cast(this=e, to=exp.DataType.build("TIMESTAMP"))
+        return exp.Anonymous(this="epoch_us", expressions=[e])
+
+    def from_epoch_micros(self, micros: exp.Expression) -> exp.Expression:
+        return exp.Anonymous(this="make_timestamptz", expressions=[micros])
 
     def quantile(self, arg: exp.Expression, q: float) -> exp.Expression:
         # quantile_cont interpolates linearly: Hyndman & Fan type 7.

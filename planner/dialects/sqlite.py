@@ -37,6 +37,7 @@ class SQLite(Dialect):
     quantile_method = "window"
     stddev_method = "two_pass"
     approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
+    whole_integer_cells = False  # an INTEGER column keeps 2.5 as a REAL cell
     notes = {
         "approx_count_distinct": "exact COUNT(DISTINCT)",
         "trunc_week": "date(x, '-6 days', 'weekday 1')",
