@@ -5,11 +5,13 @@ Every check is about counts and order, never about time: requests are sent one a
 other once the previous one holds its session (and at least ~20 ms apart, like the moves of
 a brush), and a test waits for an event (a statement started, an interrupt sent) before the
 next step. The answer of the one request that runs to the end is checked against the same
-aggregate asked of the engine directly through its own driver (DuckDB, psycopg, pymysql).
+aggregate asked of the engine directly through its own driver (duckdb, sqlite3, psycopg,
+pymysql), before sluice opens the source.
 
 The slow statement is a throwaway view per engine: DuckDB, a cross join of a generated
-range (~6e7 rows); PostgreSQL, generate_series with pg_sleep per row (lateral); MariaDB, the
-SEQUENCE engine with SLEEP per row. Names carry PYTEST_XDIST_WORKER and the process id.
+range (~6e7 rows); SQLite, a cross join of 3000 rows with itself (9e6); PostgreSQL,
+generate_series with pg_sleep per row (lateral); MariaDB, the SEQUENCE engine with SLEEP
+per row. Names carry PYTEST_XDIST_WORKER and the process id.
 """
 
 from __future__ import annotations
@@ -57,6 +59,24 @@ def _duckdb(root):
     return f'engine = "duckdb"\npath = "{path}"\ntable = "{VIEW}"\nthreads = 1\n', reference, None
 
 
+def _sqlite(root):
+    import sqlite3
+
+    path = root / "slow.sqlite"
+    con = sqlite3.connect(path)
+    con.execute("CREATE TABLE n (a INTEGER, b INTEGER)")  # (a view's columns keep the
+    con.executemany("INSERT INTO n VALUES (?, ?)",        # types of plain column references)
+                    [(i % 10, i) for i in range(3000)])
+    con.execute(f'CREATE VIEW "{VIEW}" AS SELECT x.a AS a, y.b AS b FROM n x, n y')
+    con.commit()
+    con.close()
+
+    def reference(sql):
+        with sqlite3.connect(path) as c:
+            return c.execute(sql).fetchall()
+    return f'engine = "sqlite"\npath = "{path}"\ntable = "{VIEW}"\n', reference, None
+
+
 def _postgres(root):
     why = fx.postgres_up()
     if why is not None:
@@ -100,11 +120,11 @@ def _mysql(root):
             lambda: run(f"DROP VIEW IF EXISTS `{VIEW}`"))
 
 
-@pytest.fixture(scope="module", params=["duckdb", "postgres", "mysql"])
+@pytest.fixture(scope="module", params=["duckdb", "postgres", "mysql", "sqlite"])
 def slow(request, tmp_path_factory):
     root = tmp_path_factory.mktemp(f"cancel_{request.param}")
-    source, reference, drop = {"duckdb": _duckdb, "postgres": _postgres,
-                               "mysql": _mysql}[request.param](root)
+    source, reference, drop = {"duckdb": _duckdb, "postgres": _postgres, "mysql": _mysql,
+                               "sqlite": _sqlite}[request.param](root)
     # the engine's own answer, asked through its driver before sluice opens the source
     quoted = f"`{VIEW}`" if request.param == "mysql" else f'"{VIEW}"'
     expected = {int(a): int(t) for a, t in reference(f"SELECT a, SUM(b) FROM {quoted} GROUP BY a")}
