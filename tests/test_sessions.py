@@ -422,3 +422,37 @@ def test_a_client_that_disconnects_stops_its_statement(slow):
     finally:
         server.should_exit = True
         thread.join(30)
+
+
+# ---- the registry on its own ---------------------------------------------------------------
+def test_the_registry_is_bounded_and_released():
+    """At most max_entries (key, session) entries, least recently used dropped; a finished
+    request holds nothing; a request that claims after a newer one of its session (it
+    arrived first but got there late) is the one stopped; other keys are untouched."""
+    from app.sessions import SUPERSEDED, Sessions
+
+    reg = Sessions(max_entries=3)
+    works = [reg.work() for _ in range(5)]
+    for i, w in enumerate(works):
+        reg.claim(("k", f"s{i}"), w)
+    assert len(reg) == 3 and reg.running() == 3
+    assert reg.holder(("k", "s0")) is None and reg.holder(("k", "s4")) is works[4]
+    for w in works:
+        w.finish()
+    assert len(reg) == 3 and reg.running() == 0  # only sequence numbers are kept
+
+    old, new, other = reg.work(), reg.work(), reg.work()
+    reg.claim(("k", "tab"), new)
+    reg.claim(("k", "tab"), old)  # older, later: refused
+    assert old.reason == SUPERSEDED and new.reason is None
+    reg.claim(("k2", "tab"), other)  # same session name, another key
+    assert other.reason is None and new.reason is None
+    newest = reg.work()
+    reg.claim(("k", "tab"), newest)
+    assert new.reason == SUPERSEDED and newest.reason is None and other.reason is None
+    for w in (old, new, other, newest):
+        w.finish()
+    assert reg.running() == 0 and len(reg) <= 3
+    stopped_after_finish = reg.work()
+    stopped_after_finish.finish()
+    assert stopped_after_finish.stop(SUPERSEDED) is False  # nothing left to stop
