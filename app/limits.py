@@ -8,6 +8,9 @@
   whole request -- planning, extents, main statement, shaping -- must finish within it; a
   running statement is interrupted from a timer thread when the budget runs out (DuckDB:
   ``cursor.interrupt()`` through the engine's ``canceller()``) and the request answers 504;
+* abandoned work (``app.sessions``): a request superseded by a newer one of its session, or
+  whose client disconnected, has its running statement stopped through the same
+  ``canceller()`` (409 / 499) and starts no further statement;
 * admission control per source (``max_concurrent`` requests running on it at once): beyond
   it a request waits at most ``queue_wait_ms`` and then answers 503 with ``Retry-After``.
 
