@@ -204,6 +204,8 @@ def problem_responses(*codes: int) -> dict[int | str, dict[str, Any]]:
     desc = {400: "Malformed request", 401: "No or bad API key (when keys are configured)",
             403: "The API key is not granted this source", 404: "Unknown source",
             406: "The Accept header names no format this route answers in",
+            409: "A newer request with the same session replaced this one (its statements "
+                 "were cancelled; problem type superseded)",
             413: "Body too large",
             415: "The body is not sent as application/json",
             422: "The request cannot be planned (the pointer names the field)",
@@ -212,7 +214,7 @@ def problem_responses(*codes: int) -> dict[int | str, dict[str, Any]]:
             504: "The statement ran past the source's statement_timeout_ms"}
     schema = {"$ref": "#/components/schemas/ProblemDetail"}
     return {c: {"description": desc[c], "content": {PROBLEM_JSON: {"schema": schema}}}
-            for c in (codes or tuple(desc))}
+            for c in (codes or tuple(c for c in desc if c != 409))}  # 409: session routes
 
 
 def ok(model: type[BaseModel], description: str, **more: Any) -> dict[int | str, dict[str, Any]]:

@@ -50,7 +50,7 @@ import threading
 import time
 from collections import OrderedDict
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from app.problems import PROBLEM_JSON, Problem
@@ -86,6 +86,9 @@ class Grant:
     name: str = ""
     sources: frozenset[str] | None = None
     operator: bool = False
+    #: which configured key this is (its stored hash; "" without keys): names may repeat,
+    #: and app.sessions keeps the sessions of different keys apart by it
+    key: str = field(default="", repr=False)
 
     def allows(self, source: str) -> bool:
         return self.sources is None or "*" in self.sources or source in self.sources
@@ -269,7 +272,7 @@ class KeyRing:
         if match is None:
             self._bad.put(fp, True)
             return None
-        grant = Grant(match.name, frozenset(match.sources), match.operator)
+        grant = Grant(match.name, frozenset(match.sources), match.operator, match.hash)
         self._good.put(fp, grant)
         return grant
 

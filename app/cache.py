@@ -193,7 +193,12 @@ class ResultCache:
             if not leader:
                 with self._lock:
                     self.coalesced += 1
-                e = fut.result()
+                try:
+                    e = fut.result()
+                except Exception as exc:
+                    if getattr(exc, "own_request", False):  # the leader's request was stopped
+                        return self.compute(key, source, fn, lookup)  # (app.sessions): run here
+                    raise
                 self._event(source, "hit")
                 return e, "hit"
         else:

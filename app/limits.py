@@ -8,6 +8,9 @@
   whole request -- planning, extents, main statement, shaping -- must finish within it; a
   running statement is interrupted from a timer thread when the budget runs out (DuckDB:
   ``cursor.interrupt()`` through the engine's ``canceller()``) and the request answers 504;
+* abandoned work (``app.sessions``): a request superseded by a newer one of its session, or
+  whose client disconnected, has its running statement stopped through the same
+  ``canceller()`` (409 / 499) and starts no further statement;
 * admission control per source (``max_concurrent`` requests running on it at once): beyond
   it a request waits at most ``queue_wait_ms`` and then answers 503 with ``Retry-After``.
 
@@ -38,11 +41,12 @@ import asyncio
 import contextlib
 import dataclasses
 import threading
+import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Any
 
-from app import deadline
+from app import deadline, observability, sessions
 from app.engines.base import EngineError, EngineUnavailable
 from app.problems import PROBLEM_JSON, Problem
 from planner.errors import PlanError, pointer
@@ -266,6 +270,11 @@ class GuardedEngine:
         return getattr(self._engine, name)
 
     def _run(self, fn: Callable[[str], Any], sql: str) -> Any:
+        # a request stopped by a newer one of its session, or whose client left
+        # (app.sessions), starts nothing more
+        work = sessions.current()
+        if work is not None:
+            work.check(self._source)
         # the statement gets what is left of the request's budget (app.deadline), else the
         # source's own statement_timeout_ms; a spent budget runs nothing more (504)
         left = deadline.remaining()
@@ -273,8 +282,8 @@ class GuardedEngine:
             raise StatementTimeout(self._source, self._ms)
         secs = left if left is not None else (self._ms / 1000.0 if self._ms > 0 else None)
         cancel = getattr(self._engine, "canceller", None)
-        if secs is None or cancel is None:
-            return self._call(fn, sql, fired=None)
+        if cancel is None or (secs is None and work is None):
+            return self._call(fn, sql, fired=None, work=work)
         interrupt = cancel()
         state = {"done": False, "fired": False}
         lock = threading.Lock()
@@ -286,20 +295,39 @@ class GuardedEngine:
                 state["fired"] = True
             interrupt()
 
-        timer = threading.Timer(secs, fire)
-        timer.daemon = True
-        timer.start()
+        def stop() -> None:  # the request was stopped (app.sessions): the same interrupt
+            threading.Thread(target=_interrupt_until_done, args=(interrupt, state, lock),
+                             daemon=True).start()
+
+        timer = None
+        if secs is not None:
+            timer = threading.Timer(secs, fire)
+            timer.daemon = True
+            timer.start()
+        token = work.attach(stop) if work is not None else None
+        t0 = time.perf_counter()
         try:
-            return self._call(fn, sql, fired=state)
+            if work is not None and token is None:  # stopped in between: do not start
+                raise work.problem(self._source)
+            return self._call(fn, sql, fired=state, work=work)
         finally:
             with lock:
                 state["done"] = True
-            timer.cancel()
+            if timer is not None:
+                timer.cancel()
+            if work is not None:
+                work.detach(token)
+                if work.stopped and token is not None:
+                    observability.record_abandoned_seconds(
+                        self._source, work.reason or "", time.perf_counter() - t0)
 
-    def _call(self, fn: Callable[[str], Any], sql: str, fired: dict | None) -> Any:
+    def _call(self, fn: Callable[[str], Any], sql: str, fired: dict | None,
+              work: Any = None) -> Any:
         try:
-            return fn(sql)
+            out = fn(sql)
         except EngineError as e:
+            if work is not None and work.stopped:  # interrupted for app.sessions: 409 / 499
+                raise work.problem(self._source) from None
             if server_timeout(e.message):
                 raise StatementTimeout(self._source, self._ms,
                                        e.message if CLIENT_DEADLINE in e.message else None) from None
@@ -312,6 +340,9 @@ class GuardedEngine:
                                 f"filter_sql: {e.message.splitlines()[0][:300]}",
                                 slug="bad-filter-sql", title="filter_sql failed on the engine") from None
             raise
+        if work is not None and work.stopped:  # it ended before the interrupt reached it
+            raise work.problem(self._source)
+        return out
 
     def execute(self, sql: str, params: Any = None) -> Any:
         fn = self._engine.execute
@@ -320,6 +351,27 @@ class GuardedEngine:
     def fetch_row(self, sql: str, params: Any = None) -> Any:
         fn = self._engine.fetch_row
         return self._run(fn if not params else lambda q: fn(q, params), sql)
+
+
+#: pauses between the interrupts sent to a stopped request's statement: a cancel that
+#: reaches the driver before the statement has started is lost (DuckDB's interrupt, a
+#: PostgreSQL cancel while no connection is active yet), so it is sent again until the
+#: statement has ended (at most len + 1 times, ~1.6 s in all)
+_REFIRE_S = (0.02, 0.05, 0.1, 0.2, 0.4, 0.8)
+
+
+def _interrupt_until_done(interrupt: Callable[[], None], state: dict,
+                          lock: threading.Lock) -> None:
+    for pause in (0.0, *_REFIRE_S):
+        if pause:
+            time.sleep(pause)
+        with lock:
+            if state["done"]:
+                return
+        try:
+            interrupt()
+        except Exception:  # noqa: BLE001 - finished meanwhile; the next try or the end decides
+            pass
 
 
 #: what engines write when their own watchdog gave up on a server that did not answer

@@ -17,7 +17,8 @@ from starlette.middleware import Middleware
 from starlette.middleware.cors import CORSMiddleware
 from starlette.routing import BaseRoute
 
-from app import auth, observability, routes_charts, routes_operations, routes_sources
+from app import (auth, observability, routes_charts, routes_operations, routes_sources,
+                 sessions)
 from app.cache import ResultCache
 from app.catalog import Catalog
 from app.compression import CompressionMiddleware
@@ -45,10 +46,12 @@ def routes() -> list[BaseRoute]:
     return [*(r for router in ROUTERS for r in router.routes), *routes_operations.mounts()]
 
 
-def middleware(settings: Settings, metrics: observability.Metrics) -> list[Middleware]:
+def middleware(settings: Settings, metrics: observability.Metrics,
+               registry: sessions.Sessions | None = None) -> list[Middleware]:
     """Outermost first: observability times, counts and logs every request (413s and 404s
     included); CORS answers preflights itself; then API keys; the body cap (also chunked
-    bodies); compression innermost, so it sees the final body."""
+    bodies); each request's work (app.sessions: sessions, disconnects); compression
+    innermost, so it sees the final body."""
     cors = getattr(settings, "cors_origins", None)
     return [
         Middleware(observability.ObservabilityMiddleware, metrics=metrics,
@@ -59,6 +62,7 @@ def middleware(settings: Settings, metrics: observability.Metrics) -> list[Middl
         Middleware(auth.AuthMiddleware, keys=getattr(settings, "keys", None) or []),
         Middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
                    body_timeout_s=settings.body_timeout_s),
+        Middleware(sessions.WorkMiddleware, registry=registry),  # superseded / client left
         Middleware(CompressionMiddleware),
     ]
 
@@ -76,6 +80,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     service = ChartService(catalog)
     metrics = observability.Metrics()  # one registry per app
     metrics.declare_sources(catalog.names())
+    registry = sessions.Sessions()  # the running requests' sessions (app.sessions)
     app = FastAPI(
         title="sluice",
         version="0.1.0",
@@ -83,11 +88,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         lifespan=lifespan,
         docs_url=None, redoc_url=None,  # offline docs pages: app/routes_operations.py
         exception_handlers=HANDLERS,
-        middleware=middleware(settings, metrics),
+        middleware=middleware(settings, metrics, registry),
         routes=routes(),
     )
     st: Any = app.state  # what the routes read (request.app.state)
     st.settings, st.catalog, st.service, st.metrics = settings, catalog, service, metrics
+    st.sessions = registry
     st.cache = ResultCache.from_config(getattr(settings, "cache", None) or {})  # + Redis
     st.readiness = Readiness(catalog, settings.ready_timeout_s, settings.ready_ttl_s)
     return app

@@ -22,7 +22,10 @@ Why it is shaped this way:
 Metric names (all prefixed ``sluice_``): ``http_request_duration_seconds{method,route,status}``
 (histogram), ``http_requests_in_flight``, ``engine_duration_seconds{source}`` (histogram),
 ``cache_events_total{source,event}``, ``rows_scanned_total{source}`` (source rows that
-matched the request's filters), ``rows_returned_total{source}``.
+matched the request's filters), ``rows_returned_total{source}``,
+``abandoned_requests_total{source,reason}`` (requests superseded by a newer one of their
+session, or whose client disconnected: ``app.sessions``) and
+``abandoned_engine_seconds_total{source,reason}`` (engine time of their stopped statements).
 """
 
 from __future__ import annotations
@@ -71,6 +74,15 @@ class Metrics:
             registry=r)
         self.rows_returned = Counter(
             "sluice_rows_returned", "Result rows returned to clients", ["source"], registry=r)
+        # abandoned work (app.sessions): requests superseded by a newer one of their session
+        # or whose client disconnected, and the engine time their stopped statements took
+        self.abandoned_requests = Counter(
+            "sluice_abandoned_requests", "Requests stopped before their answer, by source and "
+            "reason (superseded, disconnected)", ["source", "reason"], registry=r)
+        self.abandoned_seconds = Counter(
+            "sluice_abandoned_engine_seconds", "Engine time of statements stopped because "
+            "their request was superseded or its client disconnected", ["source", "reason"],
+            registry=r)
 
     def declare_sources(self, names: list[str]) -> None:
         """Create the per-source series at zero, so dashboards see them before traffic."""
@@ -79,6 +91,9 @@ class Metrics:
                 self.cache_events.labels(name, event)
             self.rows_scanned.labels(name)
             self.rows_returned.labels(name)
+            for reason in ("superseded", "disconnected"):
+                self.abandoned_requests.labels(name, reason)
+                self.abandoned_seconds.labels(name, reason)
 
     def render(self) -> tuple[bytes, str]:
         """Prometheus text exposition of this registry, and its content type."""
@@ -153,6 +168,16 @@ def record_chart(source: str, meta: dict[str, Any], timing: dict[str, float] | N
         m.rows_scanned.labels(source).inc(stats["matched_rows"])
     if isinstance(stats.get("result_rows"), int):
         m.rows_returned.labels(source).inc(stats["result_rows"])
+
+
+def record_abandoned(source: str, reason: str) -> None:
+    """Count one request stopped before its answer (``reason``: superseded, disconnected)."""
+    current_metrics().abandoned_requests.labels(source, reason).inc()
+
+
+def record_abandoned_seconds(source: str, reason: str, seconds: float) -> None:
+    """Add the engine time of one statement of a stopped request."""
+    current_metrics().abandoned_seconds.labels(source, reason).inc(max(0.0, seconds))
 
 
 # ---- logging ---------------------------------------------------------------------------

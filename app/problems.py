@@ -111,6 +111,13 @@ PROBLEM_TYPES: dict[str, tuple[str, str, str]] = {
     "out-of-range": ("Value outside the comparable range", "422",
                      "An instant falls outside years 1 to 9999 in UTC (after applying its "
                      "offset or the request's `tz`), so no engine can compare it."),
+    "superseded": ("Replaced by a newer request", "409",
+                   "A newer request with the same `session` (and the same API key) arrived "
+                   "while this one ran: its statements were cancelled and it has no answer. "
+                   "Dashboards send one session per view and read only the newest answer."),
+    "client-closed": ("Client closed the request", "499",
+                      "The client disconnected before the answer, so its statements were "
+                      "cancelled (the status shows in logs and metrics; nobody receives it)."),
     "bad-layout": ("Bin layout cannot bin the data", "422",
                    "The bin width, origin or limits give edges that are not distinct finite "
                    "numbers (or more than 10,000 bins); `pointer` names the field."),

@@ -14,7 +14,7 @@ from typing import Any, Callable
 from fastapi import APIRouter, Query, Request
 from starlette.responses import Response
 
-from app import answers, formats, observability
+from app import answers, formats, observability, sessions
 from app.answers import JSONResponse
 from app.cache import Entry, canonical, open_json, source_version, stamp_json
 from app.encode import ARROW_STREAM, arrow_stream, dumps
@@ -36,7 +36,7 @@ def _ms_since(t: float) -> float:
              responses={**answers.ok(answers.ChartAnswer, "The chart's mark-ready table: JSON "
                                      "by default; Arrow IPC stream, CSV or Parquet by Accept",
                                      content=answers.CHART_FORMATS),
-                        **answers.problem_responses()})
+                        **answers.problem_responses(), **answers.problem_responses(409)})
 def chart(req: ChartRequest, request: Request) -> Response:
     """Run a chart request and return the mark-ready table. The format follows
     ``Accept`` (app/formats.py): ``application/json`` (default),
@@ -46,6 +46,7 @@ def chart(req: ChartRequest, request: Request) -> Response:
     st = request.app.state
     fmt = formats.choose(request.headers.get("accept"))
     st.service.check_source(req.source)  # auth before any cached answer
+    req = _claim(req)  # older requests of its session stop (app.sessions)
     lookup = "no-cache" not in request.headers.get("cache-control", "").lower()
     if fmt == formats.JSON:
         return Response(json_answer(st, req, lookup, t_in), media_type="application/json",
@@ -72,13 +73,17 @@ def chart(req: ChartRequest, request: Request) -> Response:
 
 @router.post("/v1/batch", response_model=None,
              responses={**answers.ok(answers.BatchAnswer, "One answer or problem per chart"),
-                        **answers.problem_responses()})
+                        **answers.problem_responses(), **answers.problem_responses(409)})
 def batch(req: BatchRequest, request: Request) -> Response:
     """Several charts on one source. Each result is the chart's answer (cached like
     /v1/chart), or its problem document (pointer prefixed with ``/charts/<i>``); the
     batch itself answers 200."""
     st = request.app.state
     st.service.check_source(req.source)
+    work = sessions.current()
+    if work is not None:  # the batch's session and each chart's own: older requests stop
+        for name in dict.fromkeys([req.session, *(c.session or req.session for c in req.charts)]):
+            work.claim(name)
     results = []
     for i, chart in enumerate(req.charts):
         if chart.source is not None and chart.source != req.source:
@@ -89,16 +94,20 @@ def batch(req: BatchRequest, request: Request) -> Response:
         inherited = {"source": req.source}
         if req.tz is not None and chart.tz is None:  # the dashboard's zone
             inherited["tz"] = req.tz
-        full = ChartRequest.model_validate(
-            chart.model_dump(by_alias=True, exclude_none=True) | inherited)
+        full = ChartRequest.model_validate(  # (claimed above; not part of the answer)
+            chart.model_dump(by_alias=True, exclude_none=True, exclude={"session"}) | inherited)
         try:
             results.append(json_answer(st, full, True, time.perf_counter()))
+        except sessions.Stopped:
+            raise  # superseded or the client left: the whole batch answers the problem
         except (PlanError, Problem, EngineError) as e:
             # this chart's own problem (422, 403, 503, 504, ...); the others still answer
             prob = (from_plan_error(e) if isinstance(e, PlanError)
                     else engine_problem(e) if isinstance(e, EngineError) else e)
             prob.ptr = f"/charts/{i}{prob.ptr}" if prob.ptr is not None else f"/charts/{i}"
             results.append(dumps(prob.body()))
+    if work is not None:
+        work.check(req.source)  # stopped meanwhile (later charts may have been cache hits)
     # the answers are already encoded (and may come from the cache): splice the bytes
     head = dumps({"source": req.source})[:-1] + b',"results":['
     return Response(head + b",".join(results) + b"]}", media_type="application/json")
@@ -114,6 +123,17 @@ def plan_sql(req: ChartRequest, request: Request,
     """Plan only: the SQL sluice would run, for ``dialect``."""
     observability.note_source(req.source)
     return JSONResponse(request.app.state.service.plan_sql(req, dialect))
+
+
+def _claim(req: ChartRequest) -> ChartRequest:
+    """Claim the request's ``session`` for this request's work (app.sessions); the request
+    without it, so that answers and plans are shared across sessions (cache key)."""
+    if req.session is None:
+        return req
+    work = sessions.current()
+    if work is not None:
+        work.claim(req.session)
+    return req.model_copy(update={"session": None})
 
 
 def cached(st: Any, req: ChartRequest, fmt: str, run: Callable[[], Entry],

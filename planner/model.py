@@ -94,6 +94,11 @@ def _in_range(v: Any) -> Any:
 Scalar = Annotated[Union[bool, int, float, Text], AfterValidator(_in_range)]
 
 
+#: a request's ``session``: short and plain (it is echoed in problem details and logs)
+SESSION_PATTERN = r"^[A-Za-z0-9._:~-]{1,64}$"
+Session = Annotated[str, Field(min_length=1, max_length=64, pattern=SESSION_PATTERN)]
+
+
 class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", populate_by_name=True)
 
@@ -354,6 +359,11 @@ class ChartRequest(_Strict):
         "lower, upper, trim, length, abs, round, floor, ceil, coalesce. Anything else is a "
         "422 whose pointer is /filter_sql. The server may set a lower length cap.",
         examples=["fee > 10 AND depot IN ('North Yard')"])
+    session: Session | None = Field(
+        None, description="A short client-chosen name (letters, digits and . _ : ~ -, at most "
+        "64): a newer request with the same session (and the same API key) interrupts this "
+        "one's running statements, and this one answers 409 (problem type superseded).",
+        examples=["tab-7f3a"])
 
     @field_validator("where", mode="before")
     @classmethod
@@ -413,4 +423,6 @@ class BatchRequest(_Strict):
     tz: Text | None = Field(None, min_length=1, max_length=64,
                             description="The dashboard's IANA time zone: the tz of every chart "
                             "that does not name its own.")
+    session: Session | None = Field(None, description="The dashboard's session: the session "
+                                    "of every chart that does not name its own.")
     charts: list[BatchChart] = Field(min_length=1, max_length=32)

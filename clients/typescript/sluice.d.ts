@@ -266,6 +266,12 @@ export interface components {
             limit?: number;
             /** @description Line reduction: {"method": "m4", "width_px": W} answers at most 4*W raw points (x, y) that draw the same pixels as the whole series (Jugel et al., M4, PVLDB 7(10), 2014); channels x (number/timestamp column) and y (number column). */
             reduce?: components["schemas"]["Reduce"] | null;
+            /**
+             * Session
+             * @description A short client-chosen name (letters, digits and . _ : ~ -, at most 64): a newer request with the same session (and the same API key) interrupts this one's running statements, and this one answers 409 (problem type superseded).
+             * @example tab-7f3a
+             */
+            session?: string | null;
             /** Sort */
             sort?: components["schemas"]["SortItem"][];
             /** Source */
@@ -288,6 +294,11 @@ export interface components {
         BatchRequest: {
             /** Charts */
             charts: components["schemas"]["BatchChart"][];
+            /**
+             * Session
+             * @description The dashboard's session: the session of every chart that does not name its own.
+             */
+            session?: string | null;
             /** Source */
             source: string;
             /**
@@ -596,6 +607,12 @@ export interface components {
             limit?: number;
             /** @description Line reduction: {"method": "m4", "width_px": W} answers at most 4*W raw points (x, y) that draw the same pixels as the whole series (Jugel et al., M4, PVLDB 7(10), 2014); channels x (number/timestamp column) and y (number column). */
             reduce?: components["schemas"]["Reduce"] | null;
+            /**
+             * Session
+             * @description A short client-chosen name (letters, digits and . _ : ~ -, at most 64): a newer request with the same session (and the same API key) interrupts this one's running statements, and this one answers 409 (problem type superseded).
+             * @example tab-7f3a
+             */
+            session?: string | null;
             /** Sort */
             sort?: components["schemas"]["SortItem"][];
             /** Source */
@@ -1243,6 +1260,15 @@ export interface operations {
                     "application/problem+json": components["schemas"]["ProblemDetail"];
                 };
             };
+            /** @description A newer request with the same session replaced this one (its statements were cancelled; problem type superseded) */
+            409: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
             /** @description Body too large */
             413: {
                 headers: {
@@ -1367,6 +1393,15 @@ export interface operations {
             };
             /** @description The Accept header names no format this route answers in */
             406: {
+                headers: {
+                    [name: string]: unknown;
+                };
+                content: {
+                    "application/problem+json": components["schemas"]["ProblemDetail"];
+                };
+            };
+            /** @description A newer request with the same session replaced this one (its statements were cancelled; problem type superseded) */
+            409: {
                 headers: {
                     [name: string]: unknown;
                 };
