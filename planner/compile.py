@@ -34,208 +34,100 @@ import math
 import re
 import sys
 import zoneinfo
-from dataclasses import dataclass, field
 from typing import Any
 
 from sqlglot import exp
 
 from planner import aggregates
 from planner import bins as binning
+from planner import m4, names
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
 from planner.model import MAX_BINS, AnyOf, Channel, ChartRequest, NotOf, Predicate
+from planner.names import INTERNAL
+from planner.plan import Key, Measure, OutputColumn, Plan
 from planner.schema import ColumnInfo, SourceSchema
 
-#: Prefix of the planner's own columns in a result; the service strips them.
-INTERNAL = "_sluice_"
 MAX_DENSE_CELLS = 200_000
 
 
-@dataclass
-class Key:
-    """A grouping term of the request."""
-
-    index: int
-    path: tuple[str | int, ...]
-    channel: str
-    spec: Channel
-    col: ColumnInfo
-    mode: str  # plain | nbin | tbin | trunc | extract
-    tz: str
-    names: tuple[str, ...] = ()
-    # bin layout (filled by finish())
-    nbins: binning.NumericBins | None = None
-    tstep: binning.TimeStep | None = None
-    tstart: Any = None  # first bin's internal key value (epoch seconds or naive local datetime)
-    tcount: int | None = None
-    nlimits: tuple[float, float] | None = None
-    vrange: tuple[float, float] | None = None  # values that land in the bins (limits or data)
-    tlimits: tuple[dt.datetime, dt.datetime] | None = None
-    #: time bins: the stop instant of a closed last bin (values equal to it go into it)
-    tclosed: dt.datetime | None = None
-
-    @property
-    def label(self) -> str:
-        """Channel name in ``bins`` / ``stats``: x, y, ..., row, col, or by0, by1, ..."""
-        return f"by{self.path[-1]}" if self.channel == "by" else self.channel
-
-    @property
-    def internal(self) -> str:
-        return f"{INTERNAL}k{self.index}"
-
-    @property
-    def outside_flag(self) -> str:
-        return f"{INTERNAL}o{self.index}"
-
-    @property
-    def binned(self) -> bool:
-        return self.mode in ("nbin", "tbin")
-
-    @property
-    def has_limits(self) -> bool:
-        return self.nlimits is not None or self.tlimits is not None
+def count_sql(plan: Plan) -> str:
+    """Matched rows and outside-limit counts without grouping (used when the main
+    statement returns no rows, so its window totals are absent)."""
+    d = plan.dialect
+    sel = [exp.alias_(exp.Count(this=exp.Star()), names.matched(), quoted=True)]
+    for k in plan.keys:
+        flag = _outside_expr(d, k)
+        if flag is not None:
+            sel.append(exp.alias_(exp.Sum(this=flag), k.outside_flag, quoted=True))
+    q = exp.select(*sel).from_(exp.alias_(d.table(plan.schema.table), "s", quoted=True))
+    if plan.where is not None:
+        q = q.where(plan.where)
+    return d.render(q)
 
 
-@dataclass
-class Measure:
-    index: int
-    path: tuple[str | int, ...]
-    channel: str
-    spec: Channel
-    col: ColumnInfo | None
-    name: str = ""
-    #: the compiled ``condition`` (filter_sql text) of an aggregate over truth values (share)
-    condition: exp.Expression | None = None
-
-    @property
-    def internal(self) -> str:
-        return f"{INTERNAL}a{self.index}"
-
-    @property
-    def aggregate(self) -> aggregates.Aggregate:
-        return aggregates.get(self.spec.agg)
-
-    @property
-    def has_input(self) -> bool:
-        """The aggregate reads a per-row value (a column or a condition; not count(*))."""
-        return self.col is not None or self.condition is not None
+def finish(plan: Plan, extents_row: dict[str, Any] | None = None) -> Plan:
+    row = extents_row or {}
+    if plan.request.reduce is not None:  # M4 line reduction: planner/m4.py
+        plan.reduced_row = row
+        plan.main = m4.main_statement(plan, row)
+        return plan
+    for k in plan.keys:
+        if k.mode == "nbin":
+            _layout_numeric(k, row)
+        elif k.mode == "tbin":
+            _layout_time(k, row)
+    plan.main = _main_statement(plan)
+    return plan
 
 
-@dataclass
-class OutputColumn:
-    name: str
-    channel: str
-    role: str  # key | bin_lo | bin_hi | measure | stack_base | stack_top
-    source: str | None = None  # source column name
+def layout_key(plan: Plan, extents_row: dict[str, Any] | None = None) -> tuple:
+    """What ``finish(extents_row)`` takes from the row: equal keys (same request shape)
+    give the same main statement, so a brush whose new extents keep the bin layout
+    reuses it. Numeric bins: the layout and whether the plain floor is exact over the
+    row's range (``_plain_floor_is_exact``); time bins: step, first bin, count, closed
+    stop. M4 reductions read the whole row. Raises what ``finish`` raises (bad layouts)."""
+    row = extents_row or {}
+    raw = tuple(sorted(row.items(), key=lambda kv: kv[0]))
+    if plan.request.reduce is not None:
+        return ("row",) + raw
+    hit = plan._layouts.get(raw)  # (a repeated row: no layout work)
+    if hit is not None:
+        return hit
+    out: list[Any] = []
+    for k in plan.keys:
+        if k.mode == "nbin":
+            k = dataclasses.replace(k)  # this plan may be shared: lay out a copy
+            _layout_numeric(k, row)
+            b = k.nbins
+            out.append((b.start, b.width, b.count, b.method,
+                        _plain_floor_is_exact(b, k.vrange)))
+        elif k.mode == "tbin":
+            k = dataclasses.replace(k)
+            _layout_time(k, row)
+            out.append((k.tstep.iso, k.tstart, k.tcount, k.tclosed))
+    if len(plan._layouts) >= 256:
+        plan._layouts.clear()
+    plan._layouts[raw] = key = tuple(out)
+    return key
 
 
-@dataclass
-class Plan:
-    request: ChartRequest
-    schema: SourceSchema
-    dialect: Dialect
-    keys: list[Key]
-    measures: list[Measure]
-    where: exp.Expression | None
-    extents: exp.Select | None = None
-    main: exp.Select | None = None
-    columns: list[OutputColumn] = field(default_factory=list)
-    approximate: list[str] = field(default_factory=list)
-    stack_measure: Measure | None = None
-    reduced_row: dict[str, Any] | None = None  # extents of an M4 reduction (planner/m4.py)
-    #: number of bound-parameter slots in the SQL (``prepare(..., params=True)``); their
-    #: values come from ``bind_values(request, ...)``, the text from ``bind_sql``
-    slots: int = 0
-    #: ``layout_key`` by extents row (a shared prepared plan answers it for many requests)
-    _layouts: dict = field(default_factory=dict, repr=False, compare=False)
-
-    # ---- SQL text --------------------------------------------------------------------
-    @property
-    def extents_sql(self) -> str | None:
-        return self.dialect.render(self.extents) if self.extents is not None else None
-
-    @property
-    def main_sql(self) -> str:
-        assert self.main is not None, "finish() first"
-        return self.dialect.render(self.main)
-
-    def count_sql(self) -> str:
-        """Matched rows and outside-limit counts without grouping (used when the main
-        statement returns no rows, so its window totals are absent)."""
-        d = self.dialect
-        sel = [exp.alias_(exp.Count(this=exp.Star()), f"{INTERNAL}matched", quoted=True)]
-        for k in self.keys:
-            flag = _outside_expr(d, k)
-            if flag is not None:
-                sel.append(exp.alias_(exp.Sum(this=flag), k.outside_flag, quoted=True))
-        q = exp.select(*sel).from_(exp.alias_(d.table(self.schema.table), "s", quoted=True))
-        if self.where is not None:
-            q = q.where(self.where)
-        return d.render(q)
-
-    # ---- step 2 ----------------------------------------------------------------------
-    def finish(self, extents_row: dict[str, Any] | None = None) -> "Plan":
-        row = extents_row or {}
-        if self.request.reduce is not None:  # M4 line reduction: planner/m4.py
-            from planner import m4
-
-            self.reduced_row = row
-            self.main = m4.main_statement(self, row)
-            return self
-        for k in self.keys:
-            if k.mode == "nbin":
-                _layout_numeric(k, row)
-            elif k.mode == "tbin":
-                _layout_time(k, row)
-        self.main = _main_statement(self)
-        return self
-
-    def layout_key(self, extents_row: dict[str, Any] | None = None) -> tuple:
-        """What ``finish(extents_row)`` takes from the row: equal keys (same request shape)
-        give the same main statement, so a brush whose new extents keep the bin layout
-        reuses it. Numeric bins: the layout and whether the plain floor is exact over the
-        row's range (``_plain_floor_is_exact``); time bins: step, first bin, count, closed
-        stop. M4 reductions read the whole row. Raises what ``finish`` raises (bad layouts)."""
-        row = extents_row or {}
-        raw = tuple(sorted(row.items(), key=lambda kv: kv[0]))
-        if self.request.reduce is not None:
-            return ("row",) + raw
-        hit = self._layouts.get(raw)  # (a repeated row: no layout work)
-        if hit is not None:
-            return hit
-        out: list[Any] = []
-        for k in self.keys:
-            if k.mode == "nbin":
-                k = dataclasses.replace(k)  # this plan may be shared: lay out a copy
-                _layout_numeric(k, row)
-                b = k.nbins
-                out.append((b.start, b.width, b.count, b.method,
-                            _plain_floor_is_exact(b, k.vrange)))
-            elif k.mode == "tbin":
-                k = dataclasses.replace(k)
-                _layout_time(k, row)
-                out.append((k.tstep.iso, k.tstart, k.tcount, k.tclosed))
-        if len(self._layouts) >= 256:
-            self._layouts.clear()
-        self._layouts[raw] = key = tuple(out)
-        return key
-
-    def bins_meta(self) -> dict[str, dict[str, Any]]:
-        """``bins`` of the response: the layout of every binned key, by channel name."""
-        out: dict[str, dict[str, Any]] = {}
-        for k in self.keys:
-            label = k.label
-            if k.mode == "nbin" and k.nbins is not None:
-                b = k.nbins
-                out[label] = {"start": b.start, "stop": b.stop, "width": b.width,
-                              "count": b.count, "method": b.method}
-            elif k.mode == "tbin" and k.tstep is not None:
-                n = k.tcount or 0
-                first = _time_bin_instant(k, _time_bin_start(k, 0)) if n else None
-                last = _time_bin_instant(k, _time_bin_start(k, n)) if n else None
-                out[label] = {"start": first, "stop": last, "step": k.tstep.iso,
-                              "count": n, "method": "calendar"}
-        return out
+def bins_meta(plan: Plan) -> dict[str, dict[str, Any]]:
+    """``bins`` of the response: the layout of every binned key, by channel name."""
+    out: dict[str, dict[str, Any]] = {}
+    for k in plan.keys:
+        label = k.label
+        if k.mode == "nbin" and k.nbins is not None:
+            b = k.nbins
+            out[label] = {"start": b.start, "stop": b.stop, "width": b.width,
+                          "count": b.count, "method": b.method}
+        elif k.mode == "tbin" and k.tstep is not None:
+            n = k.tcount or 0
+            first = _time_bin_instant(k, _time_bin_start(k, 0)) if n else None
+            last = _time_bin_instant(k, _time_bin_start(k, n)) if n else None
+            out[label] = {"start": first, "stop": last, "step": k.tstep.iso,
+                          "count": n, "method": "calendar"}
+    return out
 
 
 # =====================================================================================
@@ -266,8 +158,6 @@ def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
     _check_options(plan)
     _assign_names(plan)
     if request.reduce is not None:  # M4 line reduction: planner/m4.py
-        from planner import m4
-
         m4.check(plan)
         plan.extents = m4.extents_statement(plan)
         return plan
@@ -523,8 +413,6 @@ def _assign_names(plan: Plan) -> None:
         plan.columns.append(OutputColumn(claim(f"{m.name}_top", m.channel), m.channel,
                                          "stack_top", m.spec.column))
     _check_name_lengths(plan)
-
-
 
 
 def _check_name_lengths(plan: Plan) -> None:
