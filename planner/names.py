@@ -20,7 +20,9 @@ function                    name                            meaning
 ``m4(part)``                ``_sluice_m4_<part>``           M4's extents (min, max, n) and CTEs
 ==========================  ==============================  ==================================
 
-The emit stage (``planner/compile.py``) still writes some of its CTE names and window
+Column profiles (``planner/profile.py``, one statement per column) name their outputs
+with the same prefix (``profile.VALUE``, ``COUNT``, ...). The emit stage
+(``planner/compile.py``) still writes some of its CTE names and window
 prefixes as f-strings over ``INTERNAL`` (base, grouped, counted, kept, dense, final, rank,
 ...); they are to move here.
 """
