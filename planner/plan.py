@@ -35,7 +35,7 @@ class Key:
     mode: str  # plain | nbin | tbin | trunc | extract
     tz: str
     names: tuple[str, ...] = ()
-    # bin layout (filled by finish())
+    # bin layout (filled by planner.layout)
     nbins: binning.NumericBins | None = None
     tstep: binning.TimeStep | None = None
     tstart: Any = None  # first bin's internal key value (epoch seconds or naive local datetime)

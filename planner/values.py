@@ -159,7 +159,7 @@ def _literal(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> exp.Expressio
 PARAM_MIN_VALUES = 16
 
 
-#: dialect -> (form, driver paramstyle)
+#: a slot marker in rendered SQL: NUL <slot> NUL, or NUL <slot>.<j> NUL for value j of a list
 _SLOT = re.compile(r"\x00(\d+)(?:\.(\d+))?\x00")
 
 
