@@ -22,8 +22,9 @@ from app import auth
 from app.engines import Engine
 from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
 from app.engines.arrow import conform, key_zone, request_zone
-from planner.compile import (INTERNAL, Plan, bind_sql, bind_values, display_sql,
-                             param_shape, prepare)
+from planner.compile import (INTERNAL, Plan, bind_sql, bind_values, bins_meta, display_sql,
+                             finish, layout_key, param_shape, prepare)
+from planner.compile import count_sql as count_sql_of
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
 from planner.model import MAX_BINS, VISUAL_CHANNELS, ChartRequest
@@ -105,7 +106,7 @@ class PlanCache:
       values digest): a data-driven bin costs ONE statement once its extents are known;
     * ``finished``: the finished Plan (without its rendered sqlglot trees) and its main SQL
       text per (shape key, what the main statement takes from the extents row:
-      ``Plan.layout_key``, e.g. the bin layouts), read-only once built.
+      ``planner.compile.layout_key``, e.g. the bin layouts), read-only once built.
 
     Each is an LRU bounded by bytes (``max_bytes`` split 4:1:4): a miss only costs planning.
     """
@@ -144,11 +145,11 @@ class PlanCache:
 
     def finished(self, prep: "Prepared", entry: SourceEntry, row: dict[str, Any] | None
                  ) -> tuple[Plan, str]:
-        key = (prep.key, prep.plan.layout_key(row))  # not the row: a brush keeps its layout
+        key = (prep.key, layout_key(prep.plan, row))  # not the row: a brush keeps its layout
         hit = self._finished.get(key)
         if hit is None:
-            plan = prepare(prep.plan.request, entry.schema, prep.plan.dialect,
-                           params=True).finish(row)
+            plan = finish(prepare(prep.plan.request, entry.schema, prep.plan.dialect,
+                                  params=True), row)
             hit = (plan, plan.main_sql)
             plan.main = plan.extents = None  # the text is what is reused; the trees are big
             self._finished.put(key, hit, _plan_charge(prep.key[0], prep.bound_values, hit[1]))
@@ -283,7 +284,7 @@ class ChartService:
         t0 = time.perf_counter()
         plan, entry, engine = self._plan(req, dialect_name)
         row = self._extents(plan, engine)
-        plan.finish(row)
+        finish(plan, row)
         sql = ([plan.extents_sql] if plan.extents is not None else []) + [plan.main_sql]
         return {"dialect": plan.dialect.name, "sql": sql,
                 "bins": self._bins(plan), "timing_ms": {"plan": _ms(t0)}}
@@ -326,7 +327,7 @@ class ChartService:
         raw = engine.execute(sql, args)
         extra = None
         if raw.num_rows == 0:
-            count_sql = plan.count_sql()
+            count_sql = count_sql_of(plan)
             statements.append(display_sql(count_sql))
             sql, args = bind_sql(count_sql, values, style)
             extra = engine.fetch_row(sql, args)
@@ -338,7 +339,7 @@ class ChartService:
         return ChartResult(plan, entry, table, meta, timing)
 
     def _bins(self, plan: Plan) -> dict[str, Any]:
-        out = plan.bins_meta()
+        out = bins_meta(plan)
         tz = {k.label: key_zone(plan, k) for k in plan.keys}
         for ch, b in out.items():
             for key in ("start", "stop"):

@@ -1,15 +1,28 @@
-"""Request + source schema + dialect -> SQL statements.
+"""The emit stage: a checked, laid-out ``Plan`` -> sqlglot statements; and the entry points.
 
-A chart is planned in two steps:
+The planner is a pipeline (no module imports a later stage)::
 
-1. ``prepare`` checks the request against the source schema (names, kinds, options) and, when
-   a bin layout depends on the data (``bins`` or ``rule`` without ``limits``), builds ONE
-   extents statement that gathers every statistic all such bins need (min, max, count, the
-   population standard deviation for Scott's rule, the quartiles for Freedman–Diaconis).
-2. ``Plan.finish(extents_row)`` fixes the bin layouts and builds the main statement: one
-   grouped SELECT (a chain of CTEs) that also carries, through window functions, the number
-   of matched rows, the rows outside explicit limits and the number of groups before LIMIT,
-   so a chart costs at most two statements.
+    planner.bind    request + schema + dialect -> checked Plan   (planner.where, .values)
+    compile.prepare   = bind + the extents statement (emit)
+    planner.layout  extents row -> the keys' bin layouts
+    compile.finish    = layout + the main statement (emit)
+    app.service     shape: the engine's answer -> the response
+
+1. ``prepare`` (step 1) binds the request and, when a bin layout depends on the data
+   (``bins`` or ``rule`` without ``limits``), builds ONE extents statement that gathers every
+   statistic all such bins need (min, max, count, the population standard deviation for
+   Scott's rule, the quartiles for Freedman–Diaconis).
+2. ``finish(plan, extents_row)`` (step 2) fixes the bin layouts and builds the main
+   statement: one grouped SELECT (a chain of CTEs) that also carries, through window
+   functions, the number of matched rows, the rows outside explicit limits and the number of
+   groups before LIMIT, so a chart costs at most two statements. ``layout_key`` is what the
+   main statement takes from the extents row (the plan cache's key); ``count_sql`` the
+   statement run when the main one returns no rows.
+
+In: ``Plan`` (+ extents row); out: ``exp.Select`` trees on the plan, rendered by
+``Plan.extents_sql`` / ``Plan.main_sql``. Pure (no I/O). The names app/ and tests/ import
+from here (``prepare``, ``finish``, ``bind_sql``, ``bind_values``, ``display_sql``,
+``param_shape``, ``Plan``, ``INTERNAL``, ...) stay importable from here.
 
 Main statement shape::
 
@@ -25,962 +38,106 @@ Main statement shape::
 
 from __future__ import annotations
 
-import contextvars
 import dataclasses
-import datetime as dt
 import functools
-import json
 import math
-import os
-import re
-import struct
-import sys
 import zoneinfo
-from dataclasses import dataclass, field
 from typing import Any
 
 from sqlglot import exp
 
 from planner import aggregates
 from planner import bins as binning
+from planner import m4, names, tzdb
+from planner.bind import bind
 from planner.dialects.base import Dialect
-from planner.errors import PlanError, Unsupported, nearest, pointer
-from planner.model import MAX_BINS, AnyOf, Channel, ChartRequest, NotOf, Predicate
+from planner.errors import PlanError, pointer
+from planner.layout import _layout_numeric, _layout_time, _time_bin_start, lay_out
+from planner.model import ChartRequest
+from planner.names import INTERNAL
+from planner.plan import Key, Measure, Plan
 from planner.schema import ColumnInfo, SourceSchema
 
-#: Prefix of the planner's own columns in a result; the service strips them.
-INTERNAL = "_sluice_"
+# re-exported: the names app/ and tests/ import from planner.compile
+from planner.layout import bins_meta  # noqa: F401
+from planner.values import PARAM_MIN_VALUES, _scalar_bindable, time_zone_names  # noqa: F401
+from planner.where import bind_sql, bind_values, display_sql, param_shape  # noqa: F401
+
 MAX_DENSE_CELLS = 200_000
 
 
-@dataclass
-class Key:
-    """A grouping term of the request."""
-
-    index: int
-    path: tuple[str | int, ...]
-    channel: str
-    spec: Channel
-    col: ColumnInfo
-    mode: str  # plain | nbin | tbin | trunc | extract
-    tz: str
-    names: tuple[str, ...] = ()
-    # bin layout (filled by finish())
-    nbins: binning.NumericBins | None = None
-    tstep: binning.TimeStep | None = None
-    tstart: Any = None  # first bin's internal key value (epoch seconds or naive local datetime)
-    tcount: int | None = None
-    nlimits: tuple[float, float] | None = None
-    vrange: tuple[float, float] | None = None  # values that land in the bins (limits or data)
-    tlimits: tuple[dt.datetime, dt.datetime] | None = None
-    #: time bins: the stop instant of a closed last bin (values equal to it go into it)
-    tclosed: dt.datetime | None = None
-
-    @property
-    def label(self) -> str:
-        """Channel name in ``bins`` / ``stats``: x, y, ..., row, col, or by0, by1, ..."""
-        return f"by{self.path[-1]}" if self.channel == "by" else self.channel
-
-    @property
-    def internal(self) -> str:
-        return f"{INTERNAL}k{self.index}"
-
-    @property
-    def outside_flag(self) -> str:
-        return f"{INTERNAL}o{self.index}"
-
-    @property
-    def binned(self) -> bool:
-        return self.mode in ("nbin", "tbin")
-
-    @property
-    def has_limits(self) -> bool:
-        return self.nlimits is not None or self.tlimits is not None
+def count_sql(plan: Plan) -> str:
+    """Matched rows and outside-limit counts without grouping (used when the main
+    statement returns no rows, so its window totals are absent)."""
+    d = plan.dialect
+    sel = [exp.alias_(exp.Count(this=exp.Star()), names.matched(), quoted=True)]
+    for k in plan.keys:
+        flag = _outside_expr(d, k)
+        if flag is not None:
+            sel.append(exp.alias_(exp.Sum(this=flag), k.outside_flag, quoted=True))
+    q = exp.select(*sel).from_(exp.alias_(d.table(plan.schema.table), "s", quoted=True))
+    if plan.where is not None:
+        q = q.where(plan.where)
+    return d.render(q)
 
 
-@dataclass
-class Measure:
-    index: int
-    path: tuple[str | int, ...]
-    channel: str
-    spec: Channel
-    col: ColumnInfo | None
-    name: str = ""
-    #: the compiled ``condition`` (filter_sql text) of an aggregate over truth values (share)
-    condition: exp.Expression | None = None
-
-    @property
-    def internal(self) -> str:
-        return f"{INTERNAL}a{self.index}"
-
-    @property
-    def aggregate(self) -> aggregates.Aggregate:
-        return aggregates.get(self.spec.agg)
-
-    @property
-    def has_input(self) -> bool:
-        """The aggregate reads a per-row value (a column or a condition; not count(*))."""
-        return self.col is not None or self.condition is not None
+def finish(plan: Plan, extents_row: dict[str, Any] | None = None) -> Plan:
+    """Step 2: lay out the bins from the extents row and build the main statement."""
+    row = extents_row or {}
+    if plan.request.reduce is not None:  # M4 line reduction: planner/m4.py
+        plan.reduced_row = row
+        plan.main = m4.main_statement(plan, row)
+        return plan
+    lay_out(plan, row)
+    plan.main = _main_statement(plan)
+    return plan
 
 
-@dataclass
-class OutputColumn:
-    name: str
-    channel: str
-    role: str  # key | bin_lo | bin_hi | measure | stack_base | stack_top
-    source: str | None = None  # source column name
-
-
-@dataclass
-class Plan:
-    request: ChartRequest
-    schema: SourceSchema
-    dialect: Dialect
-    keys: list[Key]
-    measures: list[Measure]
-    where: exp.Expression | None
-    extents: exp.Select | None = None
-    main: exp.Select | None = None
-    columns: list[OutputColumn] = field(default_factory=list)
-    approximate: list[str] = field(default_factory=list)
-    stack_measure: Measure | None = None
-    reduced_row: dict[str, Any] | None = None  # extents of an M4 reduction (planner/m4.py)
-    #: number of bound-parameter slots in the SQL (``prepare(..., params=True)``); their
-    #: values come from ``bind_values(request, ...)``, the text from ``bind_sql``
-    slots: int = 0
-    #: ``layout_key`` by extents row (a shared prepared plan answers it for many requests)
-    _layouts: dict = field(default_factory=dict, repr=False, compare=False)
-
-    # ---- SQL text --------------------------------------------------------------------
-    @property
-    def extents_sql(self) -> str | None:
-        return self.dialect.render(self.extents) if self.extents is not None else None
-
-    @property
-    def main_sql(self) -> str:
-        assert self.main is not None, "finish() first"
-        return self.dialect.render(self.main)
-
-    def count_sql(self) -> str:
-        """Matched rows and outside-limit counts without grouping (used when the main
-        statement returns no rows, so its window totals are absent)."""
-        d = self.dialect
-        sel = [exp.alias_(exp.Count(this=exp.Star()), f"{INTERNAL}matched", quoted=True)]
-        for k in self.keys:
-            flag = _outside_expr(d, k)
-            if flag is not None:
-                sel.append(exp.alias_(exp.Sum(this=flag), k.outside_flag, quoted=True))
-        q = exp.select(*sel).from_(exp.alias_(d.table(self.schema.table), "s", quoted=True))
-        if self.where is not None:
-            q = q.where(self.where)
-        return d.render(q)
-
-    # ---- step 2 ----------------------------------------------------------------------
-    def finish(self, extents_row: dict[str, Any] | None = None) -> "Plan":
-        row = extents_row or {}
-        if self.request.reduce is not None:  # M4 line reduction: planner/m4.py
-            from planner import m4
-
-            self.reduced_row = row
-            self.main = m4.main_statement(self, row)
-            return self
-        for k in self.keys:
-            if k.mode == "nbin":
-                _layout_numeric(k, row)
-            elif k.mode == "tbin":
-                _layout_time(k, row)
-        self.main = _main_statement(self)
-        return self
-
-    def layout_key(self, extents_row: dict[str, Any] | None = None) -> tuple:
-        """What ``finish(extents_row)`` takes from the row: equal keys (same request shape)
-        give the same main statement, so a brush whose new extents keep the bin layout
-        reuses it. Numeric bins: the layout and whether the plain floor is exact over the
-        row's range (``_plain_floor_is_exact``); time bins: step, first bin, count, closed
-        stop. M4 reductions read the whole row. Raises what ``finish`` raises (bad layouts)."""
-        row = extents_row or {}
-        raw = tuple(sorted(row.items(), key=lambda kv: kv[0]))
-        if self.request.reduce is not None:
-            return ("row",) + raw
-        hit = self._layouts.get(raw)  # (a repeated row: no layout work)
-        if hit is not None:
-            return hit
-        out: list[Any] = []
-        for k in self.keys:
-            if k.mode == "nbin":
-                k = dataclasses.replace(k)  # this plan may be shared: lay out a copy
-                _layout_numeric(k, row)
-                b = k.nbins
-                out.append((b.start, b.width, b.count, b.method,
-                            _plain_floor_is_exact(b, k.vrange)))
-            elif k.mode == "tbin":
-                k = dataclasses.replace(k)
-                _layout_time(k, row)
-                out.append((k.tstep.iso, k.tstart, k.tcount, k.tclosed))
-        if len(self._layouts) >= 256:
-            self._layouts.clear()
-        self._layouts[raw] = key = tuple(out)
-        return key
-
-    def bins_meta(self) -> dict[str, dict[str, Any]]:
-        """``bins`` of the response: the layout of every binned key, by channel name."""
-        out: dict[str, dict[str, Any]] = {}
-        for k in self.keys:
-            label = k.label
-            if k.mode == "nbin" and k.nbins is not None:
-                b = k.nbins
-                out[label] = {"start": b.start, "stop": b.stop, "width": b.width,
-                              "count": b.count, "method": b.method}
-            elif k.mode == "tbin" and k.tstep is not None:
-                n = k.tcount or 0
-                first = _time_bin_instant(k, _time_bin_start(k, 0)) if n else None
-                last = _time_bin_instant(k, _time_bin_start(k, n)) if n else None
-                out[label] = {"start": first, "stop": last, "step": k.tstep.iso,
-                              "count": n, "method": "calendar"}
-        return out
+def layout_key(plan: Plan, extents_row: dict[str, Any] | None = None) -> tuple:
+    """What ``finish(extents_row)`` takes from the row: equal keys (same request shape)
+    give the same main statement, so a brush whose new extents keep the bin layout
+    reuses it. Numeric bins: the layout and whether the plain floor is exact over the
+    row's range (``_plain_floor_is_exact``); time bins: step, first bin, count, closed
+    stop. M4 reductions read the whole row. Raises what ``finish`` raises (bad layouts)."""
+    row = extents_row or {}
+    raw = tuple(sorted(row.items(), key=lambda kv: kv[0]))
+    if plan.request.reduce is not None:
+        return ("row",) + raw
+    hit = plan._layouts.get(raw)  # (a repeated row: no layout work)
+    if hit is not None:
+        return hit
+    out: list[Any] = []
+    for k in plan.keys:
+        if k.mode == "nbin":
+            k = dataclasses.replace(k)  # this plan may be shared: lay out a copy
+            _layout_numeric(k, row)
+            b = k.nbins
+            out.append((b.start, b.width, b.count, b.method,
+                        _plain_floor_is_exact(b, k.vrange)))
+        elif k.mode == "tbin":
+            k = dataclasses.replace(k)
+            _layout_time(k, row)
+            out.append((k.tstep.iso, k.tstart, k.tcount, k.tclosed))
+    if len(plan._layouts) >= 256:
+        plan._layouts.clear()
+    plan._layouts[raw] = key = tuple(out)
+    return key
 
 
 # =====================================================================================
-# step 1: check the request against the schema
+# step 1: bind (planner/bind.py) + the extents statement
 # =====================================================================================
 
 def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
             params: bool = False) -> Plan:
-    """``params``: long ``in`` / ``not_in`` lists and comparison values become bound
-    parameters (see ``Dialect.param_form``) instead of literals, so the SQL text does not
-    depend on their values."""
-    keys: list[Key] = []
-    measures: list[Measure] = []
-    request_tz = _check_tz(request.tz, pointer("tz"))
-    for path, channel, ch in request.keyed_channels():
-        if ch.is_measure and channel in ("row", "col"):
-            raise PlanError(pointer(*path, "agg"), f"facet {channel} must be a key (a column), "
-                            "not a measure (agg)")
-        if ch.is_measure:
-            measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect,
-                                           request_tz))
-        else:
-            keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
-                                   request_tz))
-    slots: list[Any] | None = [] if params and dialect.param_form is not None else None
-    where = _compile_where(request, schema, dialect, slots)
-    plan = Plan(request, schema, dialect, keys, measures, where, slots=len(slots or ()))
-    _check_options(plan)
-    _assign_names(plan)
+    """Step 1: the checked plan (``planner.bind.bind``) with its extents statement, when a
+    bin layout (or an M4 reduction) depends on the data. ``params``: see ``bind``."""
+    plan = bind(request, schema, dialect, params)
     if request.reduce is not None:  # M4 line reduction: planner/m4.py
-        from planner import m4
-
-        m4.check(plan)
         plan.extents = m4.extents_statement(plan)
         return plan
     plan.extents = _extents_statement(plan)
     return plan
-
-
-def _resolve(name: str, schema: SourceSchema, ptr: str) -> ColumnInfo:
-    col = schema.column(name)
-    if col is None:
-        sugg = nearest(name, schema.columns)
-        hint = f"; did you mean {', '.join(repr(s) for s in sugg)}?" if sugg else ""
-        raise PlanError(ptr, f"unknown column {name!r} in source {schema.name!r}{hint}",
-                        slug="unknown-column", title="Unknown column", suggestions=sugg)
-    return col
-
-
-#: names zoneinfo can open that are not canonical IANA zones (build artefacts, the host's own
-#: zone, and the posix/ right/ copies of the database)
-_NOT_ZONES = frozenset({"Factory", "localtime", "posixrules"})
-
-
-@functools.lru_cache(maxsize=1)
-def time_zone_names() -> frozenset[str]:
-    """The IANA time zone names sluice accepts: ``zoneinfo.available_timezones()`` without
-    ``Factory``, ``localtime``, ``posixrules`` and the ``posix/`` / ``right/`` trees."""
-    return frozenset(z for z in zoneinfo.available_timezones()
-                     if z not in _NOT_ZONES and not z.startswith(("posix/", "right/")))
-
-
-def _check_tz(tz: str | None, ptr: str, default: str = "UTC") -> str:
-    if tz is None:
-        return default
-    if tz in time_zone_names():
-        return tz
-    sugg = nearest(tz, sorted(time_zone_names()))
-    hint = f"; did you mean {', '.join(repr(s) for s in sugg)}?" if sugg else ""
-    raise PlanError(ptr, f"{tz!r} is not an IANA time zone name (use one such as "
-                    f"'Europe/Berlin' or 'UTC'){hint}", slug="bad-time-zone",
-                    suggestions=sugg)
-
-
-def _check_measure(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
-                   d: Dialect, request_tz: str = "UTC") -> Measure:
-    entry = aggregates.get(ch.agg)  # what the aggregate accepts: planner/aggregates.py
-    col = None
-    if ch.column is not None:
-        col = _resolve(ch.column, schema, pointer(*path, "column"))
-        if not entry.accepts(col.kind):
-            raise PlanError(pointer(*path, "agg"),
-                            entry.mismatch.format(agg=ch.agg, column=col.name, kind=col.kind),
-                            slug="type-mismatch", title="Aggregate does not fit the column type")
-    if ch.tz is not None:
-        raise PlanError(pointer(*path, "tz"), "tz applies to temporal keys, not to a measure")
-    if entry.feature and not d.supports(entry.feature):
-        raise Unsupported(pointer(*path, "agg"), d.name, f"{ch.agg}")
-    condition = None
-    if ch.condition is not None:  # the allow-list of filter_sql, pointed at this field
-        from planner.filter_sql import compile_filter_sql
-
-        try:
-            condition = compile_filter_sql(ch.condition, schema, d, tz=request_tz)
-        except PlanError as e:
-            raise PlanError(pointer(*path, "condition"),
-                            e.detail.replace("filter_sql", "condition"), slug=e.slug,
-                            title="condition is not allowed", status=e.status,
-                            suggestions=e.suggestions) from None
-    return Measure(i, path, channel, ch, col, condition=condition)
-
-
-def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
-               d: Dialect, request_tz: str = "UTC") -> Key:
-    assert ch.column is not None
-    col = _resolve(ch.column, schema, pointer(*path, "column"))
-    if col.kind == "other":
-        raise PlanError(pointer(*path, "column"),
-                        f"column {col.name!r} has type {col.sql_type}, which sluice cannot "
-                        "group by", slug="type-mismatch")
-    # a key's own tz, else the request's (the dashboard's zone), else UTC
-    tz = _check_tz(ch.tz, pointer(*path, "tz"), request_tz)
-    if ch.tz is not None and not col.is_temporal:
-        raise PlanError(pointer(*path, "tz"), f"tz applies to timestamps; {col.name!r} is {col.kind}",
-                        slug="type-mismatch")
-    if not col.is_temporal:
-        tz = "UTC"
-    uses_zone = ch.trunc is not None or ch.extract is not None or ch.bin is not None
-    if col.is_temporal and (uses_zone or ch.tz is not None) and tz != "UTC" \
-            and not d.supports("tz"):
-        raise Unsupported(pointer(*path, "tz") if ch.tz is not None else pointer("tz"),
-                          d.name, "time zone conversion")
-    if ch.top is not None and col.kind != "string":
-        raise PlanError(pointer(*path, "top"),
-                        f"top keeps the largest text categories; {col.name!r} is {col.kind}",
-                        slug="type-mismatch")
-    if ch.top is not None and not d.supports("window"):
-        raise Unsupported(pointer(*path, "top"), d.name, "top (needs window functions)")
-    if ch.trunc is not None:
-        if not col.is_temporal:
-            raise PlanError(pointer(*path, "trunc"),
-                            f"trunc needs a timestamp or date column; {col.name!r} is {col.kind}",
-                            slug="type-mismatch", title="Option does not fit the column type")
-        if ch.trunc == "week" and not d.supports("trunc_week"):
-            raise Unsupported(pointer(*path, "trunc"), d.name, "ISO week truncation")
-        return Key(i, path, channel, ch, col, "trunc", tz)
-    if ch.extract is not None:
-        if not col.is_temporal:
-            raise PlanError(pointer(*path, "extract"),
-                            f"extract needs a timestamp or date column; {col.name!r} is {col.kind}",
-                            slug="type-mismatch", title="Option does not fit the column type")
-        if not d.supports("extract"):
-            raise Unsupported(pointer(*path, "extract"), d.name, "date part extraction")
-        return Key(i, path, channel, ch, col, "extract", tz)
-    if ch.bin is not None:
-        b = ch.bin
-        bp = pointer(*path, "bin")
-        if col.is_number:
-            need = {"scott": "stddev", "fd": "quantile"}.get(b.rule or "")
-            if need and not d.supports(need):
-                what = "standard deviation" if need == "stddev" else "exact quantiles"
-                raise Unsupported(pointer(*path, "bin", "rule"), d.name,
-                                  f"bin rule {b.rule} (needs {what})")
-            key = Key(i, path, channel, ch, col, "nbin", tz)
-            if b.limits is not None:
-                lo, hi = b.limits
-                if isinstance(lo, str) or isinstance(hi, str):
-                    raise PlanError(pointer(*path, "bin", "limits"),
-                                    f"limits on the number column {col.name!r} must be numbers",
-                                    slug="type-mismatch")
-                if not (math.isfinite(lo) and math.isfinite(hi) and math.isfinite(hi - lo)) \
-                        or not lo < hi:
-                    raise PlanError(pointer(*path, "bin", "limits"),
-                                    "limits must be finite numbers [lo, hi] with lo < hi")
-                if not (hi - lo >= sys.float_info.min
-                        and hi - lo >= 64 * math.ulp(max(abs(lo), abs(hi)))):
-                    # e.g. [0, 5e-324]: no two distinct bin edges fit between them
-                    raise PlanError(pointer(*path, "bin", "limits"),
-                                    f"limits [{lo!r}, {hi!r}] are too close together to hold "
-                                    "distinct bin edges", slug="bad-layout")
-                key.nlimits = (float(lo), float(hi))
-            return key
-        if col.is_temporal:
-            if b.width is not None or b.rule is not None:
-                what = "width" if b.width is not None else "rule"
-                raise PlanError(pointer(*path, "bin", what),
-                                f"{what} bins numbers; on the timestamp {col.name!r} use "
-                                "bins (a calendar step is chosen) or trunc", slug="type-mismatch")
-            key = Key(i, path, channel, ch, col, "tbin", tz)
-            if b.limits is not None:
-                # offset-less limits are wall-clock times of the key's zone
-                lo_t = _parse_instant(b.limits[0], pointer(*path, "bin", "limits", 0), tz)
-                hi_t = _parse_instant(b.limits[1], pointer(*path, "bin", "limits", 1), tz)
-                if not lo_t < hi_t:
-                    raise PlanError(pointer(*path, "bin", "limits"), "limits need lo < hi")
-                key.tlimits = (lo_t, hi_t)
-            return key
-        raise PlanError(bp, f"bin needs a number or timestamp column; {col.name!r} is "
-                        f"{col.kind} (text and booleans group as categories without bin)",
-                        slug="type-mismatch", title="Option does not fit the column type")
-    return Key(i, path, channel, ch, col, "plain", tz)
-
-
-def _check_options(plan: Plan) -> None:
-    req, d = plan.request, plan.dialect
-    present = {k.channel for k in plan.keys} | {m.channel for m in plan.measures}
-    for i, s in enumerate(req.sort):
-        if s.channel not in present:
-            raise PlanError(pointer("sort", i, "channel"),
-                            f"sort names channel {s.channel!r}, which the request does not use "
-                            f"(it uses {', '.join(sorted(present))})")
-    if req.stack is not None:
-        if not d.supports("window"):
-            raise Unsupported(pointer("stack"), d.name, "stack (needs window functions)")
-        ch = req.channels
-        if ch.y is not None and ch.y.is_measure:
-            plan.stack_measure = next(m for m in plan.measures if m.channel == "y")
-        elif ch.x is not None and ch.x.is_measure:
-            plan.stack_measure = next(m for m in plan.measures if m.channel == "x")
-        else:
-            raise PlanError(pointer("stack"), "stack needs a measure (agg) on y or on x")
-        m = plan.stack_measure
-        if not m.aggregate.stacks:
-            raise PlanError(pointer(*m.path, "agg"),
-                            f"stack cannot pile {m.spec.agg} values (a pile of them means "
-                            f"nothing): stack a count, sum or other additive measure on "
-                            f"{m.channel}, or drop stack")
-    if req.facet is not None and req.facet.max_groups is not None and not d.supports("window"):
-        raise Unsupported(pointer("facet", "max_groups"), d.name, "max_groups (window functions)")
-    if req.empty_bins != "omit" and not any(k.binned for k in plan.keys):
-        raise PlanError(pointer("empty_bins"), "empty_bins needs a binned key (a channel with bin)")
-    if req.empty_bins != "omit":
-        for k in plan.keys:
-            if k.binned and k.spec.bin is not None and k.spec.bin.width is not None \
-                    and k.spec.bin.limits is None:
-                raise PlanError(pointer(*k.path, "bin", "limits"),
-                                "empty_bins with a fixed width needs limits (the bins to emit)")
-    for m in plan.measures:
-        if m.aggregate.approximate:
-            plan.approximate.append(m.internal)
-
-
-def _assign_names(plan: Plan) -> None:
-    """Output names, unique IGNORING CASE: DuckDB, SQLite and MariaDB compare identifiers
-    case-insensitively even when quoted (MariaDB with Unicode case folding: 'ǅ' = 'ǆ'), so
-    'depot' and 'Depot' would be one column there. ``str.casefold`` (Unicode full case
-    folding) without U+0307 COMBINING DOT ABOVE is at least as strict as each of them
-    (measured on MariaDB 10/11: 'i' = 'İ', which casefolds to 'i' + U+0307; 'ß' != 's',
-    'é' != 'e'); a clash gets ``<channel>_`` prefixed, then ``_2``, ``_3``, ..."""
-    taken: set[str] = set()
-
-    def fold(name: str) -> str:
-        return name.casefold().replace("\u0307", "")
-
-    def free(name: str) -> bool:
-        folded = fold(name)
-        return folded not in taken and not folded.startswith(INTERNAL)
-
-    def claim(want: str, channel: str) -> str:
-        name = want
-        if not free(name):
-            name = f"{channel}_{want}"
-        n = 2
-        base = name
-        while not free(name):
-            name = f"{base}_{n}"
-            n += 1
-        taken.add(fold(name))
-        return name
-
-    # name in request order: x, y, color, size, shape, opacity, by[i], row, col
-    for it in sorted(plan.keys + plan.measures, key=lambda x: _path_rank(x.path)):
-        spec = it.spec
-        label = it.label if isinstance(it, Key) else it.channel
-        if isinstance(it, Measure):
-            it.name = claim(spec.name or _measure_name(spec), label)
-            plan.columns.append(OutputColumn(it.name, it.channel, "measure", spec.column))
-        elif it.binned:
-            if spec.name:
-                names = (claim(f"{spec.name}_lo", label), claim(f"{spec.name}_hi", label))
-            else:
-                names = (claim(f"{label}_lo", label), claim(f"{label}_hi", label))
-            it.names = names
-            plan.columns.append(OutputColumn(names[0], it.channel, "bin_lo", spec.column))
-            plan.columns.append(OutputColumn(names[1], it.channel, "bin_hi", spec.column))
-        else:
-            want = spec.name or (f"{spec.column}_{spec.extract}" if it.mode == "extract"
-                                 else str(spec.column))
-            it.names = (claim(want, label),)
-            plan.columns.append(OutputColumn(it.names[0], it.channel, "key", spec.column))
-    if plan.stack_measure is not None:
-        m = plan.stack_measure
-        plan.columns.append(OutputColumn(claim(f"{m.name}_base", m.channel), m.channel,
-                                         "stack_base", m.spec.column))
-        plan.columns.append(OutputColumn(claim(f"{m.name}_top", m.channel), m.channel,
-                                         "stack_top", m.spec.column))
-    _check_name_lengths(plan)
-
-
-
-
-def _check_name_lengths(plan: Plan) -> None:
-    d = plan.dialect
-    # dialect data: identifier caps (engines that cut longer names) and BMP-only identifiers
-    # (MariaDB/MySQL: a name with U+10000 or above is error 1300 "Invalid utf8mb4 character")
-    cap = d.max_identifier_bytes
-    if cap is None and not d.identifiers_bmp_only:
-        return
-    stack = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
-    items = [(k.path, k.spec, list(k.names)) for k in plan.keys]
-    items += [(m.path, m.spec, [m.name] + (stack if m is plan.stack_measure else []))
-              for m in plan.measures]
-    for path, spec, names in items:
-        for n in names:
-            if d.identifiers_bmp_only and any(ord(c) > 0xFFFF for c in n):
-                raise PlanError(pointer(*path, "name" if spec.name else "column"),
-                                f"output column name {n!r} has a character beyond U+FFFF; "
-                                f"{d.name} identifiers cannot hold one (MariaDB/MySQL keep "
-                                "names in utf8mb3): give the channel another name",
-                                slug="bad-name")
-            if cap is not None and len(n.encode("utf-8")) > cap:
-                raise PlanError(pointer(*path, "name" if spec.name else "column"),
-                                f"output column name {n!r} is longer than the {cap} bytes "
-                                f"{d.name} keeps; give the channel a shorter name",
-                                slug="name-too-long")
-
-
-def _path_rank(path: tuple) -> tuple:
-    order = {"x": 0, "y": 1, "color": 2, "size": 3, "shape": 4, "opacity": 5, "by": 6,
-             "row": 7, "col": 8}
-    return (order[path[1]], path[2] if len(path) > 2 else 0)
-
-
-def _measure_name(ch: Channel) -> str:
-    if ch.column is None:  # count(*), share of a condition
-        return str(ch.agg)
-    if ch.agg == "quantile":
-        q = ch.q if ch.q is not None else 0.5
-        pct = f"{q * 100:g}".replace(".", "_")
-        return f"p{pct}_{ch.column}"
-    return f"{ch.agg}_{ch.column}"
-
-
-# =====================================================================================
-# where
-# =====================================================================================
-
-#: The zone in which offset-less instants of ``where`` / ``filter_sql`` are read while a
-#: request is compiled (the request's ``tz``; set by ``_compile_where``).
-_READ_TZ: contextvars.ContextVar[str] = contextvars.ContextVar("sluice_read_tz", default="UTC")
-
-
-def _parse_instant(value: Any, ptr: str, tz: str | None = None) -> dt.datetime:
-    """An ISO 8601 date or timestamp as an aware instant. Text without an offset is a
-    wall-clock time in ``tz`` (default: the request's zone, see ``_READ_TZ``); a wall-clock
-    time that occurs twice or never (DST changes) reads with fold=0, i.e. the offset in force
-    before the change (zoneinfo's rule). Instants outside years 1..9999 in UTC are refused.
-    The result keeps the zone it was written in (its date is the date a DATE column compares
-    with); dialects convert it to UTC for timestamps."""
-    if not isinstance(value, str):
-        raise PlanError(ptr, f"expected an ISO 8601 timestamp string, got {value!r}",
-                        slug="type-mismatch")
-    text = value.strip()
-    if text.endswith("Z") or text.endswith("z"):
-        text = text[:-1] + "+00:00"
-    try:
-        if len(text) == 10:
-            t = dt.datetime.combine(dt.date.fromisoformat(text), dt.time())
-        else:
-            t = dt.datetime.fromisoformat(text)
-    except ValueError:
-        raise PlanError(ptr, f"{value!r} is not an ISO 8601 date or timestamp "
-                        "(e.g. '2026-01-01' or '2026-01-01T08:00:00Z')",
-                        slug="bad-value") from None
-    zone = tz if tz is not None else _READ_TZ.get()
-    if t.tzinfo is None:
-        t = t.replace(tzinfo=dt.timezone.utc if zone == "UTC" else zoneinfo.ZoneInfo(zone))
-    try:
-        t.astimezone(dt.timezone.utc)  # the dialects compare instants in UTC
-        return t  # in the zone it was written in: a date column compares with its date
-    except (OverflowError, ValueError):
-        raise PlanError(ptr, f"{value!r} is outside the instants sluice can compare (years 1 to "
-                        "9999 in UTC)", slug="out-of-range") from None
-
-
-def _literal(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> exp.Expression:
-    if col.is_number:
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise PlanError(ptr, f"{col.name!r} is a number column; {value!r} is not a number",
-                            slug="type-mismatch")
-        if isinstance(value, float) and not math.isfinite(value):
-            raise PlanError(ptr, "numbers must be finite", slug="bad-value")
-        return d.number(value)
-    if col.kind == "string":
-        if not isinstance(value, str):
-            raise PlanError(ptr, f"{col.name!r} is a text column; compare it with a string, "
-                            f"not {value!r}", slug="type-mismatch")
-        if "\x00" in value:
-            raise PlanError(ptr, "strings may not contain NUL characters", slug="bad-value")
-        return d.text_literal(value)
-    if col.kind == "boolean":
-        if not isinstance(value, bool):
-            raise PlanError(ptr, f"{col.name!r} is a boolean column; use true or false",
-                            slug="type-mismatch")
-        return d.boolean(value)
-    if col.is_temporal:
-        return d.timestamp_literal(_parse_instant(value, ptr), col.kind)
-    raise PlanError(ptr, f"column {col.name!r} of type {col.sql_type} cannot be filtered",
-                    slug="type-mismatch")
-
-
-_COMPARE = {"eq": exp.EQ, "ne": exp.NEQ, "lt": exp.LT, "lte": exp.LTE, "gt": exp.GT,
-            "gte": exp.GTE}
-#: operators whose one value may be a bound parameter (``_scalar_bindable``)
-_SCALAR_OPS = frozenset(_COMPARE) | {"contains", "starts_with"}
-
-
-def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect,
-                    slots: list[Any] | None = None) -> exp.Expression:
-    """``slots``: when a list, long in/not_in lists and bindable comparison values become
-    parameter slots appended to it (their values: ``bind_values``); None writes every value
-    as a literal."""
-    if isinstance(f, AnyOf):
-        parts = [_compile_filter(g, path + ("any", j), schema, d, slots)
-                 for j, g in enumerate(f.any)]
-        return exp.Paren(this=exp.or_(*parts)) if len(parts) > 1 else parts[0]
-    if isinstance(f, NotOf):
-        return exp.Not(this=exp.Paren(this=_compile_filter(f.not_, path + ("not",), schema, d,
-                                                           slots)))
-    assert isinstance(f, Predicate)
-    col = _resolve(f.column, schema, pointer(*path, "column"))
-    ref = d.column(col.name, "s")
-    terms: list[exp.Expression] = []
-    for op, value in f.operators():
-        ptr = pointer(*path, op)
-        if op in _COMPARE:
-            lit = _literal(d, col, value, ptr)
-            if slots is not None and _scalar_bindable(d, col, value):
-                lit = _put(lit, _marker(len(slots)))
-                slots.append(None)
-            terms.append(_COMPARE[op](this=ref.copy(), expression=lit))
-        elif op in ("in", "not_in"):
-            if not value:
-                terms.append(exp.false() if op == "in" else exp.true())
-                continue
-            raw = _param_values(d, col, value, pointer(*path, op)) if slots is not None else None
-            if raw is not None:
-                node = _param_in(d, col, ref.copy(), value[0], pointer(*path, op, 0), len(slots), raw)
-                slots.append(None)
-                terms.append(node if op == "in" else exp.Not(this=node))
-                continue
-            lits = [_literal(d, col, v, pointer(*path, op, j)) for j, v in enumerate(value)]
-            node = exp.In(this=ref.copy(), expressions=lits)
-            terms.append(node if op == "in" else exp.Not(this=node))
-        elif op == "is_null":
-            isnull = exp.Is(this=ref.copy(), expression=exp.Null())
-            terms.append(isnull if value else exp.Not(this=isnull))
-        elif op in ("contains", "starts_with"):
-            if col.kind != "string":
-                raise PlanError(ptr, f"{op} needs a text column; {col.name!r} is {col.kind}",
-                                slug="type-mismatch")
-            _literal(d, col, value, ptr)
-            fn = d.contains if op == "contains" else d.starts_with
-            node = fn(ref.copy(), value)
-            if slots is not None and _scalar_bindable(d, col, value):
-                node = _put(node, _marker(len(slots)))  # (starts_with: its length is in the shape)
-                slots.append(None)
-            terms.append(node)
-    return exp.Paren(this=exp.and_(*terms)) if len(terms) > 1 else terms[0]
-
-
-# ---- bound parameters for long IN lists ------------------------------------------------
-#
-# A 5,000-value ``in`` list written as literals costs ~0.3 s of sqlglot building, copying and
-# rendering per request and makes every request's SQL text (and cached plan) different. As
-# bound parameters the text depends only on the request's shape, so one cached plan serves
-# every list, and the values go to the driver as data:
-#
-#   list  (DuckDB, PostgreSQL): ``col IN (SELECT <literal form of u> FROM UNNEST(<one list
-#         parameter>) AS p(u))``; ``x IN (subquery)`` and ``x IN (v1, ..., vn)`` are the same
-#         predicate in SQL (ISO 9075 8.4 <in predicate>: both are ``x = ANY (...)``), NULLs
-#         included, so not_in stays NOT IN;
-#   json  (SQLite, no arrays): ``col IN (SELECT <literal form of value> FROM json_each(?))``
-#         with the values as one JSON array (SQLite's JSON1 functions, built in since 3.38);
-#   each  (MariaDB/MySQL, no arrays): one ``%s`` per value, escaped by the driver; the list
-#         is padded to a power of two by repeating its last value (``x IN (a, b, b)`` is
-#         ``x IN (a, b)``), so few SQL texts exist per request shape.
-#
-# Single comparison values (eq..gte, contains, starts_with) become one parameter each, in
-# the same literal form (``_scalar_bindable``): a brushed chart (a new window per request)
-# reuses one plan.
-#
-# "<literal form of u>" is the dialect's own literal for the column kind with the literal
-# replaced by the parameter (e.g. MySQL's CAST(... AS BINARY) for text, the timestamp casts),
-# so a value compares exactly as its literal would (tests/test_hostile_inputs.py checks
-# both forms give the same answer on every engine). Lists shorter than PARAM_MIN_VALUES,
-# and number lists mixing ints and floats or holding integers beyond 64-bit signed, stay
-# literals. Slots appear in the rendered text as NUL-delimited markers (request text can
-# never contain NUL: planner.model.Text), replaced by ``bind_sql``.
-
-PARAM_MIN_VALUES = 16
-#: dialect -> (form, driver paramstyle)
-_SLOT = re.compile(r"\x00(\d+)(?:\.(\d+))?\x00")
-
-
-def _marker(slot: int, j: int | None = None) -> exp.Expression:
-    return exp.Var(this=f"\x00{slot}\x00" if j is None else f"\x00{slot}.{j}\x00")
-
-
-def _leaf(e: exp.Expression) -> exp.Expression:
-    """The literal inside a dialect's literal form (a number's sign included)."""
-    if isinstance(e, (exp.Literal, exp.Boolean)) or (isinstance(e, exp.Neg)
-                                                     and isinstance(e.this, exp.Literal)):
-        return e
-    for node in e.walk():
-        if isinstance(node, exp.Boolean) or (isinstance(node, exp.Literal) and node.is_string):
-            return node
-    raise AssertionError(f"no literal in {e!r}")
-
-
-def _put(template: exp.Expression, e: exp.Expression) -> exp.Expression:
-    """``template`` (a literal form, or a predicate holding one) with its literal replaced
-    by ``e`` (a parameter marker or column)."""
-    t = template.copy()
-    leaf = _leaf(t)
-    if leaf is t:
-        return e
-    leaf.replace(e)
-    return t
-
-
-def _float64(d: Dialect, col: ColumnInfo) -> bool:
-    """A column of 64-bit doubles: a number literal (DECIMAL on DuckDB, NUMERIC on PostgreSQL,
-    DECIMAL on MariaDB) compared with it is converted to the nearest double -- the very double
-    a bound float is -- so both compare alike. Against integer, decimal or 32-bit float columns
-    a decimal literal compares exactly (or in single precision) and a bound double would not.
-    SQLite stores every REAL as an 8-byte double."""
-    return col.kind == "double" and (d.name == "sqlite"
-                                     or col.sql_type.strip().lower() in _FLOAT64_TYPES)
-
-
-_FLOAT64_TYPES = frozenset({"double", "double precision", "float8", "float64"})
-
-
-def _scalar_bindable(d: Dialect, col: ColumnInfo | None, value: Any) -> bool:
-    """Whether one comparison value (eq..gte, contains, starts_with) is bound as a parameter
-    (decided from the value and the column's kind alone, so that ``param_shape`` and
-    ``prepare`` always agree). Values of the wrong JSON type stay literals (and fail there)."""
-    if d.param_form is None or col is None:
-        return False
-    if col.is_number:
-        if isinstance(value, bool):
-            return False
-        if isinstance(value, int):
-            return -2 ** 63 <= value < 2 ** 63
-        return isinstance(value, float) and math.isfinite(value) and _float64(d, col)
-    if col.kind == "string" or col.is_temporal:
-        return isinstance(value, str) and "\x00" not in value
-    if col.kind == "boolean":
-        return isinstance(value, bool)
-    return False
-
-
-def _scalar_value(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> Any:
-    """The driver value of a bound comparison value: what its literal denotes (the
-    dialect's timestamp text for instants, read in the request's zone), checked like it."""
-    if col.is_temporal:
-        return _instant_value(d, col, value, ptr, _READ_TZ.get())
-    return value
-
-
-@functools.lru_cache(maxsize=4096)
-def _instant_value(d: Dialect, col: ColumnInfo, value: str, ptr: str, tz: str) -> Any:
-    """(``_scalar_value`` of an instant; ``tz``: the zone it is read in, part of the key)"""
-    return _leaf(_literal(d, col, value, ptr)).this
-
-
-def _param_values(d: Dialect, col: ColumnInfo, values: list[Any], ptr: str) -> list[Any] | None:
-    """The driver values of a long in/not_in list (each what its literal denotes), or None
-    when the list stays literals. Checks every value as ``_literal`` would (same pointers)."""
-    if d.param_form is None or not _bindable(values):
-        return None
-    if col.is_number:
-        for j, v in enumerate(values):
-            if isinstance(v, bool) or not isinstance(v, (int, float)):
-                _literal(d, col, v, f"{ptr}/{j}")  # raises the type mismatch
-        return list(values)
-    if col.kind == "string":
-        for j, v in enumerate(values):
-            if not isinstance(v, str) or "\x00" in v:
-                _literal(d, col, v, f"{ptr}/{j}")
-        return list(values)
-    if col.kind == "boolean":
-        for j, v in enumerate(values):
-            if not isinstance(v, bool):
-                _literal(d, col, v, f"{ptr}/{j}")
-        return list(values)
-    if col.is_temporal:
-        return [_leaf(_literal(d, col, v, f"{ptr}/{j}")).this for j, v in enumerate(values)]
-    return None
-
-
-def _bindable(values: list[Any]) -> bool:
-    """Whether a list is bound as parameters (decided from the values alone, so that
-    ``param_shape`` and ``prepare`` always agree): long enough, one JSON type, integers
-    within 64-bit signed, floats finite."""
-    if len(values) < PARAM_MIN_VALUES:
-        return False
-    kinds = {type(v) for v in values}
-    if len(kinds) != 1:
-        return False
-    if int in kinds:
-        return all(-2 ** 63 <= v < 2 ** 63 for v in values)
-    if float in kinds:
-        return all(math.isfinite(v) for v in values)
-    return True
-
-
-def _param_in(d: Dialect, col: ColumnInfo, ref: exp.Expression, first: Any, ptr: str,
-              slot: int, raw: list[Any]) -> exp.In:
-    form = d.param_form[0]
-    template = _literal(d, col, first, ptr)
-
-    def put(e: exp.Expression) -> exp.Expression:
-        return _put(template, e)
-
-    if form == "each":
-        return exp.In(this=ref, expressions=[put(_marker(slot, j)) for j in range(_padded(len(raw)))])
-    if form == "json":
-        sel = exp.select(put(exp.column("value", quoted=True))).from_(
-            exp.Anonymous(this="json_each", expressions=[_marker(slot)]))
-        return exp.In(this=ref, query=exp.Subquery(this=sel))
-    arg = _marker(slot)
-    arg = d.param_array(arg, type(raw[0]))
-    unnest = exp.Unnest(expressions=[arg], alias=exp.TableAlias(
-        this=exp.to_identifier("p", quoted=True), columns=[exp.to_identifier("u", quoted=True)]))
-    sel = exp.select(put(exp.column("u", quoted=True))).from_(unnest)
-    return exp.In(this=ref, query=exp.Subquery(this=sel))
-
-
-def _padded(n: int) -> int:
-    return 1 << max(0, n - 1).bit_length()
-
-
-def param_shape(req: ChartRequest, d: Dialect, schema: SourceSchema | None = None) -> Any:
-    """The request as plain JSON with every list that ``prepare(..., params=True)`` may bind
-    replaced by its padded length and every bound comparison value (``_scalar_bindable``,
-    which needs the ``schema``'s column kinds) by its JSON type: equal shapes render the
-    same SQL text."""
-    doc = req.model_dump(mode="json", by_alias=True, exclude_none=True)
-    if d.param_form is None:
-        return doc
-
-    def walk(f: Any) -> None:
-        if "any" in f:
-            for g in f["any"]:
-                walk(g)
-        elif "not" in f:
-            walk(f["not"])
-        else:
-            for op in ("in", "not_in"):
-                v = f.get(op)
-                if v is not None and _bindable(v):
-                    f[op] = ["\x00", _padded(len(v)), sorted({type(x).__name__ for x in v})]
-            col = schema.column(f["column"]) if schema is not None else None
-            for op in _SCALAR_OPS:
-                v = f.get(op)
-                if v is not None and _scalar_bindable(d, col, v):
-                    # starts_with writes the prefix's length (characters; MariaDB: bytes)
-                    f[op] = ["\x00", type(v).__name__] + (
-                        [len(v), len(v.encode("utf-8"))] if op == "starts_with" else [])
-
-    for f in doc.get("where", []):
-        walk(f)
-    return doc
-
-
-def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any]:
-    """The value of every parameter slot of ``prepare(req, schema, d, params=True)``, in slot
-    order (the same walk as ``_compile_filter``), checked like literals."""
-    if d.param_form is None:
-        return []
-    form = d.param_form[0]
-    out: list[Any] = []
-
-    def bind(f: Predicate, path: tuple) -> None:
-        col = None
-        for op, value in f.operators():
-            if op in _SCALAR_OPS:
-                col = col or _resolve(f.column, schema, pointer(*path, "column"))
-                if _scalar_bindable(d, col, value):
-                    out.append(_scalar_value(d, col, value, pointer(*path, op)))
-                continue
-            if op not in ("in", "not_in") or not value:
-                continue
-            col = col or _resolve(f.column, schema, pointer(*path, "column"))
-            raw = _param_values(d, col, value, pointer(*path, op))
-            if raw is None:
-                continue
-            if form == "each":
-                raw = raw + [raw[-1]] * (_padded(len(raw)) - len(raw))
-            elif form == "json":
-                raw = json.dumps(raw, ensure_ascii=False)
-            out.append(raw)
-
-    token = _READ_TZ.set(_check_tz(req.tz, pointer("tz")))  # as _compile_where reads them
-    try:
-        for path, f in req.predicates():
-            bind(f, path)
-    finally:
-        _READ_TZ.reset(token)
-    return out
-
-
-def bind_sql(sql: str, values: list[Any], style: str) -> tuple[str, list[Any]]:
-    """SQL text with slot markers -> (text for the driver, its parameters in order).
-    ``qmark``: ``?``; ``format``: ``%s`` with every literal ``%`` doubled (psycopg and
-    pymysql read ``%`` as the start of a placeholder)."""
-    args: list[Any] = []
-
-    def sub(m: re.Match) -> str:
-        v = values[int(m.group(1))]
-        args.append(v if m.group(2) is None else v[int(m.group(2))])
-        return "?" if style == "qmark" else "%s"
-
-    if not values or "\x00" not in sql:
-        return sql, []
-    if style == "format":
-        sql = sql.replace("%", "%%")
-    return _SLOT.sub(sub, sql), args
-
-
-def display_sql(sql: str) -> str:
-    """SQL with slot markers shown as ``?`` (the ``sql`` member of an answer)."""
-    return _SLOT.sub("?", sql)
-
-
-def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect,
-                   slots: list[Any] | None = None) -> exp.Expression | None:
-    # offset-less instants in where and filter_sql are read in the request's zone
-    token = _READ_TZ.set(_check_tz(req.tz, pointer("tz")))
-    try:
-        parts = [_compile_filter(f, ("where", i), schema, d, slots)
-                 for i, f in enumerate(req.where)]
-        if req.filter_sql is not None:  # allow-listed SQL text, rebuilt from the catalog
-            from planner.filter_sql import compile_filter_sql
-
-            parts.append(compile_filter_sql(req.filter_sql, schema, d, tz=_READ_TZ.get()))
-    finally:
-        _READ_TZ.reset(token)
-    if not parts:
-        return None
-    return exp.and_(*parts) if len(parts) > 1 else parts[0]
 
 
 # =====================================================================================
@@ -1052,174 +209,6 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
     if plan.where is not None:
         q = q.where(plan.where.copy())
     return q
-
-
-def _num(row: dict[str, Any], name: str) -> float | None:
-    v = row.get(name)
-    if v is None:
-        return None
-    v = float(v)
-    return v if math.isfinite(v) else None
-
-
-def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
-    """Fix a numeric key's bins: ``width`` (origin grid), ``rule`` (numpy's edges) or ``bins``
-    (nice widths), over the limits or the data's finite min/max. Layouts whose edges are not
-    distinct finite doubles, or that make more than MAX_BINS bins, are a 422."""
-    b = k.spec.bin
-    assert b is not None
-    p = f"{INTERNAL}e{k.index}_"
-    method = "width" if b.width is not None else b.rule or "nice"
-    field_ptr = pointer(*k.path, "bin", "width" if b.width is not None else
-                        "rule" if b.rule is not None else "bins")
-    if k.nlimits is not None:
-        lo, hi = k.nlimits
-    else:
-        lo, hi = _num(row, p + "min"), _num(row, p + "max")
-        if lo is None or hi is None:  # no finite values: a harmless placeholder layout
-            start = b.origin or 0.0 if b.width is not None else 0.0
-            k.nbins = binning.NumericBins(start, b.width or 1.0, 1, method)
-            return
-    k.vrange = (lo, hi)
-    try:
-        if b.width is not None:
-            o = b.origin or 0.0
-            nb = binning.width_bins(b.width, o, lo, hi)
-        elif b.rule is not None:
-            n = int(row.get(p + "n") or 0)
-            q1, q3 = _num(row, p + "q1"), _num(row, p + "q3")
-            iqr = (q3 - q1) if q1 is not None and q3 is not None else None
-            if k.nlimits is not None:  # numpy: the rule sees only the values inside the range
-                dlo, dhi = _num(row, p + "min"), _num(row, p + "max")
-                ptp = (dhi - dlo) if dlo is not None and dhi is not None else 0.0
-            else:
-                ptp = hi - lo
-            nb = binning.rule_bins(b.rule, n, lo, hi, ptp, _num(row, p + "sd"), iqr,
-                                   integer=k.col.kind == "integer")
-        else:
-            nb = binning.nice_bins(lo, hi, b.bins or 20)
-        if nb.count is not None and nb.count > MAX_BINS:
-            raise PlanError(field_ptr, f"this layout makes {nb.count} bins over "
-                            f"[{lo:g}, {hi:g}]; at most {MAX_BINS}: use "
-                            + ("a larger width" if b.width is not None else
-                               "another rule or limits" if b.rule is not None else "fewer bins"),
-                            slug="too-many-bins")
-        k.nbins = binning.check_layout(nb)
-    except binning.LayoutError as e:
-        if k.nlimits is None and b.width is None and lo is not None:
-            # data too narrow to split (e.g. 0 and 5e-324): numpy's zero-range layout
-            k.nbins = binning.rule_bins(b.rule or "sturges", 0, lo, lo)
-            k.nbins = binning.NumericBins(k.nbins.start, k.nbins.width, 1, method)
-            return
-        where = pointer(*k.path, "bin", "limits") if k.nlimits is not None and b.width is None \
-            else field_ptr
-        raise PlanError(where, f"{e}: no value could be placed in a bin; use "
-                        + ("a larger width or another origin" if b.width is not None
-                           else "wider limits"), slug="bad-layout") from None
-
-
-def _layout_time(k: Key, row: dict[str, Any]) -> None:
-    """Fix a time key's calendar step and bins over its limits (or the data's min/max). Like
-    numeric bins, the last bin is closed: when the upper end falls on a bin edge, values
-    equal to it belong to the bin that ends there (no extra bin past the limits)."""
-    b = k.spec.bin
-    assert b is not None
-    p = f"{INTERNAL}e{k.index}_"
-    where = pointer(*k.path, "bin", "limits") if k.tlimits is not None else pointer(*k.path, "bin")
-    try:
-        _layout_time_steps(k, row, p, b.bins or 20)
-    except (OverflowError, ValueError):
-        raise PlanError(where, "the time bins would start or end outside the years 1 to 9999 "
-                        f"(in {k.tz}); use limits inside that range", slug="out-of-range") from None
-
-
-def _layout_time_steps(k: Key, row: dict[str, Any], p: str, target: int) -> None:
-    if k.tlimits is not None:
-        lo = k.tlimits[0].timestamp()
-        hi = k.tlimits[1].timestamp()
-    else:
-        lo, hi = _num(row, p + "min"), _num(row, p + "max")
-    if lo is None or hi is None:
-        lo = hi = 0.0
-    k.tstep = binning.time_step(hi - lo, target)
-    step = k.tstep
-    k.tclosed = None
-    if step.is_fixed:
-        first = math.floor(lo / step.seconds) * step.seconds
-        last = math.floor(hi / step.seconds) * step.seconds
-        if last == hi and last > first:  # hi on an edge: the last bin [hi - step, hi] is closed
-            last -= step.seconds
-            k.tclosed = dt.datetime.fromtimestamp(hi, dt.timezone.utc)
-        k.tstart = float(first)
-        k.tcount = int(round((last - first) / step.seconds)) + 1
-    else:
-        zone = zoneinfo.ZoneInfo(k.tz)
-        lo_local = dt.datetime.fromtimestamp(lo, dt.timezone.utc).astimezone(zone).replace(tzinfo=None)
-        hi_local = dt.datetime.fromtimestamp(hi, dt.timezone.utc).astimezone(zone).replace(tzinfo=None)
-        first_l = _trunc_local(lo_local, step.unit)
-        last_l = _trunc_local(hi_local, step.unit)
-        k.tstart = first_l
-        count = _units_between(first_l, last_l, step.unit) + 1
-        if last_l == hi_local and last_l > first_l:  # hi on a bin edge: closed last bin
-            count -= 1
-            k.tclosed = dt.datetime.fromtimestamp(hi, dt.timezone.utc)
-        k.tcount = count
-        # every bin start and stop must be a wall-clock time Python (and the engines) know
-        _time_bin_instant(k, _add_local(first_l, step.unit, count))
-
-
-def _trunc_local(t: dt.datetime, unit: str) -> dt.datetime:
-    """Python twin of SQL date_trunc on a naive wall-clock time (ISO week)."""
-    if unit == "second":
-        return t.replace(microsecond=0)
-    if unit == "minute":
-        return t.replace(second=0, microsecond=0)
-    if unit == "hour":
-        return t.replace(minute=0, second=0, microsecond=0)
-    day = t.replace(hour=0, minute=0, second=0, microsecond=0)
-    if unit == "day":
-        return day
-    if unit == "week":
-        return day - dt.timedelta(days=day.weekday())
-    if unit == "month":
-        return day.replace(day=1)
-    if unit == "quarter":
-        return day.replace(day=1, month=(day.month - 1) // 3 * 3 + 1)
-    if unit == "year":
-        return day.replace(day=1, month=1)
-    raise ValueError(unit)
-
-
-def _add_local(t: dt.datetime, unit: str, n: int) -> dt.datetime:
-    if unit == "day":
-        return t + dt.timedelta(days=n)
-    if unit == "week":
-        return t + dt.timedelta(days=7 * n)
-    months = {"month": 1, "quarter": 3, "year": 12}[unit] * n
-    m = t.month - 1 + months
-    return t.replace(year=t.year + m // 12, month=m % 12 + 1)
-
-
-def _units_between(a: dt.datetime, b: dt.datetime, unit: str) -> int:
-    """Whole calendar units from the bin start ``a`` to the bin start ``b`` (both truncated)."""
-    if unit in ("day", "week"):
-        return (b - a).days // (7 if unit == "week" else 1)
-    months = (b.year - a.year) * 12 + b.month - a.month
-    return months // {"month": 1, "quarter": 3, "year": 12}[unit]
-
-
-def _time_bin_start(k: Key, i: int) -> Any:
-    """The i-th bin start (epoch seconds, or a naive wall-clock time for calendar steps)."""
-    assert k.tstep is not None
-    if k.tstep.is_fixed:
-        return k.tstart + i * k.tstep.seconds
-    return _add_local(k.tstart, k.tstep.unit, i)
-
-
-def _time_bin_instant(k: Key, v: Any) -> dt.datetime:
-    if isinstance(v, dt.datetime):
-        return v.replace(tzinfo=zoneinfo.ZoneInfo(k.tz)).astimezone(dt.timezone.utc)
-    return dt.datetime.fromtimestamp(v, dt.timezone.utc)
 
 
 # =====================================================================================
@@ -1415,96 +404,15 @@ _YEAR9999_MICROS = 253_402_300_799_999_999
 def _trunc_micros(d: Dialect, k: Key) -> int | None:
     """The unit in microseconds when a ``trunc`` key groups by an integer (a fixed-length
     unit in UTC, or a sub-day unit in a zone whose offsets are whole units from some instant
-    on: ``_whole_offsets_from``; on a dialect with integer epoch microseconds), else None."""
+    on: ``planner.tzdb.whole_offsets_from``; on a dialect with integer epoch microseconds), else None."""
     if k.mode != "trunc" or k.spec.trunc not in _UNIT_MICROS:
         return None
     if k.tz != "UTC" and (k.spec.trunc not in SUB_DAY_UNITS
-                          or _whole_offsets_from(k.tz, _UNIT_MICROS[k.spec.trunc]) is None):
+                          or tzdb.whole_offsets_from(k.tz, _UNIT_MICROS[k.spec.trunc]) is None):
         return None
     if d.epoch_micros(d.column(k.col.name), k.col.kind) is None:
         return None
     return _UNIT_MICROS[k.spec.trunc]
-
-
-#: POSIX TZ rule (the TZif footer, RFC 8536 section 3.3): std name, offset, [dst name [offset]]
-_TZ_RULE = re.compile(r"^(?:<[^>]*>|[A-Za-z]+)([+-]?\d{1,3}(?::\d{2}){0,2})"
-                      r"(?:(?:<[^>]*>|[A-Za-z]+)([+-]?\d{1,3}(?::\d{2}){0,2})?)?(?:,.*)?$")
-
-
-def _rule_seconds(text: str) -> int:
-    sign = -1 if text.startswith("-") else 1
-    parts = [int(x) for x in text.lstrip("+-").split(":")] + [0, 0]
-    return sign * (parts[0] * 3600 + parts[1] * 60 + parts[2])
-
-
-@functools.lru_cache(maxsize=512)
-def _whole_offsets_from(tz: str, unit_us: int) -> int | None:
-    """Epoch microseconds from which every UTC offset of ``tz`` -- its transitions and the
-    rule after them, read from the zone's TZif file (RFC 8536) where zoneinfo finds it --
-    is a whole number of the unit (-_YEAR1_MICROS: always), or None (never, or unreadable).
-    From there on, the wall-clock remainder of an instant equals its UTC remainder, so
-    ``trunc`` (the instant minus that remainder) is the UTC floor."""
-    unit = unit_us // 1_000_000
-    try:
-        data = _tzif_bytes(tz)
-        times, offsets, rule = _read_tzif(data)
-    except (OSError, ValueError, struct.error):
-        return None
-    if rule:
-        m = _TZ_RULE.match(rule)
-        if m is None:
-            return None
-        std = _rule_seconds(m.group(1))
-        dst = _rule_seconds(m.group(2)) if m.group(2) else std - 3600
-        if std % unit or dst % unit:
-            return None
-    # offsets[0] holds before times[0], offsets[i + 1] from times[i] on
-    bad = [i for i, off in enumerate(offsets) if off % unit]
-    if not bad:
-        return -_YEAR1_MICROS
-    last = bad[-1]
-    if last >= len(times):  # the offset in force after the last transition
-        return None
-    return max(times[last] * 1_000_000, -_YEAR1_MICROS)
-
-
-def _tzif_bytes(tz: str) -> bytes:
-    """The TZif file of ``tz``, searched like zoneinfo: TZPATH, then the tzdata package."""
-    parts = tz.split("/")
-    if any(p in ("", ".", "..") for p in parts):
-        raise ValueError(tz)
-    for root in zoneinfo.TZPATH:
-        path = os.path.join(root, *parts)
-        if os.path.isfile(path):
-            with open(path, "rb") as f:
-                return f.read()
-    import importlib.resources
-
-    return importlib.resources.files("tzdata").joinpath("zoneinfo", *parts).read_bytes()
-
-
-def _read_tzif(data: bytes) -> tuple[list[int], list[int], str]:
-    """(transition times in epoch seconds, the UTC offset before the first and after each
-    transition, the footer rule) of a version 2+ TZif file (RFC 8536: the v1 block is
-    skipped, the 64-bit block read)."""
-    def header(at: int) -> tuple[int, ...]:
-        if data[at:at + 4] != b"TZif" or data[at + 4] < ord("2"):
-            raise ValueError("not a version 2+ TZif file")
-        return struct.unpack(">6l", data[at + 20:at + 44])
-
-    isut, isstd, leap, timecnt, typecnt, charcnt = header(0)
-    at = 44 + timecnt * 5 + typecnt * 6 + charcnt + leap * 8 + isstd + isut
-    isut, isstd, leap, timecnt, typecnt, charcnt = header(at)
-    at += 44
-    times = list(struct.unpack(f">{timecnt}q", data[at:at + 8 * timecnt]))
-    at += 8 * timecnt
-    idx = list(data[at:at + timecnt])
-    at += timecnt
-    utoff = [struct.unpack(">l", data[at + 6 * i:at + 6 * i + 4])[0] for i in range(typecnt)]
-    at += 6 * typecnt + charcnt + leap * 12 + isstd + isut
-    footer = data[at:].split(b"\n")
-    rule = footer[1].decode("ascii") if len(footer) > 2 else ""
-    return times, [utoff[0]] + [utoff[i] for i in idx], rule
 
 
 def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
@@ -1523,7 +431,7 @@ def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
     if k.tz != "UTC":
         # a zone: the bin start in epoch microseconds; from the instant on which the zone's
         # offsets are whole units the UTC floor, before it the wall-clock form
-        since = _whole_offsets_from(k.tz, unit_us)
+        since = tzdb.whole_offsets_from(k.tz, unit_us)
         assert since is not None
         start = exp.Sub(this=exp.Mul(this=idx, expression=d.number(unit_us)),
                         expression=d.number(_YEAR1_MICROS))

@@ -54,7 +54,7 @@ becomes a typed timestamp literal). Division is always true division (``CAST(a A
 NULLIF(b, 0)``) and ``%`` needs integers (``a % NULLIF(b, 0)``), so ``x / 0`` is NULL on every
 engine instead of an error on some and infinity on others.
 
-This module is pure (no I/O); the service calls it through ``planner.compile``.
+This module is pure (no I/O); the service calls it through ``planner.where``.
 """
 
 from __future__ import annotations
@@ -70,6 +70,7 @@ from sqlglot.tokens import TokenType
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, nearest, pointer
 from planner.schema import ColumnInfo, SourceSchema
+from planner.values import _parse_instant  # one ISO 8601 reading for where and filter_sql
 
 #: Read dialect of the text: DuckDB-flavoured generic SQL.
 READ_DIALECT = "duckdb"
@@ -151,8 +152,6 @@ class _Builder:
             raise self._refuse(node, what)
 
     def _instant(self, t: _Typed, kind: str, node: exp.Expression) -> exp.Expression:
-        from planner.compile import _parse_instant  # one ISO 8601 reading for where and filter_sql
-
         assert t.literal_text is not None
         try:
             value = _parse_instant(t.literal_text, PTR, self.tz)

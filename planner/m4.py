@@ -33,12 +33,11 @@ from typing import TYPE_CHECKING, Any
 
 from sqlglot import exp
 
+from planner import names
 from planner.errors import PlanError, Unsupported, pointer
 
-if TYPE_CHECKING:  # no import cycle at run time: compile imports this module
-    from planner.compile import Plan
-
-PREFIX = "_sluice_"
+if TYPE_CHECKING:
+    from planner.plan import Plan
 
 
 def check(plan: "Plan") -> None:
@@ -110,17 +109,17 @@ def extents_statement(plan: "Plan") -> exp.Select:
     kx, _ = _xy(plan)
     d = plan.dialect
     xv = _x_number(plan, d.column(kx.col.name, "s"))
-    return (exp.select(exp.alias_(exp.Min(this=xv), f"{PREFIX}m4_min", quoted=True),
-                       exp.alias_(exp.Max(this=xv.copy()), f"{PREFIX}m4_max", quoted=True),
-                       exp.alias_(exp.Count(this=exp.Star()), f"{PREFIX}m4_n", quoted=True))
+    return (exp.select(exp.alias_(exp.Min(this=xv), names.m4("min"), quoted=True),
+                       exp.alias_(exp.Max(this=xv.copy()), names.m4("max"), quoted=True),
+                       exp.alias_(exp.Count(this=exp.Star()), names.m4("n"), quoted=True))
             .from_(exp.alias_(d.table(plan.schema.table), "s", quoted=True))
             .where(_filtered(plan)))
 
 
 def layout(row: dict[str, Any] | None) -> tuple[float | None, float | None, int]:
     row = row or {}
-    lo, hi = row.get(f"{PREFIX}m4_min"), row.get(f"{PREFIX}m4_max")
-    n = int(row.get(f"{PREFIX}m4_n") or 0)
+    lo, hi = row.get(names.m4("min")), row.get(names.m4("max"))
+    n = int(row.get(names.m4("n")) or 0)
     return (None if lo is None else float(lo)), (None if hi is None else float(hi)), n
 
 
@@ -166,31 +165,31 @@ def main_statement(plan: "Plan", row: dict[str, Any] | None) -> exp.Select:
         exp.alias_(exp.Max(this=xa.copy()), "x4", quoted=True),
         exp.alias_(exp.ArgMax(this=ya.copy(), expression=xa.copy()), "y4", quoted=True),
         exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True))
-        .from_(exp.Table(this=ident(f"{PREFIX}m4_base")))
+        .from_(exp.Table(this=ident(names.m4("base"))))
         .group_by(col("px")))
     parts = [exp.select(exp.alias_(col(f"x{i}"), "x", quoted=True),
                         exp.alias_(col(f"y{i}"), "y", quoted=True))
-             .from_(exp.Table(this=ident(f"{PREFIX}m4_cols"))) for i in (1, 2, 3, 4)]
+             .from_(exp.Table(this=ident(names.m4("cols")))) for i in (1, 2, 3, 4)]
     points: exp.Expression = parts[0]
     for p in parts[1:]:
         points = exp.union(points, p, distinct=False)
     distinct = exp.select(col("x"), col("y")).distinct().from_(
         exp.Subquery(this=points, alias=exp.TableAlias(this=ident("p"))))
     total = exp.Subquery(this=exp.select(exp.Sum(this=col("n")))
-                         .from_(exp.Table(this=ident(f"{PREFIX}m4_cols"))))
+                         .from_(exp.Table(this=ident(names.m4("cols")))))
     xname, yname = kx.names[0], ky.names[0]
     outer = (exp.select(
         exp.alias_(col("x"), xname, quoted=True),
         exp.alias_(col("y"), yname, quoted=True),
-        exp.alias_(total, f"{PREFIX}matched", quoted=True),
-        exp.alias_(exp.Window(this=exp.Count(this=exp.Star())), f"{PREFIX}groups", quoted=True))
-        .from_(exp.Table(this=ident(f"{PREFIX}m4_points")))
+        exp.alias_(total, names.matched(), quoted=True),
+        exp.alias_(exp.Window(this=exp.Count(this=exp.Star())), names.groups(), quoted=True))
+        .from_(exp.Table(this=ident(names.m4("points"))))
         .order_by(exp.Ordered(this=col("x"), nulls_first=False),
                   exp.Ordered(this=col("y"), nulls_first=False))
         .limit(d.number(4 * w)))
-    outer = outer.with_(ident(f"{PREFIX}m4_base"), as_=base)
-    outer = outer.with_(ident(f"{PREFIX}m4_cols"), as_=agg)
-    outer = outer.with_(ident(f"{PREFIX}m4_points"), as_=distinct)
+    outer = outer.with_(ident(names.m4("base")), as_=base)
+    outer = outer.with_(ident(names.m4("cols")), as_=agg)
+    outer = outer.with_(ident(names.m4("points")), as_=distinct)
     return outer
 
 

@@ -2,7 +2,7 @@
 
 The JSON Schema of ``ChartRequest`` is published in the OpenAPI document. Type checks that
 need the source's schema (bin on text, avg of a string, unknown columns) happen later in
-``planner.compile``; this module checks the shape of the request on its own.
+``planner.bind``; this module checks the shape of the request on its own.
 """
 
 from __future__ import annotations

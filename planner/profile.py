@@ -31,6 +31,7 @@ from dataclasses import dataclass
 from sqlglot import exp
 
 from planner.errors import PlanError, nearest
+from planner.names import INTERNAL
 from planner.schema import ColumnInfo, SourceSchema
 
 #: most frequent values returned by default for text and boolean columns
@@ -38,7 +39,7 @@ DEFAULT_TOP = 20
 MAX_TOP = 100
 PROFILE_KINDS = frozenset({"integer", "double", "decimal", "string", "boolean", "timestamp",
                            "timestamptz", "date"})
-P = "_sluice_"  # prefix of every output name (never a user column)
+P = INTERNAL  # prefix of every output name (never a user column)
 VALUE, COUNT, ROWS, NULLS, DISTINCT, LO, HI, RANK = (
     f"{P}value", f"{P}count", f"{P}rows", f"{P}nulls", f"{P}distinct", f"{P}min", f"{P}max",
     f"{P}rank")

@@ -18,7 +18,7 @@ ROOT = Path(__file__).resolve().parent.parent
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from planner.compile import prepare  # noqa: E402
+from planner.compile import finish, prepare  # noqa: E402
 from planner.dialects import get_dialect  # noqa: E402
 from planner.errors import Unsupported  # noqa: E402
 from planner.model import ChartRequest  # noqa: E402
@@ -98,7 +98,7 @@ def render(dialect_name: str, case: str) -> tuple[str, str]:
         plan = prepare(ChartRequest.model_validate({"source": "sales", **body}), SCHEMA, dialect)
     except Unsupported as e:
         return "refused", e.detail + "\n"
-    plan.finish(extents)
+    finish(plan, extents)
     return "sql", plan.main_sql + ";\n"
 
 

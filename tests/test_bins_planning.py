@@ -15,7 +15,7 @@ import time
 import pytest
 import sqlglot
 
-from planner.compile import prepare
+from planner.compile import finish, prepare
 from planner.dialects import DIALECTS
 from planner.model import ChartRequest
 from planner.schema import ColumnInfo, SourceSchema
@@ -39,7 +39,7 @@ def _plan_ms(body: dict, dialect: str) -> tuple[float, str]:
     gc.disable()  # a collection of unrelated garbage is not planning time
     try:
         t0 = time.process_time()
-        plan = prepare(req, SCHEMA, DIALECTS[dialect]).finish({})
+        plan = finish(prepare(req, SCHEMA, DIALECTS[dialect]), {})
         sql = plan.main_sql
         return (time.process_time() - t0) * 1000.0, sql
     finally:

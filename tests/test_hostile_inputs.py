@@ -27,7 +27,7 @@ from pathlib import Path
 
 import pytest
 
-from planner.compile import bind_sql, bind_values, prepare
+from planner.compile import bind_sql, bind_values, finish, prepare
 from planner.dialects import get_dialect
 from planner.model import MAX_FILTER_DEPTH, ChartRequest
 
@@ -419,8 +419,8 @@ def _literal_and_param(service, engine: str, body: dict):
     entry = service.catalog.entry(engine)
     eng = service.catalog.engine(engine)
     d = get_dialect(eng.dialect)
-    lit = prepare(req, entry.schema, d).finish(None)
-    par = prepare(req, entry.schema, d, params=True).finish(None)
+    lit = finish(prepare(req, entry.schema, d), None)
+    par = finish(prepare(req, entry.schema, d, params=True), None)
     sql, args = bind_sql(par.main_sql, bind_values(req, entry.schema, d), d.param_form[1])
     assert "\x00" not in sql
     return eng.execute(lit.main_sql), eng.execute(sql, args) if args else eng.execute(sql), len(args)

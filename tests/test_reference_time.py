@@ -534,7 +534,7 @@ def test_utc_trunc_before_1970_and_at_years_1_and_9999(edge_service, unit, colum
 
 #: zones with offsets that are not whole hours (or minutes) before some year, half-hour and
 #: 45-minute zones, a half-hour DST shift (Lord Howe): sub-day trunc in these zones is the UTC
-#: floor only where every offset is a whole unit (planner/compile.py _whole_offsets_from)
+#: floor only where every offset is a whole unit (planner/tzdb.py whole_offsets_from)
 ZONE_CASES = ["America/New_York", "Europe/Amsterdam", "Asia/Kolkata", "Asia/Kathmandu",
               "Australia/Lord_Howe", "Africa/Monrovia", "Europe/Berlin"]
 

@@ -1,0 +1,311 @@
+"""The bind stage: request + source schema + dialect -> the checked ``Plan``.
+
+Every name is resolved against the schema (unknown names get the nearest valid ones),
+every option is checked once, against the column's kind and the dialect's capabilities,
+with the request's JSON pointer; ``where`` becomes one sqlglot condition
+(``planner.where``); output names are assigned (unique ignoring case, within the dialect's
+identifier limits). An M4 reduction is checked by ``planner.m4.check``. In:
+``ChartRequest``, ``SourceSchema``, ``Dialect``; out: a ``Plan`` without statements (its
+bin layouts open: ``planner.layout``; its SQL: ``planner.compile``). Pure (no I/O).
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+from typing import Any
+
+from planner import aggregates, m4
+from planner.dialects.base import Dialect
+from planner.errors import PlanError, Unsupported, pointer
+from planner.filter_sql import compile_filter_sql
+from planner.model import Channel, ChartRequest
+from planner.names import INTERNAL
+from planner.plan import Key, Measure, OutputColumn, Plan
+from planner.schema import SourceSchema
+from planner.values import _check_tz, _parse_instant, _resolve
+from planner.where import _compile_where
+
+
+def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
+         params: bool = False) -> Plan:
+    """The checked plan of ``request`` over ``schema`` for ``dialect`` (no statements yet).
+    ``params``: long ``in`` / ``not_in`` lists and comparison values become bound
+    parameters (see ``Dialect.param_form``) instead of literals, so the SQL text does not
+    depend on their values."""
+    keys: list[Key] = []
+    measures: list[Measure] = []
+    request_tz = _check_tz(request.tz, pointer("tz"))
+    for path, channel, ch in request.keyed_channels():
+        if ch.is_measure and channel in ("row", "col"):
+            raise PlanError(pointer(*path, "agg"), f"facet {channel} must be a key (a column), "
+                            "not a measure (agg)")
+        if ch.is_measure:
+            measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect,
+                                           request_tz))
+        else:
+            keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
+                                   request_tz))
+    slots: list[Any] | None = [] if params and dialect.param_form is not None else None
+    where = _compile_where(request, schema, dialect, slots)
+    plan = Plan(request, schema, dialect, keys, measures, where, slots=len(slots or ()))
+    _check_options(plan)
+    _assign_names(plan)
+    if request.reduce is not None:  # M4 line reduction: planner/m4.py
+        m4.check(plan)
+    return plan
+
+
+def _check_measure(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
+                   d: Dialect, request_tz: str = "UTC") -> Measure:
+    entry = aggregates.get(ch.agg)  # what the aggregate accepts: planner/aggregates.py
+    col = None
+    if ch.column is not None:
+        col = _resolve(ch.column, schema, pointer(*path, "column"))
+        if not entry.accepts(col.kind):
+            raise PlanError(pointer(*path, "agg"),
+                            entry.mismatch.format(agg=ch.agg, column=col.name, kind=col.kind),
+                            slug="type-mismatch", title="Aggregate does not fit the column type")
+    if ch.tz is not None:
+        raise PlanError(pointer(*path, "tz"), "tz applies to temporal keys, not to a measure")
+    if entry.feature and not d.supports(entry.feature):
+        raise Unsupported(pointer(*path, "agg"), d.name, f"{ch.agg}")
+    condition = None
+    if ch.condition is not None:  # the allow-list of filter_sql, pointed at this field
+        try:
+            condition = compile_filter_sql(ch.condition, schema, d, tz=request_tz)
+        except PlanError as e:
+            raise PlanError(pointer(*path, "condition"),
+                            e.detail.replace("filter_sql", "condition"), slug=e.slug,
+                            title="condition is not allowed", status=e.status,
+                            suggestions=e.suggestions) from None
+    return Measure(i, path, channel, ch, col, condition=condition)
+
+
+def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
+               d: Dialect, request_tz: str = "UTC") -> Key:
+    assert ch.column is not None
+    col = _resolve(ch.column, schema, pointer(*path, "column"))
+    if col.kind == "other":
+        raise PlanError(pointer(*path, "column"),
+                        f"column {col.name!r} has type {col.sql_type}, which sluice cannot "
+                        "group by", slug="type-mismatch")
+    # a key's own tz, else the request's (the dashboard's zone), else UTC
+    tz = _check_tz(ch.tz, pointer(*path, "tz"), request_tz)
+    if ch.tz is not None and not col.is_temporal:
+        raise PlanError(pointer(*path, "tz"), f"tz applies to timestamps; {col.name!r} is {col.kind}",
+                        slug="type-mismatch")
+    if not col.is_temporal:
+        tz = "UTC"
+    uses_zone = ch.trunc is not None or ch.extract is not None or ch.bin is not None
+    if col.is_temporal and (uses_zone or ch.tz is not None) and tz != "UTC" \
+            and not d.supports("tz"):
+        raise Unsupported(pointer(*path, "tz") if ch.tz is not None else pointer("tz"),
+                          d.name, "time zone conversion")
+    if ch.top is not None and col.kind != "string":
+        raise PlanError(pointer(*path, "top"),
+                        f"top keeps the largest text categories; {col.name!r} is {col.kind}",
+                        slug="type-mismatch")
+    if ch.top is not None and not d.supports("window"):
+        raise Unsupported(pointer(*path, "top"), d.name, "top (needs window functions)")
+    if ch.trunc is not None:
+        if not col.is_temporal:
+            raise PlanError(pointer(*path, "trunc"),
+                            f"trunc needs a timestamp or date column; {col.name!r} is {col.kind}",
+                            slug="type-mismatch", title="Option does not fit the column type")
+        if ch.trunc == "week" and not d.supports("trunc_week"):
+            raise Unsupported(pointer(*path, "trunc"), d.name, "ISO week truncation")
+        return Key(i, path, channel, ch, col, "trunc", tz)
+    if ch.extract is not None:
+        if not col.is_temporal:
+            raise PlanError(pointer(*path, "extract"),
+                            f"extract needs a timestamp or date column; {col.name!r} is {col.kind}",
+                            slug="type-mismatch", title="Option does not fit the column type")
+        if not d.supports("extract"):
+            raise Unsupported(pointer(*path, "extract"), d.name, "date part extraction")
+        return Key(i, path, channel, ch, col, "extract", tz)
+    if ch.bin is not None:
+        b = ch.bin
+        bp = pointer(*path, "bin")
+        if col.is_number:
+            need = {"scott": "stddev", "fd": "quantile"}.get(b.rule or "")
+            if need and not d.supports(need):
+                what = "standard deviation" if need == "stddev" else "exact quantiles"
+                raise Unsupported(pointer(*path, "bin", "rule"), d.name,
+                                  f"bin rule {b.rule} (needs {what})")
+            key = Key(i, path, channel, ch, col, "nbin", tz)
+            if b.limits is not None:
+                lo, hi = b.limits
+                if isinstance(lo, str) or isinstance(hi, str):
+                    raise PlanError(pointer(*path, "bin", "limits"),
+                                    f"limits on the number column {col.name!r} must be numbers",
+                                    slug="type-mismatch")
+                if not (math.isfinite(lo) and math.isfinite(hi) and math.isfinite(hi - lo)) \
+                        or not lo < hi:
+                    raise PlanError(pointer(*path, "bin", "limits"),
+                                    "limits must be finite numbers [lo, hi] with lo < hi")
+                if not (hi - lo >= sys.float_info.min
+                        and hi - lo >= 64 * math.ulp(max(abs(lo), abs(hi)))):
+                    # e.g. [0, 5e-324]: no two distinct bin edges fit between them
+                    raise PlanError(pointer(*path, "bin", "limits"),
+                                    f"limits [{lo!r}, {hi!r}] are too close together to hold "
+                                    "distinct bin edges", slug="bad-layout")
+                key.nlimits = (float(lo), float(hi))
+            return key
+        if col.is_temporal:
+            if b.width is not None or b.rule is not None:
+                what = "width" if b.width is not None else "rule"
+                raise PlanError(pointer(*path, "bin", what),
+                                f"{what} bins numbers; on the timestamp {col.name!r} use "
+                                "bins (a calendar step is chosen) or trunc", slug="type-mismatch")
+            key = Key(i, path, channel, ch, col, "tbin", tz)
+            if b.limits is not None:
+                # offset-less limits are wall-clock times of the key's zone
+                lo_t = _parse_instant(b.limits[0], pointer(*path, "bin", "limits", 0), tz)
+                hi_t = _parse_instant(b.limits[1], pointer(*path, "bin", "limits", 1), tz)
+                if not lo_t < hi_t:
+                    raise PlanError(pointer(*path, "bin", "limits"), "limits need lo < hi")
+                key.tlimits = (lo_t, hi_t)
+            return key
+        raise PlanError(bp, f"bin needs a number or timestamp column; {col.name!r} is "
+                        f"{col.kind} (text and booleans group as categories without bin)",
+                        slug="type-mismatch", title="Option does not fit the column type")
+    return Key(i, path, channel, ch, col, "plain", tz)
+
+
+def _check_options(plan: Plan) -> None:
+    req, d = plan.request, plan.dialect
+    present = {k.channel for k in plan.keys} | {m.channel for m in plan.measures}
+    for i, s in enumerate(req.sort):
+        if s.channel not in present:
+            raise PlanError(pointer("sort", i, "channel"),
+                            f"sort names channel {s.channel!r}, which the request does not use "
+                            f"(it uses {', '.join(sorted(present))})")
+    if req.stack is not None:
+        if not d.supports("window"):
+            raise Unsupported(pointer("stack"), d.name, "stack (needs window functions)")
+        ch = req.channels
+        if ch.y is not None and ch.y.is_measure:
+            plan.stack_measure = next(m for m in plan.measures if m.channel == "y")
+        elif ch.x is not None and ch.x.is_measure:
+            plan.stack_measure = next(m for m in plan.measures if m.channel == "x")
+        else:
+            raise PlanError(pointer("stack"), "stack needs a measure (agg) on y or on x")
+        m = plan.stack_measure
+        if not m.aggregate.stacks:
+            raise PlanError(pointer(*m.path, "agg"),
+                            f"stack cannot pile {m.spec.agg} values (a pile of them means "
+                            f"nothing): stack a count, sum or other additive measure on "
+                            f"{m.channel}, or drop stack")
+    if req.facet is not None and req.facet.max_groups is not None and not d.supports("window"):
+        raise Unsupported(pointer("facet", "max_groups"), d.name, "max_groups (window functions)")
+    if req.empty_bins != "omit" and not any(k.binned for k in plan.keys):
+        raise PlanError(pointer("empty_bins"), "empty_bins needs a binned key (a channel with bin)")
+    if req.empty_bins != "omit":
+        for k in plan.keys:
+            if k.binned and k.spec.bin is not None and k.spec.bin.width is not None \
+                    and k.spec.bin.limits is None:
+                raise PlanError(pointer(*k.path, "bin", "limits"),
+                                "empty_bins with a fixed width needs limits (the bins to emit)")
+    for m in plan.measures:
+        if m.aggregate.approximate:
+            plan.approximate.append(m.internal)
+
+
+def _assign_names(plan: Plan) -> None:
+    """Output names, unique IGNORING CASE: DuckDB, SQLite and MariaDB compare identifiers
+    case-insensitively even when quoted (MariaDB with Unicode case folding: 'ǅ' = 'ǆ'), so
+    'depot' and 'Depot' would be one column there. ``str.casefold`` (Unicode full case
+    folding) without U+0307 COMBINING DOT ABOVE is at least as strict as each of them
+    (measured on MariaDB 10/11: 'i' = 'İ', which casefolds to 'i' + U+0307; 'ß' != 's',
+    'é' != 'e'); a clash gets ``<channel>_`` prefixed, then ``_2``, ``_3``, ..."""
+    taken: set[str] = set()
+
+    def fold(name: str) -> str:
+        return name.casefold().replace("\u0307", "")
+
+    def free(name: str) -> bool:
+        folded = fold(name)
+        return folded not in taken and not folded.startswith(INTERNAL)
+
+    def claim(want: str, channel: str) -> str:
+        name = want
+        if not free(name):
+            name = f"{channel}_{want}"
+        n = 2
+        base = name
+        while not free(name):
+            name = f"{base}_{n}"
+            n += 1
+        taken.add(fold(name))
+        return name
+
+    # name in request order: x, y, color, size, shape, opacity, by[i], row, col
+    for it in sorted(plan.keys + plan.measures, key=lambda x: _path_rank(x.path)):
+        spec = it.spec
+        label = it.label if isinstance(it, Key) else it.channel
+        if isinstance(it, Measure):
+            it.name = claim(spec.name or _measure_name(spec), label)
+            plan.columns.append(OutputColumn(it.name, it.channel, "measure", spec.column))
+        elif it.binned:
+            if spec.name:
+                names = (claim(f"{spec.name}_lo", label), claim(f"{spec.name}_hi", label))
+            else:
+                names = (claim(f"{label}_lo", label), claim(f"{label}_hi", label))
+            it.names = names
+            plan.columns.append(OutputColumn(names[0], it.channel, "bin_lo", spec.column))
+            plan.columns.append(OutputColumn(names[1], it.channel, "bin_hi", spec.column))
+        else:
+            want = spec.name or (f"{spec.column}_{spec.extract}" if it.mode == "extract"
+                                 else str(spec.column))
+            it.names = (claim(want, label),)
+            plan.columns.append(OutputColumn(it.names[0], it.channel, "key", spec.column))
+    if plan.stack_measure is not None:
+        m = plan.stack_measure
+        plan.columns.append(OutputColumn(claim(f"{m.name}_base", m.channel), m.channel,
+                                         "stack_base", m.spec.column))
+        plan.columns.append(OutputColumn(claim(f"{m.name}_top", m.channel), m.channel,
+                                         "stack_top", m.spec.column))
+    _check_name_lengths(plan)
+
+
+def _check_name_lengths(plan: Plan) -> None:
+    d = plan.dialect
+    # dialect data: identifier caps (engines that cut longer names) and BMP-only identifiers
+    # (MariaDB/MySQL: a name with U+10000 or above is error 1300 "Invalid utf8mb4 character")
+    cap = d.max_identifier_bytes
+    if cap is None and not d.identifiers_bmp_only:
+        return
+    stack = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
+    items = [(k.path, k.spec, list(k.names)) for k in plan.keys]
+    items += [(m.path, m.spec, [m.name] + (stack if m is plan.stack_measure else []))
+              for m in plan.measures]
+    for path, spec, names in items:
+        for n in names:
+            if d.identifiers_bmp_only and any(ord(c) > 0xFFFF for c in n):
+                raise PlanError(pointer(*path, "name" if spec.name else "column"),
+                                f"output column name {n!r} has a character beyond U+FFFF; "
+                                f"{d.name} identifiers cannot hold one (MariaDB/MySQL keep "
+                                "names in utf8mb3): give the channel another name",
+                                slug="bad-name")
+            if cap is not None and len(n.encode("utf-8")) > cap:
+                raise PlanError(pointer(*path, "name" if spec.name else "column"),
+                                f"output column name {n!r} is longer than the {cap} bytes "
+                                f"{d.name} keeps; give the channel a shorter name",
+                                slug="name-too-long")
+
+
+def _path_rank(path: tuple) -> tuple:
+    order = {"x": 0, "y": 1, "color": 2, "size": 3, "shape": 4, "opacity": 5, "by": 6,
+             "row": 7, "col": 8}
+    return (order[path[1]], path[2] if len(path) > 2 else 0)
+
+
+def _measure_name(ch: Channel) -> str:
+    if ch.column is None:  # count(*), share of a condition
+        return str(ch.agg)
+    if ch.agg == "quantile":
+        q = ch.q if ch.q is not None else 0.5
+        pct = f"{q * 100:g}".replace(".", "_")
+        return f"p{pct}_{ch.column}"
+    return f"{ch.agg}_{ch.column}"
