@@ -176,8 +176,14 @@ def _utc_text_fragment(arr: pa.ChunkedArray) -> orjson.Fragment | None:
 
 
 def instant_text(v: dt.datetime | None, tz: str | None) -> str | None:
+    """One instant's text, as ``timestamps_to_text`` writes it in a microsecond column (a
+    naive datetime is UTC). In UTC a ``datetime``'s own ISO text is the same (four-digit
+    year, the fraction only when there is one) without building an array."""
     if v is None:
         return None
+    if type(v) is dt.datetime and (tz or "UTC") == "UTC":
+        u = v.replace(tzinfo=dt.timezone.utc) if v.tzinfo is None else v.astimezone(dt.timezone.utc)
+        return u.isoformat()[:-6] + "Z"  # (drops "+00:00")
     arr = pa.chunked_array([pa.array([v], pa.timestamp("us", tz="UTC"))])
     return timestamps_to_text(arr, tz)[0]
 

@@ -15,7 +15,7 @@ import orjson
 import pyarrow as pa
 import pytest
 
-from app.encode import column_values, dumps, timestamps_to_text, wire_values
+from app.encode import column_values, dumps, instant_text, timestamps_to_text, wire_values
 
 PER_SECOND = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}
 #: 0001-01-01T00:00:00Z .. 9999-12-31T23:59:59Z in seconds
@@ -122,3 +122,23 @@ def test_random_doubles_match_python_values() -> None:
     values = bits.view(np.float64)
     col = pa.chunked_array([pa.array(values)])
     assert dumps(wire_values(col)) == orjson.dumps(values.tolist())
+
+
+def test_instant_text_matches_numpy() -> None:
+    """One instant (bin edges, domains): numpy's text of its UTC instant, whatever zone the
+    datetime carries (a naive one is UTC)."""
+    import zoneinfo
+
+    rng = np.random.default_rng(13)
+    zones = [None, dt.timezone.utc, zoneinfo.ZoneInfo("Asia/Kathmandu"),
+             dt.timezone(dt.timedelta(hours=-3, minutes=-30))]
+    epoch = dt.datetime(1970, 1, 1)
+    for i, (secs, us) in enumerate(zip(rng.integers(FIRST + 86_400, LAST - 86_400, 3_000),
+                                       rng.integers(0, 1_000_000, 3_000))):
+        us = int(us) if i % 2 else 0
+        naive = epoch + dt.timedelta(seconds=int(secs), microseconds=us)
+        zone = zones[i % len(zones)]
+        v = naive if zone is None else naive.replace(tzinfo=dt.timezone.utc).astimezone(zone)
+        expected = np.datetime_as_string(np.datetime64(naive, "us"), unit="us" if us else "s") + "Z"
+        assert instant_text(v, None) == expected
+        assert instant_text(v, "UTC") == expected
