@@ -53,18 +53,95 @@ def normalize_column(arr: pa.ChunkedArray) -> pa.ChunkedArray:
     return arr
 
 
+#: seconds per timestamp unit, and the fraction digits RFC 3339 text shows for it
+_PER_SECOND = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}
+_FRACTION_DIGITS = {"s": 0, "ms": 3, "us": 6, "ns": 9}
+#: the instants with a four-digit year (0001-01-01T00:00:00Z .. 9999-12-31T23:59:59Z), seconds
+_TEXT_SECONDS = (-62_135_596_800, 253_402_300_799)
+
+
+def _utc_text_matrix(arr: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray | None] | None:
+    """The RFC 3339 UTC text of a timestamp column as one ASCII row per value (an
+    ``(n, width)`` uint8 matrix, ``YYYY-MM-DDTHH:MM:SS[.f]Z``) and its validity (None: no
+    nulls), computed with integer arithmetic on the whole column (~10x faster than
+    ``numpy.datetime_as_string``, which formats value by value). Fraction digits as the
+    unit's, and only when some value has a fraction (as ``timestamps_to_text`` writes).
+    None when a year falls outside 0001..9999 (the caller then formats value by value).
+
+    The civil date of a day count is Hinnant's ``civil_from_days`` ("chrono-Compatible
+    Low-Level Date Algorithms", https://howardhinnant.github.io/date_algorithms.html)."""
+    unit = arr.type.unit
+    flat = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
+    ticks = flat.view(pa.int64())
+    valid = None
+    if flat.null_count:
+        valid = flat.is_valid().to_numpy(zero_copy_only=False)
+        ticks = pc.fill_null(ticks, 0)
+    v = ticks.to_numpy(zero_copy_only=False)
+    per = _PER_SECOND[unit]
+    secs = v // per if per > 1 else v
+    if len(v) and (secs.min() < _TEXT_SECONDS[0] or secs.max() > _TEXT_SECONDS[1]):
+        return None
+    frac = v - secs * per if per > 1 else None
+    digits = _FRACTION_DIGITS[unit] if frac is not None and frac.any() else 0
+    days = secs // 86_400
+    sod = (secs - days * 86_400).astype(np.int32)
+    z = days.astype(np.int32) + 719_468  # int32 from here: every day count of 0001..9999 fits
+    era = z // 146_097
+    doe = z - era * 146_097
+    yoe = (doe - doe // 1_460 + doe // 36_524 - doe // 146_096) // 365
+    doy = doe - (365 * yoe + yoe // 4 - yoe // 100)
+    mp = (5 * doy + 2) // 153
+    day = doy - (153 * mp + 2) // 5 + 1
+    month = np.where(mp < 10, mp + 3, mp - 9)
+    year = yoe + era * 400 + (month <= 2)
+    width = 20 + (digits + 1 if digits else 0)
+    out = np.empty((len(v), width), np.uint8)
+
+    def put(col: int, n: int, value: np.ndarray) -> None:
+        """``n`` decimal digits of ``value`` (int32, 0 <= value < 10**n) from column ``col``
+        (``value - 10 * (value // 10)``: numpy's ``%`` is several times slower)."""
+        for i in range(col + n - 1, col - 1, -1):
+            high = value // 10
+            out[:, i] = value - high * 10 + 48
+            value = high
+
+    put(0, 4, year)
+    put(5, 2, month)
+    put(8, 2, day)
+    hour = sod // 3_600
+    minute = (sod - hour * 3_600) // 60
+    put(11, 2, hour)
+    put(14, 2, minute)
+    put(17, 2, sod - hour * 3_600 - minute * 60)
+    out[:, 4] = out[:, 7] = ord("-")
+    out[:, 10] = ord("T")
+    out[:, 13] = out[:, 16] = ord(":")
+    if digits:
+        out[:, 19] = ord(".")
+        put(20, digits, frac.astype(np.int32))
+    out[:, width - 1] = ord("Z")
+    return out, valid
+
+
 def timestamps_to_text(arr: pa.ChunkedArray, tz: str | None) -> list[str | None]:
     """RFC 3339 text in ``tz`` (default: the zone of the Arrow type, else UTC)."""
     zone = tz or arr.type.tz or "UTC"
     unit = arr.type.unit
+    if zone == "UTC":
+        fast = _utc_text_matrix(arr)
+        if fast is not None:
+            text, valid = fast
+            out = text.view(f"S{text.shape[1]}").ravel().astype(f"U{text.shape[1]}").tolist()
+            if valid is not None:
+                return [t if m else None for t, m in zip(out, valid.tolist())]
+            return out
     shown = arr.cast(pa.timestamp(unit, tz=zone))
     if len(shown) and unit != "s":
         sub = pc.max(pc.subsecond(shown)).as_py()
         if not sub:
             shown = shown.cast(pa.timestamp("s", tz=zone), safe=False)
-    if zone == "UTC":  # numpy formats ~15x faster than pc.strftime (190 ms -> 13 ms, 17.5k values)
-        import numpy as np
-
+    if zone == "UTC":  # years outside 0001..9999: numpy writes them value by value
         naive = shown.cast(pa.timestamp(shown.type.unit)).combine_chunks()
         text_np = np.char.add(np.datetime_as_string(naive.to_numpy(zero_copy_only=False),
                                                     unit=shown.type.unit), "Z").tolist()
@@ -74,14 +151,39 @@ def timestamps_to_text(arr: pa.ChunkedArray, tz: str | None) -> list[str | None]
         return text_np
     text = pc.strftime(shown, format="%Y-%m-%dT%H:%M:%S%z")
     text = pc.replace_substring_regex(text, pattern=r"([+-]\d\d)(\d\d)$", replacement=r"\1:\2")
-    if zone == "UTC":
-        text = pc.replace_substring_regex(text, pattern=r"\+00:00$", replacement="Z")
     return text.to_pylist()
 
 
+def _utc_text_fragment(arr: pa.ChunkedArray) -> orjson.Fragment | None:
+    """``orjson.dumps(timestamps_to_text(arr, "UTC"))`` as a ready JSON array, byte for
+    byte, without a Python string per value (None: see ``_utc_text_matrix``)."""
+    fast = _utc_text_matrix(arr)
+    if fast is None:
+        return None
+    text, valid = fast
+    n, width = text.shape
+    if not n:
+        return orjson.Fragment(b"[]")
+    quoted = np.empty((n, width + 3), np.uint8)  # "text",
+    quoted[:, 0] = quoted[:, width + 1] = ord('"')
+    quoted[:, 1:width + 1] = text
+    quoted[:, width + 2] = ord(",")
+    if valid is None:
+        return orjson.Fragment(b"[" + quoted.tobytes()[:-1] + b"]")
+    items = quoted[:, :width + 2].view(f"S{width + 2}").ravel().tolist()
+    return orjson.Fragment(b"[" + b",".join(t if m else b"null" for t, m in
+                                            zip(items, valid.tolist())) + b"]")
+
+
 def instant_text(v: dt.datetime | None, tz: str | None) -> str | None:
+    """One instant's text, as ``timestamps_to_text`` writes it in a microsecond column (a
+    naive datetime is UTC). In UTC a ``datetime``'s own ISO text is the same (four-digit
+    year, the fraction only when there is one) without building an array."""
     if v is None:
         return None
+    if type(v) is dt.datetime and (tz or "UTC") == "UTC":
+        u = v.replace(tzinfo=dt.timezone.utc) if v.tzinfo is None else v.astimezone(dt.timezone.utc)
+        return u.isoformat()[:-6] + "Z"  # (drops "+00:00")
     arr = pa.chunked_array([pa.array([v], pa.timestamp("us", tz="UTC"))])
     return timestamps_to_text(arr, tz)[0]
 
@@ -96,11 +198,24 @@ def column_values(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any]:
 
 
 def wire_values(arr: pa.ChunkedArray, tz: str | None = None) -> Any:
-    """``column_values`` for the JSON body: a decimal column becomes one raw JSON array of
-    its exact digits, formatted by Arrow (no Python ``Decimal`` per value: 10x faster)."""
-    if pa.types.is_decimal(arr.type) and arr.type.scale >= 0:
+    """``column_values`` for the JSON body, the same bytes once encoded (``dumps``), without
+    a Python object per value where it can: a decimal column becomes one raw JSON array of
+    its exact digits, formatted by Arrow (no Python ``Decimal`` per value: 10x faster); UTC
+    timestamps one raw array of their text (``_utc_text_fragment``); integers, booleans
+    without nulls and float64 a numpy array (orjson writes numpy's int64/float64/bool as it
+    writes Python's int/float/bool; a NaN or a null float is ``null`` either way; not
+    float32: its Python float has more digits)."""
+    t = arr.type
+    if pa.types.is_decimal(t) and t.scale >= 0:
         text = pc.fill_null(arr.cast(pa.string()), "null").to_pylist()
         return orjson.Fragment(("[" + ",".join(text) + "]").encode())
+    if pa.types.is_timestamp(t) and (tz or t.tz or "UTC") == "UTC":
+        fragment = _utc_text_fragment(arr)
+        if fragment is not None:
+            return fragment
+    if pa.types.is_float64(t) or ((pa.types.is_integer(t) or pa.types.is_boolean(t))
+                                  and arr.null_count == 0):
+        return arr.to_numpy()
     return column_values(arr, tz)
 
 

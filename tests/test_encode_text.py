@@ -1,0 +1,144 @@
+"""The JSON body's vectorised encodings (app/encode.py) write what a value-by-value encoder
+writes, byte for byte.
+
+References outside the project: numpy's ``datetime_as_string`` for the RFC 3339 UTC text of
+every timestamp unit (Python's ``datetime.isoformat`` for microseconds as a second one), and
+orjson on plain Python values (``Array.to_pylist``) for the body bytes.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import numpy as np
+import orjson
+import pyarrow as pa
+import pytest
+
+from app.encode import column_values, dumps, instant_text, timestamps_to_text, wire_values
+
+PER_SECOND = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}
+#: 0001-01-01T00:00:00Z .. 9999-12-31T23:59:59Z in seconds
+FIRST, LAST = -62_135_596_800, 253_402_300_799
+
+
+def numpy_text(values: np.ndarray, unit: str, mask: np.ndarray) -> list[str | None]:
+    """numpy's ISO 8601 text + ``Z``; whole seconds when no value has a fraction."""
+    per = PER_SECOND[unit]
+    shown = unit if (values[~mask] % per).any() else "s"
+    as_dt = values.astype(f"datetime64[{unit}]")
+    text = np.datetime_as_string(as_dt, unit=shown).tolist()
+    return [None if m else t + "Z" for t, m in zip(text, mask.tolist())]
+
+
+def instants(rng: np.random.Generator, unit: str, n: int, whole: str) -> np.ndarray:
+    per = PER_SECOND[unit]
+    if unit == "ns":  # datetime64[ns] spans 1677..2262
+        v = rng.integers(-(2**63) + 1, 2**63 - 1, n, dtype=np.int64)
+    else:
+        v = rng.integers(FIRST * per, (LAST + 1) * per, n, dtype=np.int64)
+    if whole == "hour":
+        v = v // (3600 * per) * (3600 * per)
+    elif whole == "second":
+        v = v // per * per
+    return v
+
+
+@pytest.mark.parametrize("unit", ["s", "ms", "us", "ns"])
+@pytest.mark.parametrize("whole", ["hour", "second", "fraction"])
+@pytest.mark.parametrize("nulls", [False, True])
+def test_utc_text_matches_numpy(unit: str, whole: str, nulls: bool) -> None:
+    rng = np.random.default_rng([ord(c) for c in unit + whole] + [int(nulls)])
+    n = 5_000
+    v = instants(rng, unit, n, whole)
+    v[:4] = [0, -1 if whole == "fraction" else -PER_SECOND[unit], FIRST * PER_SECOND[unit]
+             if unit != "ns" else 0, LAST * PER_SECOND[unit] if unit != "ns" else 0]
+    mask = rng.random(n) < 0.1 if nulls else np.zeros(n, bool)
+    arr = pa.array(v, pa.timestamp(unit, tz="UTC"), mask=mask)
+    # two chunks, the first one sliced (an offset into its buffers)
+    col = pa.chunked_array([arr.slice(1, 2_000), arr.slice(2_001)])
+    keep = np.r_[1:2_001, 2_001:n]
+    expected = numpy_text(v[keep], unit, mask[keep])
+    assert timestamps_to_text(col, None) == expected
+    assert timestamps_to_text(col, "UTC") == expected
+    assert dumps({"x": wire_values(col, "UTC")}) == orjson.dumps({"x": expected})
+
+
+def test_utc_text_matches_isoformat() -> None:
+    rng = np.random.default_rng(11)
+    v = instants(rng, "us", 2_000, "fraction")
+    epoch = dt.datetime(1970, 1, 1, tzinfo=dt.timezone.utc)
+    expected = [(epoch + dt.timedelta(microseconds=int(x))).isoformat(timespec="microseconds")
+                .replace("+00:00", "Z") for x in v]
+    col = pa.chunked_array([pa.array(v, pa.timestamp("us", tz="UTC"))])
+    assert timestamps_to_text(col, None) == expected
+    assert dumps(wire_values(col)) == orjson.dumps(expected)
+
+
+def test_years_outside_four_digits() -> None:
+    """Year 0 and year 10000 (a min/max over a DuckDB TIMESTAMP can reach them): the
+    value-by-value path, still numpy's text."""
+    per = PER_SECOND["us"]
+    v = np.array([FIRST * per - 1, 0, (LAST + 1) * per], np.int64)
+    col = pa.chunked_array([pa.array(v, pa.timestamp("us", tz="UTC"))])
+    expected = numpy_text(v, "us", np.zeros(3, bool))
+    assert expected[0].startswith("0000-") and expected[2].startswith("10000-")
+    assert timestamps_to_text(col, None) == expected
+    assert dumps(wire_values(col)) == orjson.dumps(expected)
+
+
+def test_empty_and_all_null_timestamps() -> None:
+    t = pa.timestamp("us", tz="UTC")
+    for col in (pa.chunked_array([], t), pa.chunked_array([pa.array([None, None], t)])):
+        expected = [None] * len(col)
+        assert timestamps_to_text(col, None) == expected
+        assert dumps(wire_values(col)) == orjson.dumps(expected)
+
+
+@pytest.mark.parametrize("arr", [
+    pa.array([1, -2, 2**63 - 1, -(2**63)], pa.int64()),
+    pa.array([1, None, 3], pa.int64()),
+    pa.array([7, 8], pa.int16()),
+    pa.array([2**64 - 1, 0], pa.uint64()),
+    pa.array([0.1, -0.0, 1e16, 1e-7, 5e-324, 1.7976931348623157e308, float("nan"),
+              float("inf"), -float("inf"), None], pa.float64()),
+    pa.array([1.1, 2.675], pa.float32()),
+    pa.array([True, False]),
+    pa.array([True, None]),
+    pa.array(["a", None, "é"]),
+    pa.array([], pa.float64()),
+], ids=lambda a: str(a.type))
+def test_numbers_match_python_values(arr: pa.Array) -> None:
+    """numpy arrays in the body write what the column's Python values write (orjson: a
+    NaN or an infinity is ``null``, as a null is)."""
+    col = pa.chunked_array([arr[:1], arr[1:]], arr.type)
+    assert dumps(wire_values(col)) == orjson.dumps(arr.to_pylist())
+    assert dumps(column_values(col)) == orjson.dumps(arr.to_pylist())
+
+
+def test_random_doubles_match_python_values() -> None:
+    rng = np.random.default_rng(5)
+    bits = rng.integers(0, 2**64, 200_000, dtype=np.uint64)
+    values = bits.view(np.float64)
+    col = pa.chunked_array([pa.array(values)])
+    assert dumps(wire_values(col)) == orjson.dumps(values.tolist())
+
+
+def test_instant_text_matches_numpy() -> None:
+    """One instant (bin edges, domains): numpy's text of its UTC instant, whatever zone the
+    datetime carries (a naive one is UTC)."""
+    import zoneinfo
+
+    rng = np.random.default_rng(13)
+    zones = [None, dt.timezone.utc, zoneinfo.ZoneInfo("Asia/Kathmandu"),
+             dt.timezone(dt.timedelta(hours=-3, minutes=-30))]
+    epoch = dt.datetime(1970, 1, 1)
+    for i, (secs, us) in enumerate(zip(rng.integers(FIRST + 86_400, LAST - 86_400, 3_000),
+                                       rng.integers(0, 1_000_000, 3_000))):
+        us = int(us) if i % 2 else 0
+        naive = epoch + dt.timedelta(seconds=int(secs), microseconds=us)
+        zone = zones[i % len(zones)]
+        v = naive if zone is None else naive.replace(tzinfo=dt.timezone.utc).astimezone(zone)
+        expected = np.datetime_as_string(np.datetime64(naive, "us"), unit="us" if us else "s") + "Z"
+        assert instant_text(v, None) == expected
+        assert instant_text(v, "UTC") == expected
