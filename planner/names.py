@@ -27,14 +27,16 @@ function                    name                            meaning
 ``has_data()``              ``_sluice_has``                 1 on data rows, 0 on dense grid rows
 ``series_index()``          ``_sluice_i``                   the integer series' column
 ``series()``                ``_sluice_n``                   the integer series' table alias
+``profile(part)``           ``_sluice_<part>``              a column profile's output / CTE
+                                                            (``PROFILE_PARTS``)
 ==========================  ==============================  ==================================
 
 Window columns of a built aggregate are named after their input's name plus ``_r``, ``_c``,
 ``_mu`` (``planner.emit_measures``): ``_sluice_m<i>_r``, ``_sluice_e<i>_w_c``, ... No other
 planner or app module spells the prefix (tests/test_planner_layers.py checks it); a new
 internal name gets its function here. Column profiles (``planner/profile.py``, one
-statement per column) name their outputs with the same prefix (``profile.VALUE``,
-``COUNT``, ...).
+statement per column, never in the same statement as a chart's names) take theirs from
+``profile`` (``profile.VALUE``, ``COUNT``, ...).
 """
 
 from __future__ import annotations
@@ -127,3 +129,14 @@ def series_index() -> str:
 def series() -> str:
     """The integer series' table alias (the spelling of ``rows()``, another namespace)."""
     return f"{INTERNAL}n"
+
+
+#: the names of a column profile's statement (planner.profile)
+PROFILE_PARTS = ("value", "count", "rows", "nulls", "non_null", "distinct", "min", "max",
+                 "rank", "grouped", "ranked")
+
+
+def profile(part: str) -> str:
+    """An output column or CTE of a column profile (``part`` in ``PROFILE_PARTS``)."""
+    assert part in PROFILE_PARTS, part
+    return f"{INTERNAL}{part}"
