@@ -104,7 +104,8 @@ def _grouped(plan: Plan, ctes: list, group_cols: list[str], fold: bool) -> str:
         names.measure_input(m.index): (_ref(names.measure_input(m.index)), m.spec.agg)
         for m in measures if m.has_input})
     if windows:
-        ctes.append((names.cte("ranked"), exp.select(exp.Star(), *windows).from_(_table(rows_name))))
+        ctes.append((names.cte("ranked"),
+                     exp.select(exp.Star(), *windows).from_(_table(rows_name))))
         rows_name = names.cte("ranked")
     grouped = exp.select(*[_ref(c) for c in group_cols]).from_(_table(rows_name))
     for m in measures:

@@ -122,7 +122,8 @@ def _fold_top(plan: Plan, ctes: list, group_cols: list[str]) -> str:
             default=d.string(k.spec.other_label)))
     # relabel first, then group by plain columns (T-SQL allows no sub-query in GROUP BY)
     partials = [c for m in plan.measures
-                for c in ([names.measure_partial(m.index, "sum"), names.measure_partial(m.index, "cnt")] if m.aggregate.fold == "mean"
+                for c in ([names.measure_partial(m.index, "sum"),
+                           names.measure_partial(m.index, "cnt")] if m.aggregate.fold == "mean"
                           else [m.internal])] + [names.rows()]
     folded = folded.select(*[exp.alias_(e, c, quoted=True) for e, c in zip(outs, group_cols)],
                            *[_ref(c, "g") for c in partials])

@@ -20,7 +20,7 @@ function                    name                            meaning
 ``m4(part)``                ``_sluice_m4_<part>``           M4's extents (min, max, n) and CTEs
 ``measure_partial(i, p)``   ``_sluice_a<i>_<p>``            measure i's fold partial (sum, cnt)
 ``cte(stage)``              ``_sluice_<stage>``             a CTE of the main statement (``CTES``)
-``top_rank(i)``             ``_sluice_rank<i>``             top key i's ranking CTE (value v, rank r)
+``top_rank(i)``             ``_sluice_rank<i>``             top key i's ranking CTE (v, rank r)
 ``bin_series(i)``           ``_sluice_bins<i>``             binned key i's every bin (dense CTE)
 ``score_window()``          ``_sluice_w``                   window-column prefix of a top score
 ``facet_rank()``            ``_sluice_frank``               a group's rank in its facet
