@@ -199,7 +199,7 @@ def shape(plan: prof.ProfilePlan, raw: pa.Table) -> dict[str, Any]:
     out: dict[str, Any] = {"kind": kind, "type": plan.column.sql_type}
     if plan.top == 0:
         rows = num(prof.ROWS)
-        out.update(row_count=rows, null_count=rows - num(f"{prof.P}non_null"))
+        out.update(row_count=rows, null_count=rows - num(prof.NON_NULL))
     else:
         out.update(row_count=num(prof.ROWS), null_count=num(prof.NULLS))
     if plan.has_range and raw.num_rows:

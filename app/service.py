@@ -22,8 +22,9 @@ from app import auth
 from app.engines import Engine
 from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
 from app.engines.arrow import conform, key_zone, request_zone
-from planner.compile import (INTERNAL, Plan, bind_sql, bind_values, bins_meta, display_sql,
-                             finish, layout_key, param_shape, prepare)
+from planner import names as internal
+from planner.compile import (Plan, bind_sql, bind_values, bins_meta, display_sql, finish,
+                             layout_key, param_shape, prepare)
 from planner.compile import count_sql as count_sql_of
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
@@ -356,13 +357,13 @@ class ChartService:
             return None
 
         if extra is not None:
-            matched = int(extra.get(f"{INTERNAL}matched") or 0)
+            matched = int(extra.get(internal.matched()) or 0)
             outside = {k.label: int(extra.get(k.outside_flag) or 0) for k in plan.keys if k.has_limits}
         else:
-            matched = int(first(f"{INTERNAL}matched") or 0)
-            outside = {k.label: int(first(f"{INTERNAL}out{k.index}") or 0)
+            matched = int(first(internal.matched()) or 0)
+            outside = {k.label: int(first(internal.outside_count(k.index)) or 0)
                        for k in plan.keys if k.has_limits}
-        groups = int(first(f"{INTERNAL}groups") or 0)
+        groups = int(first(internal.groups()) or 0)
 
         tz_of = _zones(plan)
         names = [c.name for c in plan.columns]

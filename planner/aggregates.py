@@ -4,7 +4,7 @@ One ``Aggregate`` per name says which column kinds it accepts, what type it answ
 per-group partials re-aggregate (the top-N ``(other)`` fold), whether it may be stacked,
 whether it is approximate, which dialect feature it needs and how the planner builds it where
 a target has no function for it. The request model (``planner.model.AggName``), the
-planner (``planner.bind``: type, feature and stack checks; ``planner.compile``: the fold) and the
+planner (``planner.bind``: type, feature and stack checks; ``planner.emit_top``: the fold) and the
 answer shaping (``app.engines.arrow.output_types``, ``approximate``) read this table instead
 of lists of their own.
 

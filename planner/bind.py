@@ -6,7 +6,8 @@ with the request's JSON pointer; ``where`` becomes one sqlglot condition
 (``planner.where``); output names are assigned (unique ignoring case, within the dialect's
 identifier limits). An M4 reduction is checked by ``planner.m4.check``. In:
 ``ChartRequest``, ``SourceSchema``, ``Dialect``; out: a ``Plan`` without statements (its
-bin layouts open: ``planner.layout``; its SQL: ``planner.compile``). Pure (no I/O).
+bin layouts open: ``planner.layout``; its SQL: ``planner.emit_*`` via ``planner.compile``).
+Pure (no I/O).
 """
 
 from __future__ import annotations

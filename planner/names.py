@@ -18,13 +18,25 @@ function                    name                            meaning
 ``groups()``                ``_sluice_groups``              groups before LIMIT (window total)
 ``rows()``                  ``_sluice_n``                   rows per group
 ``m4(part)``                ``_sluice_m4_<part>``           M4's extents (min, max, n) and CTEs
+``measure_partial(i, p)``   ``_sluice_a<i>_<p>``            measure i's fold partial (sum, cnt)
+``cte(stage)``              ``_sluice_<stage>``             a CTE of the main statement (``CTES``)
+``top_rank(i)``             ``_sluice_rank<i>``             top key i's ranking CTE (v, rank r)
+``bin_series(i)``           ``_sluice_bins<i>``             binned key i's every bin (dense CTE)
+``score_window()``          ``_sluice_w``                   window-column prefix of a top score
+``facet_rank()``            ``_sluice_frank``               a group's rank in its facet
+``has_data()``              ``_sluice_has``                 1 on data rows, 0 on dense grid rows
+``series_index()``          ``_sluice_i``                   the integer series' column
+``series()``                ``_sluice_n``                   the integer series' table alias
+``profile(part)``           ``_sluice_<part>``              a column profile's output / CTE
+                                                            (``PROFILE_PARTS``)
 ==========================  ==============================  ==================================
 
-Column profiles (``planner/profile.py``, one statement per column) name their outputs
-with the same prefix (``profile.VALUE``, ``COUNT``, ...). The emit stage
-(``planner/compile.py``) still writes some of its CTE names and window
-prefixes as f-strings over ``INTERNAL`` (base, grouped, counted, kept, dense, final, rank,
-...); they are to move here.
+Window columns of a built aggregate are named after their input's name plus ``_r``, ``_c``,
+``_mu`` (``planner.emit_measures``): ``_sluice_m<i>_r``, ``_sluice_e<i>_w_c``, ... No other
+planner or app module spells the prefix (tests/test_planner_layers.py checks it); a new
+internal name gets its function here. Column profiles (``planner/profile.py``, one
+statement per column, never in the same statement as a chart's names) take theirs from
+``profile`` (``profile.VALUE``, ``COUNT``, ...).
 """
 
 from __future__ import annotations
@@ -72,3 +84,59 @@ def rows() -> str:
 
 def m4(part: str) -> str:
     return f"{INTERNAL}m4_{part}"
+
+
+def measure_partial(i: int, part: str) -> str:
+    """A partial the top-N fold re-aggregates: ``measure_partial(i, "sum")`` / ``"cnt"``."""
+    return f"{measure(i)}_{part}"
+
+
+#: the main statement's CTEs, in the order they may appear (planner.emit_main)
+CTES = ("base", "ranked", "pairs", "grouped", "relabelled", "folded", "counted", "kept",
+        "others", "grid", "cells", "dense", "final")
+
+
+def cte(stage: str) -> str:
+    """The CTE of one stage of the main statement (``stage`` in ``CTES``)."""
+    assert stage in CTES, stage
+    return f"{INTERNAL}{stage}"
+
+
+def top_rank(i: int) -> str:
+    return f"{INTERNAL}rank{i}"
+
+
+def bin_series(i: int) -> str:
+    return f"{INTERNAL}bins{i}"
+
+
+def score_window() -> str:
+    return f"{INTERNAL}w"
+
+
+def facet_rank() -> str:
+    return f"{INTERNAL}frank"
+
+
+def has_data() -> str:
+    return f"{INTERNAL}has"
+
+
+def series_index() -> str:
+    return f"{INTERNAL}i"
+
+
+def series() -> str:
+    """The integer series' table alias (the spelling of ``rows()``, another namespace)."""
+    return f"{INTERNAL}n"
+
+
+#: the names of a column profile's statement (planner.profile)
+PROFILE_PARTS = ("value", "count", "rows", "nulls", "non_null", "distinct", "min", "max",
+                 "rank", "grouped", "ranked")
+
+
+def profile(part: str) -> str:
+    """An output column or CTE of a column profile (``part`` in ``PROFILE_PARTS``)."""
+    assert part in PROFILE_PARTS, part
+    return f"{INTERNAL}{part}"

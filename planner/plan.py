@@ -2,7 +2,7 @@
 
 ``planner.bind`` makes a ``Plan`` from request + schema + dialect (keys, measures, the
 compiled ``where``, output columns, all checked); ``planner.layout`` fills in the keys' bin
-layouts from an extents row; ``planner.compile`` (emit) sets ``extents`` and ``main``, the
+layouts from an extents row; ``planner.compile`` (emit: ``planner.emit_*``) sets ``extents`` and ``main``, the
 sqlglot statements, rendered by ``extents_sql`` / ``main_sql``. Internal column names come
 from ``planner.names``.
 """

@@ -30,8 +30,8 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
+from planner import names
 from planner.errors import PlanError, nearest
-from planner.names import INTERNAL
 from planner.schema import ColumnInfo, SourceSchema
 
 #: most frequent values returned by default for text and boolean columns
@@ -39,10 +39,10 @@ DEFAULT_TOP = 20
 MAX_TOP = 100
 PROFILE_KINDS = frozenset({"integer", "double", "decimal", "string", "boolean", "timestamp",
                            "timestamptz", "date"})
-P = INTERNAL  # prefix of every output name (never a user column)
-VALUE, COUNT, ROWS, NULLS, DISTINCT, LO, HI, RANK = (
-    f"{P}value", f"{P}count", f"{P}rows", f"{P}nulls", f"{P}distinct", f"{P}min", f"{P}max",
-    f"{P}rank")
+#: output names (planner.names.profile: the internal prefix, never a user column)
+VALUE, COUNT, ROWS, NULLS, NON_NULL, DISTINCT, LO, HI, RANK = (
+    names.profile(p) for p in ("value", "count", "rows", "nulls", "non_null", "distinct",
+                               "min", "max", "rank"))
 
 
 @dataclass(frozen=True)
@@ -107,7 +107,7 @@ def _alias(e: exp.Expression, name: str) -> exp.Alias:
 def _aggregate(d, value: exp.Expression, table: exp.Table, has_range: bool,
                ranged: exp.Expression) -> exp.Select:
     cols = [_alias(exp.Count(this=exp.Star()), ROWS),
-            _alias(exp.Count(this=value.copy()), f"{P}non_null"),
+            _alias(exp.Count(this=value.copy()), NON_NULL),
             _alias(d.agg("approx_count_distinct", value.copy(), None), DISTINCT)]
     if has_range:
         cols += [_alias(exp.Min(this=ranged.copy()), LO), _alias(exp.Max(this=ranged.copy()), HI)]
@@ -140,7 +140,7 @@ def _grouped(d, value: exp.Expression, table: exp.Table, top: int, has_range: bo
         ranked_cols += [_alias(over(exp.Min(this=v.copy())), LO),
                         _alias(over(exp.Max(this=v.copy())), HI)]
     ranked_cols.append(_alias(over(exp.RowNumber(), order=order), RANK))
-    g, r = f"{P}grouped", f"{P}ranked"
+    g, r = names.profile("grouped"), names.profile("ranked")
     ranked = exp.select(*ranked_cols).from_(exp.to_identifier(g, quoted=True))
     rank = d.column(RANK)
     out = [d.column(c) for c in (VALUE, COUNT, ROWS, NULLS, DISTINCT)]

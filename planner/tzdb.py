@@ -5,7 +5,7 @@ where and as ``zoneinfo`` (the standard library, which the planner uses everywhe
 it -- ``zoneinfo.TZPATH``, then the ``tzdata`` package -- and cached per zone. zoneinfo
 does not expose a zone's transitions, which ``whole_offsets_from`` needs: from which
 instant on every offset of a zone is a whole number of a unit, so that sub-day ``trunc``
-in that zone equals the UTC floor (planner/compile.py ``_trunc_micros``).
+in that zone equals the UTC floor (planner/emit_keys.py ``_trunc_micros``).
 tests/test_planner_layers.py allows this module's reads and no other.
 """
 

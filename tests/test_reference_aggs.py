@@ -360,7 +360,7 @@ def test_single_row_groups_give_null_sample_deviation(api, ref):
 @pytest.mark.parametrize("where", [[], [{"column": "x", "gt": 0}]], ids=["all", "filtered"])
 def test_count_distinct_beside_count_matches_pandas(api, ref, where):
     """COUNT(DISTINCT n) with the row count and a count measure (DuckDB groups the distinct
-    (key, value) pairs first: planner/compile.py _distinct_pairs), NULLs in key and value."""
+    (key, value) pairs first: planner/emit_main.py _distinct_pairs), NULLs in key and value."""
     resp = api.chart({"channels": {"x": {"column": "cat"}, "color": {"column": "grp2"},
                                    "y": {"agg": "count_distinct", "column": "n"},
                                    "size": {"agg": "count"}}, "where": where})

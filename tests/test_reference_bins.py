@@ -446,7 +446,7 @@ def test_empty_bins_with_a_group_adds_no_null_bins(api, ref, fill):
 
 # ---------------------------------------------------------------------------------------------
 # integer columns: every whole number on and next to the edges of layouts whose unguarded
-# index is checked at whole numbers only (planner/compile.py, _integer_floor_is_exact)
+# index is checked at whole numbers only (planner/emit_keys.py, _integer_floor_is_exact)
 # ---------------------------------------------------------------------------------------------
 
 INT_RANGES = [(-57, 0), (-46, 371), (-8, 0), (-1, 0), (-3, 50), (0, 999), (-1000, -1)]

@@ -91,13 +91,13 @@ class Dialect:
     #: target's own type 7 percentile aggregate (``quantile``) -- or "window": Hyndman & Fan
     #: (1996) type 7 built by the planner from ROW_NUMBER() and COUNT() windows per group,
     #: interpolating between the order statistics floor(h) and floor(h) + 1, h = (n - 1) q
-    #: (planner/compile.py, ``_window_stage``), where the target has no such aggregate.
+    #: (planner/emit_measures.py, ``_window_columns``), where the target has no such aggregate.
     quantile_method: ClassVar[str] = "native"
     #: COUNT(DISTINCT m) beside the row count COUNT(*) is faster as a grouping of the
-    #: distinct (keys, m) pairs first (planner/compile.py ``_distinct_pairs``).
+    #: distinct (keys, m) pairs first (planner/emit_main.py ``_distinct_pairs``).
     distinct_pairs: ClassVar[bool] = False
     #: Every value of an integer-kind column is a whole number (bins then check their plain
-    #: floor index at whole numbers only: planner/compile.py ``_integer_floor_is_exact``).
+    #: floor index at whole numbers only: planner/emit_keys.py ``_integer_floor_is_exact``).
     whole_integer_cells: ClassVar[bool] = True
     #: Standard deviation / variance: "native" aggregates or "two_pass": the group mean
     #: first (a window AVG), then the corrected sum of squared deviations (Chan, Golub &
@@ -397,7 +397,7 @@ class Dialect:
     def epoch_micros(self, e: exp.Expression, kind: str) -> exp.Expression | None:
         """Whole microseconds since 1970-01-01T00:00:00Z as a 64-bit integer (naive values
         read as UTC; NULL for 'infinity'), or None: then UTC time keys of fixed-length units
-        group by a truncated timestamp instead of an integer bin number (planner/compile.py,
+        group by a truncated timestamp instead of an integer bin number (planner/emit_keys.py,
         ``_trunc_micros``)."""
         return None
 

@@ -1,0 +1,84 @@
+"""Emit: the extents statement (step 1 of a chart with data-dependent bin layouts).
+
+ONE statement gathers every statistic the data-dependent bins need, named
+``planner.names.extents(i, stat)``: min and max, the count for a rule, the population
+standard deviation for Scott's rule, the quartiles for Freedman–Diaconis (built from window
+columns where the target has no aggregate). ``planner.layout`` reads them back. Pure.
+"""
+
+from __future__ import annotations
+
+from sqlglot import exp
+
+from planner import names
+from planner.dialects.base import Dialect
+from planner.emit_keys import _instant_in_range
+from planner.emit_measures import _built, _columns_of, _measure_agg, _window_columns
+from planner.plan import Key, Plan
+
+
+def _bin_input(d: Dialect, k: Key) -> exp.Expression:
+    """The value a numeric bin places: the column as DOUBLE, NULL when it is not finite
+    (inf, -inf, NaN: such rows go to the NULL bin and never widen a layout from the data)."""
+    v = d.double(d.number_cell(d.column(k.col.name, "s")))
+    if k.col.kind != "double":  # integers and decimals are always finite
+        return v
+    return exp.Case(ifs=[exp.If(this=d.finite(v), true=v.copy())])
+
+
+def _extents_statement(plan: Plan) -> exp.Select | None:
+    d = plan.dialect
+    sel: list[exp.Expression] = []
+    built: dict[str, tuple[exp.Expression, str]] = {}  # window inputs (see _window_columns)
+    for k in plan.keys:
+        if not (k.binned and k.spec.bin is not None):
+            continue
+        b = k.spec.bin
+        ref = d.column(k.col.name, "s")
+        p = names.extents(k.index)
+        if k.mode == "tbin":
+            if k.tlimits is None:
+                ep = d.epoch(_instant_in_range(d, k.col, ref), k.col.kind)
+                sel += [exp.alias_(exp.Min(this=ep), p + "min", quoted=True),
+                        exp.alias_(exp.Max(this=ep.copy()), p + "max", quoted=True)]
+            continue
+        if b.rule is None and k.nlimits is not None:
+            continue  # nice bins (or a width) over explicit limits need no statistics
+        v = _bin_input(d, k)
+        if k.nlimits is not None:  # numpy trims the data to the range before applying a rule
+            lo, hi = k.nlimits
+            v = exp.Case(ifs=[exp.If(this=exp.Between(this=v.copy(), low=d.real(lo),
+                                                      high=d.real(hi)), true=v.copy())])
+        # the data's (or, with limits, the kept values') min and max: the layout's extent,
+        # and the peak-to-peak of numpy's sturges / sqrt rules
+        if b.rule in (None, "sturges", "sqrt") or k.nlimits is None:
+            sel += [exp.alias_(exp.Min(this=v.copy()), p + "min", quoted=True),
+                    exp.alias_(exp.Max(this=v.copy()), p + "max", quoted=True)]
+        if b.rule is not None:
+            sel.append(exp.alias_(exp.Count(this=v.copy()), p + "n", quoted=True))
+        # Scott: population standard deviation; Freedman-Diaconis: the quartiles (type 7),
+        # built from windows over all matched rows where the target has no aggregate
+        if b.rule == "scott":
+            sd = (_measure_agg(d, "stddev_pop", v, None, p + "w") if _built(d, "stddev_pop")
+                  else exp.StddevPop(this=v.copy()))
+            sel.append(exp.alias_(sd, p + "sd", quoted=True))
+            built[p + "w"] = (v.copy(), "stddev_pop")
+        if b.rule == "fd":
+            for name, q in (("q1", 0.25), ("q3", 0.75)):
+                qe = (_measure_agg(d, "quantile", v, q, p + "w") if _built(d, "quantile")
+                      else d.quantile(v.copy(), q))
+                sel.append(exp.alias_(qe, p + name, quoted=True))
+            built[p + "w"] = (v.copy(), "quantile")
+    if not sel:
+        return None
+    src: exp.Expression = exp.alias_(d.table(plan.schema.table), "s", quoted=True)
+    windows = _window_columns(d, [], built)
+    if windows:  # the source rows with their window columns, still called "s"
+        inner = exp.select(*_columns_of(*sel), *windows).from_(src)
+        if plan.where is not None:
+            inner = inner.where(plan.where.copy())
+        return exp.select(*sel).from_(exp.alias_(exp.Subquery(this=inner), "s", quoted=True))
+    q = exp.select(*sel).from_(src)
+    if plan.where is not None:
+        q = q.where(plan.where.copy())
+    return q
