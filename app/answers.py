@@ -126,17 +126,34 @@ class ProblemDetail(_Open):
         "instance": "/v1/chart", "suggestions": ["distance_km"]}]})
 
 
+class _Linked(_Open):
+    id: str | None = Field(None, description="the chart's id, when it has one")
+    brushes: list[str] = Field(description="ids of the charts whose brush filtered this "
+                               "chart, in chart order (never its own)")
+
+
+class BatchChartAnswer(ChartAnswer, _Linked):
+    """One chart's answer in a batch: the answer of the chart asked alone with the batch's
+    `where`, its own and the other charts' brushes, plus its `id` and `brushes`."""
+
+
+class BatchChartProblem(ProblemDetail, _Linked):
+    """One chart's problem in a batch (pointer into the batch body), with `id` and
+    `brushes`."""
+
+
 class BatchAnswer(_Open):
     source: str
-    results: list[ChartAnswer | ProblemDetail] = Field(
+    results: list[BatchChartAnswer | BatchChartProblem] = Field(
         description="one per chart, in request order: its answer or its problem (pointer "
-                    "under /charts/<i>)")
+                    "into the batch body: /charts/<i>/..., /where/<k>/... for the batch's "
+                    "where, /charts/<j>/brush/<k>/... for another chart's brush)")
 
     model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
         "source": "deliveries", "results": [
-            {"type": "/problems/unknown-column", "title": "Unknown column", "status": 422,
-             "detail": "unknown column 'nope' in source 'deliveries'",
-             "pointer": "/charts/1/channels/x/column"}]}]})
+            {"id": "vehicles", "type": "/problems/unknown-column", "title": "Unknown column",
+             "status": 422, "detail": "unknown column 'nope' in source 'deliveries'",
+             "pointer": "/charts/0/brush/0/column", "brushes": ["distance"]}]}]})
 
 
 class SqlAnswer(_Open):
