@@ -306,3 +306,29 @@ def test_bad_value_in_the_shared_where_points_there(client):
     for k in range(4):  # every chart is filtered by it
         assert res[k]["status"] == 422
         assert res[k]["pointer"] == "/where/1/gte"
+
+
+def test_bad_dashboard_tz_points_at_the_batch_tz(client):
+    """The batch's ``tz`` is every chart's (the ones naming none): a bad zone is a problem
+    at ``/tz``; a chart's own bad zone stays under its own pointer."""
+    body = linked_batch("duckdb")
+    body["tz"] = "Mars/Olympus_Mons"
+    body["charts"][3]["tz"] = "Nowhere/Else"
+    res = _post(client, body).json()["results"]
+    assert [r["pointer"] for r in res] == ["/tz", "/tz", "/tz", "/charts/3/tz"]
+    assert {r["type"] for r in res} == {"/problems/bad-time-zone"}
+
+
+def test_composed_where_obeys_max_filters_with_a_batch_pointer(client):
+    """[limits] max_filters (default 256, app/limits.py) caps the COMPOSED where: chart 2
+    gets 1 + 200 + 100 predicates, and the 257th is brush filter 55 of chart 1; charts 0
+    and 1 (101 and 201 predicates) still answer."""
+    body = linked_batch("duckdb")
+    body["charts"][0]["brush"] = [{"column": "n", "gte": -100 - k} for k in range(200)]
+    body["charts"][1]["brush"] = [{"column": "x", "gte": -1000.5 - k} for k in range(100)]
+    body["charts"][2].pop("brush")
+    res = _post(client, body).json()["results"]
+    assert "status" not in res[0] and "status" not in res[1]
+    for k in (2, 3):
+        assert res[k]["type"] == "/problems/limit-exceeded"
+        assert res[k]["pointer"] == "/charts/1/brush/55"
