@@ -448,6 +448,21 @@ class BatchRequest(_Strict):
     Chart i is asked as a chart request whose ``where`` is the batch's ``where``, then the
     chart's own, then every other chart's ``brush`` in chart order (``planner.linked``)."""
 
+    model_config = ConfigDict(extra="forbid", populate_by_name=True, json_schema_extra={
+        "examples": [{
+            "source": "deliveries", "tz": "Europe/Berlin",
+            "where": [{"column": "delivered_at", "gte": "2026-01-01"}],
+            "charts": [
+                {"id": "distance", "channels": {"x": {"column": "distance_km",
+                                                      "bin": {"bins": 30}},
+                                                "y": {"agg": "count"}},
+                 "brush": [{"column": "distance_km", "gte": 5, "lt": 20}]},
+                {"id": "vehicles", "channels": {"x": {"column": "vehicle"},
+                                                "y": {"agg": "count"}},
+                 "brush": [{"column": "vehicle", "in": ["van", "bike"]}]},
+                {"id": "by_day", "channels": {"x": {"column": "delivered_at", "trunc": "day"},
+                                              "y": {"agg": "count"}}}]}]})
+
     source: Text = Field(min_length=1, max_length=256)
     tz: Text | None = Field(None, min_length=1, max_length=64,
                             description="The dashboard's IANA time zone: the tz of every chart "

@@ -479,6 +479,71 @@ export interface components {
          * @description Several charts on one source, answered together (each answer or problem in order).
          *     Chart i is asked as a chart request whose ``where`` is the batch's ``where``, then the
          *     chart's own, then every other chart's ``brush`` in chart order (``planner.linked``).
+         * @example {
+         *       "charts": [
+         *         {
+         *           "brush": [
+         *             {
+         *               "column": "distance_km",
+         *               "gte": 5,
+         *               "lt": 20
+         *             }
+         *           ],
+         *           "channels": {
+         *             "x": {
+         *               "bin": {
+         *                 "bins": 30
+         *               },
+         *               "column": "distance_km"
+         *             },
+         *             "y": {
+         *               "agg": "count"
+         *             }
+         *           },
+         *           "id": "distance"
+         *         },
+         *         {
+         *           "brush": [
+         *             {
+         *               "column": "vehicle",
+         *               "in": [
+         *                 "van",
+         *                 "bike"
+         *               ]
+         *             }
+         *           ],
+         *           "channels": {
+         *             "x": {
+         *               "column": "vehicle"
+         *             },
+         *             "y": {
+         *               "agg": "count"
+         *             }
+         *           },
+         *           "id": "vehicles"
+         *         },
+         *         {
+         *           "channels": {
+         *             "x": {
+         *               "column": "delivered_at",
+         *               "trunc": "day"
+         *             },
+         *             "y": {
+         *               "agg": "count"
+         *             }
+         *           },
+         *           "id": "by_day"
+         *         }
+         *       ],
+         *       "source": "deliveries",
+         *       "tz": "Europe/Berlin",
+         *       "where": [
+         *         {
+         *           "column": "delivered_at",
+         *           "gte": "2026-01-01"
+         *         }
+         *       ]
+         *     }
          */
         BatchRequest: {
             /** Charts */
