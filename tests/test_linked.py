@@ -203,15 +203,16 @@ def test_batch_without_brushes_is_a_plain_batch(client, frame):
         CHECKS[name](res, sub)  # pandas on every row
 
 
-def test_moved_brush_reuses_the_plans(client, frame):
+@pytest.mark.parametrize("engine", ["duckdb", "postgres", "mysql", "sqlite"])  # bound values
+def test_moved_brush_reuses_the_plans(client, frame, engine):
     """Dragging the range brushes (new bound values) plans nothing new: the service's plan
     cache holds as many prepared plans as before; the answers follow the moved brushes
     (reference: pandas). (A short ``in`` list stays literals, planner/values.py
     ``_bindable``: a new category set is a new plan.)"""
-    client.post("/v1/batch", json=linked_batch("duckdb"))
+    client.post("/v1/batch", json=linked_batch(engine))
     plans = client.app.state.service._plans._prepared
     before = len(plans)
-    body = linked_batch("duckdb")
+    body = linked_batch(engine)
     body["charts"][0]["brush"] = [{"column": "x", "gte": 0, "lt": 30}]
     body["charts"][1]["brush"] = [{"column": "ts", "gte": "2026-05-01T00:00:00Z",
                                    "lt": "2026-09-15T12:00:00Z"}]
