@@ -117,6 +117,10 @@ class ProblemDetail(_Open):
     errors: list[ProblemError] | None = None
     instance: str | None = None
     suggestions: list[str] | None = None
+    id: str | None = Field(None, description="in a /v1/batch result: the chart's id, when it "
+                           "has one")
+    brushes: list[str] | None = Field(None, description="in a /v1/batch result: ids of the "
+                                      "charts whose brush filters this chart (never its own)")
 
     model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
         "type": "/problems/unknown-column", "title": "Unknown column", "status": 422,
@@ -126,17 +130,32 @@ class ProblemDetail(_Open):
         "instance": "/v1/chart", "suggestions": ["distance_km"]}]})
 
 
+class BatchChartAnswer(ChartAnswer):
+    """One chart's answer in a batch: the answer of the chart asked alone with the batch's
+    `where`, its own and the other charts' brushes, plus its `id` and `brushes`."""
+
+    id: str | None = Field(None, description="the chart's id, when it has one")
+    brushes: list[str] = Field(description="ids of the charts whose brush filtered this "
+                               "chart, in chart order (never its own)")
+
+    model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
+        "id": "distance",
+        **ChartAnswer.model_config["json_schema_extra"]["examples"][0],  # type: ignore[index]
+        "brushes": ["vehicles"]}]})
+
+
 class BatchAnswer(_Open):
     source: str
-    results: list[ChartAnswer | ProblemDetail] = Field(
+    results: list[BatchChartAnswer | ProblemDetail] = Field(
         description="one per chart, in request order: its answer or its problem (pointer "
-                    "under /charts/<i>)")
+                    "into the batch body: /charts/<i>/..., /where/<k>/... for the batch's "
+                    "where, /charts/<j>/brush/<k>/... for another chart's brush)")
 
     model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
         "source": "deliveries", "results": [
-            {"type": "/problems/unknown-column", "title": "Unknown column", "status": 422,
-             "detail": "unknown column 'nope' in source 'deliveries'",
-             "pointer": "/charts/1/channels/x/column"}]}]})
+            {"id": "vehicles", "type": "/problems/unknown-column", "title": "Unknown column",
+             "status": 422, "detail": "unknown column 'nope' in source 'deliveries'",
+             "pointer": "/charts/0/brush/0/column", "brushes": ["distance"]}]}]})
 
 
 class SqlAnswer(_Open):

@@ -215,9 +215,10 @@ def loc_to_pointer(loc: tuple[Any, ...]) -> str:
             expect_tag = False
             continue
         out.append(p)
-        # a filter sits at where[i], any[i] and under not: pydantic adds its union tag next
+        # a filter sits at where[i], brush[i], any[i] and under not: pydantic adds its union
+        # tag next
         prev = out[-2] if len(out) >= 2 else None
-        expect_tag = (isinstance(p, int) and prev in ("where", "any")) or p == "not"
+        expect_tag = (isinstance(p, int) and prev in ("where", "brush", "any")) or p == "not"
     return pointer(*out)
 
 

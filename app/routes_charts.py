@@ -21,6 +21,7 @@ from app.encode import ARROW_STREAM, arrow_stream, dumps
 from app.engines import EngineError
 from app.handlers import engine_problem
 from app.problems import Problem, from_plan_error
+from planner import linked
 from planner.dialects import DIALECTS
 from planner.errors import PlanError
 from planner.model import BatchRequest, ChartRequest
@@ -75,42 +76,49 @@ def chart(req: ChartRequest, request: Request) -> Response:
              responses={**answers.ok(answers.BatchAnswer, "One answer or problem per chart"),
                         **answers.problem_responses(), **answers.problem_responses(409)})
 def batch(req: BatchRequest, request: Request) -> Response:
-    """Several charts on one source. Each result is the chart's answer (cached like
-    /v1/chart), or its problem document (pointer prefixed with ``/charts/<i>``); the
-    batch itself answers 200."""
+    """Several charts on one source. Chart i is answered as the chart request whose
+    ``where`` is the batch's ``where``, its own and every other chart's ``brush``
+    (``planner.linked``): its answer (cached like /v1/chart), or its problem document
+    (pointer into the batch body); each result also has its ``id`` and ``brushes`` (the
+    ids of the charts whose brush filtered it). The batch itself answers 200."""
     st = request.app.state
     st.service.check_source(req.source)
+    linked.check_ids(req)  # 422 at /charts/<i>/id
     work = sessions.current()
     if work is not None:  # the batch's session and each chart's own: older requests stop
         for name in dict.fromkeys([req.session, *(c.session or req.session for c in req.charts)]):
             work.claim(name)
     results = []
     for i, chart in enumerate(req.charts):
+        link = linked.compose(req, i)
+        ends = (b"{" if chart.id is None else b'{"id":' + dumps(chart.id) + b",",
+                b',"brushes":' + dumps(link.brushes) + b"}")
         if chart.source is not None and chart.source != req.source:
-            results.append(dumps(Problem(422, "invalid-request", "Chart names another source",
-                                         f"a batch runs on one source ({req.source!r})",
-                                         f"/charts/{i}/source").body()))
+            results.append(_member(ends, dumps(Problem(
+                422, "invalid-request", "Chart names another source",
+                f"a batch runs on one source ({req.source!r})", f"/charts/{i}/source").body())))
             continue
-        inherited = {"source": req.source}
-        if req.tz is not None and chart.tz is None:  # the dashboard's zone
-            inherited["tz"] = req.tz
-        full = ChartRequest.model_validate(  # (claimed above; not part of the answer)
-            chart.model_dump(by_alias=True, exclude_none=True, exclude={"session"}) | inherited)
         try:
-            results.append(json_answer(st, full, True, time.perf_counter()))
+            results.append(_member(ends, json_answer(st, link.request, True, time.perf_counter())))
         except sessions.Stopped:
             raise  # superseded or the client left: the whole batch answers the problem
         except (PlanError, Problem, EngineError) as e:
             # this chart's own problem (422, 403, 503, 504, ...); the others still answer
             prob = (from_plan_error(e) if isinstance(e, PlanError)
                     else engine_problem(e) if isinstance(e, EngineError) else e)
-            prob.ptr = f"/charts/{i}{prob.ptr}" if prob.ptr is not None else f"/charts/{i}"
-            results.append(dumps(prob.body()))
+            prob.ptr = link.batch_pointer(prob.ptr)
+            results.append(_member(ends, dumps(prob.body())))
     if work is not None:
         work.check(req.source)  # stopped meanwhile (later charts may have been cache hits)
     # the answers are already encoded (and may come from the cache): splice the bytes
     head = dumps({"source": req.source})[:-1] + b',"results":['
     return Response(head + b",".join(results) + b"]}", media_type="application/json")
+
+
+def _member(ends: tuple[bytes, bytes], body: bytes) -> bytes:
+    """One result of a batch: the encoded answer or problem ``body`` (an object) between
+    ``ends`` (its ``id`` first, its ``brushes`` last)."""
+    return ends[0] + body[1:-1] + ends[1]
 
 
 @router.post("/v1/sql", response_model=None,

@@ -302,6 +302,15 @@ def filter_depth(where: Any, prefix: str = "/where") -> tuple[int, str] | None:
     return None
 
 
+def shallow_filters(v: Any, prefix: str) -> Any:
+    """``v`` (a raw filter list at ``prefix``) unless it nests deeper than MAX_FILTER_DEPTH."""
+    depth = filter_depth(v, prefix)
+    if depth is not None:
+        raise ValueError(f"any/not nest {depth[0]} levels deep at {depth[1]}; at most "
+                         f"{MAX_FILTER_DEPTH}")
+    return v
+
+
 #: Discriminator tags that pydantic inserts into error locations; stripped from pointers.
 FILTER_TAGS = frozenset({"predicate", "any", "not"})
 
@@ -368,11 +377,7 @@ class ChartRequest(_Strict):
     @field_validator("where", mode="before")
     @classmethod
     def _shallow(cls, v: Any) -> Any:
-        depth = filter_depth(v)
-        if depth is not None:
-            raise ValueError(f"any/not nest {depth[0]} levels deep at {depth[1]}; at most "
-                             f"{MAX_FILTER_DEPTH}")
-        return v
+        return shallow_filters(v, "/where")
 
     def predicates(self) -> list[tuple[tuple[str | int, ...], "Predicate"]]:
         """Every predicate of ``where`` with its path in the request, depth first in request
@@ -410,14 +415,53 @@ class ChartRequest(_Strict):
         return out
 
 
+#: a chart's ``id`` inside a batch: short and plain (brushes name it, answers echo it)
+CHART_ID_PATTERN = r"^[A-Za-z0-9._:~-]{1,64}$"
+ChartId = Annotated[str, Field(min_length=1, max_length=64, pattern=CHART_ID_PATTERN)]
+
+
 class BatchChart(ChartRequest):
     """A chart inside a batch: ``source`` comes from the batch."""
 
     source: Text | None = Field(None, min_length=1, max_length=256)  # type: ignore[assignment]
+    id: ChartId | None = Field(None, description="The chart's name in the batch (letters, "
+                               "digits and . _ : ~ -, at most 64), unique among its charts; "
+                               "its answer echoes it and the other charts' answers list it "
+                               "in `brushes` when its brush filters them. Needed with "
+                               "`brush`.", examples=["distance"])
+    brush: list[Filter] = Field(
+        default_factory=list, max_length=256,
+        description="Brushing and linking (Becker & Cleveland 1987): filters in the `where` "
+        "vocabulary, usually the range or set selected on this chart (gte/lt on a number or "
+        "timestamp key, in on a category key). Every OTHER chart of the batch is filtered by "
+        "them; this chart is not, so it keeps its whole distribution.",
+        examples=[[{"column": "distance_km", "gte": 5, "lt": 20}]])
+
+    @field_validator("brush", mode="before")
+    @classmethod
+    def _shallow_brush(cls, v: Any) -> Any:
+        return shallow_filters(v, "/brush")
 
 
 class BatchRequest(_Strict):
-    """Several charts on one source, answered together (each answer or problem in order)."""
+    """Several charts on one source, answered together (each answer or problem in order).
+    Chart i is asked as a chart request whose ``where`` is the batch's ``where``, then the
+    chart's own, then every other chart's ``brush`` in chart order (``planner.linked``)."""
+
+    model_config = ConfigDict(extra="forbid", populate_by_name=True, json_schema_extra={
+        "examples": [{
+            "source": "deliveries", "tz": "Europe/Berlin",
+            "where": [{"column": "delivered_at", "gte": "2026-01-01"}],
+            "charts": [
+                {"id": "distance", "channels": {"x": {"column": "distance_km",
+                                                      "bin": {"bins": 30}},
+                                                "y": {"agg": "count"}},
+                 "brush": [{"column": "distance_km", "gte": 5, "lt": 20}]},
+                {"id": "vehicles", "channels": {"x": {"column": "vehicle"},
+                                                "y": {"agg": "count"}},
+                 "brush": [{"column": "vehicle", "in": ["van", "bike"]}]},
+                {"id": "by_day", "channels": {"x": {"column": "delivered_at", "trunc": "day"},
+                                              "y": {"agg": "count"}}}]}]})
 
     source: Text = Field(min_length=1, max_length=256)
     tz: Text | None = Field(None, min_length=1, max_length=64,
@@ -425,4 +469,12 @@ class BatchRequest(_Strict):
                             "that does not name its own.")
     session: Session | None = Field(None, description="The dashboard's session: the session "
                                     "of every chart that does not name its own.")
+    where: list[Filter] = Field(default_factory=list, max_length=256,
+                                description="Filters every chart of the batch (ANDed with its "
+                                "own `where` and the other charts' brushes).")
     charts: list[BatchChart] = Field(min_length=1, max_length=32)
+
+    @field_validator("where", mode="before")
+    @classmethod
+    def _shallow(cls, v: Any) -> Any:
+        return shallow_filters(v, "/where")

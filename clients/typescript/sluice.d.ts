@@ -78,9 +78,11 @@ export interface paths {
         put?: never;
         /**
          * Batch
-         * @description Several charts on one source. Each result is the chart's answer (cached like
-         *     /v1/chart), or its problem document (pointer prefixed with ``/charts/<i>``); the
-         *     batch itself answers 200.
+         * @description Several charts on one source. Chart i is answered as the chart request whose
+         *     ``where`` is the batch's ``where``, its own and every other chart's ``brush``
+         *     (``planner.linked``): its answer (cached like /v1/chart), or its problem document
+         *     (pointer into the batch body); each result also has its ``id`` and ``brushes`` (the
+         *     ids of the charts whose brush filtered it). The batch itself answers 200.
          */
         post: operations["batch_v1_batch_post"];
         delete?: never;
@@ -219,8 +221,12 @@ export interface components {
          * @example {
          *       "results": [
          *         {
+         *           "brushes": [
+         *             "distance"
+         *           ],
          *           "detail": "unknown column 'nope' in source 'deliveries'",
-         *           "pointer": "/charts/1/channels/x/column",
+         *           "id": "vehicles",
+         *           "pointer": "/charts/0/brush/0/column",
          *           "status": 422,
          *           "title": "Unknown column",
          *           "type": "/problems/unknown-column"
@@ -232,9 +238,9 @@ export interface components {
         BatchAnswer: {
             /**
              * Results
-             * @description one per chart, in request order: its answer or its problem (pointer under /charts/<i>)
+             * @description one per chart, in request order: its answer or its problem (pointer into the batch body: /charts/<i>/..., /where/<k>/... for the batch's where, /charts/<j>/brush/<k>/... for another chart's brush)
              */
-            results: (components["schemas"]["ChartAnswer"] | components["schemas"]["ProblemDetail"])[];
+            results: (components["schemas"]["BatchChartAnswer"] | components["schemas"]["ProblemDetail"])[];
             /** Source */
             source: string;
         } & {
@@ -245,6 +251,18 @@ export interface components {
          * @description A chart inside a batch: ``source`` comes from the batch.
          */
         BatchChart: {
+            /**
+             * Brush
+             * @description Brushing and linking (Becker & Cleveland 1987): filters in the `where` vocabulary, usually the range or set selected on this chart (gte/lt on a number or timestamp key, in on a category key). Every OTHER chart of the batch is filtered by them; this chart is not, so it keeps its whole distribution.
+             * @example [
+             *       {
+             *         "column": "distance_km",
+             *         "gte": 5,
+             *         "lt": 20
+             *       }
+             *     ]
+             */
+            brush?: (components["schemas"]["Predicate"] | components["schemas"]["AnyOf"] | components["schemas"]["NotOf"])[];
             channels: components["schemas"]["Channels"];
             /**
              * Empty Bins
@@ -259,6 +277,12 @@ export interface components {
              * @example fee > 10 AND depot IN ('North Yard')
              */
             filter_sql?: string | null;
+            /**
+             * Id
+             * @description The chart's name in the batch (letters, digits and . _ : ~ -, at most 64), unique among its charts; its answer echoes it and the other charts' answers list it in `brushes` when its brush filters them. Needed with `brush`.
+             * @example distance
+             */
+            id?: string | null;
             /**
              * Limit
              * @default 10000
@@ -288,8 +312,238 @@ export interface components {
             where?: (components["schemas"]["Predicate"] | components["schemas"]["AnyOf"] | components["schemas"]["NotOf"])[];
         };
         /**
+         * BatchChartAnswer
+         * @description One chart's answer in a batch: the answer of the chart asked alone with the batch's
+         *     `where`, its own and the other charts' brushes, plus its `id` and `brushes`.
+         * @example {
+         *       "bins": {
+         *         "x": {
+         *           "count": 3,
+         *           "method": "nice",
+         *           "start": 0,
+         *           "stop": 15,
+         *           "width": 5
+         *         }
+         *       },
+         *       "brushes": [
+         *         "vehicles"
+         *       ],
+         *       "cache": "miss",
+         *       "columns": [
+         *         {
+         *           "channel": "x",
+         *           "name": "x_lo",
+         *           "role": "bin_lo",
+         *           "type": "double"
+         *         },
+         *         {
+         *           "channel": "x",
+         *           "name": "x_hi",
+         *           "role": "bin_hi",
+         *           "type": "double"
+         *         },
+         *         {
+         *           "channel": "y",
+         *           "name": "count",
+         *           "role": "measure",
+         *           "type": "integer"
+         *         },
+         *         {
+         *           "channel": "size",
+         *           "name": "min_fee",
+         *           "precision": 10,
+         *           "role": "measure",
+         *           "scale": 2,
+         *           "type": "decimal"
+         *         }
+         *       ],
+         *       "data": {
+         *         "count": [
+         *           10,
+         *           12,
+         *           3
+         *         ],
+         *         "min_fee": [
+         *           3.76,
+         *           4.1,
+         *           12.8
+         *         ],
+         *         "x_hi": [
+         *           5,
+         *           10,
+         *           15
+         *         ],
+         *         "x_lo": [
+         *           0,
+         *           5,
+         *           10
+         *         ]
+         *       },
+         *       "dialect": "duckdb",
+         *       "domains": {
+         *         "count": [
+         *           3,
+         *           12
+         *         ],
+         *         "x": [
+         *           0,
+         *           15
+         *         ],
+         *         "x_hi": [
+         *           5,
+         *           15
+         *         ],
+         *         "x_lo": [
+         *           0,
+         *           10
+         *         ]
+         *       },
+         *       "id": "distance",
+         *       "sql": [
+         *         "SELECT MIN(\"distance_km\") ...",
+         *         "WITH \"_sluice_base\" AS (...) SELECT ..."
+         *       ],
+         *       "stats": {
+         *         "groups": 3,
+         *         "matched_rows": 25,
+         *         "result_rows": 3,
+         *         "source_rows": 5000,
+         *         "statements": 2,
+         *         "truncated": false
+         *       },
+         *       "timing_ms": {
+         *         "encode": 0.1,
+         *         "execute": 3.1,
+         *         "plan": 0.4,
+         *         "shape": 0.3
+         *       }
+         *     }
+         */
+        BatchChartAnswer: {
+            /** Approximate */
+            approximate?: boolean | null;
+            approximation?: components["schemas"]["Approximation"] | null;
+            /** Bins */
+            bins: {
+                [key: string]: components["schemas"]["BinLayout"];
+            };
+            /**
+             * Brushes
+             * @description ids of the charts whose brush filtered this chart, in chart order (never its own)
+             */
+            brushes: string[];
+            /**
+             * Cache
+             * @enum {string}
+             */
+            cache: "hit" | "miss";
+            /** Columns */
+            columns: components["schemas"]["OutputColumn"][];
+            /**
+             * Data
+             * @description column name -> values (timestamps RFC 3339, decimals exact numbers, non-finite floats null)
+             */
+            data: {
+                [key: string]: unknown[];
+            };
+            /** Dialect */
+            dialect: string;
+            /** Domains */
+            domains: {
+                [key: string]: unknown[];
+            };
+            /**
+             * Id
+             * @description the chart's id, when it has one
+             */
+            id?: string | null;
+            /**
+             * Reduced
+             * @description M4 line reduction (Jugel et al. 2014)
+             */
+            reduced?: {
+                [key: string]: unknown;
+            } | null;
+            /** Sql */
+            sql: string[];
+            stats: components["schemas"]["Stats"];
+            /** Timing Ms */
+            timing_ms: {
+                [key: string]: number;
+            };
+        } & {
+            [key: string]: unknown;
+        };
+        /**
          * BatchRequest
          * @description Several charts on one source, answered together (each answer or problem in order).
+         *     Chart i is asked as a chart request whose ``where`` is the batch's ``where``, then the
+         *     chart's own, then every other chart's ``brush`` in chart order (``planner.linked``).
+         * @example {
+         *       "charts": [
+         *         {
+         *           "brush": [
+         *             {
+         *               "column": "distance_km",
+         *               "gte": 5,
+         *               "lt": 20
+         *             }
+         *           ],
+         *           "channels": {
+         *             "x": {
+         *               "bin": {
+         *                 "bins": 30
+         *               },
+         *               "column": "distance_km"
+         *             },
+         *             "y": {
+         *               "agg": "count"
+         *             }
+         *           },
+         *           "id": "distance"
+         *         },
+         *         {
+         *           "brush": [
+         *             {
+         *               "column": "vehicle",
+         *               "in": [
+         *                 "van",
+         *                 "bike"
+         *               ]
+         *             }
+         *           ],
+         *           "channels": {
+         *             "x": {
+         *               "column": "vehicle"
+         *             },
+         *             "y": {
+         *               "agg": "count"
+         *             }
+         *           },
+         *           "id": "vehicles"
+         *         },
+         *         {
+         *           "channels": {
+         *             "x": {
+         *               "column": "delivered_at",
+         *               "trunc": "day"
+         *             },
+         *             "y": {
+         *               "agg": "count"
+         *             }
+         *           },
+         *           "id": "by_day"
+         *         }
+         *       ],
+         *       "source": "deliveries",
+         *       "tz": "Europe/Berlin",
+         *       "where": [
+         *         {
+         *           "column": "delivered_at",
+         *           "gte": "2026-01-01"
+         *         }
+         *       ]
+         *     }
          */
         BatchRequest: {
             /** Charts */
@@ -306,6 +560,11 @@ export interface components {
              * @description The dashboard's IANA time zone: the tz of every chart that does not name its own.
              */
             tz?: string | null;
+            /**
+             * Where
+             * @description Filters every chart of the batch (ANDed with its own `where` and the other charts' brushes).
+             */
+            where?: (components["schemas"]["Predicate"] | components["schemas"]["AnyOf"] | components["schemas"]["NotOf"])[];
         };
         /**
          * Bin
@@ -805,10 +1064,20 @@ export interface components {
          *     }
          */
         ProblemDetail: {
+            /**
+             * Brushes
+             * @description in a /v1/batch result: ids of the charts whose brush filters this chart (never its own)
+             */
+            brushes?: string[] | null;
             /** Detail */
             detail: string;
             /** Errors */
             errors?: components["schemas"]["ProblemError"][] | null;
+            /**
+             * Id
+             * @description in a /v1/batch result: the chart's id, when it has one
+             */
+            id?: string | null;
             /** Instance */
             instance?: string | null;
             /** Pointer */
@@ -1093,6 +1362,7 @@ export type AnyOf = components['schemas']['AnyOf'];
 export type Approximation = components['schemas']['Approximation'];
 export type BatchAnswer = components['schemas']['BatchAnswer'];
 export type BatchChart = components['schemas']['BatchChart'];
+export type BatchChartAnswer = components['schemas']['BatchChartAnswer'];
 export type BatchRequest = components['schemas']['BatchRequest'];
 export type Bin = components['schemas']['Bin'];
 export type BinLayout = components['schemas']['BinLayout'];
