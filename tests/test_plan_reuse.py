@@ -12,13 +12,13 @@ from __future__ import annotations
 
 import datetime as dt
 
-import duckdb
 import numpy as np
 import pytest
 
 from planner.dialects.base import Dialect
 from planner.errors import PlanError
 from planner.model import ChartRequest
+from testmods import load as _load  # tests/ helper modules (tests/testmods.py)
 
 N = 4000
 T0 = dt.datetime(2026, 1, 1, tzinfo=dt.timezone.utc)
@@ -36,20 +36,13 @@ ROWS = _rows()
 
 @pytest.fixture(scope="module")
 def service(tmp_path_factory):
-    from app.catalog import Catalog
-    from app.service import ChartService
-    from app.settings import parse_settings
+    def build(con) -> dict[str, str]:
+        con.execute("CREATE TABLE t (ts TIMESTAMPTZ, v DOUBLE, n INTEGER)")
+        con.executemany("INSERT INTO t VALUES (?, ?, ?)", ROWS)
+        return {"t": "t"}
 
-    path = tmp_path_factory.mktemp("reuse") / "t.duckdb"
-    con = duckdb.connect(str(path))
-    con.execute("SET TimeZone = 'UTC'")
-    con.execute("CREATE TABLE t (ts TIMESTAMPTZ, v DOUBLE, n INTEGER)")
-    con.executemany("INSERT INTO t VALUES (?, ?, ?)", ROWS)
-    con.close()
-    catalog = Catalog(parse_settings({"sources": {"t": {"engine": "duckdb", "path": str(path),
-                                                         "table": "t"}}}, "<reuse>"))
-    yield ChartService(catalog)
-    catalog.close()
+    yield from _load("duckdb_service").duckdb_service(
+        tmp_path_factory.mktemp("reuse") / "t.duckdb", build, "<reuse>")
 
 
 def _window(i: int) -> tuple[dt.datetime, dt.datetime]:

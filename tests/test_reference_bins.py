@@ -9,6 +9,7 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
+from testmods import load as _load  # tests/ helper modules (tests/testmods.py)
 
 # ---------------------------------------------------------------------------------------------
 # Reference nice numbers: Paul S. Heckbert, "Nice Numbers for Graph Labels", Graphics Gems
@@ -454,24 +455,17 @@ INT_RANGES = [(-57, 0), (-46, 371), (-8, 0), (-1, 0), (-3, 50), (0, 999), (-1000
 
 @pytest.fixture(scope="module")
 def int_service(tmp_path_factory):
-    import duckdb
+    def build(con) -> dict[str, str]:
+        tables = {}
+        for j, (lo, hi) in enumerate(INT_RANGES):
+            con.execute(f"CREATE TABLE t{j} (v INTEGER, b BIGINT)")
+            rows = [(v, v) for v in range(lo, hi + 1)] + [(hi, hi), (lo, lo), (None, None)]
+            con.executemany(f"INSERT INTO t{j} VALUES (?, ?)", rows)
+            tables[f"ints{j}"] = f"t{j}"
+        return tables
 
-    from app.catalog import Catalog
-    from app.service import ChartService
-    from app.settings import parse_settings
-
-    path = tmp_path_factory.mktemp("int_bins") / "ints.duckdb"
-    con = duckdb.connect(str(path))
-    sources = {}
-    for j, (lo, hi) in enumerate(INT_RANGES):
-        con.execute(f"CREATE TABLE t{j} (v INTEGER, b BIGINT)")
-        rows = [(v, v) for v in range(lo, hi + 1)] + [(hi, hi), (lo, lo), (None, None)]
-        con.executemany(f"INSERT INTO t{j} VALUES (?, ?)", rows)
-        sources[f"ints{j}"] = {"engine": "duckdb", "path": str(path), "table": f"t{j}"}
-    con.close()
-    catalog = Catalog(parse_settings({"sources": sources}, "<integer bins>"))
-    yield ChartService(catalog)
-    catalog.close()
+    yield from _load("duckdb_service").duckdb_service(
+        tmp_path_factory.mktemp("int_bins") / "ints.duckdb", build, "<integer bins>")
 
 
 @pytest.mark.parametrize("n", [4, 8, 20, 30])

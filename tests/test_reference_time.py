@@ -13,6 +13,7 @@ import re
 from zoneinfo import ZoneInfo
 
 import pytest
+from testmods import load as _load  # tests/ helper modules (tests/testmods.py)
 
 UTC = dt.timezone.utc
 BERLIN = ZoneInfo("Europe/Berlin")
@@ -494,27 +495,19 @@ def utc_trunc(t: dt.datetime, unit: str) -> dt.datetime:
 
 @pytest.fixture(scope="module")
 def edge_service(tmp_path_factory):
-    import duckdb
+    def build(con) -> dict[str, str]:
+        con.execute("CREATE TABLE t (ts TIMESTAMPTZ, tsn TIMESTAMP, d DATE)")
+        con.executemany("INSERT INTO t VALUES (?, ?, ?)",
+                        [(t, t.replace(tzinfo=None), t.date()) for t in EDGE_INSTANTS])
+        # legal values no time key shows (README "Bins"): NULL groups
+        con.execute("INSERT INTO t VALUES ('infinity', 'infinity', 'infinity'), "
+                    "('-infinity', '-infinity', '-infinity'), "
+                    "('12000-01-01 00:00:00+00', '12000-01-01 00:00:00', '12000-01-01'), "
+                    "(NULL, NULL, NULL)")
+        return {"edge": "t"}
 
-    from app.catalog import Catalog
-    from app.service import ChartService
-    from app.settings import parse_settings
-
-    path = tmp_path_factory.mktemp("edge_times") / "edge.duckdb"
-    con = duckdb.connect(str(path))
-    con.execute("SET TimeZone = 'UTC'")
-    con.execute("CREATE TABLE t (ts TIMESTAMPTZ, tsn TIMESTAMP, d DATE)")
-    con.executemany("INSERT INTO t VALUES (?, ?, ?)",
-                    [(t, t.replace(tzinfo=None), t.date()) for t in EDGE_INSTANTS])
-    # legal values no time key shows (README "Bins"): NULL groups
-    con.execute("INSERT INTO t VALUES ('infinity', 'infinity', 'infinity'), "
-                "('-infinity', '-infinity', '-infinity'), "
-                "('12000-01-01 00:00:00+00', '12000-01-01 00:00:00', '12000-01-01'), (NULL, NULL, NULL)")
-    con.close()
-    catalog = Catalog(parse_settings({"sources": {"edge": {"engine": "duckdb", "path": str(path),
-                                                           "table": "t"}}}, "<edge times>"))
-    yield ChartService(catalog)
-    catalog.close()
+    yield from _load("duckdb_service").duckdb_service(
+        tmp_path_factory.mktemp("edge_times") / "edge.duckdb", build, "<edge times>")
 
 
 @pytest.mark.parametrize("unit", ["week", "day", "hour", "minute", "second"])
@@ -558,23 +551,14 @@ def _zone_instants() -> list[dt.datetime]:
 
 @pytest.fixture(scope="module")
 def zone_service(tmp_path_factory):
-    import duckdb
+    def build(con) -> dict[str, str]:
+        con.execute("CREATE TABLE t (ts TIMESTAMPTZ)")
+        con.executemany("INSERT INTO t VALUES (?)", [(t,) for t in _zone_instants()])
+        con.execute("INSERT INTO t VALUES ('infinity'), ('12000-01-01 00:00:00+00'), (NULL)")
+        return {"zones": "t"}
 
-    from app.catalog import Catalog
-    from app.service import ChartService
-    from app.settings import parse_settings
-
-    path = tmp_path_factory.mktemp("zone_times") / "zones.duckdb"
-    con = duckdb.connect(str(path))
-    con.execute("SET TimeZone = 'UTC'")
-    con.execute("CREATE TABLE t (ts TIMESTAMPTZ)")
-    con.executemany("INSERT INTO t VALUES (?)", [(t,) for t in _zone_instants()])
-    con.execute("INSERT INTO t VALUES ('infinity'), ('12000-01-01 00:00:00+00'), (NULL)")
-    con.close()
-    catalog = Catalog(parse_settings({"sources": {"zones": {"engine": "duckdb", "path": str(path),
-                                                            "table": "t"}}}, "<zone times>"))
-    yield ChartService(catalog)
-    catalog.close()
+    yield from _load("duckdb_service").duckdb_service(
+        tmp_path_factory.mktemp("zone_times") / "zones.duckdb", build, "<zone times>")
 
 
 @pytest.mark.parametrize("unit", ["hour", "minute", "second"])
