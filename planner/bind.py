@@ -64,8 +64,10 @@ def _check_measure(i: int, path, channel: str, ch: Channel, schema: SourceSchema
     if ch.column is not None:
         col = _resolve(ch.column, schema, pointer(*path, "column"))
         if not entry.accepts(col.kind):
-            raise PlanError(pointer(*path, "agg"),
-                            entry.mismatch.format(agg=ch.agg, column=col.name, kind=col.kind),
+            detail = entry.mismatch.format(agg=ch.agg, column=col.name, kind=col.kind)
+            if col.kind == "boolean" and aggregates.get("share").accepts("boolean"):
+                detail += "; the fraction of true rows is {\"agg\": \"share\"}"
+            raise PlanError(pointer(*path, "agg"), detail,
                             slug="type-mismatch", title="Aggregate does not fit the column type")
     if ch.tz is not None:
         raise PlanError(pointer(*path, "tz"), "tz applies to temporal keys, not to a measure")

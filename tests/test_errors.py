@@ -140,6 +140,13 @@ def test_bad_request_on_sql_endpoint_too(client, req, accepted, suggest):
     _check_problem(client.post("/v1/sql", json=req), accepted)
 
 
+def test_avg_of_a_boolean_points_at_share(client):
+    # the 422 names the aggregate that does answer "how often is it true" (planner/aggregates.py)
+    r = client.post("/v1/chart", json=ch(x={"column": "cat"}, y={"agg": "avg", "column": "flag"}))
+    p = _check_problem(r, {"/channels/y/agg"})
+    assert '"share"' in p["detail"], p
+
+
 def test_distinct_cases_count():
     assert len({c[0] for c in CASES}) == len(CASES) >= 25
 
