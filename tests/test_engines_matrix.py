@@ -741,3 +741,45 @@ def test_spark_semantics(tmp_path_factory):
     finally:
         catalog.close()
     print("top on 4000 keys, spark: " + ", ".join(f"{a} {s:.2f} s" for a, s in timings.items()))
+
+
+def test_spark_without_a_statement_timeout_sets_no_timer(tmp_path_factory, monkeypatch):
+    """``statement_timeout_ms = 0`` means no time limit on Spark as on every other engine
+    (README "Limits"): before, Spark armed its own cancel timer at 0 s for every statement
+    not guarded by app.limits (catalog and row-count statements), racing the job. The
+    answer is checked against pyarrow's group counts over the same rows."""
+    import threading
+
+    import pyarrow as pa
+
+    from app.catalog import Catalog
+    from app.engines import spark as spark_engine
+    from app.service import ChartService
+    from app.settings import parse_settings
+
+    armed: list[float] = []
+
+    class Timer(threading.Timer):
+        def __init__(self, interval, *a, **kw):
+            armed.append(interval)
+            super().__init__(interval, *a, **kw)
+
+    monkeypatch.setattr(spark_engine.threading, "Timer", Timer)
+    root = tmp_path_factory.mktemp("spark_no_timeout")
+    table = pa.table({"g": ["a", "b", "a", None, "a"], "v": [1, 2, 3, 4, 5]})
+    src = fx.load_spark(root, table)
+    src["table"] = "sluice_no_timeout"
+    src["statement_timeout_ms"] = 0
+    catalog = Catalog(parse_settings({"sources": {"spark_nt": src}}, "<spark no timeout>"))
+    try:
+        svc = ChartService(catalog)
+        out = svc.to_json(svc.run(ChartRequest.model_validate(
+            {"source": "spark_nt", "channels": {"x": {"column": "g"}, "y": {"agg": "count"}}})))
+        catalog.engine("spark_nt").execute("SELECT COUNT(*) AS n FROM sluice_no_timeout")
+    finally:
+        catalog.close()
+    assert armed == []  # no statement got a time limit
+    got = dict(zip(out["data"]["g"], out["data"]["count"]))
+    want = {r["g"]: r["n"] for r in table.group_by("g").aggregate([([], "count_all")])
+            .rename_columns(["g", "n"]).to_pylist()}
+    assert got == want

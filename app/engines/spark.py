@@ -140,7 +140,6 @@ class SparkEngine(EngineBase):
             raise EngineUnavailable(cfg.name, "the spark engine needs pyspark "
                                     "(pip install 'sluice-charts[engines]') and Java 17") from None
         self.remote = cfg.dsn if cfg.dsn and cfg.dsn.startswith("sc://") else None
-        self._timeout_s = self.timeout_ms / 1000.0
         self._grace_s = int(cfg.options.get("cancel_grace_ms", 5000)) / 1000.0
         self.path = Path(cfg.path) if cfg.path else None
         self._local = threading.local()
@@ -227,10 +226,11 @@ class SparkEngine(EngineBase):
         spark = self.spark
         sc = spark.sparkContext
         timer = None
-        if tag is None:  # not guarded by app.limits: the engine's own time limit
+        if tag is None:  # not guarded by app.limits: the engine's own time limit (0: none)
             tag = f"sluice-{uuid.uuid4().hex}"
-            timer = threading.Timer(self._timeout_s, sc.cancelJobGroup, args=(tag,))
-            timer.daemon = True
+            if self.timeout_s is not None:
+                timer = threading.Timer(self.timeout_s, sc.cancelJobGroup, args=(tag,))
+                timer.daemon = True
         sc.setJobGroup(tag, "sluice chart", interruptOnCancel=True)
         if timer is not None:
             timer.start()
@@ -257,9 +257,10 @@ class SparkEngine(EngineBase):
             def fire() -> None:
                 ev.set()
                 _quiet(spark.interruptTag, tag)
-            own_timer = threading.Timer(self._timeout_s, fire)
-            own_timer.daemon = True
-            own_timer.start()
+            if self.timeout_s is not None:  # statement_timeout_ms = 0: no time limit
+                own_timer = threading.Timer(self.timeout_s, fire)
+                own_timer.daemon = True
+                own_timer.start()
 
         def run() -> pa.Table:
             spark.addTag(tag)  # thread-local in the Connect client: this worker's calls only
@@ -305,7 +306,7 @@ class SparkEngine(EngineBase):
         catalog's row count) answers like app.limits' timeout: 504."""
         from app.limits import StatementTimeout
 
-        return StatementTimeout(self.cfg.name, int(self._timeout_s * 1000))
+        return StatementTimeout(self.cfg.name, self.timeout_ms)
 
     def describe(self, table: tuple[str, ...]) -> list[tuple[str, str]]:
         spark = self._session()
