@@ -151,7 +151,28 @@ def timestamps_to_text(arr: pa.ChunkedArray, tz: str | None) -> list[str | None]
         return text_np
     text = pc.strftime(shown, format="%Y-%m-%dT%H:%M:%S%z")
     text = pc.replace_substring_regex(text, pattern=r"([+-]\d\d)(\d\d)$", replacement=r"\1:\2")
-    return text.to_pylist()
+    out = text.to_pylist()
+    # RFC 3339 offsets are hours and minutes; a local mean time offset has seconds too
+    # (Berlin +00:53:28 before 1893), which %z cuts, so that text would name an instant 28 s
+    # off. There the offset is cut to whole minutes and the wall clock shifted with it: the
+    # text names the same instant (README "Time zones").
+    wall = pc.local_timestamp(shown).cast(pa.int64()).to_numpy(zero_copy_only=False)
+    utc = shown.cast(pa.int64()).to_numpy(zero_copy_only=False)
+    per_s = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}[shown.type.unit]
+    off = wall - utc
+    odd = np.flatnonzero((off % (60 * per_s)) != 0)
+    if len(odd):
+        digits = {"s": 0, "ms": 3, "us": 6, "ns": 9}[shown.type.unit]
+        for i in odd.tolist():
+            if out[i] is None:
+                continue
+            minutes = int(np.trunc(off[i] / (60 * per_s)))  # toward zero, as %z cuts
+            secs, frac = divmod(int(utc[i]), per_s)
+            t = dt.datetime(1970, 1, 1) + dt.timedelta(seconds=secs + 60 * minutes)
+            sign, m = ("-", -minutes) if minutes < 0 else ("+", minutes)
+            out[i] = (t.strftime("%Y-%m-%dT%H:%M:%S") + (f".{frac:0{digits}d}" if digits else "")
+                      + f"{sign}{m // 60:02d}:{m % 60:02d}")
+    return out
 
 
 def _utc_text_fragment(arr: pa.ChunkedArray) -> orjson.Fragment | None:

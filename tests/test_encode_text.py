@@ -142,3 +142,29 @@ def test_instant_text_matches_numpy() -> None:
         expected = np.datetime_as_string(np.datetime64(naive, "us"), unit="us" if us else "s") + "Z"
         assert instant_text(v, None) == expected
         assert instant_text(v, "UTC") == expected
+
+
+@pytest.mark.parametrize("unit", ["s", "ms", "us"])
+@pytest.mark.parametrize("zone", ["Europe/Berlin", "America/New_York", "Asia/Kolkata",
+                                  "Australia/Lord_Howe", "Africa/Monrovia"])
+def test_zoned_text_names_the_same_instant(zone: str, unit: str) -> None:
+    """Every text in a zone reads back (``datetime.fromisoformat``) as the same instant, also
+    under local mean time, whose offsets have seconds that RFC 3339 offsets (hh:mm, RFC 3339
+    section 5.6) cannot hold; where the zone's offset is whole minutes the text equals
+    zoneinfo's own wall clock and offset (Python's ``zoneinfo`` as the reference)."""
+    from zoneinfo import ZoneInfo
+
+    rng = np.random.default_rng(7)
+    secs = np.concatenate([rng.integers(-4_000_000_000, 2_000_000_000, 400),
+                           [-2_422_054_408, -2_422_054_409, 0]])  # Berlin's 1893 switch
+    frac = rng.integers(0, PER_SECOND[unit], len(secs)) if unit != "s" else 0
+    raw = secs * PER_SECOND[unit] + frac
+    arr = pa.chunked_array([pa.array(raw, pa.timestamp(unit, tz="UTC"))])
+    texts = timestamps_to_text(arr, zone)
+    for v, text in zip(arr.to_pylist(), texts):
+        back = dt.datetime.fromisoformat(text)
+        assert back == v, (text, v)
+        assert back.utcoffset().total_seconds() % 60 == 0
+        local = v.astimezone(ZoneInfo(zone))
+        if local.utcoffset().total_seconds() % 60 == 0:
+            assert back.replace(tzinfo=None) == local.replace(tzinfo=None), (text, local)
