@@ -204,21 +204,32 @@ def drag(client_factory: Callable[[], Any], case: Multi, start: int,
          moves: int = DRAG_MOVES, gap_ms: float = DRAG_GAP_MS,
          session: str = "bench-drag") -> dict[str, Any]:
     """Send ``moves`` chart requests (numbers start..start+moves-1) of one ``session``,
-    ``gap_ms`` apart, each from its own thread and client; wait for every answer."""
+    ``gap_ms`` apart, each from its own thread and client; wait for every answer.
+
+    Each client connects first (GET /healthz) and move k starts only once move k-1 is about
+    to send, so the moves leave in order; on a loaded machine two may still arrive swapped,
+    and then the newest ARRIVAL wins (the final move answers 409): ``last`` is the answered
+    move with the highest number, ``reordered`` says whether that is not the final one."""
     out: list[Any] = [None] * moves
     done_at: list[float] = [0.0] * moves
     sent_at: list[float] = [0.0] * moves
     bodies = [orjson.dumps({**case.body(start + k), "session": session}) for k in range(moves)]
     clients = [client_factory() for _ in range(moves)]
+    for c in clients:
+        c.get("/healthz")
+    ready = [threading.Event() for _ in range(moves)]
 
     def send(k: int) -> None:
         sent_at[k] = time.perf_counter()
+        ready[k].set()
         out[k] = post(clients[k], "/v1/chart", bodies[k])
         done_at[k] = time.perf_counter()
 
     t0 = time.perf_counter()
     threads = []
     for k in range(moves):
+        if k:
+            ready[k - 1].wait()
         delay = t0 + k * gap_ms / 1000.0 - time.perf_counter()
         if delay > 0:
             time.sleep(delay)
@@ -228,10 +239,13 @@ def drag(client_factory: Callable[[], Any], case: Multi, start: int,
     for th in threads:
         th.join()
     codes = [r.status_code for r in out]
+    answered = [k for k in range(moves) if codes[k] == 200]
+    k_last = answered[-1] if answered else moves - 1
     return {"codes": codes, "superseded": codes.count(409),
-            "first_send_to_last_ms": (done_at[-1] - t0) * 1000.0,
-            "last_move_ms": (done_at[-1] - sent_at[-1]) * 1000.0,
-            "last": out[-1], "clients": clients}  # the caller closes the clients
+            "first_send_to_last_ms": (max(done_at) - t0) * 1000.0,
+            "last_move_ms": (max(done_at) - sent_at[-1]) * 1000.0,
+            "last": out[k_last], "last_index": start + k_last, "reordered": k_last != moves - 1,
+            "clients": clients}  # the caller closes the clients
 
 
 def check(case: Multi, client: Any, con: Any, i: int = 0) -> tuple[list[dict[str, Any]], list[str], str | None]:

@@ -75,12 +75,14 @@ def multi_table(res: dict) -> str:
             lines += ["", f"{n}: error: {str(r.get('error'))[:200]}"]
             continue
         lines += ["", "| case | rounds | limit ms | alone ms | last move → answer ms | last move/alone "
-                  "(paired) | first send → last answer ms | superseded (409) per drag | (a)==(b) |",
-                  "|" + "---|" * 9,
+                  "(paired) | first send → last answer ms | superseded (409) per drag | final move "
+                  "superseded (arrived early) | (a)==(b) |",
+                  "|" + "---|" * 10,
                   f"| {n} ({r['title']}) | {r['runs']} | {fmt(r['limit_ms_p50'])} | "
                   f"{fmt(r['alone_ms_p50'])} | {fmt(r['drag_last_move_ms_p50'])} | "
                   f"{fmt(r['drag_last_move_over_alone'], 3)} ({fmt(r['drag_last_move_over_alone_paired'], 3)}) | "
                   f"{fmt(r['drag_span_ms_p50'])} | {r['superseded_per_drag']} | "
+                  f"{r.get('drags_final_move_superseded_by_reordering', '-')} | "
                   f"{'yes' if r['sanity_equal'] else 'NO'} |"]
     return "\n".join(lines)
 

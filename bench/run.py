@@ -551,6 +551,7 @@ def measure_multi(m, http: httpx.Client, con: duckdb.DuckDBPyConnection) -> dict
     else:
         t = {"limit": [], "alone": [], "drag_span": [], "drag_last_move": []}
         codes: list[list[int]] = []
+        reordered = 0  # drags whose final move arrived before an earlier one (answered 409)
         for rnd in range(RUNS):
             start = 1000 + 100 * rnd
             last_i = start + multi_mod.DRAG_MOVES - 1
@@ -582,7 +583,8 @@ def measure_multi(m, http: httpx.Client, con: duckdb.DuckDBPyConnection) -> dict
             lastr = res["last"]
             assert lastr.status_code == 200, lastr.text[:300]
             last = [lastr.json()]
-            hand = con.sql(m.hand(last, last_i)[0]).to_arrow_table()
+            reordered += res["reordered"]
+            hand = con.sql(m.hand(last, res["last_index"])[0]).to_arrow_table()
             d2 = multi_mod.same_rows(last[0], hand)
             if d2 is not None:
                 row["sanity_equal"] = False
@@ -597,6 +599,7 @@ def measure_multi(m, http: httpx.Client, con: duckdb.DuckDBPyConnection) -> dict
         row["gap_ms"] = multi_mod.DRAG_GAP_MS
         row["superseded_per_drag"] = [c.count(409) for c in codes]
         row["answered_200_per_drag"] = [c.count(200) for c in codes]
+        row["drags_final_move_superseded_by_reordering"] = reordered
         row["other_codes"] = sorted({x for c in codes for x in c if x not in (200, 409)})
     med = {k: statistics.median(v) for k, v in t.items()}
     for k, v in t.items():
