@@ -642,6 +642,9 @@ def print_table(out: dict[str, Any]) -> None:
             r.get("naive_http_ms", "-"), r.get("naive_http_over_service", "-"),
             r["plan_ms"], r["plan_ms_in_service"], r["cached_ms"], r["response_bytes"],
             f"{r['statements_cold']}/{r['statements']}", "yes" if r["sanity_equal"] else "NO")))
+    if any("multi" in r for r in out["cases"].values()):
+        import report  # bench/report.py: the multi-chart cases' ratios side by side
+        print(report.multi_table(out))
     print("summary:", json.dumps(out["summary"]))
 
 
