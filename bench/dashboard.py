@@ -19,7 +19,6 @@ runs all three on a small table). Only request fields, table columns and HTTP ar
 
 from __future__ import annotations
 
-import statistics
 import threading
 import time
 from dataclasses import dataclass
@@ -279,6 +278,3 @@ def pct(xs: list[float], q: float) -> float:
     hi = min(lo + 1, len(s) - 1)
     return s[lo] + (s[hi] - s[lo]) * (pos - lo)
 
-
-def p50(xs: list[float]) -> float:
-    return statistics.median(xs) if xs else float("nan")

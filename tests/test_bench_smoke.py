@@ -152,6 +152,15 @@ def test_drag_runs_one_session_to_its_last_answer(bench_env, bench_client):
     assert bench_multi.same_rows(last, hand) is None
 
 
+def test_multi_p95_is_numpys_linear_quantile():
+    # the p95 of the brush steps: numpy's default (linear) quantile as the reference
+    import numpy as np
+
+    xs = list(np.random.default_rng(12).gamma(2.0, 30.0, size=37))
+    for q in (0.5, 0.95, 1.0):
+        assert math.isclose(bench_multi.pct(xs, q), float(np.quantile(xs, q)), rel_tol=1e-12)
+
+
 def test_brush_width_counts_match_numpy(bench_env, bench_client):
     # The brush_width hand SQL is plain floor((v - origin) / width); check the service's
     # counts against numpy's floor on the same filtered rows as well (numpy as the reference).
