@@ -28,7 +28,7 @@ def table(res: dict) -> str:
         "|" + "---|" * 17,
     ]
     for name, r in res["cases"].items():
-        if name == "first_request":
+        if name == "first_request" or "multi" in r:
             continue
         if "service_ms" not in r:
             lines.append(f"| {name} | error: {r.get('error', '')[:60]} |" + " |" * 15)
@@ -53,6 +53,40 @@ def table(res: dict) -> str:
     return "\n".join(lines)
 
 
+def multi_table(res: dict) -> str:
+    """Issue 12's multi-chart cases (bench/dashboard.py): batch and drag, side by side."""
+    batch = [(n, r) for n, r in res["cases"].items() if r.get("multi") == "batch"]
+    drag = [(n, r) for n, r in res["cases"].items() if r.get("multi") == "drag"]
+    lines = []
+    if batch:
+        lines += ["| case | charts | steps | limit p50 / p95 ms | batch p50 / p95 ms | batch/limit | "
+                  "paired | statements | (a)==(b) |", "|" + "---|" * 9]
+        for n, r in batch:
+            if "service_ms_p50" not in r:
+                lines.append(f"| {n} | error: {str(r.get('error'))[:60]} |" + " |" * 7)
+                continue
+            lines.append(f"| {n} ({r['title']}) | {r['charts']} | {r['steps']} | "
+                         f"{fmt(r['limit_ms_p50'])} / {fmt(r['limit_ms_p95'])} | "
+                         f"{fmt(r['service_ms_p50'])} / {fmt(r['service_ms_p95'])} | "
+                         f"{fmt(r['service_over_limit'], 3)} | {fmt(r['service_over_limit_paired'], 3)} | "
+                         f"{r['statements']} | {'yes' if r['sanity_equal'] else 'NO'} |")
+    for n, r in drag:
+        if "alone_ms_p50" not in r:
+            lines += ["", f"{n}: error: {str(r.get('error'))[:200]}"]
+            continue
+        lines += ["", "| case | rounds | limit ms | alone ms | last move → answer ms | last move/alone "
+                  "(paired) | first send → last answer ms | superseded (409) per drag | final move "
+                  "superseded (arrived early) | (a)==(b) |",
+                  "|" + "---|" * 10,
+                  f"| {n} ({r['title']}) | {r['runs']} | {fmt(r['limit_ms_p50'])} | "
+                  f"{fmt(r['alone_ms_p50'])} | {fmt(r['drag_last_move_ms_p50'])} | "
+                  f"{fmt(r['drag_last_move_over_alone'], 3)} ({fmt(r['drag_last_move_over_alone_paired'], 3)}) | "
+                  f"{fmt(r['drag_span_ms_p50'])} | {r['superseded_per_drag']} | "
+                  f"{r.get('drags_final_move_superseded_by_reordering', '-')} | "
+                  f"{'yes' if r['sanity_equal'] else 'NO'} |"]
+    return "\n".join(lines)
+
+
 def load_table(load: dict) -> str:
     lines = ["| phase | connections | seconds | requests | requests/s | p50 ms | p99 ms | errors |",
              "|---|---|---|---|---|---|---|---|"]
@@ -70,6 +104,9 @@ def main() -> None:
     print(f"date {res['date']}, rows {res['rows']:,}, runs {res['runs']}, machine {res['machine']}")
     print()
     print(table(res))
+    if any("multi" in r for r in res["cases"].values()):
+        print()
+        print(multi_table(res))
     print()
     print("summary:", json.dumps(res["summary"]))
     load_path = Path(sys.argv[2]) if len(sys.argv) > 2 else HERE / "load.json"

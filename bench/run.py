@@ -25,7 +25,14 @@ see bench/runner.py), and tests/test_bench_smoke.py runs every case on 20,000 ro
 
 Environment: BENCH_ROWS (default 10,000,000), BENCH_RUNS (5), BENCH_NAIVE_HTTP_ROWS (1,000,000),
 BENCH_CASES (comma list of case names and/or ``first_request``; default all), BENCH_PORT (8765),
-BENCH_SKIP_NAIVE=1, BENCH_PLAN_ROWS (20,000), BENCH_PLAN_REQUESTS (200), BENCH_FIRST_RUNS (5).
+BENCH_SKIP_NAIVE=1, BENCH_PLAN_ROWS (20,000), BENCH_PLAN_REQUESTS (200), BENCH_FIRST_RUNS (5),
+BENCH_MULTI_STEPS (4: brush steps per round of ``dashboard`` / ``linked``).
+
+Issue 12's multi-chart cases (bench/dashboard.py; ``measure_multi``): ``dashboard`` (six
+charts, one moving shared window, one /v1/batch vs the six hand-written statements one after
+another), ``linked`` (four charts, four moving brushes, vs the four statements each filtered
+by the other charts' brushes; p50/p95 over the brush steps), ``drag`` (20 moves of one
+``session`` 20 ms apart: time to the last answer vs the last request alone).
 """
 
 from __future__ import annotations
@@ -52,6 +59,7 @@ sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(HERE))
 
 import cases as suite_mod  # noqa: E402
+import dashboard as multi_mod  # noqa: E402  (issue 12: dashboard, linked, drag)
 import runner  # noqa: E402
 
 ROWS = int(os.environ.get("BENCH_ROWS", "10000000"))
@@ -62,6 +70,7 @@ ROWS_PORT = PORT + 1
 PLAN_ROWS = int(os.environ.get("BENCH_PLAN_ROWS", "20000"))
 PLAN_REQUESTS = int(os.environ.get("BENCH_PLAN_REQUESTS", "200"))
 FIRST_RUNS = int(os.environ.get("BENCH_FIRST_RUNS", "5"))
+MULTI_STEPS = int(os.environ.get("BENCH_MULTI_STEPS", "4"))
 DATA = HERE / "data"
 PY = sys.executable
 
@@ -248,11 +257,12 @@ def main() -> int:
     wanted = [c for c in os.environ.get("BENCH_CASES", "").split(",") if c]
     skip_naive = os.environ.get("BENCH_SKIP_NAIVE") == "1"
     cases = [c for c in suite_mod.suite() if not wanted or c.name in wanted]
+    multi = [m for m in multi_mod.suite() if not wanted or m.name in wanted]
     db, walk = build_data()
     cfg = write_config(db, walk)
     threads = os.cpu_count() or 1
     log(f"rows={ROWS:,} runs={RUNS} naive_http_rows={NAIVE_HTTP_ROWS:,} cpus={threads} "
-        f"cases={','.join(c.name for c in cases)}")
+        f"cases={','.join([c.name for c in cases] + [m.name for m in multi])}")
     first = None
     if not wanted or "first_request" in wanted:  # fresh processes, before our server starts
         log(f"first_request: {FIRST_RUNS} fresh processes (import, start-up, first plan)")
@@ -267,7 +277,7 @@ def main() -> int:
         if not skip_naive and any(c.naive is not None for c in cases):
             port_free(ROWS_PORT)
             rows_srv = start_rows_server(db, walk)
-        return _measure(cases, cfg, db, walk, skip_naive, first)
+        return _measure(cases, cfg, db, walk, skip_naive, first, multi)
     finally:
         for proc in (svc, rows_srv):
             if proc is not None and proc.poll() is None:
@@ -278,7 +288,7 @@ def main() -> int:
                     proc.kill()
 
 
-def _measure(cases, cfg, db, walk, skip_naive, first) -> int:
+def _measure(cases, cfg, db, walk, skip_naive, first, multi=()) -> int:
     # The hand-written SQL runs on the bench's own read-only connections (the service runs
     # in its own process, so the two never share a DuckDB instance or its configuration).
     con = {"deliveries": runner.reference_connection(db), "walk": runner.reference_connection(walk)}
@@ -438,11 +448,14 @@ def _measure(cases, cfg, db, walk, skip_naive, first) -> int:
                                                    / sizes[case.name]["raw_bytes"], 4),
                 })
             results[case.name] = row
+        for m in multi:
+            results[m.name] = measure_multi(m, http, con["deliveries"])
     finally:
         http.close()
         rows_http.close()
 
-    ok = [r for r in results.values() if "service_ms" in r]
+    multi_res = {k: r for k, r in results.items() if "multi" in r}
+    ok = [r for k, r in results.items() if "service_ms" in r and k not in multi_res]
     naive = [r for r in ok if "naive_inproc_ms" in r]
     summary = {
         "median_service_over_limit": round(statistics.median(r["service_over_limit"] for r in ok), 3) if ok else None,
@@ -452,7 +465,9 @@ def _measure(cases, cfg, db, walk, skip_naive, first) -> int:
         "median_cached_ms": round(statistics.median(r["cached_ms"] for r in ok), 3) if ok else None,
         "brush_plan_ms_p50": {r_name: results[r_name]["plan_ms"] for r_name in results
                               if results[r_name].get("new_filter_per_request")},
-        "all_sanity_equal": all(r["sanity_equal"] for r in ok) and len(ok) == len(results),
+        "all_sanity_equal": (all(r["sanity_equal"] for r in ok)
+                             and all(r.get("sanity_equal") for r in multi_res.values())
+                             and len(ok) + len(multi_res) == len(results)),
     }
     if naive:
         summary["min_naive_inproc_over_service"] = min(r["naive_inproc_over_service"] for r in naive)
@@ -479,6 +494,133 @@ def _measure(cases, cfg, db, walk, skip_naive, first) -> int:
     return 0 if summary["all_sanity_equal"] else 1
 
 
+# ---- issue 12: several charts per user action (bench/dashboard.py) ------------------------
+def measure_multi(m, http: httpx.Client, con: duckdb.DuckDBPyConnection) -> dict[str, Any]:
+    """One multi-chart case: sanity (every chart's answer == its hand-written statement),
+    then interleaved rounds, (a) and (b) alternating which goes first.
+
+    batch (dashboard, linked): per round MULTI_STEPS steps, every step new filter/brush
+    values; (a) the hand-written statements one after another, (b) one POST /v1/batch.
+    drag: per round DRAG_MOVES requests of one session DRAG_GAP_MS apart, time from the
+    first send to the last move's answer; against (b1) the last move's request alone and
+    (a) its hand-written statement."""
+    metas, _, diff = multi_mod.check(m, http, con, i=0)
+    if not metas:
+        log(f"{m.name}: service answered {diff}")
+        return {"multi": m.kind, "title": m.title, "error": diff, "sanity_equal": False}
+    log(f"{m.name}: sanity (a)==(b): {'OK' if diff is None else 'MISMATCH ' + diff}"
+        f"  ({len(metas)} charts)")
+    row: dict[str, Any] = {"multi": m.kind, "title": m.title, "charts": len(metas),
+                           "sanity_equal": diff is None, "sanity_detail": diff, "runs": RUNS}
+    last = metas
+    if m.kind == "batch":
+        t = {"limit": [], "service": []}
+        bad = []
+        total = RUNS * MULTI_STEPS
+        for step in range(total):
+            i = 1 + step
+            body = orjson.dumps(m.body(i))
+
+            def call():
+                return multi_mod.batch(http, body)
+
+            def limit():
+                # the layout of the last answer (the same cost as this step's)
+                return [con.sql(q).to_arrow_table() for q in m.hand(last, i)]
+
+            if step % 2:
+                ms_s, (resp, metas) = timed(call)
+                ms, _ = timed(limit)
+            else:
+                ms, _ = timed(limit)
+                ms_s, (resp, metas) = timed(call)
+            assert resp.status_code == 200, resp.text[:300]
+            if any("data" not in a for a in metas):
+                bad.append(step)
+            last = metas
+            t["limit"].append(ms)
+            t["service"].append(ms_s)
+            progress(f"{m.name} steps", step + 1, total)
+        _, _, d2 = multi_mod.check(m, http, con, i=total)  # the last step's values again
+        row["sanity_equal_last_step"] = d2 is None
+        if d2 is not None:
+            row["sanity_detail"] = f"step {total}: {d2}"
+        row["sanity_equal"] = row["sanity_equal"] and d2 is None and not bad
+        row["statements"] = sum(a["stats"].get("statements", 0) for a in last)
+        row["steps"] = total
+    else:
+        t = {"limit": [], "alone": [], "drag_span": [], "drag_last_move": []}
+        codes: list[list[int]] = []
+        reordered = 0  # drags whose final move arrived before an earlier one (answered 409)
+        for rnd in range(RUNS):
+            start = 1000 + 100 * rnd
+            last_i = start + multi_mod.DRAG_MOVES - 1
+            alone_body = orjson.dumps({**m.body(last_i), "session": f"bench-alone-{rnd}"})
+
+            def do_drag():
+                res = multi_mod.drag(lambda: httpx.Client(base_url=f"http://127.0.0.1:{PORT}",
+                                                          timeout=600),
+                                     m, start, session=f"bench-drag-{rnd}")
+                for c in res.pop("clients"):
+                    c.close()
+                return res
+
+            def alone():
+                return multi_mod.post(http, "/v1/chart", alone_body)
+
+            def limit():
+                return [con.sql(q).to_arrow_table() for q in m.hand(last, last_i)]
+
+            if rnd % 2:
+                res = do_drag()
+                ms_a, r_a = timed(alone)
+                ms, _ = timed(limit)
+            else:
+                ms, _ = timed(limit)
+                ms_a, r_a = timed(alone)
+                res = do_drag()
+            assert r_a.status_code == 200, r_a.text[:300]
+            lastr = res["last"]
+            assert lastr.status_code == 200, lastr.text[:300]
+            last = [lastr.json()]
+            reordered += res["reordered"]
+            hand = con.sql(m.hand(last, res["last_index"])[0]).to_arrow_table()
+            d2 = multi_mod.same_rows(last[0], hand)
+            if d2 is not None:
+                row["sanity_equal"] = False
+                row["sanity_detail"] = f"drag round {rnd}, last answer: {d2}"
+            codes.append(res["codes"])
+            t["limit"].append(ms)
+            t["alone"].append(ms_a)
+            t["drag_span"].append(res["first_send_to_last_ms"])
+            t["drag_last_move"].append(res["last_move_ms"])
+            progress(f"{m.name} rounds", rnd + 1, RUNS)
+        row["moves"] = multi_mod.DRAG_MOVES
+        row["gap_ms"] = multi_mod.DRAG_GAP_MS
+        row["superseded_per_drag"] = [c.count(409) for c in codes]
+        row["answered_200_per_drag"] = [c.count(200) for c in codes]
+        row["drags_final_move_superseded_by_reordering"] = reordered
+        row["other_codes"] = sorted({x for c in codes for x in c if x not in (200, 409)})
+    med = {k: statistics.median(v) for k, v in t.items()}
+    for k, v in t.items():
+        row[f"{k}_ms_p50"] = round(med[k], 2)
+        row[f"{k}_ms_p95"] = round(multi_mod.pct(v, 0.95), 2)
+    if m.kind == "batch":
+        row["service_over_limit"] = round(med["service"] / med["limit"], 3)
+        row["service_over_limit_paired"] = round(statistics.median(
+            s / l for s, l in zip(t["service"], t["limit"])), 3)
+    else:
+        row["drag_span_over_alone"] = round(med["drag_span"] / med["alone"], 3)
+        row["drag_span_over_alone_paired"] = round(statistics.median(
+            d / a for d, a in zip(t["drag_span"], t["alone"])), 3)
+        row["drag_last_move_over_alone"] = round(med["drag_last_move"] / med["alone"], 3)
+        row["drag_last_move_over_alone_paired"] = round(statistics.median(
+            d / a for d, a in zip(t["drag_last_move"], t["alone"])), 3)
+        row["alone_over_limit"] = round(med["alone"] / med["limit"], 3)
+    row["samples_ms"] = {k: [round(x, 2) for x in v] for k, v in t.items()}
+    return row
+
+
 def print_table(out: dict[str, Any]) -> None:
     hdr = ("case", "limit", "service", "svc/lim", "svc_sql/lim", "naive_in", "in/svc",
            "naive_http", "http/svc", "plan p50", "plan http", "cached", "resp B", "stmts", "a==b")
@@ -486,6 +628,10 @@ def print_table(out: dict[str, Any]) -> None:
     for name, r in out["cases"].items():
         if name == "first_request":
             print(f"{name} | {json.dumps(r['p50'])}")
+            continue
+        if "multi" in r:
+            print(f"{name} | " + json.dumps({k: v for k, v in r.items()
+                                             if k not in ("title", "samples_ms", "multi")}))
             continue
         if "service_ms" not in r:
             print(f"{name} | ERROR {r.get('error')}")
@@ -496,6 +642,9 @@ def print_table(out: dict[str, Any]) -> None:
             r.get("naive_http_ms", "-"), r.get("naive_http_over_service", "-"),
             r["plan_ms"], r["plan_ms_in_service"], r["cached_ms"], r["response_bytes"],
             f"{r['statements_cold']}/{r['statements']}", "yes" if r["sanity_equal"] else "NO")))
+    if any("multi" in r for r in out["cases"].values()):
+        import report  # bench/report.py: the multi-chart cases' ratios side by side
+        print(report.multi_table(out))
     print("summary:", json.dumps(out["summary"]))
 
 

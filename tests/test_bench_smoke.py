@@ -13,6 +13,7 @@ import shutil
 import sys
 from pathlib import Path
 
+import orjson
 import pyarrow as pa
 import pytest
 
@@ -20,6 +21,7 @@ BENCH = Path(__file__).resolve().parent.parent / "bench"
 sys.path.insert(0, str(BENCH))
 
 import cases as bench_cases  # noqa: E402  (bench/cases.py)
+import dashboard as bench_multi  # noqa: E402  (bench/dashboard.py: issue 12's multi-chart cases)
 import floor as bench_floor  # noqa: E402  (bench/floor.py)
 import plan_profile  # noqa: E402  (bench/plan_profile.py)
 import run as bench_run  # noqa: E402  (bench/run.py: data builders)
@@ -88,6 +90,75 @@ def test_case_answer_equals_hand_written_sql(name, bench_env, bench_client):
         where = f" WHERE {case.where_sql}" if case.where_sql else ""
         df = con.sql(f"SELECT {cols} FROM {case.table}{where}").to_arrow_table().to_pandas()
         assert len(case.naive(df, chk.meta)) > 0
+
+
+MULTI = {m.name: m for m in bench_multi.suite()}
+
+
+@pytest.mark.parametrize("name", list(MULTI))
+def test_multi_case_answers_equal_hand_written_sql(name, bench_env, bench_client):
+    # issue 12: every chart of the batch (dashboard, linked) or the drag's chart equals its
+    # hand-written statement of bench/dashboard.py, run by DuckDB itself on the same rows
+    case = MULTI[name]
+    con = bench_env["ref"]["deliveries"]
+    want = {"dashboard": 6, "linked": 4, "drag": 1}[name]
+    for i in (0, 1, 7, 24):  # linked 24: a width/origin bin whose stop is the maximum
+        metas, stmts, diff = bench_multi.check(case, bench_client, con, i=i)
+        assert diff is None, f"{name}[{i}]: {diff}\n{stmts}"
+        assert len(metas) == len(stmts) == want
+        assert all(len(next(iter(m["data"].values()))) > 0 for m in metas)
+
+
+def test_multi_cases_move_their_filters():
+    # a new shared window / new brushes / new drag position on every step: no step is
+    # answered from anything keyed by the previous step's values
+    for name, case in MULTI.items():
+        bodies = [orjson.dumps(case.body(i)) for i in range(30)]
+        assert len(set(bodies)) == 30, name
+
+
+def test_linked_hand_sql_excludes_own_brush(bench_env, bench_client):
+    # Becker & Cleveland 1987 linking: chart k is filtered by the other charts' brushes,
+    # never its own. Reference: pandas on the raw rows -- the vehicle chart (index 2)
+    # counts every vehicle that passes the distance, weight and depot brushes.
+    case = MULTI["linked"]
+    con = bench_env["ref"]["deliveries"]
+    i = 5
+    r, metas = bench_multi.batch(bench_client, case.body(i))
+    assert r.status_code == 200, r.text
+    assert metas[2]["brushes"] == ["c0", "c1", "c3"]
+    df = con.sql("SELECT distance_km, weight_kg, vehicle, depot FROM deliveries").df()
+    b = {f["column"]: f for c in case.body(i)["charts"] for f in c["brush"]}
+    m = ((df.distance_km >= b["distance_km"]["gte"]) & (df.distance_km < b["distance_km"]["lt"])
+         & (df.weight_kg >= b["weight_kg"]["gte"]) & (df.weight_kg < b["weight_kg"]["lt"])
+         & df.depot.isin(b["depot"]["in"]))
+    want = df[m].groupby("vehicle").size().to_dict()
+    got = dict(zip(metas[2]["data"]["vehicle"], metas[2]["data"]["count"]))
+    assert got == want and len(got) > len(b["vehicle"]["in"])  # its own brush is not applied
+
+
+def test_drag_runs_one_session_to_its_last_answer(bench_env, bench_client):
+    # the drag of `make bench`, untimed: every move answers 200 or 409 superseded (README
+    # `session`), the newest arrival 200 (the final move unless two arrived swapped), and
+    # the last answered move equals its hand-written statement (DuckDB)
+    case = MULTI["drag"]
+    res = bench_multi.drag(lambda: bench_client, case, start=300, moves=6, gap_ms=5.0,
+                           session="smoke-drag")
+    assert set(res["codes"]) <= {200, 409} and 200 in res["codes"]
+    assert res["last"].status_code == 200 and 300 <= res["last_index"] <= 305
+    last = res["last"].json()
+    hand = bench_env["ref"]["deliveries"].sql(
+        case.hand([last], res["last_index"])[0]).to_arrow_table()
+    assert bench_multi.same_rows(last, hand) is None
+
+
+def test_multi_p95_is_numpys_linear_quantile():
+    # the p95 of the brush steps: numpy's default (linear) quantile as the reference
+    import numpy as np
+
+    xs = list(np.random.default_rng(12).gamma(2.0, 30.0, size=37))
+    for q in (0.5, 0.95, 1.0):
+        assert math.isclose(bench_multi.pct(xs, q), float(np.quantile(xs, q)), rel_tol=1e-12)
 
 
 def test_brush_width_counts_match_numpy(bench_env, bench_client):
