@@ -20,7 +20,8 @@ const DASH_CHARTS = [
 const DASH_H = 250;
 // one session per page: a newer batch of this page stops the statements of an older one
 const DASH_SESSION = "preview-" + Math.random().toString(36).slice(2, 12);
-const DASH = { cards: new Map(), seq: 0, built: false, lastRequest: null, lastAnswer: null };
+// sent / superseded: batches sent and 409 superseded answers ignored (for the curious and tests)
+const DASH = { cards: new Map(), seq: 0, built: false, lastRequest: null, lastAnswer: null, sent: 0, superseded: 0 };
 
 function dashSource() { return ($("source") && $("source").value) || "deliveries"; }
 
@@ -207,6 +208,7 @@ function dashChanged(card) {
 
 async function dashRun() {
   const my = ++DASH.seq;
+  DASH.sent += 1;
   const body = dashRequest();
   const box = $("dashboard");
   box.dataset.state = "running";
@@ -220,9 +222,9 @@ async function dashRun() {
     if (my !== DASH.seq) return;
     data = { title: "Request failed", status: "-", detail: String(e) };
   }
-  if (my !== DASH.seq) return;   // a newer batch is on its way: this answer is not drawn
   // superseded by a newer request of this session: quiet, the newer one answers
-  if (r && r.status === 409 && String(data.type || "").endsWith("superseded")) return;
+  if (r && r.status === 409 && String(data.type || "").endsWith("superseded")) { DASH.superseded += 1; return; }
+  if (my !== DASH.seq) return;   // a newer batch is on its way: this answer is not drawn
   const prob = $("dash-problem");
   if (!r || !r.ok) {
     if (r) askForKey(r.status);
