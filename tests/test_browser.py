@@ -582,3 +582,16 @@ def test_linked_charts_click_categories_and_keyboard(server, browser):
     state = wait_dashboard(browser)
     assert "brush" not in next(c for c in state["request"]["charts"] if c["id"] == "weekly")
     shot(browser, "preview_linked_categories.png")
+
+
+def test_linked_charts_fit_a_420_px_screen(server, browser):
+    browser.set_window_size(420, 1000)
+    try:
+        state = open_dashboard(browser, server)
+        for res in state["answer"]["results"]:
+            assert drawn_rows(browser, res["id"]) == answer_rows(res), res["id"]
+        width = browser.execute_script("return document.documentElement.scrollWidth")
+        assert width <= 420, width  # one chart per row, nothing wider than the screen
+        shot(browser, "preview_linked_420.png")
+    finally:
+        browser.set_window_size(1300, 1150)
