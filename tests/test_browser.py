@@ -7,6 +7,7 @@ Needs /usr/bin/chromium and /usr/bin/chromedriver (`make test` installs them whe
 from __future__ import annotations
 
 import contextlib
+import datetime
 import hashlib
 import json
 import os
@@ -28,7 +29,9 @@ if not (os.path.exists(CHROMIUM) and os.path.exists(CHROMEDRIVER)):
     pytest.skip("chromium/chromedriver not installed (apt-get install chromium chromium-driver)",
                 allow_module_level=True)
 
+from selenium.webdriver.common.action_chains import ActionChains  # noqa: E402
 from selenium.webdriver.common.by import By  # noqa: E402
+from selenium.webdriver.common.keys import Keys  # noqa: E402
 from selenium.webdriver.support.ui import Select, WebDriverWait  # noqa: E402
 
 
@@ -421,5 +424,174 @@ def test_chart_text_is_readable_at_420_px(server, browser):
             assert width <= 420, width  # nothing wider than the screen
             browser.execute_script("document.getElementById('figure').scrollIntoView()")
             shot(browser, picture)
+    finally:
+        browser.set_window_size(1300, 1150)
+
+
+# --- linked charts (dashboard.js): one /v1/batch per change ---------------------------------
+
+def _js(v) -> str:
+    """A value as JavaScript's String() writes it (the page's data-key / data-value)."""
+    if v is None:
+        return "null"
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, float) and v.is_integer():
+        return str(int(v))
+    return str(v)
+
+
+def answer_rows(res: dict) -> list[tuple[str, str]]:
+    """(x key, measure) per row of a chart answer, sorted."""
+    key = next(c["name"] for c in res["columns"] if c["channel"] == "x" and c["role"] in ("key", "bin_lo"))
+    measure = next(c["name"] for c in res["columns"] if c["role"] == "measure")
+    return sorted(zip(map(_js, res["data"][key]), map(_js, res["data"][measure])))
+
+
+def drawn_rows(driver, chart: str) -> list[tuple[str, str]]:
+    got = driver.execute_script("""
+        return [...document.querySelectorAll(`.dash-card[data-chart="${arguments[0]}"] [data-mark]`)]
+          .map(m => [m.dataset.key, m.dataset.value])""", chart)
+    return sorted(map(tuple, got))
+
+
+def wait_dashboard(driver) -> dict:
+    """Wait until the newest batch of the page is drawn; the request it sent and its answer."""
+    WebDriverWait(driver, 30).until(lambda d: d.execute_script(
+        "const b = document.getElementById('dashboard');"
+        "return b.dataset.state === 'done' && +b.dataset.seq === DASH.seq"), "dashboard not drawn")
+    return driver.execute_script("return {request: DASH.lastRequest, answer: DASH.lastAnswer}")
+
+
+def open_dashboard(driver, server) -> dict:
+    driver.get(server + "/")
+    wait_state(driver, "ready")
+    driver.find_element(By.ID, "mode").click()
+    assert driver.find_element(By.ID, "dashboard").is_displayed()
+    assert not driver.find_element(By.ID, "single").is_displayed()
+    return wait_dashboard(driver)
+
+
+def alone(server: str, request: dict, chart_id: str, where: list) -> dict:
+    """The chart of the batch asked on its own through /v1/chart, `where` added: the answer
+    README says a batch chart equals (the linking done by hand, not by planner.linked)."""
+    chart = next(c for c in request["charts"] if c["id"] == chart_id)
+    return answer(server, {"source": request["source"], "channels": chart["channels"], "where": where})
+
+
+def check_drawn(driver, server, request, answer_, wheres: dict) -> None:
+    """Every chart: its marks are its rows in the batch answer (count and values), and that
+    answer is the chart's own /v1/chart answer with the other charts' brushes as `where`."""
+    for res in answer_["results"]:
+        cid = res["id"]
+        assert len(drawn_rows(driver, cid)) == res["stats"]["result_rows"] > 0, cid
+        assert drawn_rows(driver, cid) == answer_rows(res), cid
+        assert answer_rows(res) == answer_rows(alone(server, request, cid, wheres.get(cid, []))), cid
+
+
+def test_linked_charts_drag_brushes_the_others_and_clear_restores(server, browser):
+    state = open_dashboard(browser, server)
+    request, first = state["request"], state["answer"]
+    assert [c["id"] for c in request["charts"]] == ["distance", "weekly", "vehicles", "regions"]
+    assert all("brush" not in c for c in request["charts"]) and request["session"].startswith("preview-")
+    check_drawn(browser, server, request, first, {})
+    unbrushed = {res["id"]: answer_rows(res) for res in first["results"]}
+
+    # drag across the left part of the distance histogram
+    overlay = browser.find_element(By.CSS_SELECTOR, '.dash-card[data-chart="distance"] .overlay')
+    w = overlay.rect["width"]
+    ActionChains(browser).move_to_element_with_offset(overlay, int(-0.42 * w), 0).click_and_hold() \
+        .move_by_offset(int(0.1 * w), 0).move_by_offset(int(0.1 * w), 0).move_by_offset(int(0.05 * w), 0) \
+        .release().perform()
+    state = wait_dashboard(browser)
+    assert not browser.find_element(By.ID, "dash-problem").is_displayed()  # a 409 is quiet
+    print("batches sent by the page so far:", browser.execute_script("return [DASH.sent, DASH.superseded]"))
+    request, brushed = state["request"], state["answer"]
+    brush = next(c for c in request["charts"] if c["id"] == "distance")["brush"]
+    assert len(brush) == 1 and brush[0]["column"] == "distance_km"
+    lo, hi = brush[0]["gte"], brush[0]["lt"]
+    # snapped to the 5 km bin edges, inside the limits, at least one bin wide
+    assert lo % 5 == 0 and hi % 5 == 0 and 0 <= lo < hi <= 40, brush
+    box = browser.find_element(By.CSS_SELECTOR, '.dash-card[data-chart="distance"] rect.brush')
+    assert (float(box.get_attribute("data-lo")), float(box.get_attribute("data-hi"))) == (lo, hi)
+    by_id = {res["id"]: res for res in brushed["results"]}
+    assert by_id["distance"]["brushes"] == []
+    assert all(by_id[c]["brushes"] == ["distance"] for c in ("weekly", "vehicles", "regions"))
+    check_drawn(browser, server, request, brushed,
+                {c: brush for c in ("weekly", "vehicles", "regions")})
+    # the brushing chart keeps its whole distribution; the others changed
+    assert drawn_rows(browser, "distance") == unbrushed["distance"]
+    assert drawn_rows(browser, "vehicles") != unbrushed["vehicles"]
+    assert "distance_km from" in browser.find_element(By.CSS_SELECTOR, '.dash-card[data-chart="distance"] .selection').text
+    assert "filtered by distance" in browser.find_element(By.ID, "dash-status").text
+    browser.execute_script("document.getElementById('dashboard').scrollIntoView()")
+    shot(browser, "preview_linked_drag.png")
+
+    # a burst of brushes (as a fast drag sends): whichever answers come back, and in whatever
+    # order, only the newest is drawn; superseded ones (409) leave no trace on the page
+    browser.execute_script("""
+        const card = DASH.cards.get('distance');
+        for (let k = 1; k <= 8; k++) { card.range = [0, 5 * k]; dashChanged(card); }""")
+    state = wait_dashboard(browser)
+    assert not browser.find_element(By.ID, "dash-problem").is_displayed()
+    brush = next(c for c in state["request"]["charts"] if c["id"] == "distance")["brush"]
+    assert brush == [{"column": "distance_km", "gte": 0, "lt": 40}]
+    check_drawn(browser, server, state["request"], state["answer"],
+                {c: brush for c in ("weekly", "vehicles", "regions")})
+    print("batches sent, 409 superseded:", browser.execute_script("return [DASH.sent, DASH.superseded]"))
+
+    browser.find_element(By.CSS_SELECTOR, '.dash-card[data-chart="distance"] button.clear').click()
+    state = wait_dashboard(browser)
+    assert all("brush" not in c for c in state["request"]["charts"])
+    assert browser.find_elements(By.CSS_SELECTOR, '.dash-card[data-chart="distance"] rect.brush') == []
+    for cid, rows in unbrushed.items():
+        assert drawn_rows(browser, cid) == rows, cid
+
+
+def test_linked_charts_click_categories_and_keyboard(server, browser):
+    open_dashboard(browser, server)
+    bars = browser.find_elements(By.CSS_SELECTOR, '.dash-card[data-chart="vehicles"] [data-mark]')
+    names = [b.get_attribute("data-key") for b in bars]
+    bars[0].click()
+    wait_dashboard(browser)
+    bars = browser.find_elements(By.CSS_SELECTOR, '.dash-card[data-chart="vehicles"] [data-mark]')
+    next(b for b in bars if b.get_attribute("data-key") == names[1]).click()
+    state = wait_dashboard(browser)
+    brush = next(c for c in state["request"]["charts"] if c["id"] == "vehicles")["brush"]
+    assert brush == [{"column": "vehicle", "in": names[:2]}]
+    check_drawn(browser, server, state["request"], state["answer"],
+                {c: brush for c in ("distance", "weekly", "regions")})
+    picked = browser.execute_script("""return [...document.querySelectorAll(
+        '.dash-card[data-chart="vehicles"] [data-mark]')].map(m => [m.dataset.key, m.dataset.picked])""")
+    assert {k: p == "true" for k, p in picked} == {k: k in names[:2] for k in names}
+
+    # keyboard only: a one-week range on the time line, widened by a week, then Escape
+    svg = browser.find_element(By.CSS_SELECTOR, '.dash-card[data-chart="weekly"] svg')
+    browser.execute_script("arguments[0].focus()", svg)
+    ActionChains(browser).send_keys(Keys.ARROW_RIGHT).perform()
+    wait_dashboard(browser)
+    ActionChains(browser).key_down(Keys.SHIFT).send_keys(Keys.ARROW_RIGHT).key_up(Keys.SHIFT).perform()
+    state = wait_dashboard(browser)
+    week = next(c for c in state["request"]["charts"] if c["id"] == "weekly")["brush"]
+    assert week[0]["column"] == "delivered_at"
+    days = (datetime.date.fromisoformat(week[0]["lt"]) - datetime.date.fromisoformat(week[0]["gte"])).days
+    assert days == 14, week
+    check_drawn(browser, server, state["request"], state["answer"],
+                {"distance": brush + week, "regions": brush + week, "vehicles": week, "weekly": brush})
+    ActionChains(browser).send_keys(Keys.ESCAPE).perform()
+    state = wait_dashboard(browser)
+    assert "brush" not in next(c for c in state["request"]["charts"] if c["id"] == "weekly")
+    shot(browser, "preview_linked_categories.png")
+
+
+def test_linked_charts_fit_a_420_px_screen(server, browser):
+    browser.set_window_size(420, 1000)
+    try:
+        state = open_dashboard(browser, server)
+        for res in state["answer"]["results"]:
+            assert drawn_rows(browser, res["id"]) == answer_rows(res), res["id"]
+        width = browser.execute_script("return document.documentElement.scrollWidth")
+        assert width <= 420, width  # one chart per row, nothing wider than the screen
+        shot(browser, "preview_linked_420.png")
     finally:
         browser.set_window_size(1300, 1150)

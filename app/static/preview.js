@@ -176,7 +176,7 @@ function keyScale(resp, slot, chName, lo, hi, nullsPlaced) {
     const d0 = toNum(dom[0], type), d1 = toNum(dom[1], type);
     const f = (v) => lo + ((toNum(v, type) - d0) / ((d1 - d0) || 1)) * (hi - lo);
     const sc = {
-      kind: "continuous", type, d0, d1, f,
+      kind: "continuous", type, d0, d1, f, lo, hi,
       pos: (i) => {
         const a = data[slot.start.name][i], z = data[slot.end.name][i];
         return a === null ? null : [f(a), f(z)];
@@ -193,7 +193,7 @@ function keyScale(resp, slot, chName, lo, hi, nullsPlaced) {
     const pad = (d1 - d0) * 0.02 || 1;
     d0 -= pad; d1 += pad;
     const f = (v) => lo + ((toNum(v, c.type) - d0) / ((d1 - d0) || 1)) * (hi - lo);
-    const sc = { kind: "continuous", type: c.type, d0, d1, f, pos: (i) => (vals[i] === null ? null : [f(vals[i]), f(vals[i])]) };
+    const sc = { kind: "continuous", type: c.type, d0, d1, f, lo, hi, pos: (i) => (vals[i] === null ? null : [f(vals[i]), f(vals[i])]) };
     sc.ticks = continuousTicks(c.type, d0, d1, f, null, hi - lo);
     return sc;
   }
@@ -209,7 +209,7 @@ function keyScale(resp, slot, chName, lo, hi, nullsPlaced) {
   const bw = (hi - lo) / Math.max(1, cats.length);
   const index = new Map(cats.map((v, k) => [v, k]));
   const sc = {
-    kind: "band", cats, bw,
+    kind: "band", cats, bw, lo,
     pos: (i) => { const k = index.get(vals[i]); return [lo + k * bw + bw * 0.1, lo + (k + 1) * bw - bw * 0.1]; },
   };
   const every = Math.ceil(cats.length / Math.max(1, Math.floor((Math.abs(hi - lo)) / (chName === "y" ? 18 : 46))));
