@@ -80,7 +80,7 @@ def _double(d: "Dialect", arg: exp.Expression | None) -> exp.Expression:
 
 
 def _approx_distinct(d: "Dialect", arg, q) -> exp.Expression:
-    if d.approx_distinct[0].startswith("exact"):  # no sketch here: answer exactly
+    if d.caps.approx_distinct[0].startswith("exact"):  # no sketch here: answer exactly
         return exp.Count(this=exp.Distinct(expressions=[arg]))
     return exp.ApproxDistinct(this=arg)
 
