@@ -193,7 +193,7 @@ def _distinct_pairs(d: Dialect, grouped: exp.Select, rows_name: str, group_cols:
     """The grouped stage as two groupings when its aggregates are COUNT(DISTINCT m) of one
     input ``m`` and the row count COUNT(*): first the distinct (keys, m) pairs with their row
     counts, then per group COUNT(m) (the non-NULL distinct values) and SUM of the row counts.
-    Same answers; on dialects that say so (``distinct_pairs``). Returns (pairs, grouped)."""
+    Same answers; on dialects that say so (``caps.distinct_pairs``). Returns (pairs, grouped)."""
     if not d.caps.distinct_pairs or not group_cols:
         return None
     arg = None
