@@ -155,6 +155,11 @@ def test_capabilities_are_frozen():
         DIALECTS["duckdb"].caps.arg_min_max = False  # type: ignore[misc]
 
 
+def test_a_record_field_as_class_attribute_is_refused():
+    with pytest.raises(TypeError, match="unsupported belong in caps"):
+        type("Old", (Dialect,), {"unsupported": frozenset({"tz"})})
+
+
 def _dialect_names_compared(tree: ast.AST) -> list[str]:
     """Comparisons of a ``.name`` / ``.dialect`` attribute or a variable ``dialect`` with a
     dialect name (or a tuple/list/set of them)."""

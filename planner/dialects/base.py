@@ -13,6 +13,7 @@ the feature in ``caps.unsupported`` so the request is refused with a clear 422.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import functools
 import sys
@@ -81,6 +82,13 @@ class Dialect:
     naive_type: ClassVar[str] = "TIMESTAMP"
     #: Cell text of the capability table for constructs written the target's own way.
     notes: ClassVar[dict[str, str]] = {}
+
+    def __init_subclass__(cls, **kwargs) -> None:
+        """A record field set as a class attribute would be silently ignored: refuse it."""
+        super().__init_subclass__(**kwargs)
+        stray = sorted(set(vars(cls)) & {f.name for f in dataclasses.fields(Capabilities)})
+        if stray:
+            raise TypeError(f"{cls.__name__}: {', '.join(stray)} belong in caps = Capabilities(...)")
 
     # Read-only aliases of record fields, for callers written before ``caps`` (planner/bind.py,
     # app/service.py); new code reads ``d.caps``.
