@@ -56,7 +56,7 @@ class Aggregate:
     #: the dialect feature (planner.dialects.base.FEATURES) a target must support
     feature: str | None = None
     #: where the target lacks the aggregate, the planner builds it from windows:
-    #: "quantile" (when ``quantile_method == "window"``), "deviation" (``stddev_method ==
+    #: "quantile" (when ``caps.quantile_method == "window"``), "deviation" (``caps.stddev_method ==
     #: "two_pass"``)
     built: str | None = None
     #: ``column`` may be omitted (``count`` counts rows)
@@ -80,7 +80,7 @@ def _double(d: "Dialect", arg: exp.Expression | None) -> exp.Expression:
 
 
 def _approx_distinct(d: "Dialect", arg, q) -> exp.Expression:
-    if d.approx_distinct[0].startswith("exact"):  # no sketch here: answer exactly
+    if d.caps.approx_distinct[0].startswith("exact"):  # no sketch here: answer exactly
         return exp.Count(this=exp.Distinct(expressions=[arg]))
     return exp.ApproxDistinct(this=arg)
 

@@ -110,7 +110,7 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
     start, width = d.real(b.start), d.real(b.width)
     fast = _plain_floor_is_exact(b, k.vrange)
     closed = bool(fast)
-    if fast is None and k.col.kind == "integer" and d.whole_integer_cells \
+    if fast is None and k.col.kind == "integer" and d.caps.whole_integer_cells \
             and _integer_floor_is_exact(b, k.vrange):
         fast, closed = b.start + float(b.count) * b.width, True
     if fast is not None:
@@ -248,7 +248,7 @@ def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
         ref = _instant_in_range(d, k.col, d.column(k.col.name, "s"))
         slow = d.epoch_micros(_trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz), "timestamptz")
         return exp.Case(ifs=[fast], default=slow)
-    if not d.wide_instants:
+    if not d.caps.wide_instants:
         return idx
     ok = exp.Between(this=us.copy(), low=d.number(-_YEAR1_MICROS), high=d.number(_YEAR9999_MICROS))
     return exp.Case(ifs=[exp.If(this=ok, true=idx)])

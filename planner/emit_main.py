@@ -119,7 +119,7 @@ def _grouped(plan: Plan, ctes: list, group_cols: list[str], fold: bool) -> str:
             continue
         agg = _measure_agg(d, m.spec.agg, arg, m.spec.q, names.measure_input(m.index))
         if (m.aggregate.built == "quantile" and m.col is not None and m.col.kind == "integer"
-                and getattr(d, "quantile_interpolates_integers", False)):
+                and d.caps.quantile_interpolates_integers):
             # the engine interpolates integer input in DOUBLE itself: sorting the narrow
             # integers instead of their DOUBLE casts is ~1.5x faster (10M rows, DuckDB 2.0)
             agg = agg.transform(lambda n: n.this if isinstance(n, exp.Cast)
@@ -193,8 +193,8 @@ def _distinct_pairs(d: Dialect, grouped: exp.Select, rows_name: str, group_cols:
     """The grouped stage as two groupings when its aggregates are COUNT(DISTINCT m) of one
     input ``m`` and the row count COUNT(*): first the distinct (keys, m) pairs with their row
     counts, then per group COUNT(m) (the non-NULL distinct values) and SUM of the row counts.
-    Same answers; on dialects that say so (``distinct_pairs``). Returns (pairs, grouped)."""
-    if not d.distinct_pairs or not group_cols:
+    Same answers; on dialects that say so (``caps.distinct_pairs``). Returns (pairs, grouped)."""
+    if not d.caps.distinct_pairs or not group_cols:
         return None
     arg = None
     for e in grouped.expressions:

@@ -23,11 +23,12 @@ from planner.plan import Measure
 
 def _built(d: Dialect, agg: str) -> str | None:
     """"quantile" / "deviation" when ``agg`` is built from windows on this target (the
-    registry's ``built``, keyed on the dialect's ``quantile_method`` / ``stddev_method``)."""
+    registry's ``built``, keyed on the dialect's ``caps.quantile_method`` /
+    ``caps.stddev_method``)."""
     how = aggregates.get(agg).built
-    if how == "quantile" and d.quantile_method == "window":
+    if how == "quantile" and d.caps.quantile_method == "window":
         return "quantile"
-    if how == "deviation" and d.stddev_method == "two_pass":
+    if how == "deviation" and d.caps.stddev_method == "two_pass":
         return "deviation"
     return None
 

@@ -43,7 +43,7 @@ if TYPE_CHECKING:
 def check(plan: "Plan") -> None:
     """The request shape M4 accepts, with pointers to what does not fit."""
     req, d = plan.request, plan.dialect
-    if not d.arg_min_max:  # dialect data (planner/dialects)
+    if not d.caps.arg_min_max:  # dialect data (planner/dialects)
         raise Unsupported(pointer("reduce"), d.name, "M4 reduction (needs arg_min/arg_max)")
     ch = req.channels
     if ch.x is None or ch.y is None:

@@ -91,7 +91,7 @@ def plan_profile(schema: SourceSchema, name: str, dialect, top: int | None = Non
         # min/max over the instants a chart can show (not 'infinity' / year 12000)
         ranged = value if ok is None else exp.Case(ifs=[exp.If(this=ok, true=value.copy())])
         stmt = _aggregate(dialect, value, table, has_range, ranged)
-        method, err = dialect.approx_distinct
+        method, err = dialect.caps.approx_distinct
         approximate = not method.startswith("exact")
     else:
         stmt = _grouped(dialect, value, table, top, has_range)

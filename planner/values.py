@@ -195,7 +195,7 @@ def _float64(d: Dialect, col: ColumnInfo) -> bool:
     a bound float is -- so both compare alike. Against integer, decimal or 32-bit float columns
     a decimal literal compares exactly (or in single precision) and a bound double would not.
     SQLite stores every REAL as an 8-byte double."""
-    return col.kind == "double" and (d.name == "sqlite"
+    return col.kind == "double" and (d.caps.float64_reals
                                      or col.sql_type.strip().lower() in _FLOAT64_TYPES)
 
 
@@ -206,7 +206,7 @@ def _scalar_bindable(d: Dialect, col: ColumnInfo | None, value: Any) -> bool:
     """Whether one comparison value (eq..gte, contains, starts_with) is bound as a parameter
     (decided from the value and the column's kind alone, so that ``param_shape`` and
     ``prepare`` always agree). Values of the wrong JSON type stay literals (and fail there)."""
-    if d.param_form is None or col is None:
+    if d.caps.param_form is None or col is None:
         return False
     if col.is_number:
         if isinstance(value, bool):
@@ -238,7 +238,7 @@ def _instant_value(d: Dialect, col: ColumnInfo, value: str, ptr: str, tz: str) -
 def _param_values(d: Dialect, col: ColumnInfo, values: list[Any], ptr: str) -> list[Any] | None:
     """The driver values of a long in/not_in list (each what its literal denotes), or None
     when the list stays literals. Checks every value as ``_literal`` would (same pointers)."""
-    if d.param_form is None or not _bindable(values):
+    if d.caps.param_form is None or not _bindable(values):
         return None
     if col.is_number:
         for j, v in enumerate(values):
@@ -278,7 +278,7 @@ def _bindable(values: list[Any]) -> bool:
 
 def _param_in(d: Dialect, col: ColumnInfo, ref: exp.Expression, first: Any, ptr: str,
               slot: int, raw: list[Any]) -> exp.In:
-    form = d.param_form[0]
+    form = d.caps.param_form[0]
     template = _literal(d, col, first, ptr)
 
     def put(e: exp.Expression) -> exp.Expression:

@@ -94,7 +94,7 @@ def param_shape(req: ChartRequest, d: Dialect, schema: SourceSchema | None = Non
     which needs the ``schema``'s column kinds) by its JSON type: equal shapes render the
     same SQL text."""
     doc = req.model_dump(mode="json", by_alias=True, exclude_none=True)
-    if d.param_form is None:
+    if d.caps.param_form is None:
         return doc
 
     def walk(f: Any) -> None:
@@ -124,9 +124,9 @@ def param_shape(req: ChartRequest, d: Dialect, schema: SourceSchema | None = Non
 def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any]:
     """The value of every parameter slot of ``prepare(req, schema, d, params=True)``, in slot
     order (the same walk as ``_compile_filter``), checked like literals."""
-    if d.param_form is None:
+    if d.caps.param_form is None:
         return []
-    form = d.param_form[0]
+    form = d.caps.param_form[0]
     out: list[Any] = []
 
     def bind(f: Predicate, path: tuple) -> None:

@@ -11,6 +11,8 @@ live dialect is exercised there).
 
 from __future__ import annotations
 
+import ast
+import dataclasses
 import importlib.util
 import json
 import re
@@ -21,7 +23,9 @@ import pytest
 import sqlglot
 
 from planner.compile import finish, prepare
-from planner.dialects import DIALECTS, capability_table_markdown, get_dialect
+from planner.dialects import ALIASES, DIALECTS, FEATURES, Dialect, capability_table_markdown, get_dialect
+from planner.dialects.base import TABLE_ROWS
+from planner.dialects.capabilities import Capabilities
 from planner.errors import Unsupported
 from planner.model import ChartRequest
 
@@ -50,8 +54,8 @@ def test_twelve_dialects_registered():
     assert set(ALL) == set(LIVE) | set(GENERATED)
     for name, d in DIALECTS.items():
         assert d.name == name
-        assert d.checked == ("live" if name in LIVE else "golden")
-        assert set(d.unsupported) <= set(FEATURE_REQUESTS) | {"count_distinct", "approx_count_distinct",
+        assert d.caps.checked == ("live" if name in LIVE else "golden")
+        assert set(d.caps.unsupported) <= set(FEATURE_REQUESTS) | {"count_distinct", "approx_count_distinct",
                                                                "trunc_week", "extract", "window"}
     assert get_dialect("mariadb") is DIALECTS["mysql"]
     with pytest.raises(KeyError):
@@ -113,6 +117,91 @@ def test_capability_table_covers_every_dialect_and_row():
         cells = [c.strip() for c in line.strip("|").split("|")]
         assert len(cells) == len(DIALECTS) + 1 and all(cells)
 
+
+
+#: a value other than the base's for each Capabilities field the table shows
+OTHER_VALUE = {"checked": "golden", "unsupported": frozenset({"tz"}), "quantile_method": "window",
+               "stddev_method": "two_pass", "approx_distinct": ("hll", 0.5),
+               "nulls_order_native": False, "param_form": ("each", "qmark"),
+               "max_identifier_bytes": 30, "identifiers_bmp_only": True, "arg_min_max": True}
+
+
+def test_every_capability_field_is_shown_or_internal():
+    """Each field of the record names its table row (and changing it changes that cell of
+    the generated table) or says why it is internal."""
+    rows = {key for key, _ in TABLE_ROWS}
+    shown = set()
+    for f in dataclasses.fields(Capabilities):
+        assert f.type and f.metadata, f"{f.name}: no type or metadata"
+        assert ("row" in f.metadata) != ("internal" in f.metadata), f.name
+        if "internal" in f.metadata:
+            assert f.metadata["internal"].strip(), f.name
+            continue
+        row = f.metadata["row"]
+        keys = [k for k in rows if k in FEATURES] if row == "features" else [row]
+        assert keys and set(keys) <= rows, f"{f.name}: row {row!r} is not in TABLE_ROWS"
+        shown.add(f.name)
+
+        class Other(Dialect):
+            caps = dataclasses.replace(Dialect.caps, **{f.name: OTHER_VALUE[f.name]})
+
+        base, other = Dialect(), Other()
+        assert any(base.how(k) != other.how(k) for k in keys), f"{f.name} changes no cell"
+    assert shown == set(OTHER_VALUE)
+
+
+def test_capabilities_are_frozen():
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        DIALECTS["duckdb"].caps.arg_min_max = False  # type: ignore[misc]
+
+
+def test_a_record_field_as_class_attribute_is_refused():
+    with pytest.raises(TypeError, match="unsupported belong in caps"):
+        type("Old", (Dialect,), {"unsupported": frozenset({"tz"})})
+
+
+def _dialect_names_compared(tree: ast.AST) -> list[str]:
+    """Comparisons of a ``.name`` / ``.dialect`` attribute or a variable ``dialect`` with a
+    dialect name (or a tuple/list/set of them)."""
+    names = set(DIALECTS) | set(ALIASES)
+
+    def strings(n: ast.AST) -> set[str]:
+        if isinstance(n, ast.Constant) and isinstance(n.value, str):
+            return {n.value}
+        if isinstance(n, (ast.Tuple, ast.List, ast.Set)):
+            return set().union(*(strings(e) for e in n.elts))
+        return set()
+
+    def is_name(n: ast.AST) -> bool:
+        return (isinstance(n, ast.Attribute) and n.attr in ("name", "dialect")) or \
+            (isinstance(n, ast.Name) and n.id in ("dialect", "dialect_name"))
+
+    found = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Compare):
+            operands = [node.left, *node.comparators]
+            if any(strings(o) & names for o in operands) and any(is_name(o) for o in operands):
+                found.append(f"{node.lineno}: {ast.unparse(node)}")
+    return found
+
+
+def test_scan_finds_a_dialect_name_comparison():
+    # the scan itself is checked on code it must flag (and on code it must not)
+    assert _dialect_names_compared(ast.parse('if d.name == "sqlite": pass'))
+    assert _dialect_names_compared(ast.parse('x = dialect in ("mysql", "tsql")'))
+    assert not _dialect_names_compared(ast.parse('x = "mariadb" in version.lower()'))
+
+
+def test_no_dialect_name_is_tested_outside_planner_dialects():
+    """What a target can do is read from its Capabilities record, never from its name."""
+    found = []
+    for top in ("planner", "app"):
+        for path in sorted((ROOT / top).rglob("*.py")):
+            if path.parent.name == "dialects" and path.parent.parent.name == "planner":
+                continue
+            found += [f"{path.relative_to(ROOT)}:{hit}"
+                      for hit in _dialect_names_compared(ast.parse(path.read_text(encoding="utf-8")))]
+    assert not found, "compare capabilities, not dialect names: " + "; ".join(found)
 
 # --- /v1/sql and sluice plan for every dialect -------------------------------------------
 

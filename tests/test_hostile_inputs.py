@@ -421,7 +421,7 @@ def _literal_and_param(service, engine: str, body: dict):
     d = get_dialect(eng.dialect)
     lit = finish(prepare(req, entry.schema, d), None)
     par = finish(prepare(req, entry.schema, d, params=True), None)
-    sql, args = bind_sql(par.main_sql, bind_values(req, entry.schema, d), d.param_form[1])
+    sql, args = bind_sql(par.main_sql, bind_values(req, entry.schema, d), d.caps.param_form[1])
     assert "\x00" not in sql
     return eng.execute(lit.main_sql), eng.execute(sql, args) if args else eng.execute(sql), len(args)
 

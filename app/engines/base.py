@@ -122,7 +122,7 @@ class Engine(Protocol):
     def execute(self, sql: str, params: Sequence[Any] | None = None) -> pa.Table:
         """Run one read-only statement and return its result as Arrow. ``params``
         (optional): values for the statement's placeholders in the driver's paramstyle
-        (``Dialect.param_form``); duckdb, postgres, mysql and sqlite take them,
+        (``Capabilities.param_form``); duckdb, postgres, mysql and sqlite take them,
         other engines are only given statements without placeholders."""
 
     def fetch_row(self, sql: str, params: Sequence[Any] | None = None) -> dict[str, Any]:

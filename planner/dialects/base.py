@@ -1,23 +1,27 @@
 """The capability layer: how each construct the planner needs is written for one target.
 
-A dialect is mostly data (its sqlglot dialect name, a few flags, the set of features it
-cannot express) plus small methods that build sqlglot expressions for the constructs where
+A dialect is mostly data (its sqlglot dialect name, its ``Capabilities`` record -- the set
+of features it cannot express and every other fact the planner asks -- and the spellings of
+its functions) plus small methods that build sqlglot expressions for the constructs where
 targets differ. The compiler only ever calls these methods; it never assumes that sqlglot's
 generic transpile produces valid SQL for a target.
 
 Add a dialect: subclass ``Dialect`` in a new module, override what differs, register it in
 ``planner.dialects.DIALECTS``. Where the target cannot express a construct faithfully, list
-the feature in ``unsupported`` so the request is refused with a clear 422.
+the feature in ``caps.unsupported`` so the request is refused with a clear 422.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import functools
 import sys
 from typing import ClassVar
 
 from sqlglot import exp
+
+from planner.dialects.capabilities import Capabilities
 
 _UPPER = "ABCDEFGHIJKLMNOPQRSTUVWXYZ"
 #: Features a dialect may refuse, with the words used in the error message.
@@ -35,9 +39,10 @@ FEATURES: dict[str, str] = {
     "grouping_sets": "GROUPING SETS",
 }
 
-#: Rows of the README capability table: (feature key, label). A row is either a feature a
-#: dialect may refuse (``unsupported``) or a construct every dialect writes its own way; the
-#: cell text comes from ``Dialect.how``.
+#: Rows of the README capability table: (feature key, label). A row is a feature a dialect
+#: may refuse (``Capabilities.unsupported``), a field of ``Capabilities`` (its metadata names
+#: the row) or a construct every dialect writes its own way (``notes``); the cell text comes
+#: from ``Dialect.how``.
 TABLE_ROWS: tuple[tuple[str, str], ...] = (
     ("engine", "checked against"),
     ("quantile", "median / quantile (exact, type 7)"),
@@ -53,7 +58,14 @@ TABLE_ROWS: tuple[tuple[str, str], ...] = (
     ("division", "division"),
     ("limit", "row limit"),
     ("quoting", "identifier quoting"),
+    ("identifiers", "output name limits"),
+    ("params", "bound parameters (IN lists), paramstyle"),
+    ("m4", "M4 `reduce`"),
 )
+
+#: Cell text of the ``params`` row per ``Capabilities.param_form`` form.
+_PARAM_FORMS = {"list": "one array (UNNEST)", "json": "one JSON array (json_each)",
+                "each": "one per value"}
 
 
 class Dialect:
@@ -61,48 +73,40 @@ class Dialect:
 
     name: ClassVar[str] = "ansi"
     sqlglot: ClassVar[str] = ""  # sqlglot dialect name
-    unsupported: ClassVar[frozenset[str]] = frozenset()
-    #: True when ``ORDER BY x NULLS FIRST/LAST`` is accepted as written.
-    nulls_order_native: ClassVar[bool] = True
+    #: What the target can do: every fact the planner asks of it (planner/dialects/capabilities.py).
+    caps: ClassVar[Capabilities] = Capabilities()
     #: Typed timestamp literals: the type of an instant, the text that names UTC after the
     #: wall-clock digits, and the type of a naive wall-clock time.
     instant_type: ClassVar[str] = "TIMESTAMPTZ"
     instant_suffix: ClassVar[str] = "+00:00"
     naive_type: ClassVar[str] = "TIMESTAMP"
-    #: Approximate count distinct: (method, relative standard error) for the response.
-    approx_distinct: ClassVar[tuple[str, float | None]] = ("hyperloglog", None)
-    #: How the target's engine is checked: "live" (a real engine in the test suite) or
-    #: "golden" (generated SQL compared with reviewed files and parsed back by sqlglot).
-    checked: ClassVar[str] = "live"
     #: Cell text of the capability table for constructs written the target's own way.
     notes: ClassVar[dict[str, str]] = {}
-    #: Long IN lists as bound parameters (planner.compile ``bind_sql``): (form, driver
-    #: paramstyle), or None for literals. Forms: "list" (one array parameter under UNNEST),
-    #: "json" (one JSON array under json_each), "each" (one placeholder per value).
-    param_form: ClassVar[tuple[str, str] | None] = None
-    #: Identifier cap in bytes where the engine silently CUTS longer names (the answer would
-    #: then lack the column); None: no cap that matters.
-    max_identifier_bytes: ClassVar[int | None] = None
-    #: Identifiers hold only the Basic Multilingual Plane (MariaDB/MySQL keep names in utf8mb3).
-    identifiers_bmp_only: ClassVar[bool] = False
-    #: arg_min / arg_max (min_by / max_by) render and are checked here: M4 reduction (planner/m4.py).
-    arg_min_max: ClassVar[bool] = False
-    #: Exact quantiles (median, quantile, the Freedman-Diaconis rule): "native" -- the
-    #: target's own type 7 percentile aggregate (``quantile``) -- or "window": Hyndman & Fan
-    #: (1996) type 7 built by the planner from ROW_NUMBER() and COUNT() windows per group,
-    #: interpolating between the order statistics floor(h) and floor(h) + 1, h = (n - 1) q
-    #: (planner/emit_measures.py, ``_window_columns``), where the target has no such aggregate.
-    quantile_method: ClassVar[str] = "native"
-    #: COUNT(DISTINCT m) beside the row count COUNT(*) is faster as a grouping of the
-    #: distinct (keys, m) pairs first (planner/emit_main.py ``_distinct_pairs``).
-    distinct_pairs: ClassVar[bool] = False
-    #: Every value of an integer-kind column is a whole number (bins then check their plain
-    #: floor index at whole numbers only: planner/emit_keys.py ``_integer_floor_is_exact``).
-    whole_integer_cells: ClassVar[bool] = True
-    #: Standard deviation / variance: "native" aggregates or "two_pass": the group mean
-    #: first (a window AVG), then the corrected sum of squared deviations (Chan, Golub &
-    #: LeVeque 1983), for targets without them.
-    stddev_method: ClassVar[str] = "native"
+
+    def __init_subclass__(cls, **kwargs) -> None:
+        """A record field set as a class attribute would be silently ignored: refuse it."""
+        super().__init_subclass__(**kwargs)
+        stray = sorted(set(vars(cls)) & {f.name for f in dataclasses.fields(Capabilities)})
+        if stray:
+            raise TypeError(f"{cls.__name__}: {', '.join(stray)} belong in caps = Capabilities(...)")
+
+    # Read-only aliases of record fields, for callers written before ``caps`` (planner/bind.py,
+    # app/service.py); new code reads ``d.caps``.
+    @property
+    def param_form(self) -> tuple[str, str] | None:
+        return self.caps.param_form
+
+    @property
+    def max_identifier_bytes(self) -> int | None:
+        return self.caps.max_identifier_bytes
+
+    @property
+    def identifiers_bmp_only(self) -> bool:
+        return self.caps.identifiers_bmp_only
+
+    @property
+    def approx_distinct(self) -> tuple[str, float | None]:
+        return self.caps.approx_distinct
 
     def param_array(self, marker: exp.Expression, value_type: type) -> exp.Expression:
         """The array parameter of the "list" form as the engine needs it typed."""
@@ -113,27 +117,43 @@ class Dialect:
         return node.sql(dialect=self.sqlglot or None, identify=True)
 
     def supports(self, feature: str) -> bool:
-        return feature not in self.unsupported
+        return feature not in self.caps.unsupported
 
     def how(self, feature: str) -> str:
-        """Capability-table cell: how the feature is written here, or why it is refused."""
+        """Capability-table cell: how the feature is written here, or why it is refused
+        (facts from ``caps``, the target's own spellings from ``notes``)."""
+        c = self.caps
         if feature == "engine":
-            if self.checked != "live":
+            if c.checked != "live":
                 return "golden SQL + parse"
             return self.notes.get("engine", "live engine")
         if feature == "quantile" and not self.supports("quantile"):
             return "no (422)"
-        if feature == "quantile" and self.quantile_method == "window":
+        if feature == "quantile" and c.quantile_method == "window":
             return "built from ROW_NUMBER / COUNT"
-        if feature == "stddev" and self.supports("stddev") and self.stddev_method == "two_pass":
+        if feature == "stddev" and self.supports("stddev") and c.stddev_method == "two_pass":
             return "built: two-pass (window AVG)"
-        if feature in self.unsupported:
+        if feature in c.unsupported:
             return "no (422)" if feature != "tz" else "UTC only (422)"
         if feature == "nulls_order" and "nulls_order" not in self.notes:
-            return "native" if self.nulls_order_native else "emulated (CASE)"
+            return "native" if c.nulls_order_native else "emulated (CASE)"
         if feature == "approx_count_distinct" and feature not in self.notes:
-            method, err = self.approx_distinct
+            method, err = c.approx_distinct
             return method if err is None else f"{method} (rse {err:g})"
+        if feature == "params":
+            if c.param_form is None:
+                return "no (literals)"
+            form, style = c.param_form
+            return f"{_PARAM_FORMS[form]}, {style}"
+        if feature == "identifiers":
+            limits = []
+            if c.max_identifier_bytes is not None:
+                limits.append(f"{c.max_identifier_bytes} bytes")
+            if c.identifiers_bmp_only:
+                limits.append("BMP only")
+            return "; ".join(limits) + " (422)" if limits else "no limit"
+        if feature == "m4":
+            return "arg_min / arg_max" if c.arg_min_max else "no (422)"
         return self.notes.get(feature, "yes")
 
     # --- small builders for subclasses ------------------------------------------------
@@ -359,13 +379,9 @@ class Dialect:
             q = q.join(t, join_type="cross")
         return q.where(exp.LT(this=value.copy(), expression=exp.Literal.number(n)))
 
-    #: The engine's timestamps can lie outside years 1..9999 (year 12000, 'infinity'), which
-    #: neither Python nor RFC 3339 can write: time keys treat them as NULL (``instant_range``).
-    wide_instants: ClassVar[bool] = False
-
     def instant_range(self, e: exp.Expression, kind: str) -> exp.Expression | None:
         """``e`` lies in years 1..9999 (UTC), or None when the engine cannot hold others."""
-        if not self.wide_instants:
+        if not self.caps.wide_instants:
             return None
         lo = dt.datetime(1, 1, 1, tzinfo=dt.timezone.utc)
         hi = dt.datetime(9999, 12, 31, 23, 59, 59, 999999, tzinfo=dt.timezone.utc)
@@ -429,7 +445,7 @@ class Dialect:
 
     # --- ordering -------------------------------------------------------------------
     def order(self, e: exp.Expression, desc: bool, nulls_first: bool) -> list[exp.Ordered]:
-        if self.nulls_order_native:
+        if self.caps.nulls_order_native:
             return [exp.Ordered(this=e, desc=desc, nulls_first=nulls_first)]
         # Emulate: sort on "is null" first, then the value. Both terms carry the target's
         # own default NULL placement so sqlglot adds no second emulation of its own.

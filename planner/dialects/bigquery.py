@@ -12,16 +12,19 @@ from __future__ import annotations
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 
 class BigQuery(Dialect):
     name = "bigquery"
     sqlglot = "bigquery"
+    caps = Capabilities(
+        checked="golden",
+        quantile_method="window",
+        approx_distinct=("hyperloglog++", None),
+    )
     instant_type = "TIMESTAMP"
     naive_type = "DATETIME"
-    checked = "golden"
-    quantile_method = "window"
-    approx_distinct = ("hyperloglog++", None)
     agg_spellings = {"approx_count_distinct": "APPROX_COUNT_DISTINCT"}
     notes = {
         "approx_count_distinct": "APPROX_COUNT_DISTINCT (HLL++)",

@@ -21,6 +21,7 @@ import datetime as dt
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 
 def _stable(fn: str, need: int):
@@ -36,7 +37,9 @@ def _stable(fn: str, need: int):
 class ClickHouse(Dialect):
     name = "clickhouse"
     sqlglot = "clickhouse"
-    approx_distinct = ("hyperloglog (uniqCombined)", 0.01)
+    caps = Capabilities(
+        approx_distinct=("hyperloglog (uniqCombined)", 0.01),
+    )
     agg_spellings = {"stddev_samp": _stable("stddevSampStable", 2),
                      "stddev_pop": _stable("stddevPopStable", 1),
                      "var_samp": _stable("varSampStable", 2),

@@ -5,25 +5,28 @@ from __future__ import annotations
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 
 class DuckDB(Dialect):
     name = "duckdb"
     sqlglot = "duckdb"
-    param_form = ("list", "qmark")
-    arg_min_max = True
-    wide_instants = True  # 'infinity' and years past 9999 are legal values
-    # DuckDB's approx_count_distinct is a HyperLogLog sketch. Relative error measured here
-    # (DuckDB 2.0.1, 20 runs of 1e3..1e6 distinct hashed integers): RMS 3.0 %, worst 7 %.
-    approx_distinct = ("hyperloglog", 0.03)
+    caps = Capabilities(
+        param_form=("list", "qmark"),
+        arg_min_max=True,
+        wide_instants=True,  # 'infinity' and years past 9999 are legal values
+        # DuckDB's approx_count_distinct is a HyperLogLog sketch. Relative error measured here
+        # (DuckDB 2.0.1, 20 runs of 1e3..1e6 distinct hashed integers): RMS 3.0 %, worst 7 %.
+        approx_distinct=("hyperloglog", 0.03),
+        # quantile_cont of an integer column returns the DOUBLE interpolation (type 7) itself, so
+        # the planner may leave out the CAST (planner/emit_main.py ``_grouped``; measured 480 -> 318 ms, 10M rows)
+        quantile_interpolates_integers=True,
+        # DuckDB groups the (key, value) pairs itself for a lone COUNT(DISTINCT), but not beside
+        # COUNT(*): measured on 10M rows (CPU time), 1.18x -> 1.11x of a hand-written
+        # COUNT(DISTINCT) per group (bench count_distinct)
+        distinct_pairs=True,
+    )
     agg_spellings = {"approx_count_distinct": "approx_count_distinct"}
-    #: quantile_cont of an integer column returns the DOUBLE interpolation (type 7) itself, so
-    #: the planner may leave out the CAST (planner/emit_main.py ``_grouped``; measured 480 -> 318 ms, 10M rows)
-    quantile_interpolates_integers = True
-    #: DuckDB groups the (key, value) pairs itself for a lone COUNT(DISTINCT), but not beside
-    #: COUNT(*): measured on 10M rows (CPU time), 1.18x -> 1.11x of a hand-written
-    #: COUNT(DISTINCT) per group (bench count_distinct)
-    distinct_pairs = True
 
     def _utc(self, e: exp.Expression, kind: str) -> exp.Expression:
         """Column value as TIMESTAMPTZ (naive timestamps and dates are read as UTC)."""

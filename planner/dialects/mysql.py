@@ -8,7 +8,7 @@
   session time zone (naive DATETIME values are read as UTC).
 * No exact continuous percentile aggregate (MariaDB's PERCENTILE_CONT is a window function
   only, MySQL has none): median, quantile and the Freedman–Diaconis rule are built from
-  ROW_NUMBER() / COUNT() windows (Hyndman & Fan type 7, ``quantile_method = "window"``).
+  ROW_NUMBER() / COUNT() windows (Hyndman & Fan type 7, ``caps.quantile_method = "window"``).
 * No NULLS FIRST/LAST: emulated with a CASE term.
 * Filters on text (eq, ne, lt.., in, not_in, contains, starts_with) compare bytes (a BINARY
   operand), so they are case- and accent-sensitive like DuckDB whatever the column's
@@ -24,6 +24,7 @@ import datetime as dt
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 _EPOCH = "1970-01-01 00:00:00"
 
@@ -31,11 +32,13 @@ _EPOCH = "1970-01-01 00:00:00"
 class MySQL(Dialect):
     name = "mysql"
     sqlglot = "mysql"
-    param_form = ("each", "format")
-    identifiers_bmp_only = True
-    quantile_method = "window"
-    nulls_order_native = False
-    approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
+    caps = Capabilities(
+        param_form=("each", "format"),
+        identifiers_bmp_only=True,
+        quantile_method="window",
+        nulls_order_native=False,
+        approx_distinct=("exact (COUNT DISTINCT)", 0.0),
+    )
     notes = {
         "approx_count_distinct": "exact COUNT(DISTINCT)",
         "tz": "CONVERT_TZ (needs tz tables)",

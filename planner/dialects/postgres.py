@@ -11,15 +11,18 @@ from __future__ import annotations
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 
 class Postgres(Dialect):
     name = "postgres"
     sqlglot = "postgres"
-    param_form = ("list", "format")
-    max_identifier_bytes = 63  # NAMEDATALEN - 1: longer names are cut
-    wide_instants = True  # 'infinity' and years past 9999 are legal values
-    approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
+    caps = Capabilities(
+        param_form=("list", "format"),
+        max_identifier_bytes=63,  # NAMEDATALEN - 1: longer names are cut
+        wide_instants=True,  # 'infinity' and years past 9999 are legal values
+        approx_distinct=("exact (COUNT DISTINCT)", 0.0),
+    )
     notes = {
         "quantile": "PERCENTILE_CONT WITHIN GROUP",
         "approx_count_distinct": "exact COUNT(DISTINCT)",

@@ -4,6 +4,8 @@ dow and the ISO week's Thursday)."""
 
 from __future__ import annotations
 
+import dataclasses
+
 from sqlglot import exp
 
 from planner.dialects.postgres import Postgres
@@ -12,10 +14,13 @@ from planner.dialects.postgres import Postgres
 class Redshift(Postgres):
     name = "redshift"
     sqlglot = "redshift"
-    param_form = None  # generated only: no driver here
-    max_identifier_bytes = 127
-    checked = "golden"
-    approx_distinct = ("hyperloglog", 0.02)
+    caps = dataclasses.replace(
+        Postgres.caps,
+        param_form=None,  # generated only: no driver here
+        max_identifier_bytes=127,
+        checked="golden",
+        approx_distinct=("hyperloglog", 0.02),
+    )
     notes = {**Postgres.notes,
              "approx_count_distinct": "APPROXIMATE COUNT(DISTINCT)",
              "tz": "CONVERT_TIMEZONE",

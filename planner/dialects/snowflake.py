@@ -12,16 +12,19 @@ from __future__ import annotations
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 
 class Snowflake(Dialect):
     name = "snowflake"
     sqlglot = "snowflake"
+    caps = Capabilities(
+        checked="golden",
+        approx_distinct=("hyperloglog", 0.016),
+    )
     instant_type = "TIMESTAMP_TZ"
     instant_suffix = " +00:00"
     naive_type = "TIMESTAMP_NTZ"
-    checked = "golden"
-    approx_distinct = ("hyperloglog", 0.016)
     agg_spellings = {"approx_count_distinct": "APPROX_COUNT_DISTINCT"}
     notes = {
         "quantile": "PERCENTILE_CONT WITHIN GROUP",

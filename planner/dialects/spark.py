@@ -12,18 +12,22 @@ server, tests/test_spark_connect.py) and Databricks (generated).
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 
 class Spark(Dialect):
     name = "spark"
     sqlglot = "spark"
-    wide_instants = True  # 'infinity' and years past 9999 are legal values
-    approx_distinct = ("hyperloglog++", 0.05)
+    caps = Capabilities(
+        wide_instants=True,  # 'infinity' and years past 9999 are legal values
+        approx_distinct=("hyperloglog++", 0.05),
+    )
     agg_spellings = {"approx_count_distinct": "approx_count_distinct"}
     notes = {
         "engine": "live engine (local mode and a Spark Connect server)",
@@ -120,4 +124,7 @@ class Spark(Dialect):
 class Databricks(Spark):
     name = "databricks"
     sqlglot = "databricks"
-    checked = "golden"
+    caps = dataclasses.replace(
+        Spark.caps,
+        checked="golden",
+    )

@@ -27,17 +27,21 @@ import datetime as dt
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 
 class SQLite(Dialect):
     name = "sqlite"
     sqlglot = "sqlite"
-    param_form = ("json", "qmark")
-    unsupported = frozenset({"tz"})
-    quantile_method = "window"
-    stddev_method = "two_pass"
-    approx_distinct = ("exact (COUNT DISTINCT)", 0.0)
-    whole_integer_cells = False  # an INTEGER column keeps 2.5 as a REAL cell
+    caps = Capabilities(
+        param_form=("json", "qmark"),
+        unsupported=frozenset({"tz"}),
+        quantile_method="window",
+        stddev_method="two_pass",
+        approx_distinct=("exact (COUNT DISTINCT)", 0.0),
+        whole_integer_cells=False,  # an INTEGER column keeps 2.5 as a REAL cell
+        float64_reals=True,  # every REAL is an 8-byte double
+    )
     notes = {
         "approx_count_distinct": "exact COUNT(DISTINCT)",
         "trunc_week": "date(x, '-6 days', 'weekday 1')",

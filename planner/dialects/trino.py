@@ -12,17 +12,20 @@ from __future__ import annotations
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 
 class Trino(Dialect):
     name = "trino"
     sqlglot = "trino"
+    caps = Capabilities(
+        checked="golden",
+        quantile_method="window",
+        approx_distinct=("hyperloglog", 0.023),
+    )
     instant_type = "TIMESTAMP(6) WITH TIME ZONE"
     instant_suffix = " UTC"
     naive_type = "TIMESTAMP(6)"
-    checked = "golden"
-    quantile_method = "window"
-    approx_distinct = ("hyperloglog", 0.023)
     agg_spellings = {"approx_count_distinct": "approx_distinct"}
     notes = {
         "approx_count_distinct": "approx_distinct (HLL)",

@@ -14,6 +14,7 @@ import datetime as dt
 from sqlglot import exp
 
 from planner.dialects.base import Dialect
+from planner.dialects.capabilities import Capabilities
 
 _BIN = "Latin1_General_100_BIN2"
 
@@ -21,11 +22,13 @@ _BIN = "Latin1_General_100_BIN2"
 class TSQL(Dialect):
     name = "tsql"
     sqlglot = "tsql"
-    checked = "golden"
-    unsupported = frozenset({"tz"})
-    quantile_method = "window"
-    nulls_order_native = False
-    approx_distinct = ("hyperloglog", 0.02)
+    caps = Capabilities(
+        checked="golden",
+        unsupported=frozenset({"tz"}),
+        quantile_method="window",
+        nulls_order_native=False,
+        approx_distinct=("hyperloglog", 0.02),
+    )
     agg_spellings = {"stddev_samp": "STDEV", "stddev_pop": "STDEVP", "var_samp": "VAR",
                      "var_pop": "VARP", "approx_count_distinct": "APPROX_COUNT_DISTINCT"}
     notes = {

@@ -1,0 +1,110 @@
+"""What a target can do, as one typed record per dialect (``Dialect.caps``).
+
+Every fact the planner asks of a target -- which features it refuses, how it builds exact
+quantiles and deviations, how it binds parameters, how long its identifiers may be, how it
+orders NULLs -- is a field here. A dialect declares its record once
+(``caps = Capabilities(...)``, or ``dataclasses.replace(Parent.caps, ...)`` in a subclass);
+the planner reads ``d.caps.<field>`` and never a dialect's name.
+
+Each field's metadata says where the README capability table shows it (``row``: a key of
+``TABLE_ROWS``, the cell written by ``Dialect.how``) or why it is ``internal`` (a choice of
+plan shape with the same answer, not something a caller can observe); tests/test_dialects.py
+checks that every field has one of the two.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+
+def _row(key: str) -> dict[str, str]:
+    return {"row": key}
+
+
+def _internal(why: str) -> dict[str, str]:
+    return {"internal": why}
+
+
+@dataclass(frozen=True)
+class Capabilities:
+    """The capability record of one target (defaults: the ANSI-ish base)."""
+
+    checked: str = field(default="live", metadata=_row("engine"))
+    """How the target's engine is checked: "live" (a real engine in the test suite) or
+    "golden" (generated SQL compared with reviewed files and parsed back by sqlglot)."""
+
+    unsupported: frozenset[str] = field(default=frozenset(), metadata=_row("features"))
+    """Features (keys of ``FEATURES``) the target cannot express faithfully: a request that
+    needs one is refused with a 422 ``not supported on <dialect>: <feature>``. Shown in the
+    rows of those features."""
+
+    quantile_method: str = field(default="native", metadata=_row("quantile"))
+    """Exact quantiles (median, quantile, the Freedman-Diaconis rule): "native" -- the
+    target's own type 7 percentile aggregate (``Dialect.quantile``) -- or "window":
+    Hyndman & Fan (1996) type 7 built by the planner from ROW_NUMBER() and COUNT() windows
+    per group, interpolating between the order statistics floor(h) and floor(h) + 1,
+    h = (n - 1) q (planner/emit_measures.py, ``_window_columns``)."""
+
+    stddev_method: str = field(default="native", metadata=_row("stddev"))
+    """Standard deviation / variance: "native" aggregates or "two_pass": the group mean
+    first (a window AVG), then the corrected sum of squared deviations (Chan, Golub &
+    LeVeque 1983), for targets without them."""
+
+    approx_distinct: tuple[str, float | None] = field(default=("hyperloglog", None),
+                                                      metadata=_row("approx_count_distinct"))
+    """Approximate count distinct: (method, relative standard error) reported in the
+    response; a method starting with "exact" means the target answers exactly."""
+
+    nulls_order_native: bool = field(default=True, metadata=_row("nulls_order"))
+    """True when ``ORDER BY x NULLS FIRST/LAST`` is accepted as written; False: emulated
+    with a CASE term first (``Dialect.order``)."""
+
+    param_form: tuple[str, str] | None = field(default=None, metadata=_row("params"))
+    """Values as bound parameters (planner/compile.py ``bind_sql``): (form of long IN
+    lists, driver paramstyle), or None for literals only. Forms: "list" (one array
+    parameter under UNNEST), "json" (one JSON array under json_each), "each" (one
+    placeholder per value)."""
+
+    max_identifier_bytes: int | None = field(default=None, metadata=_row("identifiers"))
+    """Identifier cap in bytes where the engine silently CUTS longer names (the answer would
+    then lack the column): longer output names are refused (422); None: no cap that
+    matters."""
+
+    identifiers_bmp_only: bool = field(default=False, metadata=_row("identifiers"))
+    """Identifiers hold only the Basic Multilingual Plane (MariaDB/MySQL keep names in
+    utf8mb3): output names with a character beyond U+FFFF are refused (422)."""
+
+    arg_min_max: bool = field(default=False, metadata=_row("m4"))
+    """arg_min / arg_max (min_by / max_by) render and are checked here: the M4 reduction
+    (planner/m4.py) is offered; otherwise ``reduce: m4`` is refused (422)."""
+
+    wide_instants: bool = field(default=False, metadata=_internal(
+        "only adds a range test to time keys; the answer is the same"))
+    """The engine's timestamps can lie outside years 1..9999 (year 12000, 'infinity'), which
+    neither Python nor RFC 3339 can write: time keys treat them as NULL
+    (``Dialect.instant_range``)."""
+
+    whole_integer_cells: bool = field(default=True, metadata=_internal(
+        "chooses the cheaper exact bin index; the answer is the same"))
+    """Every value of an integer-kind column is a whole number (bins then check their plain
+    floor index at whole numbers only: planner/emit_keys.py ``_integer_floor_is_exact``).
+    False on SQLite, where an INTEGER column keeps 2.5 as a REAL cell."""
+
+    float64_reals: bool = field(default=False, metadata=_internal(
+        "chooses literal or bound parameter; the comparison is the same"))
+    """Every column of kind double holds 64-bit doubles whatever its declared type (SQLite
+    stores every REAL as an 8-byte double), so a float compared with it may be bound as a
+    parameter (planner/values.py ``_float64``)."""
+
+    distinct_pairs: bool = field(default=False, metadata=_internal(
+        "a faster plan shape for COUNT(DISTINCT); the answer is the same"))
+    """COUNT(DISTINCT m) beside the row count COUNT(*) is faster as a grouping of the
+    distinct (keys, m) pairs first (planner/emit_main.py ``_distinct_pairs``)."""
+
+    quantile_interpolates_integers: bool = field(default=False, metadata=_internal(
+        "leaves out a CAST the engine does itself; the answer is the same"))
+    """The native quantile of an integer column returns the DOUBLE type 7 interpolation
+    itself, so the planner may leave out the CAST (planner/emit_main.py ``_grouped``)."""
+
+
+__all__ = ["Capabilities"]
