@@ -5,6 +5,7 @@ Routes, the CLI and the benchmarks call ``ChartService``; nothing else talks to 
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import threading
 import time
@@ -101,13 +102,15 @@ class PlanCache:
     (``planner.compile.bind_values``), so requests that differ only in their values share
     one plan -- a brush plans once, and so does a stream of new 5,000-value lists.
 
-    * ``prepared``: the checked, never-finished Plan per (shape, dialect, version) --
-      shared read-only (only its extents SQL is used);
+    * ``prepared``: the frozen bound Plan per (shape, dialect, version) -- shared
+      read-only: its extents SQL is used, and every main statement is laid out from it,
+      with a memo of ``layout_key`` by extents row beside it (``Prepared.layouts``);
     * ``extents_row``: the extents statement's answer per (source, version, SQL, bound
       values digest): a data-driven bin costs ONE statement once its extents are known;
     * ``finished``: the finished Plan (without its rendered sqlglot trees) and its main SQL
       text per (shape key, what the main statement takes from the extents row:
-      ``planner.compile.layout_key``, e.g. the bin layouts), read-only once built.
+      ``planner.compile.layout_key``, e.g. the bin layouts), read-only once built: a new
+      plan laid out from the prepared one (``planner.compile.finish``), no second bind.
 
     Each is an LRU bounded by bytes (``max_bytes`` split 4:1:4): a miss only costs planning.
     """
@@ -131,8 +134,8 @@ class PlanCache:
             bound = sum(len(v) if isinstance(v, list) else  # (SQLite: JSON text; else one value)
                         v.count(",") + 1 if isinstance(v, str) and v.startswith("[") else 1
                         for v in bind_values(req, entry.schema, dialect)) if plan.slots else 0
-            prep = Prepared(plan, key, plan.extents_sql, bound)
-            plan.extents = None  # rendered once: the text is what is reused
+            # rendered once: the text is what is reused (the plan kept without its tree)
+            prep = Prepared(dataclasses.replace(plan, extents=None), key, plan.extents_sql, bound)
             self._prepared.put(key, prep, _plan_charge(shape, bound, prep.extents_sql))
         return prep
 
@@ -146,13 +149,13 @@ class PlanCache:
 
     def finished(self, prep: "Prepared", entry: SourceEntry, row: dict[str, Any] | None
                  ) -> tuple[Plan, str]:
-        key = (prep.key, layout_key(prep.plan, row))  # not the row: a brush keeps its layout
+        # not the row: a brush keeps its layout
+        key = (prep.key, layout_key(prep.plan, row, prep.layouts))
         hit = self._finished.get(key)
         if hit is None:
-            plan = finish(prepare(prep.plan.request, entry.schema, prep.plan.dialect,
-                                  params=True), row)
-            hit = (plan, plan.main_sql)
-            plan.main = plan.extents = None  # the text is what is reused; the trees are big
+            plan = finish(prep.plan, row)  # a new plan; the shared bound one stays as it is
+            # the text is what is reused; the trees are big
+            hit = (dataclasses.replace(plan, main=None, extents=None), plan.main_sql)
             self._finished.put(key, hit, _plan_charge(prep.key[0], prep.bound_values, hit[1]))
         return hit
 
@@ -167,12 +170,15 @@ def _digest(args: list[Any]) -> bytes:
 @dataclass(frozen=True)
 class Prepared:
     """A checked, never-finished plan shared between requests (read-only), its cache key
-    and its rendered extents statement (SQL text with parameter slots)."""
+    and its rendered extents statement (SQL text with parameter slots). ``layouts``: the
+    cache's memo of ``planner.compile.layout_key`` by extents row for this plan (owned by
+    the cache, not part of the frozen plan)."""
 
     plan: Plan
     key: tuple
     extents_sql: str | None
     bound_values: int = 0  # values of its bound lists (for the byte charge)
+    layouts: dict = field(default_factory=dict, repr=False, compare=False)
 
 
 def _extents_only(req: ChartRequest, schema: Any) -> ChartRequest:
@@ -285,7 +291,7 @@ class ChartService:
         t0 = time.perf_counter()
         plan, entry, engine = self._plan(req, dialect_name)
         row = self._extents(plan, engine)
-        finish(plan, row)
+        plan = finish(plan, row)
         sql = ([plan.extents_sql] if plan.extents is not None else []) + [plan.main_sql]
         return {"dialect": plan.dialect.name, "sql": sql,
                 "bins": self._bins(plan), "timing_ms": {"plan": _ms(t0)}}

@@ -12,6 +12,7 @@ Pure (no I/O).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import sys
 from typing import Any
@@ -49,9 +50,13 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
                                    request_tz))
     slots: list[Any] | None = [] if params and dialect.param_form is not None else None
     where = _compile_where(request, schema, dialect, slots)
-    plan = Plan(request, schema, dialect, keys, measures, where, slots=len(slots or ()))
-    _check_options(plan)
-    _assign_names(plan)
+    stack_index, approximate = _check_options(request, dialect, keys, measures)
+    named_keys, named_measures, columns = _assign_names(keys, measures, stack_index)
+    stack = named_measures[stack_index] if stack_index is not None else None
+    _check_name_lengths(dialect, named_keys, named_measures, stack, columns)
+    plan = Plan(request, schema, dialect, tuple(named_keys), tuple(named_measures), where,
+                columns=tuple(columns), approximate=approximate, stack_measure=stack,
+                slots=len(slots or ()))
     if request.reduce is not None:  # M4 line reduction: planner/m4.py
         m4.check(plan)
     return plan
@@ -136,7 +141,7 @@ def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
                 what = "standard deviation" if need == "stddev" else "exact quantiles"
                 raise Unsupported(pointer(*path, "bin", "rule"), d.name,
                                   f"bin rule {b.rule} (needs {what})")
-            key = Key(i, path, channel, ch, col, "nbin", tz)
+            nlimits = None
             if b.limits is not None:
                 lo, hi = b.limits
                 if isinstance(lo, str) or isinstance(hi, str):
@@ -153,32 +158,35 @@ def _check_key(i: int, path, channel: str, ch: Channel, schema: SourceSchema,
                     raise PlanError(pointer(*path, "bin", "limits"),
                                     f"limits [{lo!r}, {hi!r}] are too close together to hold "
                                     "distinct bin edges", slug="bad-layout")
-                key.nlimits = (float(lo), float(hi))
-            return key
+                nlimits = (float(lo), float(hi))
+            return Key(i, path, channel, ch, col, "nbin", tz, nlimits=nlimits)
         if col.is_temporal:
             if b.width is not None or b.rule is not None:
                 what = "width" if b.width is not None else "rule"
                 raise PlanError(pointer(*path, "bin", what),
                                 f"{what} bins numbers; on the timestamp {col.name!r} use "
                                 "bins (a calendar step is chosen) or trunc", slug="type-mismatch")
-            key = Key(i, path, channel, ch, col, "tbin", tz)
+            tlimits = None
             if b.limits is not None:
                 # offset-less limits are wall-clock times of the key's zone
                 lo_t = _parse_instant(b.limits[0], pointer(*path, "bin", "limits", 0), tz)
                 hi_t = _parse_instant(b.limits[1], pointer(*path, "bin", "limits", 1), tz)
                 if not lo_t < hi_t:
                     raise PlanError(pointer(*path, "bin", "limits"), "limits need lo < hi")
-                key.tlimits = (lo_t, hi_t)
-            return key
+                tlimits = (lo_t, hi_t)
+            return Key(i, path, channel, ch, col, "tbin", tz, tlimits=tlimits)
         raise PlanError(bp, f"bin needs a number or timestamp column; {col.name!r} is "
                         f"{col.kind} (text and booleans group as categories without bin)",
                         slug="type-mismatch", title="Option does not fit the column type")
     return Key(i, path, channel, ch, col, "plain", tz)
 
 
-def _check_options(plan: Plan) -> None:
-    req, d = plan.request, plan.dialect
-    present = {k.channel for k in plan.keys} | {m.channel for m in plan.measures}
+def _check_options(req: ChartRequest, d: Dialect, keys: list[Key], measures: list[Measure]
+                   ) -> tuple[int | None, tuple[str, ...]]:
+    """Checks the request's options against its keys and measures; returns the position of
+    the stacked measure (or None) and the internal names of approximate measures."""
+    present = {k.channel for k in keys} | {m.channel for m in measures}
+    stack_measure = None
     for i, s in enumerate(req.sort):
         if s.channel not in present:
             raise PlanError(pointer("sort", i, "channel"),
@@ -189,12 +197,12 @@ def _check_options(plan: Plan) -> None:
             raise Unsupported(pointer("stack"), d.name, "stack (needs window functions)")
         ch = req.channels
         if ch.y is not None and ch.y.is_measure:
-            plan.stack_measure = next(m for m in plan.measures if m.channel == "y")
+            stack_measure = next(m for m in measures if m.channel == "y")
         elif ch.x is not None and ch.x.is_measure:
-            plan.stack_measure = next(m for m in plan.measures if m.channel == "x")
+            stack_measure = next(m for m in measures if m.channel == "x")
         else:
             raise PlanError(pointer("stack"), "stack needs a measure (agg) on y or on x")
-        m = plan.stack_measure
+        m = stack_measure
         if not m.aggregate.stacks:
             raise PlanError(pointer(*m.path, "agg"),
                             f"stack cannot pile {m.spec.agg} values (a pile of them means "
@@ -202,27 +210,31 @@ def _check_options(plan: Plan) -> None:
                             f"{m.channel}, or drop stack")
     if req.facet is not None and req.facet.max_groups is not None and not d.supports("window"):
         raise Unsupported(pointer("facet", "max_groups"), d.name, "max_groups (window functions)")
-    if req.empty_bins != "omit" and not any(k.binned for k in plan.keys):
+    if req.empty_bins != "omit" and not any(k.binned for k in keys):
         raise PlanError(pointer("empty_bins"), "empty_bins needs a binned key (a channel with bin)")
     if req.empty_bins != "omit":
-        for k in plan.keys:
+        for k in keys:
             if k.binned and k.spec.bin is not None and k.spec.bin.width is not None \
                     and k.spec.bin.limits is None:
                 raise PlanError(pointer(*k.path, "bin", "limits"),
                                 "empty_bins with a fixed width needs limits (the bins to emit)")
-    for m in plan.measures:
-        if m.aggregate.approximate:
-            plan.approximate.append(m.internal)
+    approximate = tuple(m.internal for m in measures if m.aggregate.approximate)
+    return (measures.index(stack_measure) if stack_measure is not None else None), approximate
 
 
-def _assign_names(plan: Plan) -> None:
+def _assign_names(keys: list[Key], measures: list[Measure], stack_index: int | None
+                  ) -> tuple[list[Key], list[Measure], list[OutputColumn]]:
     """Output names, unique IGNORING CASE: DuckDB, SQLite and MariaDB compare identifiers
     case-insensitively even when quoted (MariaDB with Unicode case folding: 'ǅ' = 'ǆ'), so
     'depot' and 'Depot' would be one column there. ``str.casefold`` (Unicode full case
     folding) without U+0307 COMBINING DOT ABOVE is at least as strict as each of them
     (measured on MariaDB 10/11: 'i' = 'İ', which casefolds to 'i' + U+0307; 'ß' != 's',
-    'é' != 'e'); a clash gets ``<channel>_`` prefixed, then ``_2``, ``_3``, ..."""
+    'é' != 'e'); a clash gets ``<channel>_`` prefixed, then ``_2``, ``_3``, ...
+    Returns the keys and measures with their names (copies, same order) and the output
+    columns."""
     taken: set[str] = set()
+    columns: list[OutputColumn] = []
+    named: dict[tuple[str, int], Key | Measure] = {}
 
     def fold(name: str) -> str:
         return name.casefold().replace("\u0307", "")
@@ -244,45 +256,49 @@ def _assign_names(plan: Plan) -> None:
         return name
 
     # name in request order: x, y, color, size, shape, opacity, by[i], row, col
-    for it in sorted(plan.keys + plan.measures, key=lambda x: _path_rank(x.path)):
+    for it in sorted(keys + measures, key=lambda x: _path_rank(x.path)):
         spec = it.spec
         label = it.label if isinstance(it, Key) else it.channel
         if isinstance(it, Measure):
-            it.name = claim(spec.name or _measure_name(spec), label)
-            plan.columns.append(OutputColumn(it.name, it.channel, "measure", spec.column))
+            name = claim(spec.name or _measure_name(spec), label)
+            named["m", it.index] = dataclasses.replace(it, name=name)
+            columns.append(OutputColumn(name, it.channel, "measure", spec.column))
         elif it.binned:
             if spec.name:
                 names = (claim(f"{spec.name}_lo", label), claim(f"{spec.name}_hi", label))
             else:
                 names = (claim(f"{label}_lo", label), claim(f"{label}_hi", label))
-            it.names = names
-            plan.columns.append(OutputColumn(names[0], it.channel, "bin_lo", spec.column))
-            plan.columns.append(OutputColumn(names[1], it.channel, "bin_hi", spec.column))
+            named["k", it.index] = dataclasses.replace(it, names=names)
+            columns.append(OutputColumn(names[0], it.channel, "bin_lo", spec.column))
+            columns.append(OutputColumn(names[1], it.channel, "bin_hi", spec.column))
         else:
             want = spec.name or (f"{spec.column}_{spec.extract}" if it.mode == "extract"
                                  else str(spec.column))
-            it.names = (claim(want, label),)
-            plan.columns.append(OutputColumn(it.names[0], it.channel, "key", spec.column))
-    if plan.stack_measure is not None:
-        m = plan.stack_measure
-        plan.columns.append(OutputColumn(claim(f"{m.name}_base", m.channel), m.channel,
-                                         "stack_base", m.spec.column))
-        plan.columns.append(OutputColumn(claim(f"{m.name}_top", m.channel), m.channel,
-                                         "stack_top", m.spec.column))
-    _check_name_lengths(plan)
+            name = claim(want, label)
+            named["k", it.index] = dataclasses.replace(it, names=(name,))
+            columns.append(OutputColumn(name, it.channel, "key", spec.column))
+    named_keys = [named["k", k.index] for k in keys]
+    named_measures = [named["m", m.index] for m in measures]
+    if stack_index is not None:
+        m = named_measures[stack_index]
+        columns.append(OutputColumn(claim(f"{m.name}_base", m.channel), m.channel,
+                                    "stack_base", m.spec.column))
+        columns.append(OutputColumn(claim(f"{m.name}_top", m.channel), m.channel,
+                                    "stack_top", m.spec.column))
+    return named_keys, named_measures, columns
 
 
-def _check_name_lengths(plan: Plan) -> None:
-    d = plan.dialect
+def _check_name_lengths(d: Dialect, keys: list[Key], measures: list[Measure],
+                        stack_measure: Measure | None, columns: list[OutputColumn]) -> None:
     # dialect data: identifier caps (engines that cut longer names) and BMP-only identifiers
     # (MariaDB/MySQL: a name with U+10000 or above is error 1300 "Invalid utf8mb4 character")
     cap = d.max_identifier_bytes
     if cap is None and not d.identifiers_bmp_only:
         return
-    stack = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
-    items = [(k.path, k.spec, list(k.names)) for k in plan.keys]
-    items += [(m.path, m.spec, [m.name] + (stack if m is plan.stack_measure else []))
-              for m in plan.measures]
+    stack = [c.name for c in columns if c.role in ("stack_base", "stack_top")]
+    items = [(k.path, k.spec, list(k.names)) for k in keys]
+    items += [(m.path, m.spec, [m.name] + (stack if m is stack_measure else []))
+              for m in measures]
     for path, spec, names in items:
         for n in names:
             if d.identifiers_bmp_only and any(ord(c) > 0xFFFF for c in n):

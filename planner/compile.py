@@ -2,10 +2,10 @@
 
 The planner is a pipeline (no module imports a later stage)::
 
-    planner.bind    request + schema + dialect -> checked Plan   (planner.where, .values)
-    compile.prepare   = bind + the extents statement (planner.emit_extents)
-    planner.layout  extents row -> the keys' bin layouts
-    compile.finish    = layout + the main statement (planner.emit_main)
+    planner.bind    request + schema + dialect -> frozen bound Plan (planner.where, .values)
+    compile.prepare   = bind + the extents statement (planner.emit_extents), a new Plan
+    planner.layout  bound Plan + extents row -> a new, laid-out Plan (keys' bin layouts)
+    compile.finish    = layout + the main statement (planner.emit_main), a new Plan
     app.service     shape: the engine's answer -> the response
 
 1. ``prepare`` (step 1) binds the request and, when a bin layout depends on the data
@@ -32,7 +32,8 @@ only earlier ones::
     planner.emit_main      the main statement: base -> grouped -> counted -> kept ->
                            [dense] -> final, COUNT(DISTINCT) pairs, stack columns, sort
 
-In: ``Plan`` (+ extents row); out: ``exp.Select`` trees on the plan, rendered by
+In: ``Plan`` (+ extents row); out: ``exp.Select`` trees on a NEW plan (``dataclasses.replace``;
+the plan passed in is never changed, so a bound plan can be shared), rendered by
 ``Plan.extents_sql`` / ``Plan.main_sql``. Pure (no I/O). The names app/ and tests/ import
 from here (``prepare``, ``finish``, ``bind_sql``, ``bind_values``, ``display_sql``,
 ``param_shape``, ``Plan``, ``INTERNAL``, ...) stay importable from here. Internal column and
@@ -52,7 +53,7 @@ from planner.dialects.base import Dialect
 from planner.emit_extents import _extents_statement
 from planner.emit_keys import _outside_expr, _plain_floor_is_exact
 from planner.emit_main import _main_statement
-from planner.layout import _layout_numeric, _layout_time, lay_out
+from planner.layout import lay_out, lay_out_key
 from planner.model import ChartRequest
 from planner.plan import Plan
 from planner.schema import SourceSchema
@@ -81,45 +82,46 @@ def count_sql(plan: Plan) -> str:
 
 
 def finish(plan: Plan, extents_row: dict[str, Any] | None = None) -> Plan:
-    """Step 2: lay out the bins from the extents row and build the main statement."""
+    """Step 2: a new plan with the bins laid out from the extents row and the main
+    statement (``plan`` itself is left as it was)."""
     row = extents_row or {}
     if plan.request.reduce is not None:  # M4 line reduction: planner/m4.py
-        plan.reduced_row = row
-        plan.main = m4.main_statement(plan, row)
-        return plan
-    lay_out(plan, row)
-    plan.main = _main_statement(plan)
-    return plan
+        return dataclasses.replace(plan, reduced_row=row, main=m4.main_statement(plan, row))
+    laid = lay_out(plan, row)
+    return dataclasses.replace(laid, main=_main_statement(laid))
 
 
-def layout_key(plan: Plan, extents_row: dict[str, Any] | None = None) -> tuple:
+def layout_key(plan: Plan, extents_row: dict[str, Any] | None = None,
+               memo: dict | None = None) -> tuple:
     """What ``finish(extents_row)`` takes from the row: equal keys (same request shape)
     give the same main statement, so a brush whose new extents keep the bin layout
     reuses it. Numeric bins: the layout and whether the plain floor is exact over the
     row's range (``_plain_floor_is_exact``); time bins: step, first bin, count, closed
-    stop. M4 reductions read the whole row. Raises what ``finish`` raises (bad layouts)."""
+    stop. M4 reductions read the whole row. Raises what ``finish`` raises (bad layouts).
+    ``memo``: a dict the caller owns (e.g. the plan cache, per shared plan), keys by row, so a
+    repeated row costs no layout work."""
     row = extents_row or {}
     raw = tuple(sorted(row.items(), key=lambda kv: kv[0]))
     if plan.request.reduce is not None:
         return ("row",) + raw
-    hit = plan._layouts.get(raw)  # (a repeated row: no layout work)
+    hit = memo.get(raw) if memo is not None else None  # (a repeated row: no layout work)
     if hit is not None:
         return hit
     out: list[Any] = []
     for k in plan.keys:
         if k.mode == "nbin":
-            k = dataclasses.replace(k)  # this plan may be shared: lay out a copy
-            _layout_numeric(k, row)
+            k = lay_out_key(k, row)  # a laid-out copy: the plan itself stays unlaid
             b = k.nbins
             out.append((b.start, b.width, b.count, b.method,
                         _plain_floor_is_exact(b, k.vrange)))
         elif k.mode == "tbin":
-            k = dataclasses.replace(k)
-            _layout_time(k, row)
+            k = lay_out_key(k, row)
             out.append((k.tstep.iso, k.tstart, k.tcount, k.tclosed))
-    if len(plan._layouts) >= 256:
-        plan._layouts.clear()
-    plan._layouts[raw] = key = tuple(out)
+    key = tuple(out)
+    if memo is not None:
+        if len(memo) >= 256:
+            memo.clear()
+        memo[raw] = key
     return key
 
 
@@ -129,7 +131,5 @@ def prepare(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
     bin layout (or an M4 reduction) depends on the data. ``params``: see ``bind``."""
     plan = bind(request, schema, dialect, params)
     if request.reduce is not None:  # M4 line reduction: planner/m4.py
-        plan.extents = m4.extents_statement(plan)
-        return plan
-    plan.extents = _extents_statement(plan)
-    return plan
+        return dataclasses.replace(plan, extents=m4.extents_statement(plan))
+    return dataclasses.replace(plan, extents=_extents_statement(plan))

@@ -6,14 +6,16 @@ deviation, quartiles) or from its explicit limits: numeric keys get Heckbert nic
 numpy rule's bins or a fixed width's (``planner.bins``), time keys a calendar step with
 its first bin and count. Layouts that place no value in a bin, or make more than
 ``MAX_BINS`` bins, are a 422 at the layout's JSON pointer. ``bins_meta`` is the ``bins``
-member of the answer. In: ``Plan`` (its keys) + the extents row (dict); out: the keys'
-``nbins`` / ``tstep`` / ``tstart`` / ``tcount`` / ``tclosed`` / ``vrange``, set in place.
+member of the answer. In: a bound ``Plan`` (its keys) + the extents row (dict); out: a NEW
+plan whose binned keys carry ``nbins`` / ``tstep`` / ``tstart`` / ``tcount`` / ``tclosed`` /
+``vrange`` (copies made with ``dataclasses.replace``; the bound plan is left as it was).
 The calendar helpers (``_trunc_local``, ``_add_local``, ...) are the Python twins of the
 SQL the emit stage writes. Pure (no I/O).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import math
 import zoneinfo
@@ -26,13 +28,18 @@ from planner.model import MAX_BINS
 from planner.plan import Key, Plan
 
 
-def lay_out(plan: Plan, row: dict[str, Any]) -> None:
-    """Fix the layout of every binned key of ``plan`` from the extents ``row``."""
-    for k in plan.keys:
-        if k.mode == "nbin":
-            _layout_numeric(k, row)
-        elif k.mode == "tbin":
-            _layout_time(k, row)
+def lay_out(plan: Plan, row: dict[str, Any]) -> Plan:
+    """A new plan: ``plan`` with every binned key laid out from the extents ``row``."""
+    return dataclasses.replace(plan, keys=tuple(lay_out_key(k, row) for k in plan.keys))
+
+
+def lay_out_key(k: Key, row: dict[str, Any]) -> Key:
+    """The key with its bin layout from the extents ``row`` (other keys: unchanged)."""
+    if k.mode == "nbin":
+        return _layout_numeric(k, row)
+    if k.mode == "tbin":
+        return _layout_time(k, row)
+    return k
 
 
 def bins_meta(plan: Plan) -> dict[str, dict[str, Any]]:
@@ -61,7 +68,7 @@ def _num(row: dict[str, Any], name: str) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
+def _layout_numeric(k: Key, row: dict[str, Any]) -> Key:
     """Fix a numeric key's bins: ``width`` (origin grid), ``rule`` (numpy's edges) or ``bins``
     (nice widths), over the limits or the data's finite min/max. Layouts whose edges are not
     distinct finite doubles, or that make more than MAX_BINS bins, are a 422."""
@@ -77,9 +84,9 @@ def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
         lo, hi = _num(row, p + "min"), _num(row, p + "max")
         if lo is None or hi is None:  # no finite values: a harmless placeholder layout
             start = b.origin or 0.0 if b.width is not None else 0.0
-            k.nbins = binning.NumericBins(start, b.width or 1.0, 1, method)
-            return
-    k.vrange = (lo, hi)
+            return dataclasses.replace(k, nbins=binning.NumericBins(start, b.width or 1.0, 1,
+                                                                    method))
+    vrange = (lo, hi)
     try:
         if b.width is not None:
             o = b.origin or 0.0
@@ -103,13 +110,13 @@ def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
                             + ("a larger width" if b.width is not None else
                                "another rule or limits" if b.rule is not None else "fewer bins"),
                             slug="too-many-bins")
-        k.nbins = binning.check_layout(nb)
+        return dataclasses.replace(k, nbins=binning.check_layout(nb), vrange=vrange)
     except binning.LayoutError as e:
         if k.nlimits is None and b.width is None and lo is not None:
             # data too narrow to split (e.g. 0 and 5e-324): numpy's zero-range layout
-            k.nbins = binning.rule_bins(b.rule or "sturges", 0, lo, lo)
-            k.nbins = binning.NumericBins(k.nbins.start, k.nbins.width, 1, method)
-            return
+            zero = binning.rule_bins(b.rule or "sturges", 0, lo, lo)
+            return dataclasses.replace(k, nbins=binning.NumericBins(zero.start, zero.width, 1,
+                                                                    method), vrange=vrange)
         where = pointer(*k.path, "bin", "limits") if k.nlimits is not None and b.width is None \
             else field_ptr
         raise PlanError(where, f"{e}: no value could be placed in a bin; use "
@@ -117,7 +124,7 @@ def _layout_numeric(k: Key, row: dict[str, Any]) -> None:
                            else "wider limits"), slug="bad-layout") from None
 
 
-def _layout_time(k: Key, row: dict[str, Any]) -> None:
+def _layout_time(k: Key, row: dict[str, Any]) -> Key:
     """Fix a time key's calendar step and bins over its limits (or the data's min/max). Like
     numeric bins, the last bin is closed: when the upper end falls on a bin edge, values
     equal to it belong to the bin that ends there (no extra bin past the limits)."""
@@ -126,13 +133,13 @@ def _layout_time(k: Key, row: dict[str, Any]) -> None:
     p = names.extents(k.index)
     where = pointer(*k.path, "bin", "limits") if k.tlimits is not None else pointer(*k.path, "bin")
     try:
-        _layout_time_steps(k, row, p, b.bins or 20)
+        return _layout_time_steps(k, row, p, b.bins or 20)
     except (OverflowError, ValueError):
         raise PlanError(where, "the time bins would start or end outside the years 1 to 9999 "
                         f"(in {k.tz}); use limits inside that range", slug="out-of-range") from None
 
 
-def _layout_time_steps(k: Key, row: dict[str, Any], p: str, target: int) -> None:
+def _layout_time_steps(k: Key, row: dict[str, Any], p: str, target: int) -> Key:
     if k.tlimits is not None:
         lo = k.tlimits[0].timestamp()
         hi = k.tlimits[1].timestamp()
@@ -140,31 +147,29 @@ def _layout_time_steps(k: Key, row: dict[str, Any], p: str, target: int) -> None
         lo, hi = _num(row, p + "min"), _num(row, p + "max")
     if lo is None or hi is None:
         lo = hi = 0.0
-    k.tstep = binning.time_step(hi - lo, target)
-    step = k.tstep
-    k.tclosed = None
+    step = binning.time_step(hi - lo, target)
+    closed = None
     if step.is_fixed:
         first = math.floor(lo / step.seconds) * step.seconds
         last = math.floor(hi / step.seconds) * step.seconds
         if last == hi and last > first:  # hi on an edge: the last bin [hi - step, hi] is closed
             last -= step.seconds
-            k.tclosed = dt.datetime.fromtimestamp(hi, dt.timezone.utc)
-        k.tstart = float(first)
-        k.tcount = int(round((last - first) / step.seconds)) + 1
+            closed = dt.datetime.fromtimestamp(hi, dt.timezone.utc)
+        return dataclasses.replace(k, tstep=step, tstart=float(first), tclosed=closed,
+                                   tcount=int(round((last - first) / step.seconds)) + 1)
     else:
         zone = zoneinfo.ZoneInfo(k.tz)
         lo_local = dt.datetime.fromtimestamp(lo, dt.timezone.utc).astimezone(zone).replace(tzinfo=None)
         hi_local = dt.datetime.fromtimestamp(hi, dt.timezone.utc).astimezone(zone).replace(tzinfo=None)
         first_l = _trunc_local(lo_local, step.unit)
         last_l = _trunc_local(hi_local, step.unit)
-        k.tstart = first_l
         count = _units_between(first_l, last_l, step.unit) + 1
         if last_l == hi_local and last_l > first_l:  # hi on a bin edge: closed last bin
             count -= 1
-            k.tclosed = dt.datetime.fromtimestamp(hi, dt.timezone.utc)
-        k.tcount = count
+            closed = dt.datetime.fromtimestamp(hi, dt.timezone.utc)
         # every bin start and stop must be a wall-clock time Python (and the engines) know
         _time_bin_instant(k, _add_local(first_l, step.unit, count))
+        return dataclasses.replace(k, tstep=step, tstart=first_l, tclosed=closed, tcount=count)
 
 
 def _trunc_local(t: dt.datetime, unit: str) -> dt.datetime:

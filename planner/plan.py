@@ -1,16 +1,19 @@
-"""The plan: what the stages pass along (data only, no SQL building).
+"""The plan: what the stages pass along (frozen data only, no SQL building).
 
-``planner.bind`` makes a ``Plan`` from request + schema + dialect (keys, measures, the
-compiled ``where``, output columns, all checked); ``planner.layout`` fills in the keys' bin
-layouts from an extents row; ``planner.compile`` (emit: ``planner.emit_*``) sets ``extents`` and ``main``, the
-sqlglot statements, rendered by ``extents_sql`` / ``main_sql``. Internal column names come
-from ``planner.names``.
+``planner.bind`` makes a complete ``Plan`` from request + schema + dialect (keys with their
+output names, measures, the compiled ``where``, output columns, all checked);
+``planner.layout`` returns a NEW plan whose binned keys carry their layouts (from an extents
+row), the bound plan stays as it was; ``planner.compile`` (emit: ``planner.emit_*``) returns
+a new plan with ``extents`` / ``main``, the sqlglot statements, rendered by ``extents_sql`` /
+``main_sql``. Every class here is frozen: a stage that changes something makes a copy
+(``dataclasses.replace``), so one bound plan can be laid out for many extents rows. Internal
+column names come from ``planner.names``.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 from sqlglot import exp
@@ -23,7 +26,7 @@ from planner.model import Channel, ChartRequest
 from planner.schema import ColumnInfo, SourceSchema
 
 
-@dataclass
+@dataclass(frozen=True)
 class Key:
     """A grouping term of the request."""
 
@@ -68,7 +71,7 @@ class Key:
         return self.nlimits is not None or self.tlimits is not None
 
 
-@dataclass
+@dataclass(frozen=True)
 class Measure:
     index: int
     path: tuple[str | int, ...]
@@ -93,7 +96,7 @@ class Measure:
         return self.col is not None or self.condition is not None
 
 
-@dataclass
+@dataclass(frozen=True)
 class OutputColumn:
     name: str
     channel: str
@@ -101,26 +104,23 @@ class OutputColumn:
     source: str | None = None  # source column name
 
 
-@dataclass
+@dataclass(frozen=True)
 class Plan:
     request: ChartRequest
     schema: SourceSchema
     dialect: Dialect
-    keys: list[Key]
-    measures: list[Measure]
+    keys: tuple[Key, ...]
+    measures: tuple[Measure, ...]
     where: exp.Expression | None
     extents: exp.Select | None = None
     main: exp.Select | None = None
-    columns: list[OutputColumn] = field(default_factory=list)
-    approximate: list[str] = field(default_factory=list)
+    columns: tuple[OutputColumn, ...] = ()
+    approximate: tuple[str, ...] = ()
     stack_measure: Measure | None = None
     reduced_row: dict[str, Any] | None = None  # extents of an M4 reduction (planner/m4.py)
     #: number of bound-parameter slots in the SQL (``prepare(..., params=True)``); their
     #: values come from ``bind_values(request, ...)``, the text from ``bind_sql``
     slots: int = 0
-    #: ``planner.compile.layout_key`` by extents row (a shared prepared plan answers it for
-    #: many requests)
-    _layouts: dict = field(default_factory=dict, repr=False, compare=False)
 
     # ---- SQL text --------------------------------------------------------------------
     @property

@@ -98,7 +98,7 @@ def render(dialect_name: str, case: str) -> tuple[str, str]:
         plan = prepare(ChartRequest.model_validate({"source": "sales", **body}), SCHEMA, dialect)
     except Unsupported as e:
         return "refused", e.detail + "\n"
-    finish(plan, extents)
+    plan = finish(plan, extents)
     return "sql", plan.main_sql + ";\n"
 
 

@@ -79,7 +79,7 @@ def test_refusals_follow_the_capability_table(dialect: str, feature: str):
     req = ChartRequest.model_validate({"source": "sales", **FEATURE_REQUESTS[feature]})
     if d.supports(feature):
         plan = prepare(req, regen.SCHEMA, d)
-        finish(plan, {})
+        plan = finish(plan, {})
         assert plan.main_sql
     else:
         with pytest.raises(Unsupported) as err:
@@ -317,7 +317,7 @@ def test_filter_sql_semantics_render_and_parse_everywhere(dialect, text):
     d = get_dialect(dialect)
     plan = prepare(ChartRequest.model_validate({"source": "sales", "channels": {
         "x": {"column": "grp"}, "y": {"agg": "count"}}, "filter_sql": text}), regen.SCHEMA, d)
-    finish(plan, {})
+    plan = finish(plan, {})
     sql = plan.main_sql
     assert "ROUND(" not in sql.upper().replace("_ROUND", "")  # no engine round: ours is written out
     sqlglot.parse_one(sql, read=d.sqlglot)

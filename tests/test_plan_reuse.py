@@ -65,21 +65,28 @@ def _kept(i: int) -> list[float]:
 
 @pytest.fixture()
 def counted(monkeypatch):
-    """Calls of app.service's ``prepare`` and of ``Dialect.render`` (every SQL text)."""
+    """Calls of app.service's ``prepare``, of the bind stage (``planner.bind.bind`` as
+    ``planner.compile.prepare`` calls it) and of ``Dialect.render`` (every SQL text)."""
     import app.service as service_mod
+    import planner.compile as compile_mod
 
-    calls = {"prepare": 0, "render": 0}
-    real_prepare, real_render = service_mod.prepare, Dialect.render
+    calls = {"prepare": 0, "bind": 0, "render": 0}
+    real_prepare, real_bind, real_render = service_mod.prepare, compile_mod.bind, Dialect.render
 
     def prepare(*a, **k):
         calls["prepare"] += 1
         return real_prepare(*a, **k)
+
+    def bind(*a, **k):
+        calls["bind"] += 1
+        return real_bind(*a, **k)
 
     def render(self, node):
         calls["render"] += 1
         return real_render(self, node)
 
     monkeypatch.setattr(service_mod, "prepare", prepare)
+    monkeypatch.setattr(compile_mod, "bind", bind)
     monkeypatch.setattr(Dialect, "render", render)
     return calls
 
@@ -88,7 +95,7 @@ def counted(monkeypatch):
 def test_new_filter_values_reuse_the_plan(service, counted, bin_spec):
     first = service.run(_request(0, bin_spec))
     assert counted["prepare"] >= 1 and counted["render"] >= 1  # the first one plans
-    counted["prepare"] = counted["render"] = 0
+    counted["prepare"] = counted["bind"] = counted["render"] = 0
     extents = set()
     for i in range(1, 12):
         res = service.run(_request(i, bin_spec))
@@ -105,12 +112,12 @@ def test_new_filter_values_reuse_the_plan(service, counted, bin_spec):
         extents.add((min(kept), max(kept)))
     assert len(extents) > 5  # ... over extents rows that do not
     # neither a new plan nor any new SQL text for any of the new values
-    assert counted == {"prepare": 0, "render": 0}
+    assert counted == {"prepare": 0, "bind": 0, "render": 0}
 
 
 def test_a_new_bin_layout_renders_again(service, counted):
     service.run(_request(0, {"bins": 20}))
-    counted["render"] = 0
+    counted["prepare"] = counted["bind"] = counted["render"] = 0
     # a window over 5 rows only: another extents row and another nice layout
     lo = T0 + dt.timedelta(minutes=2)
     req = ChartRequest.model_validate({
@@ -121,7 +128,9 @@ def test_a_new_bin_layout_renders_again(service, counted):
     kept = [v for t, v, n in ROWS if lo <= t < lo + dt.timedelta(minutes=5) and n != 0]
     assert res.meta["stats"]["matched_rows"] == len(kept)
     assert res.meta["bins"]["x"]["width"] < 2.5  # narrower data: a finer nice width
-    assert counted["prepare"] == 1 and counted["render"] == 1  # the main statement only
+    # the same request shape: the shared bound plan is laid out anew (no second bind), and
+    # only the main statement is rendered
+    assert counted == {"prepare": 0, "bind": 0, "render": 1}
 
 
 @pytest.mark.parametrize("where,ptr", [
