@@ -44,14 +44,15 @@ def reference_connection(path: Path | str) -> duckdb.DuckDBPyConnection:
 
 
 def post_chart(client: Any, body: dict[str, Any] | bytes, arrow: bool = False,
-               cache: bool = False) -> Any:
+               cache: bool = False, path: str = "/v1/chart") -> Any:
+    """POST ``body`` to ``path`` (result cache bypassed unless ``cache``; Arrow if ``arrow``)."""
     content = body if isinstance(body, bytes) else orjson.dumps(body)
     headers = dict(NO_CACHE)
     if cache:
         headers.pop("cache-control")
     if arrow:
         headers["accept"] = ARROW_STREAM
-    return client.post("/v1/chart", content=content, headers=headers)
+    return client.post(path, content=content, headers=headers)
 
 
 def compare(service: pa.Table, hand: pa.Table) -> str | None:
