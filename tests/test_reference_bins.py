@@ -470,7 +470,7 @@ def int_service(tmp_path_factory):
 
 @pytest.mark.parametrize("n", [4, 8, 20, 30])
 @pytest.mark.parametrize("j", range(len(INT_RANGES)), ids=[f"{a}..{b}" for a, b in INT_RANGES])
-def test_integer_column_bins_match_numpy_on_every_edge(int_service, j, n):
+def test_integer_column_bins_match_numpy_on_every_edge(api, int_service, j, n):
     from planner.model import ChartRequest
 
     lo, hi = INT_RANGES[j]
@@ -481,8 +481,7 @@ def test_integer_column_bins_match_numpy_on_every_edge(int_service, j, n):
             out = svc.to_json(svc.run(ChartRequest.model_validate(
                 {"source": f"ints{j}", "channels": {"x": {"column": column, "bin": bin_},
                                                     "y": {"agg": "count"}}})))
-            names = [c["name"] for c in out["columns"]]
-            rows = [dict(zip(names, r)) for r in zip(*(out["data"][k] for k in names))]
+            rows = api.rows(out)  # tests/conftest.py Api: also checks columns[] against data
             b = out["bins"]["x"]
             edges = np.array([b["start"] + i * b["width"] for i in range(b["count"] + 1)])
             a, z = bin_.get("limits", (lo, hi))
