@@ -481,7 +481,9 @@ def alone(server: str, request: dict, chart_id: str, where: list) -> dict:
 
 def check_drawn(driver, server, request, answer_, wheres: dict) -> None:
     """Every chart: its marks are its rows in the batch answer (count and values), and that
-    answer is the chart's own /v1/chart answer with the other charts' brushes as `where`."""
+    answer is the chart's own /v1/chart answer with the other charts' brushes as `where`.
+    Both sides are the service (this checks the page's drawing and its linking); the rows
+    themselves are checked against pandas in tests/test_linked.py."""
     for res in answer_["results"]:
         cid = res["id"]
         assert len(drawn_rows(driver, cid)) == res["stats"]["result_rows"] > 0, cid
