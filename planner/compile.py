@@ -35,9 +35,9 @@ only earlier ones::
 In: ``Plan`` (+ extents row); out: ``exp.Select`` trees on a NEW plan (``dataclasses.replace``;
 the plan passed in is never changed, so a bound plan can be shared), rendered by
 ``Plan.extents_sql`` / ``Plan.main_sql``. Pure (no I/O). The names app/ and tests/ import
-from here (``prepare``, ``finish``, ``bind_sql``, ``bind_values``, ``display_sql``,
-``param_shape``, ``Plan``, ``INTERNAL``, ...) stay importable from here. Internal column and
-CTE names: ``planner.names``.
+from here (``prepare``, ``finish``, ``count_sql``, ``layout_key``, ``bind_sql``,
+``bind_values``, ``display_sql``, ``param_shape``, ``bins_meta``, ``Plan``) stay importable
+from here. Internal column and CTE names: ``planner.names``.
 """
 
 from __future__ import annotations
@@ -59,10 +59,7 @@ from planner.plan import Plan
 from planner.schema import SourceSchema
 
 # re-exported: the names app/ and tests/ import from planner.compile
-from planner.emit_dense import MAX_DENSE_CELLS  # noqa: F401
 from planner.layout import bins_meta  # noqa: F401
-from planner.names import INTERNAL  # noqa: F401
-from planner.values import PARAM_MIN_VALUES, _scalar_bindable, time_zone_names  # noqa: F401
 from planner.where import bind_sql, bind_values, display_sql, param_shape  # noqa: F401
 
 
