@@ -108,12 +108,9 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
     b = k.nbins
     assert b is not None
     start, width = d.real(b.start), d.real(b.width)
-    fast = _plain_floor_is_exact(b, k.vrange)
-    closed = bool(fast)
-    if fast is None and k.col.kind == "integer" and d.caps.whole_integer_cells \
-            and _integer_floor_is_exact(b, k.vrange):
-        fast, closed = b.start + float(b.count) * b.width, True
-    if fast is not None:
+    unguarded = _unguarded_index(d, k)
+    if unguarded is not None:
+        fast, closed = unguarded
         # floor((v - start) / width) already puts every value of the range where the
         # guarded form below would (proved at plan time, see _plain_floor_is_exact);
         # the guard doubled the cost of a 10M-row histogram.
@@ -152,6 +149,23 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
                                    true=exp.Literal.number(0))],
                        default=idx)
     return idx
+
+
+def _unguarded_index(d: Dialect, k: Key) -> tuple[float, bool] | None:
+    """How a laid-out numeric key's bin index is written: None (the guarded form), else
+    ``(top, closed)`` -- the plain floor, with a closed last bin for values from ``top`` on
+    when ``closed`` (``_plain_floor_is_exact``; on integer columns, ``_integer_floor_is_exact``).
+    The main statement's numeric bin index depends on the layout and this alone
+    (``planner.compile.layout_key``)."""
+    b = k.nbins
+    assert b is not None
+    fast = _plain_floor_is_exact(b, k.vrange)
+    if fast is not None:
+        return fast, bool(fast)
+    if k.col.kind == "integer" and d.caps.whole_integer_cells \
+            and _integer_floor_is_exact(b, k.vrange):
+        return b.start + float(b.count) * b.width, True
+    return None
 
 
 SUB_DAY_UNITS = ("hour", "minute", "second")
