@@ -216,7 +216,7 @@ _UNIT_MICROS = {"week": 604_800_000_000, "day": 86_400_000_000, "hour": 3_600_00
                 "minute": 60_000_000, "second": 1_000_000}
 #: Microseconds from 0001-01-01T00:00:00Z -- the first instant a time key shows, a Monday
 #: (proleptic Gregorian), a whole number of every unit above -- to 1970-01-01T00:00:00Z.
-_YEAR1_MICROS = 62_135_596_800_000_000
+_YEAR1_MICROS = tzdb.YEAR1_MICROS
 #: Microseconds from 1970-01-01T00:00:00Z to 9999-12-31T23:59:59.999999Z, the last one shown.
 _YEAR9999_MICROS = 253_402_300_799_999_999
 
