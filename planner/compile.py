@@ -35,9 +35,9 @@ only earlier ones::
 In: ``Plan`` (+ extents row); out: ``exp.Select`` trees on a NEW plan (``dataclasses.replace``;
 the plan passed in is never changed, so a bound plan can be shared), rendered by
 ``Plan.extents_sql`` / ``Plan.main_sql``. Pure (no I/O). The names app/ and tests/ import
-from here (``prepare``, ``finish``, ``bind_sql``, ``bind_values``, ``display_sql``,
-``param_shape``, ``Plan``, ``INTERNAL``, ...) stay importable from here. Internal column and
-CTE names: ``planner.names``.
+from here (``prepare``, ``finish``, ``count_sql``, ``layout_key``, ``bind_sql``,
+``bind_values``, ``display_sql``, ``param_shape``, ``bins_meta``, ``Plan``) stay importable
+from here. Internal column and CTE names: ``planner.names``.
 """
 
 from __future__ import annotations
@@ -51,7 +51,7 @@ from planner import m4, names
 from planner.bind import bind
 from planner.dialects.base import Dialect
 from planner.emit_extents import _extents_statement
-from planner.emit_keys import _outside_expr, _plain_floor_is_exact
+from planner.emit_keys import _outside_expr, _unguarded_index
 from planner.emit_main import _main_statement
 from planner.layout import lay_out, lay_out_key
 from planner.model import ChartRequest
@@ -59,10 +59,7 @@ from planner.plan import Plan
 from planner.schema import SourceSchema
 
 # re-exported: the names app/ and tests/ import from planner.compile
-from planner.emit_dense import MAX_DENSE_CELLS  # noqa: F401
 from planner.layout import bins_meta  # noqa: F401
-from planner.names import INTERNAL  # noqa: F401
-from planner.values import PARAM_MIN_VALUES, _scalar_bindable, time_zone_names  # noqa: F401
 from planner.where import bind_sql, bind_values, display_sql, param_shape  # noqa: F401
 
 
@@ -95,8 +92,8 @@ def layout_key(plan: Plan, extents_row: dict[str, Any] | None = None,
                memo: dict | None = None) -> tuple:
     """What ``finish(extents_row)`` takes from the row: equal keys (same request shape)
     give the same main statement, so a brush whose new extents keep the bin layout
-    reuses it. Numeric bins: the layout and whether the plain floor is exact over the
-    row's range (``_plain_floor_is_exact``); time bins: step, first bin, count, closed
+    reuses it. Numeric bins: the layout and how its index is written over the row's
+    range (``planner.emit_keys._unguarded_index``); time bins: step, first bin, count, closed
     stop. M4 reductions read the whole row. Raises what ``finish`` raises (bad layouts).
     ``memo``: a dict the caller owns (e.g. the plan cache, per shared plan), keys by row, so a
     repeated row costs no layout work."""
@@ -112,8 +109,7 @@ def layout_key(plan: Plan, extents_row: dict[str, Any] | None = None,
         if k.mode == "nbin":
             k = lay_out_key(k, row)  # a laid-out copy: the plan itself stays unlaid
             b = k.nbins
-            out.append((b.start, b.width, b.count, b.method,
-                        _plain_floor_is_exact(b, k.vrange)))
+            out.append((b.start, b.width, b.count, b.method, _unguarded_index(plan.dialect, k)))
         elif k.mode == "tbin":
             k = lay_out_key(k, row)
             out.append((k.tstep.iso, k.tstart, k.tcount, k.tclosed))

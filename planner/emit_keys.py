@@ -108,12 +108,9 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
     b = k.nbins
     assert b is not None
     start, width = d.real(b.start), d.real(b.width)
-    fast = _plain_floor_is_exact(b, k.vrange)
-    closed = bool(fast)
-    if fast is None and k.col.kind == "integer" and d.caps.whole_integer_cells \
-            and _integer_floor_is_exact(b, k.vrange):
-        fast, closed = b.start + float(b.count) * b.width, True
-    if fast is not None:
+    unguarded = _unguarded_index(d, k)
+    if unguarded is not None:
+        fast, closed = unguarded
         # floor((v - start) / width) already puts every value of the range where the
         # guarded form below would (proved at plan time, see _plain_floor_is_exact);
         # the guard doubled the cost of a 10M-row histogram.
@@ -152,6 +149,23 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
                                    true=exp.Literal.number(0))],
                        default=idx)
     return idx
+
+
+def _unguarded_index(d: Dialect, k: Key) -> tuple[float, bool] | None:
+    """How a laid-out numeric key's bin index is written: None (the guarded form), else
+    ``(top, closed)`` -- the plain floor, with a closed last bin for values from ``top`` on
+    when ``closed`` (``_plain_floor_is_exact``; on integer columns, ``_integer_floor_is_exact``).
+    The main statement's numeric bin index depends on the layout and this alone
+    (``planner.compile.layout_key``)."""
+    b = k.nbins
+    assert b is not None
+    fast = _plain_floor_is_exact(b, k.vrange)
+    if fast is not None:
+        return fast, bool(fast)
+    if k.col.kind == "integer" and d.caps.whole_integer_cells \
+            and _integer_floor_is_exact(b, k.vrange):
+        return b.start + float(b.count) * b.width, True
+    return None
 
 
 SUB_DAY_UNITS = ("hour", "minute", "second")
@@ -202,7 +216,7 @@ _UNIT_MICROS = {"week": 604_800_000_000, "day": 86_400_000_000, "hour": 3_600_00
                 "minute": 60_000_000, "second": 1_000_000}
 #: Microseconds from 0001-01-01T00:00:00Z -- the first instant a time key shows, a Monday
 #: (proleptic Gregorian), a whole number of every unit above -- to 1970-01-01T00:00:00Z.
-_YEAR1_MICROS = 62_135_596_800_000_000
+_YEAR1_MICROS = tzdb.YEAR1_MICROS
 #: Microseconds from 1970-01-01T00:00:00Z to 9999-12-31T23:59:59.999999Z, the last one shown.
 _YEAR9999_MICROS = 253_402_300_799_999_999
 

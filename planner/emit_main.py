@@ -261,8 +261,8 @@ def _stack_columns(plan: Plan) -> list[exp.Expression]:
             half = exp.Div(this=total, expression=exp.Literal.number(2))
             end = exp.Sub(this=end, expression=half)
             start = exp.Sub(this=exp.Paren(this=start), expression=half.copy())
-    names = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
-    return [exp.alias_(start, names[0], quoted=True), exp.alias_(end, names[1], quoted=True)]
+    base, top = [c.name for c in plan.columns if c.role in ("stack_base", "stack_top")]
+    return [exp.alias_(start, base, quoted=True), exp.alias_(end, top, quoted=True)]
 
 
 def _sort_terms(plan: Plan, internal: bool) -> list[exp.Ordered]:

@@ -1,7 +1,8 @@
 """Brushing: a request that differs from an earlier one only in its filter values reuses the
 cached plan (issue 11 item 5). The values are bound parameters of the cached statements
-(planner.compile ``_scalar_bindable`` / ``bind_values``), and the finished main statement is
-keyed by the bin layout the extents row gives (``planner.compile.layout_key``), not by the row.
+(planner.values ``_scalar_bindable``, planner.where ``bind_values``), and the finished main
+statement is keyed by the bin layout the extents row gives (``planner.compile.layout_key``),
+not by the row.
 
 Reuse is shown by counting calls of ``prepare`` and of SQL rendering (no timing); answers
 are checked against numpy.histogram over the rows the window keeps (counted in Python) and
