@@ -70,7 +70,7 @@ def _check_measure(i: int, path, channel: str, ch: Channel, schema: SourceSchema
         col = _resolve(ch.column, schema, pointer(*path, "column"))
         if not entry.accepts(col.kind):
             detail = entry.mismatch.format(agg=ch.agg, column=col.name, kind=col.kind)
-            if col.kind == "boolean" and aggregates.get("share").accepts("boolean"):
+            if col.kind == "boolean":  # the aggregate that does take one
                 detail += "; the fraction of true rows is {\"agg\": \"share\"}"
             raise PlanError(pointer(*path, "agg"), detail,
                             slug="type-mismatch", title="Aggregate does not fit the column type")

@@ -186,7 +186,7 @@ def _plain_floor_is_exact(b: binning.NumericBins, vrange: tuple[float, float] | 
         return None
     lo, hi = vrange
     # (the per-bin checks depend on the layout alone: cached across a brush's new ranges)
-    if not lo >= b.start + 0.0 * b.width or not _exact_layout(b.start, b.width, b.count):
+    if not lo >= b.start or not _exact_layout(b.start, b.width, b.count):
         return None
     top = b.start + float(b.count) * b.width
     if hi < top:
