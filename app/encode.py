@@ -158,11 +158,11 @@ def timestamps_to_text(arr: pa.ChunkedArray, tz: str | None) -> list[str | None]
     # text names the same instant (README "Time zones").
     wall = pc.local_timestamp(shown).cast(pa.int64()).to_numpy(zero_copy_only=False)
     utc = shown.cast(pa.int64()).to_numpy(zero_copy_only=False)
-    per_s = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}[shown.type.unit]
+    per_s = _PER_SECOND[shown.type.unit]
     off = wall - utc
     odd = np.flatnonzero((off % (60 * per_s)) != 0)
     if len(odd):
-        digits = {"s": 0, "ms": 3, "us": 6, "ns": 9}[shown.type.unit]
+        digits = _FRACTION_DIGITS[shown.type.unit]
         for i in odd.tolist():
             if out[i] is None:
                 continue
