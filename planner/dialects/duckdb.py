@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from sqlglot import exp
 
-from planner.dialects.base import Dialect
+from planner.dialects.base import Dialect, _data_type
 from planner.dialects.capabilities import Capabilities
 
 
@@ -33,7 +33,7 @@ class DuckDB(Dialect):
         if kind == "timestamptz":
             return e
         if kind == "date":
-            e = exp.Cast(this=e, to=exp.DataType.build("TIMESTAMP"))
+            e = exp.Cast(this=e, to=_data_type("TIMESTAMP", None).copy())
         return exp.Anonymous(this="timezone", expressions=[exp.Literal.string("UTC"), e])
 
     # In UTC, wall-clock time and instant differ only in type, so the conversions are plain
@@ -46,7 +46,7 @@ class DuckDB(Dialect):
                 return exp.Anonymous(this="make_timestamp",
                                      expressions=[exp.Anonymous(this="epoch_us", expressions=[e])])
             if kind == "date":
-                return exp.Cast(this=e, to=exp.DataType.build("TIMESTAMP"))
+                return exp.Cast(this=e, to=_data_type("TIMESTAMP", None).copy())
             return e
         # timezone(tz, TIMESTAMPTZ) -> naive wall-clock TIMESTAMP in tz
         return exp.Anonymous(this="timezone",
@@ -69,7 +69,7 @@ class DuckDB(Dialect):
     def epoch(self, e: exp.Expression, kind: str) -> exp.Expression:
         # epoch() of a naive TIMESTAMP reads it as UTC already: no ICU conversion needed.
         if kind == "date":
-            e = exp.Cast(this=e, to=exp.DataType.build("TIMESTAMP"))
+            e = exp.Cast(this=e, to=_data_type("TIMESTAMP", None).copy())
         return exp.Anonymous(this="epoch", expressions=[e])
 
     def from_epoch(self, seconds: exp.Expression) -> exp.Expression:
@@ -81,7 +81,7 @@ class DuckDB(Dialect):
     # epoch_us(t) // 3600000000.
     def epoch_micros(self, e: exp.Expression, kind: str) -> exp.Expression:
         if kind == "date":
-            e = exp.Cast(this=e, to=exp.DataType.build("TIMESTAMP"))
+            e = exp.Cast(this=e, to=_data_type("TIMESTAMP", None).copy())
         return exp.Anonymous(this="epoch_us", expressions=[e])
 
     def from_epoch_micros(self, micros: exp.Expression) -> exp.Expression:
