@@ -156,13 +156,15 @@ def timestamps_to_text(arr: pa.ChunkedArray, tz: str | None) -> list[str | None]
     # (Berlin +00:53:28 before 1893), which %z cuts, so that text would name an instant 28 s
     # off. There the offset is cut to whole minutes and the wall clock shifted with it: the
     # text names the same instant (README "Time zones").
-    wall = pc.local_timestamp(shown).cast(pa.int64()).to_numpy(zero_copy_only=False)
-    utc = shown.cast(pa.int64()).to_numpy(zero_copy_only=False)
-    per_s = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}[shown.type.unit]
+    # (nulls filled: with a null, to_numpy would give float64, which cannot hold every
+    # nanosecond tick -- the recomputed text would then name another instant)
+    wall = pc.fill_null(pc.local_timestamp(shown).cast(pa.int64()), 0).to_numpy(zero_copy_only=False)
+    utc = pc.fill_null(shown.cast(pa.int64()), 0).to_numpy(zero_copy_only=False)
+    per_s = _PER_SECOND[shown.type.unit]
     off = wall - utc
     odd = np.flatnonzero((off % (60 * per_s)) != 0)
     if len(odd):
-        digits = {"s": 0, "ms": 3, "us": 6, "ns": 9}[shown.type.unit]
+        digits = _FRACTION_DIGITS[shown.type.unit]
         for i in odd.tolist():
             if out[i] is None:
                 continue

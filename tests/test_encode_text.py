@@ -168,3 +168,28 @@ def test_zoned_text_names_the_same_instant(zone: str, unit: str) -> None:
         local = v.astimezone(ZoneInfo(zone))
         if local.utcoffset().total_seconds() % 60 == 0:
             assert back.replace(tzinfo=None) == local.replace(tzinfo=None), (text, local)
+
+
+@pytest.mark.parametrize("zone", ["Europe/Berlin", "Africa/Monrovia"])
+def test_zoned_nanosecond_text_with_nulls(zone: str) -> None:
+    """Nanosecond instants in a column with nulls, also under local mean time (offsets with
+    seconds): each text's nine fraction digits are the value's own (integer arithmetic on
+    the raw ticks) and its whole seconds read back (``datetime.fromisoformat``) as the same
+    instant; a null stays None."""
+    rng = np.random.default_rng(11)
+    secs = np.concatenate([rng.integers(-2_800_000_000, -2_500_000_000, 40),  # before 1893
+                           rng.integers(0, 2_000_000_000, 40)])
+    raw = [int(s) * 1_000_000_000 + int(f)
+           for s, f in zip(secs, rng.integers(1, 1_000_000_000, len(secs)))]
+    raw[3] = raw[50] = None
+    arr = pa.chunked_array([pa.array(raw, pa.timestamp("ns", tz="UTC"))])
+    epoch = dt.datetime(1970, 1, 1, tzinfo=dt.timezone.utc)
+    for r, text in zip(raw, timestamps_to_text(arr, zone)):
+        if r is None:
+            assert text is None
+            continue
+        whole, frac = divmod(r, 1_000_000_000)
+        head, tail = text.split(".")
+        assert int(tail[:9]) == frac, (text, r)
+        back = dt.datetime.fromisoformat(head + tail[9:])
+        assert back == epoch + dt.timedelta(seconds=whole), (text, r)

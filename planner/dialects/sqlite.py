@@ -26,7 +26,7 @@ import datetime as dt
 
 from sqlglot import exp
 
-from planner.dialects.base import Dialect
+from planner.dialects.base import Dialect, _data_type
 from planner.dialects.capabilities import Capabilities
 
 
@@ -54,7 +54,7 @@ class SQLite(Dialect):
     }
 
     def double(self, e: exp.Expression) -> exp.Expression:
-        return exp.Cast(this=e, to=exp.DataType.build("DOUBLE"))
+        return exp.Cast(this=e, to=_data_type("DOUBLE", None).copy())
 
     def instant_range(self, e: exp.Expression, kind: str) -> exp.Expression | None:
         # a cell outside the storage convention (not text SQLite's date functions read:
