@@ -152,10 +152,9 @@ def cached(st: Any, source: str, ident: bytes, fmt: str, run: Callable[[], Entry
     cache = st.cache
     if not cache.enabled:
         return run(), "miss"
-    ttl_s = float((getattr(st.settings, "cache", None) or {}).get("ttl_s", 60.0))
     with st.service.limiter.deadline(source):  # the data version is asked on time too
         version = source_version(st.catalog.config(source).engine, st.catalog.engine(source),
-                                 ttl_s)
+                                 cache.ttl_s)
         return cache.compute(cache.key(ident, version, fmt), source, run, lookup=lookup)
 
 
