@@ -47,7 +47,10 @@ def chart(req: ChartRequest, request: Request) -> Response:
     st = request.app.state
     fmt = formats.choose(request.headers.get("accept"))
     st.service.check_source(req.source)  # auth before any cached answer
-    req = _claim(req)  # older requests of its session stop (app.sessions)
+    if req.session is not None:
+        _claim(req.session)
+        # without it, answers and plans are shared across sessions (cache key)
+        req = req.model_copy(update={"session": None})
     lookup = may_reuse(request)
     if fmt == formats.JSON:
         return Response(json_answer(st, req, lookup, t_in), media_type="application/json",
@@ -84,10 +87,7 @@ def batch(req: BatchRequest, request: Request) -> Response:
     st = request.app.state
     st.service.check_source(req.source)
     linked.check_ids(req)  # 422 at /charts/<i>/id
-    work = sessions.current()
-    if work is not None:  # the batch's session and each chart's own: older requests stop
-        for name in dict.fromkeys([req.session, *(c.session or req.session for c in req.charts)]):
-            work.claim(name)
+    _claim(req.session, *(c.session or req.session for c in req.charts))  # each chart's own
     results = []
     for i, chart in enumerate(req.charts):
         link = linked.compose(req, i)
@@ -108,6 +108,7 @@ def batch(req: BatchRequest, request: Request) -> Response:
                     else engine_problem(e) if isinstance(e, EngineError) else e)
             prob.ptr = link.batch_pointer(prob.ptr)
             results.append(_member(ends, dumps(prob.body())))
+    work = sessions.current()
     if work is not None:
         work.check(req.source)  # stopped meanwhile (later charts may have been cache hits)
     # the answers are already encoded (and may come from the cache): splice the bytes
@@ -133,15 +134,13 @@ def plan_sql(req: ChartRequest, request: Request,
     return JSONResponse(request.app.state.service.plan_sql(req, dialect))
 
 
-def _claim(req: ChartRequest) -> ChartRequest:
-    """Claim the request's ``session`` for this request's work (app.sessions); the request
-    without it, so that answers and plans are shared across sessions (cache key)."""
-    if req.session is None:
-        return req
+def _claim(*names: str | None) -> None:
+    """Claim each named session for this request's work (app.sessions): older requests of
+    it stop."""
     work = sessions.current()
     if work is not None:
-        work.claim(req.session)
-    return req.model_copy(update={"session": None})
+        for name in dict.fromkeys(names):
+            work.claim(name)
 
 
 def cached(st: Any, source: str, ident: bytes, fmt: str, run: Callable[[], Entry],
