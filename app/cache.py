@@ -97,8 +97,10 @@ def open_json(payload: dict[str, Any]) -> bytes:
 
 class ResultCache:
     def __init__(self, max_bytes: int = DEFAULT_MAX_BYTES, enabled: bool = True,
-                 shared: Any = None) -> None:
+                 shared: Any = None, ttl_s: float = DEFAULT_TTL_S) -> None:
         self.max_bytes = int(max_bytes)
+        #: ``[cache] ttl_s``: the time bucket of a server source's data version (source_version)
+        self.ttl_s = float(ttl_s)
         self.enabled = bool(enabled) and self.max_bytes > 0
         #: optional ``app.shared_cache.SharedCache`` (Redis) behind the LRU: JSON answers only
         self.shared = shared if self.enabled else None
@@ -110,14 +112,15 @@ class ResultCache:
 
     @classmethod
     def from_config(cls, cfg: dict[str, Any]) -> "ResultCache":
-        """The ``[cache]`` table: ``enabled``, ``max_bytes`` and, with ``url``, the shared
+        """The ``[cache]`` table: ``enabled``, ``max_bytes``, ``ttl_s`` and, with ``url``, the shared
         Redis cache (``app.shared_cache``) and its options."""
         shared = None
         if cfg.get("url") and cfg.get("enabled", True):
             from app.shared_cache import DEFAULTS, SharedCache
 
             shared = SharedCache(cfg["url"], **{k: cfg[k] for k in DEFAULTS if k in cfg})
-        return cls(cfg.get("max_bytes", DEFAULT_MAX_BYTES), cfg.get("enabled", True), shared)
+        return cls(cfg.get("max_bytes", DEFAULT_MAX_BYTES), cfg.get("enabled", True), shared,
+                   cfg.get("ttl_s", DEFAULT_TTL_S))
 
     # ---- keys ----------------------------------------------------------------------------
     @staticmethod

@@ -47,8 +47,11 @@ def chart(req: ChartRequest, request: Request) -> Response:
     st = request.app.state
     fmt = formats.choose(request.headers.get("accept"))
     st.service.check_source(req.source)  # auth before any cached answer
-    req = _claim(req)  # older requests of its session stop (app.sessions)
-    lookup = "no-cache" not in request.headers.get("cache-control", "").lower()
+    if req.session is not None:
+        _claim(req.session)
+        # without it, answers and plans are shared across sessions (cache key)
+        req = req.model_copy(update={"session": None})
+    lookup = may_reuse(request)
     if fmt == formats.JSON:
         return Response(json_answer(st, req, lookup, t_in), media_type="application/json",
                         headers={"Vary": "Accept"})
@@ -58,10 +61,10 @@ def chart(req: ChartRequest, request: Request) -> Response:
         observability.record_chart(req.source, result.meta, result.timing)
         return ArrowEntry(result.table, dict(result.meta), dict(result.timing))
 
-    entry, state = cached(st, req, "arrow", run, lookup)
+    entry, state = cached(st, req.source, canonical(req), "arrow", run, lookup)
     meta = dict(entry.meta)
     meta["cache"] = state
-    meta["timing_ms"] = entry.timing if state == "miss" else {"lookup": _ms_since(t_in)}
+    meta["timing_ms"] = answer_timing(entry, state, t_in)
     if fmt == ARROW_STREAM:
         body = arrow_stream(entry.table, meta)
     elif fmt == formats.CSV:
@@ -84,10 +87,7 @@ def batch(req: BatchRequest, request: Request) -> Response:
     st = request.app.state
     st.service.check_source(req.source)
     linked.check_ids(req)  # 422 at /charts/<i>/id
-    work = sessions.current()
-    if work is not None:  # the batch's session and each chart's own: older requests stop
-        for name in dict.fromkeys([req.session, *(c.session or req.session for c in req.charts)]):
-            work.claim(name)
+    _claim(req.session, *(c.session or req.session for c in req.charts))  # each chart's own
     results = []
     for i, chart in enumerate(req.charts):
         link = linked.compose(req, i)
@@ -108,6 +108,7 @@ def batch(req: BatchRequest, request: Request) -> Response:
                     else engine_problem(e) if isinstance(e, EngineError) else e)
             prob.ptr = link.batch_pointer(prob.ptr)
             results.append(_member(ends, dumps(prob.body())))
+    work = sessions.current()
     if work is not None:
         work.check(req.source)  # stopped meanwhile (later charts may have been cache hits)
     # the answers are already encoded (and may come from the cache): splice the bytes
@@ -133,29 +134,37 @@ def plan_sql(req: ChartRequest, request: Request,
     return JSONResponse(request.app.state.service.plan_sql(req, dialect))
 
 
-def _claim(req: ChartRequest) -> ChartRequest:
-    """Claim the request's ``session`` for this request's work (app.sessions); the request
-    without it, so that answers and plans are shared across sessions (cache key)."""
-    if req.session is None:
-        return req
+def _claim(*names: str | None) -> None:
+    """Claim each named session for this request's work (app.sessions): older requests of
+    it stop."""
     work = sessions.current()
     if work is not None:
-        work.claim(req.session)
-    return req.model_copy(update={"session": None})
+        for name in dict.fromkeys(names):
+            work.claim(name)
 
 
-def cached(st: Any, req: ChartRequest, fmt: str, run: Callable[[], Entry],
+def cached(st: Any, source: str, ident: bytes, fmt: str, run: Callable[[], Entry],
            lookup: bool) -> tuple[Entry, str]:
-    """The cached answer for ``req`` in ``fmt`` (single-flight), or ``run()``'s."""
+    """The cached answer for ``ident`` (a request's canonical bytes) in ``fmt`` on
+    ``source``, by the source's data version (single-flight), or ``run()``'s. Chart, batch
+    and column-profile answers all come through here."""
     cache = st.cache
     if not cache.enabled:
         return run(), "miss"
-    ttl_s = float((getattr(st.settings, "cache", None) or {}).get("ttl_s", 60.0))
-    with st.service.limiter.deadline(req.source):  # the data version is asked on time too
-        version = source_version(st.catalog.config(req.source).engine,
-                                 st.catalog.engine(req.source), ttl_s)
-        return cache.compute(cache.key(canonical(req), version, fmt), req.source, run,
-                             lookup=lookup)
+    with st.service.limiter.deadline(source):  # the data version is asked on time too
+        version = source_version(st.catalog.config(source).engine, st.catalog.engine(source),
+                                 cache.ttl_s)
+        return cache.compute(cache.key(ident, version, fmt), source, run, lookup=lookup)
+
+
+def may_reuse(request: Request) -> bool:
+    """False when the client asks to recompute (``Cache-Control: no-cache``)."""
+    return "no-cache" not in request.headers.get("cache-control", "").lower()
+
+
+def answer_timing(entry: Entry, state: str, t_in: float) -> dict[str, float]:
+    """``timing_ms`` of an answer: the run's own on a miss, the lookup's time on a hit."""
+    return entry.timing if state == "miss" else {"lookup": _ms_since(t_in)}
 
 
 def json_answer(st: Any, req: ChartRequest, lookup: bool, t_in: float) -> bytes:
@@ -172,9 +181,8 @@ def json_answer(st: Any, req: ChartRequest, lookup: bool, t_in: float) -> bytes:
         timing["encode"] = _ms_since(t0)
         return Entry(body, "application/json", timing)
 
-    entry, state = cached(st, req, "json", run, lookup)
-    timing = entry.timing if state == "miss" else {"lookup": _ms_since(t_in)}
-    return stamp_json(entry.body, state, timing)
+    entry, state = cached(st, req.source, canonical(req), "json", run, lookup)
+    return stamp_json(entry.body, state, answer_timing(entry, state, t_in))
 
 
 class ArrowEntry(Entry):

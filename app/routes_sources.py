@@ -22,11 +22,12 @@ from starlette.responses import Response
 
 from app import answers, auth, observability
 from app.answers import JSONResponse
-from app.cache import Entry, open_json, source_version, stamp_json
+from app.cache import Entry, open_json, stamp_json
 from app.catalog import UnknownSource
 from app.encode import column_values, normalize_column
 from app.engines.arrow import conform_column, declared_type
 from app.problems import PROBLEM_JSON, Problem
+from app.routes_charts import answer_timing, cached, may_reuse
 from planner import profile as prof
 from planner.dialects import get_dialect
 from planner.errors import PlanError, nearest
@@ -138,7 +139,7 @@ def column_profile(name: str, column: str, request: Request,
     t_in = time.perf_counter()
     st = request.app.state
     catalog, service = st.catalog, st.service
-    cfg = _config(catalog, name)
+    _config(catalog, name)  # 403, then 404
     observability.note_source(name)
     engine = catalog.engine(name)
     entry = catalog.entry(name)
@@ -156,27 +157,12 @@ def column_profile(name: str, column: str, request: Request,
             body = open_json({"source": name, "column": col.name} | shape(plan, raw))
             return Entry(body, "application/json", {"execute": ms})
 
-        return _answer(request, cfg, engine, ("profile", name, col.name, top), run, t_in)
+        got, state = cached(st, name, orjson.dumps(("profile", name, col.name, top)),
+                            "profile", run, may_reuse(request))
+        return Response(stamp_json(got.body, state, answer_timing(got, state, t_in)),
+                        media_type="application/json")
     except PlanError as e:  # no request body: no pointer, the path names the column
         raise Problem(e.status, e.slug, e.title, e.detail, suggestions=e.suggestions) from None
-
-
-def _answer(request: Request, cfg: Any, engine: Any, key: tuple, run, t_in: float) -> Response:
-    """The cached answer for ``key`` (single flight, per data version) or ``run()``'s."""
-    st = request.app.state
-    cache = st.cache
-    name = key[1]
-    lookup = "no-cache" not in request.headers.get("cache-control", "").lower()
-    if cache.enabled:
-        version = source_version(cfg.engine, engine,
-                                 float((getattr(st.settings, "cache", None) or {}).get("ttl_s", 60.0)))
-        got, state = cache.compute(cache.key(orjson.dumps(key), version, "profile"), name, run,
-                                   lookup=lookup)
-    else:
-        got, state = run(), "miss"
-    timing = got.timing if state == "miss" else {
-        "lookup": round((time.perf_counter() - t_in) * 1000.0, 3)}
-    return Response(stamp_json(got.body, state, timing), media_type="application/json")
 
 
 def _value(arr: pa.ChunkedArray, plan: prof.ProfilePlan, i: int = 0) -> Any:

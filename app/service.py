@@ -244,7 +244,7 @@ class ChartService:
 
     def _plan(self, req: ChartRequest, dialect_name: str | None = None,
               cached: bool = False) -> tuple[Any, SourceEntry, Engine]:
-        self.check_source(req.source)
+        # the source is checked by the callers (run, plan_sql), before the deadline and admit
         limits = self.limiter.of(req.source)
         check_request(req, limits)  # [limits] caps, 422 with pointers
         engine = self.limiter.guard(req.source, self.catalog.engine(req.source),
