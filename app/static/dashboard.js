@@ -285,8 +285,8 @@ function dashDrawBrush(card) {
   const top = M.top, bottom = DASH_H - M.bottom;
   if (card.spec.brush === "range" && sc.kind === "continuous") {
     if (card.range) {
-      const a = sc.lo + ((card.range[0] - sc.d0) / (sc.d1 - sc.d0)) * (sc.hi - sc.lo);
-      const b = sc.lo + ((card.range[1] - sc.d0) / (sc.d1 - sc.d0)) * (sc.hi - sc.lo);
+      const px = (v) => sc.lo + ((v - sc.d0) / ((sc.d1 - sc.d0) || 1)) * (sc.hi - sc.lo);
+      const a = px(card.range[0]), b = px(card.range[1]);
       el("rect", { class: "brush", x: Math.min(a, b), y: top, width: Math.max(1, Math.abs(b - a)), height: bottom - top,
         "data-lo": String(card.range[0]), "data-hi": String(card.range[1]) }, layer);
     }
