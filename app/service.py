@@ -313,7 +313,7 @@ class ChartService:
         dialect = prep.plan.dialect
         # this request's values for the plan's parameter slots (long IN lists), checked
         values = bind_values(req, entry.schema, dialect) if prep.plan.slots else []
-        style = dialect.param_form[1] if dialect.param_form else "qmark"
+        style = dialect.caps.param_form[1] if dialect.caps.param_form else "qmark"
         timing["plan"] = _ms(t0)
         t1 = time.perf_counter()
         statements = []
@@ -423,7 +423,7 @@ class ChartService:
             meta["reduced"] = m4.response_meta(plan, plan.reduced_row,
                                                m4.layout(plan.reduced_row)[2])
         if plan.approximate:
-            method, err = plan.dialect.approx_distinct
+            method, err = plan.dialect.caps.approx_distinct
             approx_cols = [m.name for m in plan.measures if m.internal in plan.approximate]
             meta["approximate"] = True
             meta["approximation"] = {"columns": approx_cols, "method": method,

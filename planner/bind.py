@@ -33,7 +33,7 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
          params: bool = False) -> Plan:
     """The checked plan of ``request`` over ``schema`` for ``dialect`` (no statements yet).
     ``params``: long ``in`` / ``not_in`` lists and comparison values become bound
-    parameters (see ``Dialect.param_form``) instead of literals, so the SQL text does not
+    parameters (see ``Capabilities.param_form``) instead of literals, so the SQL text does not
     depend on their values."""
     keys: list[Key] = []
     measures: list[Measure] = []
@@ -48,7 +48,7 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
         else:
             keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
                                    request_tz))
-    slots: list[Any] | None = [] if params and dialect.param_form is not None else None
+    slots: list[Any] | None = [] if params and dialect.caps.param_form is not None else None
     where = _compile_where(request, schema, dialect, slots)
     stack_index, approximate = _check_options(request, dialect, keys, measures)
     named_keys, named_measures, columns = _assign_names(keys, measures, stack_index)
@@ -292,8 +292,8 @@ def _check_name_lengths(d: Dialect, keys: list[Key], measures: list[Measure],
                         stack_measure: Measure | None, columns: list[OutputColumn]) -> None:
     # dialect data: identifier caps (engines that cut longer names) and BMP-only identifiers
     # (MariaDB/MySQL: a name with U+10000 or above is error 1300 "Invalid utf8mb4 character")
-    cap = d.max_identifier_bytes
-    if cap is None and not d.identifiers_bmp_only:
+    cap = d.caps.max_identifier_bytes
+    if cap is None and not d.caps.identifiers_bmp_only:
         return
     stack = [c.name for c in columns if c.role in ("stack_base", "stack_top")]
     items = [(k.path, k.spec, list(k.names)) for k in keys]
@@ -301,7 +301,7 @@ def _check_name_lengths(d: Dialect, keys: list[Key], measures: list[Measure],
               for m in measures]
     for path, spec, names in items:
         for n in names:
-            if d.identifiers_bmp_only and any(ord(c) > 0xFFFF for c in n):
+            if d.caps.identifiers_bmp_only and any(ord(c) > 0xFFFF for c in n):
                 raise PlanError(pointer(*path, "name" if spec.name else "column"),
                                 f"output column name {n!r} has a character beyond U+FFFF; "
                                 f"{d.name} identifiers cannot hold one (MariaDB/MySQL keep "

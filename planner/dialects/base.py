@@ -90,24 +90,6 @@ class Dialect:
         if stray:
             raise TypeError(f"{cls.__name__}: {', '.join(stray)} belong in caps = Capabilities(...)")
 
-    # Read-only aliases of record fields, for callers written before ``caps`` (planner/bind.py,
-    # app/service.py); new code reads ``d.caps``.
-    @property
-    def param_form(self) -> tuple[str, str] | None:
-        return self.caps.param_form
-
-    @property
-    def max_identifier_bytes(self) -> int | None:
-        return self.caps.max_identifier_bytes
-
-    @property
-    def identifiers_bmp_only(self) -> bool:
-        return self.caps.identifiers_bmp_only
-
-    @property
-    def approx_distinct(self) -> tuple[str, float | None]:
-        return self.caps.approx_distinct
-
     def param_array(self, marker: exp.Expression, value_type: type) -> exp.Expression:
         """The array parameter of the "list" form as the engine needs it typed."""
         return marker
