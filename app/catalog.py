@@ -22,6 +22,7 @@ from app.engines import Engine, EngineError, EngineUnavailable, open_engine
 from app.settings import Settings, SourceConfig
 from planner.dialects import get_dialect
 from planner.schema import ColumnInfo, SourceSchema, classify
+from planner.source import relation
 
 
 @dataclass
@@ -130,7 +131,7 @@ class Catalog:
             columns={c: ColumnInfo(c, classify(t, dialect.sqlglot or None), t) for c, t in cols})
         count_sql = dialect.render(
             exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True))
-            .from_(dialect.table(parts)))
+            .from_(relation(schema, dialect)))
         row = eng.fetch_row(count_sql)
         entry = SourceEntry(cfg, schema, int(row.get("n") or 0), version)
         self._entries[name] = entry

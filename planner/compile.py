@@ -57,6 +57,7 @@ from planner.layout import lay_out, lay_out_key
 from planner.model import ChartRequest
 from planner.plan import Plan
 from planner.schema import SourceSchema
+from planner.source import relation
 
 # re-exported: the names app/ and tests/ import from planner.compile
 from planner.layout import bins_meta  # noqa: F401
@@ -72,7 +73,7 @@ def count_sql(plan: Plan) -> str:
         flag = _outside_expr(d, k)
         if flag is not None:
             sel.append(exp.alias_(exp.Sum(this=flag), k.outside_flag, quoted=True))
-    q = exp.select(*sel).from_(exp.alias_(d.table(plan.schema.table), "s", quoted=True))
+    q = exp.select(*sel).from_(relation(plan.schema, d))
     if plan.where is not None:
         q = q.where(plan.where)
     return d.render(q)

@@ -15,6 +15,7 @@ from planner.dialects.base import Dialect
 from planner.emit_keys import _instant_in_range
 from planner.emit_measures import _built, _columns_of, _measure_agg, _window_columns
 from planner.plan import Key, Plan
+from planner.source import relation
 
 
 def _bin_input(d: Dialect, k: Key) -> exp.Expression:
@@ -71,7 +72,7 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
             built[p + "w"] = (v.copy(), "quantile")
     if not sel:
         return None
-    src: exp.Expression = exp.alias_(d.table(plan.schema.table), "s", quoted=True)
+    src: exp.Expression = relation(plan.schema, d)
     windows = _window_columns(d, [], built)
     if windows:  # the source rows with their window columns, still called "s"
         inner = exp.select(*_columns_of(*sel), *windows).from_(src)

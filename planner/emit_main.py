@@ -26,6 +26,7 @@ from planner.emit_measures import _measure_agg, _measure_input, _window_columns
 from planner.emit_sql import _ref, _table
 from planner.emit_top import _fold_after_grouping, _fold_top, _top_cte, _top_key_expr
 from planner.plan import Key, Plan
+from planner.source import relation
 
 
 def _main_statement(plan: Plan) -> exp.Select:
@@ -65,7 +66,7 @@ def _base(plan: Plan, ctes: list, fold: bool) -> list[Key]:
     source row the keys' grouping values, the outside-limit flags and the measure inputs.
     Returns the keys with an outside-limit flag."""
     d, keys, measures = plan.dialect, plan.keys, plan.measures
-    src = exp.alias_(d.table(plan.schema.table), "s", quoted=True)
+    src = relation(plan.schema, d)
     base = exp.select().from_(src)
     for k in keys:
         if k.spec.top is not None and not fold:

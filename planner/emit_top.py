@@ -14,6 +14,7 @@ from planner.dialects.base import Dialect
 from planner.emit_measures import _columns_of, _measure_agg, _measure_input, _window_columns
 from planner.emit_sql import _ref, _table
 from planner.plan import Key, Measure, Plan
+from planner.source import relation
 
 
 def _top_cte(plan: Plan, k: Key) -> exp.Select:
@@ -23,7 +24,7 @@ def _top_cte(plan: Plan, k: Key) -> exp.Select:
     hash on every engine), never a join that a planner may re-scan per source row."""
     d = plan.dialect
     ref = d.column(k.col.name, "s")
-    src: exp.Expression = exp.alias_(d.table(plan.schema.table), "s", quoted=True)
+    src: exp.Expression = relation(plan.schema, d)
     where: list[exp.Expression] = [exp.Not(this=exp.Is(this=ref.copy(), expression=exp.Null()))]
     if plan.where is not None:
         where.append(plan.where.copy())

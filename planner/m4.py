@@ -35,6 +35,7 @@ from sqlglot import exp
 
 from planner import names
 from planner.errors import PlanError, Unsupported, pointer
+from planner.source import relation
 
 if TYPE_CHECKING:
     from planner.plan import Plan
@@ -112,7 +113,7 @@ def extents_statement(plan: "Plan") -> exp.Select:
     return (exp.select(exp.alias_(exp.Min(this=xv), names.m4("min"), quoted=True),
                        exp.alias_(exp.Max(this=xv.copy()), names.m4("max"), quoted=True),
                        exp.alias_(exp.Count(this=exp.Star()), names.m4("n"), quoted=True))
-            .from_(exp.alias_(d.table(plan.schema.table), "s", quoted=True))
+            .from_(relation(plan.schema, d))
             .where(_filtered(plan)))
 
 
@@ -152,7 +153,7 @@ def main_statement(plan: "Plan", row: dict[str, Any] | None) -> exp.Select:
 
     base = (exp.select(exp.alias_(x.copy(), "x", quoted=True), exp.alias_(y.copy(), "y", quoted=True),
                        exp.alias_(px, "px", quoted=True))
-            .from_(exp.alias_(d.table(plan.schema.table), "s", quoted=True))
+            .from_(relation(plan.schema, d))
             .where(_filtered(plan)))
     xa, ya = col("x"), col("y")
     agg = (exp.select(

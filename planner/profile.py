@@ -33,6 +33,7 @@ from sqlglot import exp
 from planner import names
 from planner.errors import PlanError, nearest
 from planner.schema import ColumnInfo, SourceSchema
+from planner.source import relation
 
 #: most frequent values returned by default for text and boolean columns
 DEFAULT_TOP = 20
@@ -84,7 +85,7 @@ def plan_profile(schema: SourceSchema, name: str, dialect, top: int | None = Non
     if not 0 <= top <= MAX_TOP:
         raise PlanError("", f"top must be between 0 and {MAX_TOP}", slug="invalid-request")
     has_range = col.kind != "boolean"  # MIN(boolean) does not exist on PostgreSQL
-    table = dialect.table(schema.table)
+    table = relation(schema, dialect)
     value = dialect.column(col.name)
     if top == 0:
         ok = dialect.instant_range(value.copy(), col.kind) if col.is_temporal else None
@@ -104,7 +105,7 @@ def _alias(e: exp.Expression, name: str) -> exp.Alias:
     return exp.alias_(e, name, quoted=True)
 
 
-def _aggregate(d, value: exp.Expression, table: exp.Table, has_range: bool,
+def _aggregate(d, value: exp.Expression, table: exp.Expression, has_range: bool,
                ranged: exp.Expression) -> exp.Select:
     cols = [_alias(exp.Count(this=exp.Star()), ROWS),
             _alias(exp.Count(this=value.copy()), NON_NULL),
@@ -114,7 +115,7 @@ def _aggregate(d, value: exp.Expression, table: exp.Table, has_range: bool,
     return exp.select(*cols).from_(table)
 
 
-def _grouped(d, value: exp.Expression, table: exp.Table, top: int, has_range: bool) -> exp.Select:
+def _grouped(d, value: exp.Expression, table: exp.Expression, top: int, has_range: bool) -> exp.Select:
     v, n = d.column(VALUE), d.column(COUNT)
     grouped = (exp.select(_alias(value.copy(), VALUE), _alias(exp.Count(this=exp.Star()), COUNT))
                .from_(table).group_by(value.copy()))
