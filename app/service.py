@@ -190,7 +190,8 @@ def _extents_only(req: ChartRequest, schema: Any) -> ChartRequest:
             return None
         if ch.is_measure:
             return ch.model_copy(update={"agg": "count", "column": None, "q": None,
-                                         "condition": None})
+                                         "condition": None, "measure": None, "then": None,
+                                         "within": None})
         col = schema.column(ch.column)
         return ch.model_copy(update={"tz": "UTC" if col is not None and col.is_temporal
                                      else None, "top": None})

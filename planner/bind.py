@@ -17,7 +17,7 @@ import math
 import sys
 from typing import Any
 
-from planner import aggregates, m4
+from planner import aggregates, m4, window
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, Unsupported, pointer
 from planner.filter_sql import compile_filter_sql
@@ -208,6 +208,7 @@ def _check_options(req: ChartRequest, d: Dialect, keys: list[Key], measures: lis
                             f"stack cannot pile {m.spec.agg} values (a pile of them means "
                             f"nothing): stack a count, sum or other additive measure on "
                             f"{m.channel}, or drop stack")
+    window.check(d, keys, measures)  # then: measures over the grouped table
     if req.facet is not None and req.facet.max_groups is not None and not d.supports("window"):
         raise Unsupported(pointer("facet", "max_groups"), d.name, "max_groups (window functions)")
     if req.empty_bins != "omit" and not any(k.binned for k in keys):
@@ -260,7 +261,10 @@ def _assign_names(keys: list[Key], measures: list[Measure], stack_index: int | N
         spec = it.spec
         label = it.label if isinstance(it, Key) else it.channel
         if isinstance(it, Measure):
-            name = claim(spec.name or _measure_name(spec), label)
+            want = spec.name or _measure_name(spec)
+            if spec.then is not None and not spec.name:
+                want = f"{want}_{window.SUFFIX[spec.then]}"
+            name = claim(want, label)
             named["m", it.index] = dataclasses.replace(it, name=name)
             columns.append(OutputColumn(name, it.channel, "measure", spec.column))
         elif it.binned:

@@ -8,6 +8,7 @@
     _counted  + matched rows and outside-limit rows (window sums over all groups);
               kept: groups inside the limits
     [dense]   every bin x every combination of the other keys (planner.emit_dense)
+    [windowed] measures over the grouped table (``then``: planner.emit_window)
     _final    output columns (bin start/end), stack windows, group count, facet rank
     SELECT * FROM final [WHERE rank <= cap] ORDER BY ... LIMIT n
 
@@ -25,6 +26,7 @@ from planner.emit_keys import _instant_in_range, _key_expr, _key_outputs, _outsi
 from planner.emit_measures import _measure_agg, _measure_input, _window_columns
 from planner.emit_sql import _ref, _table
 from planner.emit_top import _fold_after_grouping, _fold_top, _top_cte, _top_key_expr
+from planner.emit_window import _windowed
 from planner.plan import Key, Plan
 from planner.source import relation
 
@@ -41,6 +43,7 @@ def _main_statement(plan: Plan) -> exp.Select:
     current = _counted(plan, ctes, current, flags)
     if req.empty_bins != "omit":  # dense (empty_bins)
         current = _dense(plan, ctes, current, flags)
+    current = _windowed(plan, ctes, current)  # then: measures over the grouped table
     cap = req.facet.max_groups if req.facet is not None else None
     _final(plan, ctes, current, flags, cap)
 
@@ -169,7 +172,7 @@ def _final(plan: Plan, ctes: list, current: str, flags: list[Key], cap: int | No
     for k in keys:
         final = final.select(*_key_outputs(d, k))
     for m in plan.measures:
-        final = final.select(exp.alias_(_ref(m.internal), m.name, quoted=True))
+        final = final.select(exp.alias_(_ref(m.value), m.name, quoted=True))
     if plan.stack_measure is not None:
         final = final.select(*_stack_columns(plan))
     final = final.select(
@@ -243,7 +246,7 @@ def _stack_columns(plan: Plan) -> list[exp.Expression]:
     order: list[exp.Ordered] = []
     for k in pile_keys:
         order += d.order(_ref(k.internal), False, True)
-    value = exp.Coalesce(this=d.double(_ref(m.internal)), expressions=[exp.Literal.number(0)])
+    value = exp.Coalesce(this=d.double(_ref(m.value)), expressions=[exp.Literal.number(0)])
     running = exp.Window(
         this=exp.Sum(this=value.copy()), partition_by=partition,
         order=exp.Order(expressions=order) if order else None,
@@ -273,7 +276,7 @@ def _sort_terms(plan: Plan, internal: bool) -> list[exp.Ordered]:
     for k in plan.keys:
         by_channel.setdefault(k.channel, _ref(k.internal) if internal else _ref(k.names[0]))
     for m in plan.measures:
-        by_channel.setdefault(m.channel, _ref(m.internal) if internal else _ref(m.name))
+        by_channel.setdefault(m.channel, _ref(m.value) if internal else _ref(m.name))
     terms: list[exp.Ordered] = []
     used: set[str] = set()
     for s in plan.request.sort:

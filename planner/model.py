@@ -35,6 +35,9 @@ ExtractField = Literal[
 ]
 BinRule = Literal["sturges", "scott", "fd", "sqrt"]
 ChannelName = Literal["x", "y", "color", "size", "shape", "opacity", "row", "col"]
+#: a measure over the grouped table (planner/emit_window.py)
+ThenName = Literal["fraction", "cumulative", "change"]
+WithinName = Literal["all", "axis", "facet"]
 
 MAX_BINS = 10_000
 #: deepest nesting of ``any`` / ``not`` in ``where`` (a predicate directly in ``where`` is
@@ -135,10 +138,26 @@ class Bin(_Strict):
 
 
 class Channel(_Strict):
-    """A key (``column`` without ``agg``) or a measure (``agg``, with ``column`` as input)."""
+    """A key (``column`` without ``agg``) or a measure (``agg``, with ``column`` as input, or
+    ``measure``: a named measure of the source's config)."""
 
     column: Text | None = Field(None, min_length=1, max_length=256)
     agg: AggName | None = None
+    measure: Text | None = Field(
+        None, min_length=1, max_length=256,
+        description="A named measure of the source (config [sources.X.measures]; listed by "
+        "/v1/sources/{name}) in place of agg and column.", examples=["revenue"])
+    then: ThenName | None = Field(
+        None, description="A measure over the grouped table, computed from this measure's "
+        "value per group: fraction (the group's share of the sum over `within`), cumulative "
+        "(the running sum along the axis key, in its order) or change (the difference from "
+        "the previous group along the axis key). The axis key is the key on x, or on y when "
+        "x holds a measure; the other keys (color, by, facets, ...) partition cumulative and "
+        "change.")
+    within: WithinName | None = Field(
+        None, description="For then=fraction: the groups whose sum is the total: all (the "
+        "default), axis (the groups of the same axis value and facet cell) or facet (the "
+        "groups of the same facet cell).")
     q: float | None = Field(None, ge=0, le=1, description="Quantile in [0, 1] for agg=quantile.")
     condition: Text | None = Field(
         None, min_length=1, max_length=4096,
@@ -158,13 +177,24 @@ class Channel(_Strict):
 
     @model_validator(mode="after")
     def _consistent(self) -> "Channel":
-        if self.agg is None:
+        if self.within is not None and self.then != "fraction":
+            raise ValueError("within goes with then=fraction")
+        if self.measure is not None:
+            given = [k for k in ("agg", "column", "q", "condition", "bin", "trunc", "extract",
+                                 "top") if getattr(self, k) is not None]
+            if given:
+                raise ValueError(f"measure names a whole measure of the source; drop "
+                                 f"{', '.join(given)}")
+        elif self.agg is None:
             if self.column is None:
-                raise ValueError("a channel needs a column (a key) or an agg (a measure)")
+                raise ValueError("a channel needs a column (a key), an agg or a measure "
+                                 "(a measure)")
             if self.q is not None:
                 raise ValueError("q goes with agg=quantile")
             if self.condition is not None:
                 raise ValueError("condition goes with agg=share")
+            if self.then is not None:
+                raise ValueError("then applies to a measure (agg or measure), not to a key")
         else:
             entry = aggregates.get(self.agg)
             key_opts = [k for k in ("bin", "trunc", "extract", "top") if getattr(self, k) is not None]
@@ -189,7 +219,7 @@ class Channel(_Strict):
 
     @property
     def is_measure(self) -> bool:
-        return self.agg is not None
+        return self.agg is not None or self.measure is not None
 
 
 class Channels(_Strict):

@@ -13,6 +13,7 @@ function                    name                            meaning
 ``outside_count(i)``        ``_sluice_out<i>``              rows outside key i's limits (total)
 ``measure(i)``              ``_sluice_a<i>``                measure i's aggregate per group
 ``measure_input(i)``        ``_sluice_m<i>``                measure i's per-row input
+``measure_window(i)``       ``_sluice_a<i>_w``              measure i's ``then`` value per group
 ``extents(i, stat)``        ``_sluice_e<i>_<stat>``         extents statistic (min, max, n, sd, q1, q3, w)
 ``matched()``               ``_sluice_matched``             matched rows (window total)
 ``groups()``                ``_sluice_groups``              groups before LIMIT (window total)
@@ -65,6 +66,11 @@ def measure_input(i: int) -> str:
     return f"{INTERNAL}m{i}"
 
 
+def measure_window(i: int) -> str:
+    """Measure i's measure over the grouped table (``then``: planner/emit_window.py)."""
+    return f"{measure(i)}_w"
+
+
 def extents(i: int, stat: str = "") -> str:
     """``extents(i)`` is the prefix of key i's statistics, ``extents(i, "min")`` one of them."""
     return f"{INTERNAL}e{i}_{stat}"
@@ -93,7 +99,7 @@ def measure_partial(i: int, part: str) -> str:
 
 #: the main statement's CTEs, in the order they may appear (planner.emit_main)
 CTES = ("base", "ranked", "pairs", "grouped", "relabelled", "folded", "counted", "kept",
-        "others", "grid", "cells", "dense", "final")
+        "others", "grid", "cells", "dense", "windowed", "final")
 
 
 def cte(stage: str) -> str:

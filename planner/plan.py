@@ -87,6 +87,23 @@ class Measure:
         return names.measure(self.index)
 
     @property
+    def value(self) -> str:
+        """The column holding the channel's value per group after grouping: the aggregate,
+        or with ``then`` its measure over the grouped table (planner/emit_window.py)."""
+        return names.measure_window(self.index) if self.spec.then else self.internal
+
+    @property
+    def output_kind(self) -> str:
+        """The registry's answer type of the aggregate (planner/aggregates.py ``output``)."""
+        return self.aggregate.output
+
+    def describe(self) -> str:
+        """The measure in words, for problem details: ``sum of 'fee'``, ``count``."""
+        if self.col is None:
+            return str(self.spec.agg)
+        return f"{self.spec.agg} of {self.col.name!r}"
+
+    @property
     def aggregate(self) -> aggregates.Aggregate:
         return aggregates.get(self.spec.agg)
 

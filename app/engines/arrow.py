@@ -299,7 +299,9 @@ def output_types(plan: Any) -> dict[str, pa.DataType]:
     * bin edges, stack extents and ``avg``/``median``/``quantile``/deviations/``share`` are
       float64 (each aggregate's ``output`` in planner/aggregates.py);
     * counts are int64; ``sum`` is int64 over integers, decimal128(38, s) over decimals;
-    * ``extract`` fields are int32; a ``top`` key is text (it holds the other-label).
+    * ``extract`` fields are int32; a ``top`` key is text (it holds the other-label);
+    * ``then``: fraction is float64; cumulative and change keep int64 / wide decimals of
+      integer / decimal measures, else float64.
     """
     dialect = getattr(plan.dialect, "sqlglot", None) or None
     out: dict[str, pa.DataType] = {}
@@ -326,6 +328,13 @@ def output_types(plan: Any) -> dict[str, pa.DataType]:
             out[m.name] = _sum_type(declared_type(m.col, dialect))
         else:
             out[m.name] = pa.float64()
+        then = m.spec.then  # a measure over the grouped table (planner/window.py)
+        if then == "fraction":
+            out[m.name] = pa.float64()
+        elif then is not None:  # cumulative / change: an integer stays whole, a decimal exact
+            t = out[m.name]
+            out[m.name] = _sum_type(t) if pa.types.is_integer(t) or pa.types.is_decimal(t) \
+                else pa.float64()
     for c in plan.columns:
         if c.role in ("stack_base", "stack_top"):
             out[c.name] = pa.float64()

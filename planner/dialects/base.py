@@ -426,6 +426,13 @@ class Dialect:
             expression=exp.Order(expressions=[exp.Ordered(this=self.double(arg))]))
 
     # --- ordering -------------------------------------------------------------------
+    def previous(self, value: exp.Expression, partition: list[exp.Expression] | None,
+                 order: list[exp.Ordered]) -> exp.Expression:
+        """The previous row's ``value`` in the window (NULL on the partition's first row):
+        standard ``LAG``."""
+        return exp.Window(this=exp.Lag(this=value), partition_by=partition,
+                          order=exp.Order(expressions=order))
+
     def order(self, e: exp.Expression, desc: bool, nulls_first: bool) -> list[exp.Ordered]:
         if self.caps.nulls_order_native:
             return [exp.Ordered(this=e, desc=desc, nulls_first=nulls_first)]

@@ -12,6 +12,9 @@
 * Outer joins fill missing columns with default values unless ``join_use_nulls = 1``: every
   statement carries ``SETTINGS join_use_nulls = 1`` so unmatched rows read as NULL.
 * contains / starts_with: ``position`` / ``startsWith`` (byte-exact, case-sensitive).
+* The previous row (``then: change``): ``lag`` answers the type's default (0), not NULL, on a
+  partition's first row, so it is ``lagInFrame(toNullable(v))`` over the whole partition
+  as the frame (ClickHouse docs, "Window Functions": lag/lead workarounds).
 """
 
 from __future__ import annotations
@@ -145,3 +148,9 @@ class ClickHouse(Dialect):
     def quantile(self, arg, q):
         return exp.ParameterizedAgg(this="quantileExactInclusive", expressions=[self.number(q)],
                                     params=[self.double(arg)])
+
+    def previous(self, value, partition, order):
+        whole = exp.WindowSpec(kind="ROWS", start="UNBOUNDED", start_side="PRECEDING",
+                               end="UNBOUNDED", end_side="FOLLOWING")
+        return exp.Window(this=self.fn("lagInFrame", self.fn("toNullable", value)),
+                          partition_by=partition, order=exp.Order(expressions=order), spec=whole)
