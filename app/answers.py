@@ -189,16 +189,28 @@ class SourceColumn(_Open):
                       "timestamp | timestamptz | date | other")
 
 
+class SourceMeasure(_Open):
+    name: str = Field(description='use as {"measure": name} on a measure channel')
+    expression: str = Field(description="the aggregate expression of the config")
+    kind: str | None = Field(description="the kind of its answer (integer | double | decimal "
+                             "| ...); null when it does not fit the source (see problem)")
+    problem: str | None = Field(None, description="why the measure cannot be used on this "
+                                "source (a config mistake), if it cannot")
+
+
 class SourceDetail(_Open):
     name: str
     engine: str
     table: str
     columns: list[SourceColumn]
+    measures: list[SourceMeasure] = Field(default_factory=list, description="named measures "
+                                          "(config [sources.NAME.measures])")
     row_count: int
 
     model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
         "name": "deliveries", "engine": "duckdb", "table": "deliveries",
         "columns": [{"name": "fee", "type": "DECIMAL(10,2)", "kind": "decimal"}],
+        "measures": [{"name": "revenue", "expression": "sum(fee)", "kind": "decimal"}],
         "row_count": 2000000}]})
 
 

@@ -128,7 +128,8 @@ class Catalog:
         dialect = get_dialect(eng.dialect)
         schema = SourceSchema(
             name=name, table=parts,
-            columns={c: ColumnInfo(c, classify(t, dialect.sqlglot or None), t) for c, t in cols})
+            columns={c: ColumnInfo(c, classify(t, dialect.sqlglot or None), t) for c, t in cols},
+            measures=dict(cfg.measures))
         count_sql = dialect.render(
             exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True))
             .from_(relation(schema, dialect)))

@@ -36,9 +36,19 @@ import uuid
 
 import duckdb
 
-__all__ = ["build_demo", "TABLE", "DEPOTS", "REGIONS", "VEHICLES"]
+__all__ = ["build_demo", "TABLE", "DEPOTS", "REGIONS", "VEHICLES", "MEASURES"]
 
 TABLE = "deliveries"
+
+#: the demo source's named measures ([sources.deliveries.measures] of the built-in config;
+#: planner/measure_sql.py): usable as {"measure": "revenue"} on any measure channel
+MEASURES: dict[str, str] = {
+    "revenue": "sum(fee)",
+    # unknown delays (on_time NULL) stay out of the share, as in {"agg": "share"}
+    "on_time_share": "avg(CASE WHEN on_time THEN 1.0 WHEN NOT on_time THEN 0.0 END)",
+    "late_parcels": "count(CASE WHEN delay_min > 15 THEN 1 END)",
+    "fee_per_km": "sum(fee) / sum(distance_km)",
+}
 
 #: Depot name, home region index, share of parcels. Names are invented.
 DEPOTS: list[tuple[str, int, float]] = [

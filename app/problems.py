@@ -58,6 +58,13 @@ PROBLEM_TYPES: dict[str, tuple[str, str, str]] = {
                        "literals, comparisons, AND/OR/NOT, IN, BETWEEN, IS NULL, LIKE, "
                        "arithmetic, a few scalar functions), or the engine could not "
                        "evaluate it."),
+    "bad-measure": ("Measure expression is not allowed", "422",
+                    "A named measure (config `[sources.X.measures]`) uses something outside "
+                    "its allow-list (registry aggregates over scalar expressions, numbers "
+                    "and + - * / between aggregates), or does not fit the source's columns."),
+    "unknown-measure": ("Unknown measure", "422",
+                        "`measure` names no measure of the source. `suggestions` lists the "
+                        "nearest names; `GET /v1/sources/{name}` lists the source's measures."),
     "not-acceptable": ("Not acceptable", "406",
                        "The `Accept` header names no format this route answers in. "
                        "`POST /v1/chart` answers `application/json`, "

@@ -31,6 +31,7 @@ from app.routes_charts import answer_timing, cached, may_reuse
 from planner import profile as prof
 from planner.dialects import get_dialect
 from planner.errors import PlanError, nearest
+from planner.measure_sql import answer_kind, compile_measure
 
 router = APIRouter(tags=["sources"])
 
@@ -102,7 +103,21 @@ def source(name: str, request: Request) -> Response:
     cols = [{"name": c.name, "type": c.sql_type, "kind": c.kind}
             for c in entry.schema.columns.values()]
     return JSONResponse({"name": name, "engine": cfg.engine, "table": cfg.table,
-                         "columns": cols, "row_count": entry.row_count})
+                         "columns": cols, "measures": _measures(entry.schema,
+                                                                st.catalog.engine(name).dialect),
+                         "row_count": entry.row_count})
+
+
+def _measures(schema, dialect_name: str) -> list[dict]:
+    """The source's named measures, each checked against its schema (planner/measure_sql.py)."""
+    out = []
+    for mname, text in schema.measures.items():
+        try:
+            nm = compile_measure(mname, text, schema, get_dialect(dialect_name))
+            out.append({"name": mname, "expression": text, "kind": answer_kind(nm)})
+        except PlanError as e:
+            out.append({"name": mname, "expression": text, "kind": None, "problem": e.detail})
+    return out
 
 
 def _config(catalog: Any, name: str, ptr: str | None = None) -> Any:

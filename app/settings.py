@@ -31,6 +31,7 @@ one.
 from __future__ import annotations
 
 import os
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -60,6 +61,8 @@ class SourceConfig:
     path: str | None = None
     dsn: str | None = None
     options: dict[str, Any] = field(default_factory=dict)
+    #: [sources.NAME.measures]: measure name -> aggregate expression (planner/measure_sql.py)
+    measures: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass
@@ -94,7 +97,7 @@ class Settings:
 
 
 #: keys every source may carry; ``options`` is a free table passed to the engine unchecked
-SOURCE_KEYS = ("engine", "table", "path", "dsn", "options")
+SOURCE_KEYS = ("engine", "table", "path", "dsn", "options", "measures")
 #: engine kinds, and the options each may carry at its top level: ``app.engines.ENGINES``
 TOP_KEYS = ("sources", "server", "limits", "keys", "cache")
 #: per-source overrides of [limits] (see app/limits.py)
@@ -120,6 +123,39 @@ def _nearest_key(name: str, valid: list[str] | tuple[str, ...], cutoff: float = 
     lowered = {v.lower(): v for v in valid}
     hits = difflib.get_close_matches(name.lower(), list(lowered), n=1, cutoff=cutoff)
     return f"did you mean {lowered[hits[0]]!r}? " if hits else ""
+
+
+MEASURE_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,63}$")
+
+
+def _parse_measures(ctx: "_Ctx", key: tuple[str, ...], raw: Any) -> dict[str, str]:
+    """[sources.NAME.measures]: each a name (letters, digits, _) and an aggregate expression
+    whose shape planner/measure_sql.py accepts; its columns are checked against the source's
+    schema per request (the schema is introspected later)."""
+    from planner.dialects import get_dialect
+    from planner.errors import PlanError
+    from planner.measure_sql import compile_measure
+
+    example = 'revenue = "sum(fee)"'
+    if not isinstance(raw, dict):
+        raise ctx.fail(key + ("measures",), "must be a table",
+                       f"write [sources.{key[-1]}.measures], then lines like {example}")
+    out: dict[str, str] = {}
+    for name, text in raw.items():
+        mkey = key + ("measures", name)
+        if not MEASURE_NAME.match(name):
+            raise ctx.fail(mkey, "is not a measure name", "use letters, digits and _ (at most "
+                           "64, not starting with a digit), e.g. on_time_share")
+        if not isinstance(text, str):
+            raise ctx.fail(mkey, "must be a string", f"write the aggregate as text: {example}")
+        try:
+            compile_measure(name, text, None, get_dialect("duckdb"))
+        except PlanError as e:
+            raise ctx.fail(mkey, e.detail, 'write an aggregate expression such as "sum(fee)", '
+                           '"avg(CASE WHEN on_time THEN 1.0 ELSE 0.0 END)" or '
+                           '"sum(fee) / count(*)"') from None
+        out[name] = text
+    return out
 
 
 class _Ctx:
@@ -223,7 +259,8 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
             raise ctx.fail(key + ("options",), "must be a table", f"write [sources.{name}.options]")
         options.update(extra)
         sources[name] = SourceConfig(name=name, engine=engine, table=table, path=src_path,
-                                     dsn=dsn, options=options)
+                                     dsn=dsn, options=options,
+                                     measures=_parse_measures(ctx, key, s.get("measures", {})))
     server = data.get("server", {})
     if not isinstance(server, dict):
         raise ctx.fail(("server",), "must be a table", "write [server] on its own line")
@@ -364,8 +401,11 @@ def load_settings(path: str | os.PathLike[str] | None = None,
         path = env.get("SLUICE_CONFIG") or None
     if path is None:
         demo = env.get("SLUICE_DEMO_PATH", str(DEFAULT_DEMO))
+        from app.demo import MEASURES
+
         data, origins = apply_env({"sources": {"deliveries": {
-            "engine": "duckdb", "path": demo, "table": "deliveries"}}}, dict(env))
+            "engine": "duckdb", "path": demo, "table": "deliveries",
+            "measures": dict(MEASURES)}}}, dict(env))
         return parse_settings(data, "<built-in demo config>", origins=origins)
     p = Path(path)
     try:

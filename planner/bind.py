@@ -17,7 +17,7 @@ import math
 import sys
 from typing import Any
 
-from planner import aggregates, m4, window
+from planner import aggregates, m4, measure_sql, window
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, Unsupported, pointer
 from planner.filter_sql import compile_filter_sql
@@ -42,7 +42,10 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
         if ch.is_measure and channel in ("row", "col"):
             raise PlanError(pointer(*path, "agg"), f"facet {channel} must be a key (a column), "
                             "not a measure (agg)")
-        if ch.is_measure:
+        if ch.measure is not None:  # a named measure of the source's config
+            measures.append(measure_sql.bind_named(len(measures), path, channel, ch, schema,
+                                                   dialect, request_tz))
+        elif ch.is_measure:
             measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect,
                                            request_tz))
         else:
@@ -203,12 +206,25 @@ def _check_options(req: ChartRequest, d: Dialect, keys: list[Key], measures: lis
         else:
             raise PlanError(pointer("stack"), "stack needs a measure (agg) on y or on x")
         m = stack_measure
+        if m.composite:
+            raise PlanError(pointer(*m.path, "measure"),
+                            f"stack cannot pile {m.describe()}: it combines several aggregates "
+                            "(a pile of ratios means nothing); stack a measure that is one "
+                            "sum or count, or drop stack")
         if not m.aggregate.stacks:
             raise PlanError(pointer(*m.path, "agg"),
                             f"stack cannot pile {m.spec.agg} values (a pile of them means "
                             f"nothing): stack a count, sum or other additive measure on "
                             f"{m.channel}, or drop stack")
     window.check(d, keys, measures)  # then: measures over the grouped table
+    composite = next((m for m in measures if m.composite), None)
+    top = next((k for k in keys if k.spec.top is not None), None)
+    if composite is not None and top is not None:
+        raise PlanError(pointer(*top.path, "top"),
+                        f"top folds the other groups into {top.spec.other_label!r}, and "
+                        f"{composite.describe()} combines several aggregates, which do not fold "
+                        "exactly from per-group values: use a measure that is one aggregate "
+                        "(sum, count, avg, min, max) with top, or drop top")
     if req.facet is not None and req.facet.max_groups is not None and not d.supports("window"):
         raise Unsupported(pointer("facet", "max_groups"), d.name, "max_groups (window functions)")
     if req.empty_bins != "omit" and not any(k.binned for k in keys):
@@ -261,7 +277,7 @@ def _assign_names(keys: list[Key], measures: list[Measure], stack_index: int | N
         spec = it.spec
         label = it.label if isinstance(it, Key) else it.channel
         if isinstance(it, Measure):
-            want = spec.name or _measure_name(spec)
+            want = spec.name or it.named or _measure_name(spec)
             if spec.then is not None and not spec.name:
                 want = f"{want}_{window.SUFFIX[spec.then]}"
             name = claim(want, label)

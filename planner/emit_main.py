@@ -27,7 +27,7 @@ from planner.emit_measures import _measure_agg, _measure_input, _window_columns
 from planner.emit_sql import _ref, _table
 from planner.emit_top import _fold_after_grouping, _fold_top, _top_cte, _top_key_expr
 from planner.emit_window import _windowed
-from planner.plan import Key, Plan
+from planner.plan import Key, Measure, Plan
 from planner.source import relation
 
 
@@ -86,6 +86,10 @@ def _base(plan: Plan, ctes: list, fold: bool) -> list[Key]:
             flags.append(k)
             base = base.select(exp.alias_(flag, k.outside_flag, quoted=True))
     for m in measures:
+        for j, part in enumerate(m.parts):  # a composite named measure's inputs
+            if part.input is not None:
+                base = base.select(exp.alias_(part.input.copy(), names.measure_part(m.index, j),
+                                              quoted=True))
         arg = _measure_input(d, m) if m.has_input else exp.Null()
         if m.col is not None and m.col.is_temporal and m.aggregate.output == "input":
             arg = _instant_in_range(d, m.col, arg)  # the same instants a time key shows
@@ -104,15 +108,20 @@ def _grouped(plan: Plan, ctes: list, group_cols: list[str], fold: bool) -> str:
     and, with the top-N fold, relabelled / folded (planner.emit_top ``_fold_top``)."""
     d, measures = plan.dialect, plan.measures
     rows_name = names.cte("base")
-    windows = _window_columns(d, [_ref(c) for c in group_cols], {
-        names.measure_input(m.index): (_ref(names.measure_input(m.index)), m.spec.agg)
-        for m in measures if m.has_input})
+    inputs = {names.measure_input(m.index): (_ref(names.measure_input(m.index)), m.spec.agg)
+              for m in measures if m.has_input}
+    inputs.update({names.measure_part(m.index, j): (_ref(names.measure_part(m.index, j)), p.agg)
+                   for m in measures for j, p in enumerate(m.parts) if p.input is not None})
+    windows = _window_columns(d, [_ref(c) for c in group_cols], inputs)
     if windows:
         ctes.append((names.cte("ranked"),
                      exp.select(exp.Star(), *windows).from_(_table(rows_name))))
         rows_name = names.cte("ranked")
     grouped = exp.select(*[_ref(c) for c in group_cols]).from_(_table(rows_name))
     for m in measures:
+        if m.composite:  # the formula over its aggregates (planner/measure_sql.py)
+            grouped = grouped.select(exp.alias_(_composite(d, m), m.internal, quoted=True))
+            continue
         arg = _ref(names.measure_input(m.index)) if m.has_input else None
         if fold and m.aggregate.fold == "mean":  # partials the fold re-aggregates (_fold_top)
             grouped = grouped.select(
@@ -140,6 +149,19 @@ def _grouped(plan: Plan, ctes: list, group_cols: list[str], fold: bool) -> str:
     if fold:
         return _fold_top(plan, ctes, group_cols)
     return names.cte("grouped")
+
+
+def _composite(d: Dialect, m: Measure) -> exp.Expression:
+    """A composite named measure per group: its formula, each placeholder j replaced by
+    aggregate j over its input column ``measure_part(i, j)``."""
+    aggs = []
+    for j, p in enumerate(m.parts):
+        name = names.measure_part(m.index, j)
+        aggs.append(_measure_agg(d, p.agg, _ref(name) if p.input is not None else None, None,
+                                 name))
+    assert m.formula is not None
+    return m.formula.copy().transform(
+        lambda n: aggs[int(n.this)].copy() if isinstance(n, exp.Placeholder) else n)
 
 
 def _counted(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:

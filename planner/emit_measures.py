@@ -37,6 +37,8 @@ def _measure_input(d: Dialect, m: Measure) -> exp.Expression | None:
     """The per-row value measure ``m`` aggregates, over the source rows ``"s"``: its column,
     or for share the 1 / 0 / NULL indicator (planner/aggregates.py ``measure_input``)."""
     column = d.column(m.col.name, "s") if m.col is not None else None
+    if m.input_expr is not None:  # a named measure's scalar input (planner/measure_sql.py)
+        column = m.input_expr.copy()
     cond = m.condition.copy() if m.condition is not None else None
     return aggregates.measure_input(d, m.spec.agg, column, cond)
 

@@ -14,6 +14,7 @@ function                    name                            meaning
 ``measure(i)``              ``_sluice_a<i>``                measure i's aggregate per group
 ``measure_input(i)``        ``_sluice_m<i>``                measure i's per-row input
 ``measure_window(i)``       ``_sluice_a<i>_w``              measure i's ``then`` value per group
+``measure_part(i, j)``      ``_sluice_m<i>_p<j>``           composite measure i's input j
 ``extents(i, stat)``        ``_sluice_e<i>_<stat>``         extents statistic (min, max, n, sd, q1, q3, w)
 ``matched()``               ``_sluice_matched``             matched rows (window total)
 ``groups()``                ``_sluice_groups``              groups before LIMIT (window total)
@@ -64,6 +65,11 @@ def measure(i: int) -> str:
 
 def measure_input(i: int) -> str:
     return f"{INTERNAL}m{i}"
+
+
+def measure_part(i: int, j: int) -> str:
+    """The per-row input of aggregate j of composite named measure i (planner/measure_sql.py)."""
+    return f"{measure_input(i)}_p{j}"
 
 
 def measure_window(i: int) -> str:

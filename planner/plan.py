@@ -26,6 +26,11 @@ from planner.model import Channel, ChartRequest
 from planner.schema import ColumnInfo, SourceSchema
 
 
+#: what a composite named measure (``sum(a) / sum(b)``) is to the stages: a double that no
+#: partial folds into and no stack piles (planner/measure_sql.py)
+COMPOSITE = aggregates.Aggregate("expression", None, "", "double", None, False)
+
+
 @dataclass(frozen=True)
 class Key:
     """A grouping term of the request."""
@@ -81,6 +86,15 @@ class Measure:
     name: str = ""
     #: the compiled ``condition`` (filter_sql text) of an aggregate over truth values (share)
     condition: exp.Expression | None = None
+    #: a named measure (planner/measure_sql.py): its config name; the per-row input when it
+    #: is one aggregate over a scalar expression (not a bare column) and that input's kind
+    named: str | None = None
+    input_expr: exp.Expression | None = None
+    input_kind: str | None = None
+    #: a composite named measure: its aggregates (measure_sql.Part) and the value per group
+    #: over ``exp.Placeholder(j)`` = aggregate j
+    parts: tuple[Any, ...] = ()
+    formula: exp.Expression | None = None
 
     @property
     def internal(self) -> str:
@@ -97,20 +111,29 @@ class Measure:
         """The registry's answer type of the aggregate (planner/aggregates.py ``output``)."""
         return self.aggregate.output
 
+    @property
+    def composite(self) -> bool:
+        return self.formula is not None
+
     def describe(self) -> str:
         """The measure in words, for problem details: ``sum of 'fee'``, ``count``."""
+        if self.named is not None:
+            return f"measure {self.named!r}"
         if self.col is None:
             return str(self.spec.agg)
         return f"{self.spec.agg} of {self.col.name!r}"
 
     @property
     def aggregate(self) -> aggregates.Aggregate:
+        if self.formula is not None:  # a composite: a double, folds into nothing, no pile
+            return COMPOSITE
         return aggregates.get(self.spec.agg)
 
     @property
     def has_input(self) -> bool:
-        """The aggregate reads a per-row value (a column or a condition; not count(*))."""
-        return self.col is not None or self.condition is not None
+        """The aggregate reads a per-row value (a column, a condition or a named measure's
+        scalar input; not count(*), not a composite's parts)."""
+        return self.col is not None or self.condition is not None or self.input_expr is not None
 
 
 @dataclass(frozen=True)

@@ -39,6 +39,9 @@ class SourceSchema:
     name: str
     table: tuple[str, ...]  # qualified table name parts, e.g. ("main", "deliveries")
     columns: dict[str, ColumnInfo] = field(default_factory=dict)
+    #: named measures (config ``[sources.X.measures]``): name -> aggregate expression text,
+    #: checked per request by planner/measure_sql.py
+    measures: dict[str, str] = field(default_factory=dict)
 
     def column(self, name: str) -> ColumnInfo | None:
         return self.columns.get(name)

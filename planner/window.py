@@ -70,4 +70,6 @@ def check(d: Dialect, keys: list[Key], measures: list[Measure]) -> None:
 
 def is_numeric(m: Measure) -> bool:
     out = m.output_kind
-    return out in NUMERIC_OUTPUTS or (out == "input" and m.col is not None and m.col.is_number)
+    if out == "input":
+        return (m.col is not None and m.col.is_number) or m.input_kind in ("integer", "number")
+    return out in NUMERIC_OUTPUTS

@@ -290,6 +290,12 @@ def _with_zone(t: pa.DataType, zone: str) -> pa.DataType:
     return pa.timestamp("us", tz=zone) if pa.types.is_timestamp(t) else t
 
 
+#: the kind of a named measure's scalar input (planner/filter_sql.py kinds) -> answer type
+#: of its sum / min / max (null: the engine's own type is kept)
+_INPUT_KIND = {"integer": pa.int64(), "number": pa.float64(), "string": pa.string(),
+               "boolean": pa.bool_()}
+
+
 def output_types(plan: Any) -> dict[str, pa.DataType]:
     """The Arrow type of every user-visible output column of a finished plan (the same on
     every engine):
@@ -326,6 +332,8 @@ def output_types(plan: Any) -> dict[str, pa.DataType]:
             out[m.name] = _with_zone(declared_type(m.col, dialect), request_zone(plan))
         elif output == "sum" and m.col is not None:
             out[m.name] = _sum_type(declared_type(m.col, dialect))
+        elif output in ("sum", "input") and m.input_kind is not None:  # a named measure's
+            out[m.name] = _INPUT_KIND.get(m.input_kind, pa.null())    # scalar input
         else:
             out[m.name] = pa.float64()
         then = m.spec.then  # a measure over the grouped table (planner/window.py)

@@ -634,7 +634,8 @@ export interface components {
         };
         /**
          * Channel
-         * @description A key (``column`` without ``agg``) or a measure (``agg``, with ``column`` as input).
+         * @description A key (``column`` without ``agg``) or a measure (``agg``, with ``column`` as input, or
+         *     ``measure``: a named measure of the source's config).
          */
         Channel: {
             /** Agg */
@@ -651,6 +652,12 @@ export interface components {
             /** Extract */
             extract?: ("year" | "quarter" | "month" | "week" | "isoyear" | "day" | "dow" | "isodow" | "doy" | "hour" | "minute" | "second") | null;
             /**
+             * Measure
+             * @description A named measure of the source (config [sources.X.measures]; listed by /v1/sources/{name}) in place of agg and column.
+             * @example revenue
+             */
+            measure?: string | null;
+            /**
              * Name
              * @description Output column name; unique among the answer's columns ignoring case (a clash gets the channel prefixed); no edge white space or control characters.
              */
@@ -666,6 +673,11 @@ export interface components {
              */
             q?: number | null;
             /**
+             * Then
+             * @description A measure over the grouped table, computed from this measure's value per group: fraction (the group's share of the sum over `within`), cumulative (the running sum along the axis key, in its order) or change (the difference from the previous group along the axis key). The axis key is the key on x, or on y when x holds a measure; the other keys (color, by, facets, ...) partition cumulative and change.
+             */
+            then?: ("fraction" | "cumulative" | "change") | null;
+            /**
              * Top
              * @description Keep the N largest groups.
              */
@@ -677,6 +689,11 @@ export interface components {
              * @description IANA time zone name.
              */
             tz?: string | null;
+            /**
+             * Within
+             * @description For then=fraction: the groups whose sum is the total: all (the default), axis (the groups of the same axis value and facet cell) or facet (the groups of the same facet cell).
+             */
+            within?: ("all" | "axis" | "facet") | null;
         };
         /** Channels */
         Channels: {
@@ -1186,6 +1203,13 @@ export interface components {
          *         }
          *       ],
          *       "engine": "duckdb",
+         *       "measures": [
+         *         {
+         *           "expression": "sum(fee)",
+         *           "kind": "decimal",
+         *           "name": "revenue"
+         *         }
+         *       ],
          *       "name": "deliveries",
          *       "row_count": 2000000,
          *       "table": "deliveries"
@@ -1196,12 +1220,42 @@ export interface components {
             columns: components["schemas"]["SourceColumn"][];
             /** Engine */
             engine: string;
+            /**
+             * Measures
+             * @description named measures (config [sources.NAME.measures])
+             */
+            measures?: components["schemas"]["SourceMeasure"][];
             /** Name */
             name: string;
             /** Row Count */
             row_count: number;
             /** Table */
             table: string;
+        } & {
+            [key: string]: unknown;
+        };
+        /** SourceMeasure */
+        SourceMeasure: {
+            /**
+             * Expression
+             * @description the aggregate expression of the config
+             */
+            expression: string;
+            /**
+             * Kind
+             * @description the kind of its answer (integer | double | decimal | ...); null when it does not fit the source (see problem)
+             */
+            kind: string | null;
+            /**
+             * Name
+             * @description use as {"measure": name} on a measure channel
+             */
+            name: string;
+            /**
+             * Problem
+             * @description why the measure cannot be used on this source (a config mistake), if it cannot
+             */
+            problem?: string | null;
         } & {
             [key: string]: unknown;
         };
@@ -1385,6 +1439,7 @@ export type Reduce = components['schemas']['Reduce'];
 export type SortItem = components['schemas']['SortItem'];
 export type SourceColumn = components['schemas']['SourceColumn'];
 export type SourceDetail = components['schemas']['SourceDetail'];
+export type SourceMeasure = components['schemas']['SourceMeasure'];
 export type SourcesAnswer = components['schemas']['SourcesAnswer'];
 export type SourceSummary = components['schemas']['SourceSummary'];
 export type SqlAnswer = components['schemas']['SqlAnswer'];
