@@ -249,7 +249,7 @@ class ChartService:
         check_request(req, limits)  # [limits] caps, 422 with pointers
         engine = self.limiter.guard(req.source, self.catalog.engine(req.source),
                                     user_sql=req.filter_sql is not None)  # statement timeout
-        entry = self.catalog.entry(req.source)
+        entry = self.catalog.with_exprs(self.catalog.entry(req.source), req)  # expr kinds
         check_filter_sql(req, limits, entry.schema, get_dialect(engine.dialect))
         if dialect_name is None:
             dialect_name = engine.dialect

@@ -192,10 +192,20 @@ _HANDLERS = {
 }
 
 
-def compile_expr(text: str, schema: SourceSchema, d: Dialect, ptr: str, *,
-                 what: str = "expr", max_chars: int = fs.MAX_CHARS) -> exp.Expression:
-    """Parse, check and rebuild the scalar expression ``text`` over ``"s"``; a PlanError at
-    ``ptr`` (its detail says ``what``) for anything outside the allow-list."""
+#: an expression's kind as the allow-list reads it -> (column kind, type name), for engines
+#: that cannot type a query (SQLite) and for planning without an engine
+KINDS = {"integer": ("integer", "BIGINT"), "number": ("double", "DOUBLE"),
+         "string": ("string", "VARCHAR"), "boolean": ("boolean", "BOOLEAN"),
+         "date": ("date", "DATE"), "timestamp": ("timestamp", "TIMESTAMP"),
+         "timestamptz": ("timestamptz", "TIMESTAMPTZ")}
+
+
+def compile_typed(text: str, schema: SourceSchema, d: Dialect, ptr: str, *,
+                  what: str = "expr", max_chars: int = fs.MAX_CHARS
+                  ) -> tuple[exp.Expression, tuple[str, str]]:
+    """Parse, check and rebuild the scalar expression ``text`` over ``"s"``: the tree and its
+    (kind, type name) as the allow-list reads it; a PlanError at ``ptr`` (its detail says
+    ``what``) for anything outside the allow-list."""
     try:
         parsed = fs.parse_text(text, max_chars)
         built = ExprBuilder(schema, d, fs.MAX_IN_LIST).build(parsed)
@@ -209,5 +219,13 @@ def compile_expr(text: str, schema: SourceSchema, d: Dialect, ptr: str, *,
         raise PlanError(ptr, e.detail.replace("filter_sql", what), slug=e.slug,
                         title=f"{what} is not allowed", status=e.status,
                         suggestions=e.suggestions) from None
-    return exp.Paren(this=built.node) if isinstance(built.node, (exp.Binary, exp.Unary)) \
-        else built.node
+    node = built.node
+    if isinstance(node, (exp.Binary, exp.Unary)) and not isinstance(node, exp.Paren):
+        node = exp.Paren(this=node)
+    return node, KINDS[built.kind]
+
+
+def compile_expr(text: str, schema: SourceSchema, d: Dialect, ptr: str, *,
+                 what: str = "expr", max_chars: int = fs.MAX_CHARS) -> exp.Expression:
+    """The rebuilt tree of ``compile_typed``."""
+    return compile_typed(text, schema, d, ptr, what=what, max_chars=max_chars)[0]

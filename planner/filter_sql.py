@@ -470,6 +470,8 @@ class _Builder:
 
     @staticmethod
     def _nonzero(e: exp.Expression) -> exp.Expression:
+        if isinstance(e, exp.Nullif) and e.expression == exp.Literal.number(0):
+            return e  # NULLIF(b, 0) written by the user already
         return exp.Nullif(this=e, expression=exp.Literal.number(0))
 
 

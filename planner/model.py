@@ -138,6 +138,13 @@ class Channel(_Strict):
     """A key (``column`` without ``agg``) or a measure (``agg``, with ``column`` as input)."""
 
     column: Text | None = Field(None, min_length=1, max_length=256)
+    expr: Text | None = Field(
+        None, min_length=1, max_length=4096,
+        description="In place of column: a scalar SQL expression over the source's columns "
+        "(physical, computed, dimension columns as depots.city), from the allow-list of "
+        "filter_sql widened to CASE, NULLIF, casts, ||, replace, date_trunc and extract "
+        "(README \"Source model\"). Its kind comes from the engine.",
+        examples=["fee / NULLIF(distance_km, 0)"])
     agg: AggName | None = None
     q: float | None = Field(None, ge=0, le=1, description="Quantile in [0, 1] for agg=quantile.")
     condition: Text | None = Field(
@@ -158,6 +165,14 @@ class Channel(_Strict):
 
     @model_validator(mode="after")
     def _consistent(self) -> "Channel":
+        if self.column is not None and self.expr is not None and self.column != self.expr:
+            raise ValueError("use one of column or expr")
+        if self.expr is not None and self.column is None:  # checked as its column from here
+            return self._checked(self.model_copy(update={"column": self.expr}))
+        return self._checked(self)
+
+    @staticmethod
+    def _checked(self: "Channel") -> "Channel":
         if self.agg is None:
             if self.column is None:
                 raise ValueError("a channel needs a column (a key) or an agg (a measure)")
