@@ -461,8 +461,10 @@ def load_settings(path: str | os.PathLike[str] | None = None,
         path = env.get("SLUICE_CONFIG") or None
     if path is None:
         demo = env.get("SLUICE_DEMO_PATH", str(DEFAULT_DEMO))
+        from app.demo import MODEL  # the demo's computed columns and dimension tables
+
         data, origins = apply_env({"sources": {"deliveries": {
-            "engine": "duckdb", "path": demo, "table": "deliveries"}}}, dict(env))
+            "engine": "duckdb", "path": demo, "table": "deliveries", **MODEL}}}, dict(env))
         return parse_settings(data, "<built-in demo config>", origins=origins)
     p = Path(path)
     try:
