@@ -312,3 +312,35 @@ def test_profile_of_computed_and_dimension_columns(client, frame):
     p = client.get("/v1/sources/duckdb/columns/x_per_n").json()
     assert p["null_count"] == int((frame["x"].isna() | frame["n"].isna() | (frame["n"] == 0))
                                   .fillna(True).sum())
+
+
+def test_spark_small(tmp_path):
+    """Spark SQL (local mode), one small case: a dimension key (unmatched facts: NULL), a
+    computed measure and a computed key's kind; reference: pandas merge(how=left) + groupby.
+    The dimension tables are temporary views of the engine's own session (a path source
+    registers its fact table the same way)."""
+    pytest.importorskip("pyspark")
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    rows = fx.make_rows()[:400]
+    cfg = fx.load_spark(tmp_path, fx.arrow_table(rows))
+    cfg = {**cfg, "columns": {"x_per_n": COMPUTED["x_per_n"], "band": COMPUTED["band"]},
+           "dimensions": [{"table": "grps", "fact_column": "grp", "key": "grp",
+                           "columns": ["label", "weight"]}]}
+    app = create_app(parse_settings({"sources": {"spark": cfg}}, "<source model: spark>"))
+    with TestClient(app, raise_server_exceptions=False) as client:
+        spark = app.state.catalog.engine("spark")._session()
+        spark.createDataFrame(DIM_ROWS, "grp string, label string, weight int") \
+            .createOrReplaceTempView("grps")
+        info = client.get("/v1/sources/spark").json()
+        assert {c["name"]: c["kind"] for c in info["computed"]} == {"x_per_n": "double",
+                                                                   "band": "string"}
+        got = _rows(_post(client, "spark", {"channels": {
+            "x": {"column": "grps.label"}, "y": {"agg": "sum", "column": "x_per_n"}}}))
+    df = pd.DataFrame(rows)
+    df = df.assign(v=df["x"].astype("Float64") / df["n"].astype("Float64").replace(0, pd.NA))
+    df = df.merge(pd.DataFrame(DIM_ROWS, columns=["grp", "label", "weight"]), on="grp",
+                  how="left")
+    want = df.groupby("label", dropna=False)["v"].sum(min_count=1)
+    _same(_as_dict(got["grps.label"], got["sum_x_per_n"]), _as_dict(want.index, want.values))
