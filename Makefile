@@ -32,7 +32,7 @@ $(VENV)/.installed-test: pyproject.toml | $(BIN)/python
 install: $(VENV)/.installed
 install-test: $(VENV)/.installed-test
 
-$(DEMO): | $(VENV)/.installed
+$(DEMO): app/demo.py | $(VENV)/.installed
 	@mkdir -p $(dir $(DEMO))
 	$(BIN)/sluice demo --rows $(ROWS) --out $(DEMO)
 

@@ -189,6 +189,24 @@ class SourceColumn(_Open):
                       "timestamp | timestamptz | date | other")
 
 
+class ComputedColumn(SourceColumn):
+    expr: str = Field(description="the SQL expression of [sources.X.columns]; the type is the "
+                      "one the engine answers for it")
+
+
+class DimensionColumn(SourceColumn):
+    dimension: str = Field(description="the dimension it comes from; requested by its name")
+
+
+class SourceDimension(_Open):
+    name: str
+    table: str
+    fact_column: str
+    key: str
+    unique: bool = Field(description="false: the key has a value on several rows, and "
+                         "requests that use the dimension are refused (422)")
+
+
 class SourceMeasure(_Open):
     name: str = Field(description='use as {"measure": name} on a measure channel')
     expression: str = Field(description="the aggregate expression of the config")
@@ -202,7 +220,10 @@ class SourceDetail(_Open):
     name: str
     engine: str
     table: str
-    columns: list[SourceColumn]
+    columns: list[SourceColumn] = Field(description="the table's own columns")
+    computed: list[ComputedColumn] = Field(default_factory=list)
+    dimensions: list[SourceDimension] = Field(default_factory=list)
+    dimension_columns: list[DimensionColumn] = Field(default_factory=list)
     measures: list[SourceMeasure] = Field(default_factory=list, description="named measures "
                                           "(config [sources.NAME.measures])")
     row_count: int
@@ -210,6 +231,12 @@ class SourceDetail(_Open):
     model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
         "name": "deliveries", "engine": "duckdb", "table": "deliveries",
         "columns": [{"name": "fee", "type": "DECIMAL(10,2)", "kind": "decimal"}],
+        "computed": [{"name": "fee_per_km", "expr": "fee / NULLIF(distance_km, 0)",
+                      "type": "DOUBLE", "kind": "double"}],
+        "dimensions": [{"name": "depots", "table": "depots", "fact_column": "depot",
+                        "key": "depot", "unique": True}],
+        "dimension_columns": [{"name": "depots.city", "dimension": "depots",
+                               "type": "VARCHAR", "kind": "string"}],
         "measures": [{"name": "revenue", "expression": "sum(fee)", "kind": "decimal"}],
         "row_count": 2000000}]})
 

@@ -11,13 +11,15 @@ one is answered from at once, a deleted one is a 503 naming the source until it 
 
 from __future__ import annotations
 
+import dataclasses
 import threading
 import time
 from dataclasses import dataclass
+from typing import Any
 
 from sqlglot import exp
 
-from app import deadline
+from app import deadline, model
 from app.engines import Engine, EngineError, EngineUnavailable, open_engine
 from app.settings import Settings, SourceConfig
 from planner.dialects import get_dialect
@@ -48,6 +50,8 @@ class Catalog:
         self._lock = threading.Lock()
         self._open_locks: dict[str, threading.Lock] = {}
         self._failed: dict[str, tuple[float, str]] = {}  # name -> (when, why) of the last failed open
+        #: (source, data version, expr text) -> its ColumnInfo (app/model.py)
+        self._expr_kinds: dict[tuple[str, str, str], ColumnInfo] = {}
 
     def names(self) -> list[str]:
         return self.settings.source_names
@@ -130,6 +134,7 @@ class Catalog:
             name=name, table=parts,
             columns={c: ColumnInfo(c, classify(t, dialect.sqlglot or None), t) for c, t in cols},
             measures=dict(cfg.measures))
+        schema = model.build(eng, cfg, schema, dialect)  # computed columns, dimensions
         count_sql = dialect.render(
             exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True))
             .from_(relation(schema, dialect)))
@@ -137,6 +142,18 @@ class Catalog:
         entry = SourceEntry(cfg, schema, int(row.get("n") or 0), version)
         self._entries[name] = entry
         return entry
+
+    def with_exprs(self, entry: SourceEntry, request: Any) -> SourceEntry:
+        """``entry`` whose schema also holds the request's ``{"expr": ...}`` terms, typed by
+        the engine (a zero-row query, cached per source, data version and text)."""
+        texts = [(path, ch.expr) for path, _, ch in request.keyed_channels()
+                 if ch.expr is not None and ch.expr not in entry.schema.columns]
+        if not texts:
+            return entry
+        eng = self.engine(entry.cfg.name)
+        schema = model.with_exprs(eng, entry.schema, get_dialect(eng.dialect), texts,
+                                  self._expr_kinds, entry.version)
+        return dataclasses.replace(entry, schema=schema)
 
     def close(self) -> None:
         for eng in self._engines.values():

@@ -36,7 +36,8 @@ import uuid
 
 import duckdb
 
-__all__ = ["build_demo", "TABLE", "DEPOTS", "REGIONS", "VEHICLES", "MEASURES"]
+__all__ = ["build_demo", "TABLE", "DEPOTS", "REGIONS", "VEHICLES", "MODEL", "DEPOT_SITES",
+           "TEAMS", "MEASURES"]
 
 TABLE = "deliveries"
 
@@ -47,7 +48,7 @@ MEASURES: dict[str, str] = {
     # unknown delays (on_time NULL) stay out of the share, as in {"agg": "share"}
     "on_time_share": "avg(CASE WHEN on_time THEN 1.0 WHEN NOT on_time THEN 0.0 END)",
     "late_parcels": "count(CASE WHEN delay_min > 15 THEN 1 END)",
-    "fee_per_km": "sum(fee) / sum(distance_km)",
+    "revenue_per_km": "sum(fee) / sum(distance_km)",
 }
 
 #: Depot name, home region index, share of parcels. Names are invented.
@@ -61,6 +62,40 @@ DEPOTS: list[tuple[str, int, float]] = [
     ("Fennick Point", 1, 0.07),
     ("Glimmerbank", 3, 0.05),
 ]
+#: The depots dimension table: depot, city, opened_on (invented towns; two depots share a city).
+DEPOT_SITES: list[tuple[str, str, str]] = [
+    ("North Yard", "Norrhaven", "2016-04-01"),
+    ("Harbour", "Saltmere", "2014-09-15"),
+    ("Quillmoor", "Quillmoor", "2019-03-01"),
+    ("Emberfield", "Emberfield", "2018-06-11"),
+    ("Tallow Cross", "Norrhaven", "2021-02-22"),
+    ("Brackenvale", "Bracken", "2020-10-05"),
+    ("Fennick Point", "Fennick", "2023-05-08"),
+    ("Glimmerbank", "Saltmere", "2024-01-15"),
+]
+#: The couriers dimension table: courier_id -> team (round robin). The last
+#: ``CONTRACTORS`` couriers are contractors outside the roster: their parcels have no match
+#: in ``couriers`` (team is NULL through the LEFT JOIN).
+TEAMS: list[str] = ["Kestrel", "Otter", "Heron", "Badger", "Lynx", "Marten"]
+CONTRACTORS = 20
+#: The demo's source model (DESIGN.md "Source model"): the config the built-in demo source
+#: carries (app/settings.py) and the README shows.
+MODEL: dict = {
+    "columns": {
+        "fee_per_km": "fee / NULLIF(distance_km, 0)",
+        "delivery_hour": "extract(hour from delivered_at)",
+        "lateness": ("CASE WHEN delay_min IS NULL THEN 'unknown' WHEN delay_min <= 0 THEN "
+                     "'early' WHEN delay_min <= 15 THEN 'up to 15 min' ELSE 'over 15 min' END"),
+        "heavy": "weight_kg >= 20",
+    },
+    "dimensions": [
+        {"table": "depots", "fact_column": "depot", "key": "depot",
+         "columns": ["city", "opened_on"]},
+        {"table": "couriers", "fact_column": "courier_id", "key": "courier_id",
+         "columns": ["team"]},
+    ],
+    "measures": MEASURES,
+}
 REGIONS: list[str] = ["North", "South", "East", "West"]
 #: Region multiplier on distances (East is the sparse, rural one).
 _REGION_DISTANCE = [1.0, 0.9, 1.3, 1.1]
@@ -285,6 +320,19 @@ def _remove(path: pathlib.Path) -> None:
         pass
 
 
+def _dimension_tables(con: duckdb.DuckDBPyConnection) -> None:
+    """``depots`` (one row per depot) and ``couriers`` (the roster, without the contractors)."""
+    con.execute("CREATE TABLE depots (depot VARCHAR PRIMARY KEY, city VARCHAR NOT NULL, "
+                "opened_on DATE NOT NULL)")
+    con.executemany("INSERT INTO depots VALUES (?, ?, CAST(? AS DATE))", DEPOT_SITES)
+    con.execute("COMMENT ON TABLE depots IS 'Depots of the fictional network (invented towns)'")
+    total = len(DEPOTS) * COURIERS_PER_DEPOT - CONTRACTORS
+    con.execute(
+        "CREATE TABLE couriers AS SELECT 'C-' || lpad(i::VARCHAR, 4, '0') AS courier_id, "
+        f"{_lit(TEAMS)}[(i - 1) % {len(TEAMS)} + 1] AS team FROM range(1, {total + 1}) t(i)")
+    con.execute("COMMENT ON TABLE couriers IS 'Courier roster (contractors are not listed)'")
+
+
 def build_demo(
     out: str | pathlib.Path,
     rows: int = 2_000_000,
@@ -354,6 +402,7 @@ def build_demo(
                 if progress:
                     _progress(hi - 1, rows)
             con.execute("DROP TABLE _ids")
+            _dimension_tables(con)
             con.execute("CHECKPOINT")
         finally:
             con.close()

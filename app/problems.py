@@ -30,6 +30,12 @@ PROBLEM_TYPES: dict[str, tuple[str, str, str]] = {
     "unknown-column": ("Unknown column", "422",
                        "The column is not in the source's introspected catalog. "
                        "`suggestions` lists the nearest column names."),
+    "dimension-fan-out": ("Dimension key is not unique", "422",
+                          "The request uses a column of a dimension table "
+                          "(`[[sources.X.dimensions]]`) whose key has a value on several rows: "
+                          "joining it would count a fact once per match, so it is refused. The "
+                          "detail names the dimension and one duplicated value; "
+                          "`GET /v1/sources/{name}` shows `unique: false`."),
     "unknown-dialect": ("Unknown dialect", "400",
                         "The `dialect` query parameter of `POST /v1/sql` names no dialect "
                         "sluice can generate; the detail lists the ones it can."),

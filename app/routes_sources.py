@@ -95,16 +95,24 @@ def sources(request: Request) -> Response:
             responses={**answers.ok(answers.SourceDetail, "Columns, kinds and row count"),
                        **answers.problem_responses(401, 403, 404, 503)})
 def source(name: str, request: Request) -> Response:
-    """A source's introspected columns (engine type and kind) and row count."""
+    """A source's introspected columns (engine type and kind), its computed columns (with
+    their expression) and dimension columns ([[sources.X.dimensions]]), and its row count."""
     st = request.app.state
     cfg = _config(st.catalog, name, ptr="")  # its 404 carries pointer "" (a column's: none)
     with st.service.limiter.deadline(name):  # a frozen warehouse answers on time
         entry = st.catalog.entry(name)
-    cols = [{"name": c.name, "type": c.sql_type, "kind": c.kind}
-            for c in entry.schema.columns.values()]
+    schema = entry.schema
+    col = lambda c: {"name": c.name, "type": c.sql_type, "kind": c.kind}  # noqa: E731
+    dims = [{"name": d.name, "table": ".".join(d.table), "fact_column": d.fact_column,
+             "key": d.key, "unique": d.duplicate is None} for d in schema.dimensions]
+    dim_cols = [{**col(schema.columns[d.column_name(c)]), "dimension": d.name}
+                for d in schema.dimensions for c in d.columns]
+    computed = [{**col(schema.columns[n]), "expr": text} for n, text in schema.computed.items()]
     return JSONResponse({"name": name, "engine": cfg.engine, "table": cfg.table,
-                         "columns": cols, "measures": _measures(entry.schema,
-                                                                st.catalog.engine(name).dialect),
+                         "columns": [col(c) for c in schema.physical().columns.values()],
+                         "computed": computed, "dimensions": dims,
+                         "dimension_columns": dim_cols,
+                         "measures": _measures(entry.schema, st.catalog.engine(name).dialect),
                          "row_count": entry.row_count})
 
 
@@ -118,6 +126,7 @@ def _measures(schema, dialect_name: str) -> list[dict]:
         except PlanError as e:
             out.append({"name": mname, "expression": text, "kind": None, "problem": e.detail})
     return out
+
 
 
 def _config(catalog: Any, name: str, ptr: str | None = None) -> Any:

@@ -191,7 +191,7 @@ def _extents_only(req: ChartRequest, schema: Any) -> ChartRequest:
         if ch.is_measure:
             return ch.model_copy(update={"agg": "count", "column": None, "q": None,
                                          "condition": None, "measure": None, "then": None,
-                                         "within": None})
+                                         "within": None, "expr": None})
         col = schema.column(ch.column)
         return ch.model_copy(update={"tz": "UTC" if col is not None and col.is_temporal
                                      else None, "top": None})
@@ -250,7 +250,7 @@ class ChartService:
         check_request(req, limits)  # [limits] caps, 422 with pointers
         engine = self.limiter.guard(req.source, self.catalog.engine(req.source),
                                     user_sql=req.filter_sql is not None)  # statement timeout
-        entry = self.catalog.entry(req.source)
+        entry = self.catalog.with_exprs(self.catalog.entry(req.source), req)  # expr kinds
         check_filter_sql(req, limits, entry.schema, get_dialect(engine.dialect))
         if dialect_name is None:
             dialect_name = engine.dialect

@@ -61,8 +61,25 @@ class SourceConfig:
     path: str | None = None
     dsn: str | None = None
     options: dict[str, Any] = field(default_factory=dict)
+    #: the source model (DESIGN.md "Source model"): [sources.X.columns] name -> SQL expression
+    columns: dict[str, str] = field(default_factory=dict)
+    #: [[sources.X.dimensions]]
+    dimensions: list["DimensionConfig"] = field(default_factory=list)
     #: [sources.NAME.measures]: measure name -> aggregate expression (planner/measure_sql.py)
     measures: dict[str, str] = field(default_factory=dict)
+
+
+@dataclass
+class DimensionConfig:
+    """One ``[[sources.X.dimensions]]``: a many-to-one join, its columns named ``<name>.<col>``."""
+
+    name: str
+    table: str
+    fact_column: str
+    key: str
+    columns: list[str]
+    #: the dotted config key, for messages (``sources.deliveries.dimensions[0]``)
+    where: str = ""
 
 
 @dataclass
@@ -97,7 +114,10 @@ class Settings:
 
 
 #: keys every source may carry; ``options`` is a free table passed to the engine unchecked
-SOURCE_KEYS = ("engine", "table", "path", "dsn", "options", "measures")
+SOURCE_KEYS = ("engine", "table", "path", "dsn", "options", "columns", "dimensions",
+               "measures")
+#: keys of one [[sources.X.dimensions]] entry (``name`` defaults to the table's last part)
+DIMENSION_KEYS = ("table", "fact_column", "key", "columns", "name")
 #: engine kinds, and the options each may carry at its top level: ``app.engines.ENGINES``
 TOP_KEYS = ("sources", "server", "limits", "keys", "cache")
 #: per-source overrides of [limits] (see app/limits.py)
@@ -211,6 +231,81 @@ def _check_unknown(ctx: _Ctx, prefix: tuple[str, ...], got: dict[str, Any], vali
                            f"{_nearest_key(k, valid)}valid keys here: {', '.join(valid)}{hint}")
 
 
+def _computed_columns(ctx: _Ctx, key: tuple[str, ...], raw: Any) -> dict[str, str]:
+    """[sources.X.columns]: names and SQL text, read by the expression allow-list's reader now
+    (syntax, comments, one expression); the columns they name are checked at introspection."""
+    from planner.errors import PlanError
+    from planner.filter_sql import parse_text
+
+    if not isinstance(raw, dict):
+        raise ctx.fail(key + ("columns",), "must be a table of name = \"SQL expression\"",
+                       f"write [{'.'.join(key)}.columns] then fee_per_km = \"fee / distance_km\"")
+    out: dict[str, str] = {}
+    for col, text in raw.items():
+        k = key + ("columns", col)
+        if not isinstance(text, str):
+            raise ctx.fail(k, f"is {text!r}, not an SQL expression string",
+                           f'write {col} = "fee / NULLIF(distance_km, 0)"')
+        _check_model_name(ctx, k, col)
+        try:
+            parse_text(text)
+        except PlanError as e:
+            raise ctx.fail(k, e.detail.replace("filter_sql", "the expression"),
+                           "see README \"Source model\" for what an expression may use") from None
+        out[col] = text
+    return out
+
+
+def _check_model_name(ctx: _Ctx, k: tuple[str, ...], name: str) -> None:
+    from planner.names import INTERNAL
+
+    if not name or name != name.strip() or "." in name or name.lower().startswith(INTERNAL):
+        raise ctx.fail(k, f"{name!r} is not a column name sluice can give",
+                       f"use letters, digits and _ (no '.', not starting with {INTERNAL})")
+
+
+def _dimensions(ctx: _Ctx, key: tuple[str, ...], raw: Any) -> list[DimensionConfig]:
+    if not isinstance(raw, list) or not all(isinstance(r, dict) for r in raw):
+        raise ctx.fail(key + ("dimensions",), "must be an array of tables",
+                       f"write [[{'.'.join(key)}.dimensions]] with table, fact_column, key, columns")
+    out: list[DimensionConfig] = []
+    for i, r in enumerate(raw):
+        k = key + (f"dimensions[{i}]",)
+        _check_unknown(ctx, k, r, DIMENSION_KEYS)
+        vals = {}
+        for field_ in ("table", "fact_column", "key"):
+            if not r.get(field_):
+                raise ctx.fail(k + (field_,), "is missing",
+                               'e.g. table = "depots", fact_column = "depot", key = "depot"')
+            vals[field_] = _coerce(ctx, k + (field_,), r[field_], str, '"depots"')
+        cols = r.get("columns")
+        if not isinstance(cols, list) or not cols or not all(isinstance(c, str) and c for c in cols):
+            raise ctx.fail(k + ("columns",), "must be a non-empty array of column names",
+                           'e.g. columns = ["city", "opened_on"]')
+        if len(set(cols)) != len(cols):
+            raise ctx.fail(k + ("columns",), "names a column twice", None)
+        name = r.get("name") or vals["table"].split(".")[-1]
+        name = _coerce(ctx, k + ("name",), name, str, '"depots"')
+        _check_model_name(ctx, k + ("name",), name)
+        if name.lower() == "s":
+            raise ctx.fail(k + ("name",), "'s' is the alias of the source rows",
+                           "set name = to another word")
+        if any(d.name == name for d in out):
+            raise ctx.fail(k + ("name",), f"{name!r} names two dimensions",
+                           "give one of them name = \"...\"")
+        out.append(DimensionConfig(name, vals["table"], vals["fact_column"], vals["key"],
+                                   list(cols), ".".join(k)))
+    return out
+
+
+def _model_names(ctx: _Ctx, key: tuple[str, ...], src: SourceConfig) -> None:
+    """Computed column names and dimension names are one name space (``depots.city``)."""
+    for d in src.dimensions:
+        if d.name in src.columns:
+            raise ctx.fail(key + ("columns", d.name), f"{d.name!r} is also a dimension's name",
+                           "rename the computed column")
+
+
 def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | None = None,
                    origins: dict[tuple[str, ...], str] | None = None) -> Settings:
     """Validate a parsed config and build Settings. Raises ConfigError naming file, key, fix."""
@@ -260,7 +355,10 @@ def parse_settings(data: dict[str, Any], path: str = "<config>", base: Path | No
         options.update(extra)
         sources[name] = SourceConfig(name=name, engine=engine, table=table, path=src_path,
                                      dsn=dsn, options=options,
+                                     columns=_computed_columns(ctx, key, s.get("columns", {})),
+                                     dimensions=_dimensions(ctx, key, s.get("dimensions", [])),
                                      measures=_parse_measures(ctx, key, s.get("measures", {})))
+        _model_names(ctx, key, sources[name])
     server = data.get("server", {})
     if not isinstance(server, dict):
         raise ctx.fail(("server",), "must be a table", "write [server] on its own line")
@@ -401,11 +499,10 @@ def load_settings(path: str | os.PathLike[str] | None = None,
         path = env.get("SLUICE_CONFIG") or None
     if path is None:
         demo = env.get("SLUICE_DEMO_PATH", str(DEFAULT_DEMO))
-        from app.demo import MEASURES
+        from app.demo import MODEL  # the demo's columns, dimensions, measures
 
         data, origins = apply_env({"sources": {"deliveries": {
-            "engine": "duckdb", "path": demo, "table": "deliveries",
-            "measures": dict(MEASURES)}}}, dict(env))
+            "engine": "duckdb", "path": demo, "table": "deliveries", **MODEL}}}, dict(env))
         return parse_settings(data, "<built-in demo config>", origins=origins)
     p = Path(path)
     try:

@@ -17,6 +17,8 @@ import math
 import sys
 from typing import Any
 
+from sqlglot import exp
+
 from planner import aggregates, m4, measure_sql, window
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, Unsupported, pointer
@@ -24,7 +26,9 @@ from planner.filter_sql import compile_filter_sql
 from planner.model import Channel, ChartRequest
 from planner.names import INTERNAL
 from planner.plan import Key, Measure, OutputColumn, Plan
-from planner.schema import SourceSchema
+from planner.expr_sql import compile_typed
+from planner.schema import ColumnInfo, SourceSchema
+from planner.source import using
 from planner.values import _check_tz, _parse_instant, _resolve
 from planner.where import _compile_where
 
@@ -38,6 +42,7 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
     keys: list[Key] = []
     measures: list[Measure] = []
     request_tz = _check_tz(request.tz, pointer("tz"))
+    schema = with_exprs(request, schema, dialect)
     for path, channel, ch in request.keyed_channels():
         if ch.is_measure and channel in ("row", "col"):
             raise PlanError(pointer(*path, "agg"), f"facet {channel} must be a key (a column), "
@@ -57,12 +62,49 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
     named_keys, named_measures, columns = _assign_names(keys, measures, stack_index)
     stack = named_measures[stack_index] if stack_index is not None else None
     _check_name_lengths(dialect, named_keys, named_measures, stack, columns)
+    schema = using(schema, _used(keys, measures, where))
     plan = Plan(request, schema, dialect, tuple(named_keys), tuple(named_measures), where,
                 columns=tuple(columns), approximate=approximate, stack_measure=stack,
                 slots=len(slots or ()))
     if request.reduce is not None:  # M4 line reduction: planner/m4.py
         m4.check(plan)
     return plan
+
+
+def with_exprs(request: ChartRequest, schema: SourceSchema, d: Dialect) -> SourceSchema:
+    """``schema`` with the request's ``{"expr": ...}`` terms as columns named by their text.
+    The service puts them there first, typed by the engine (app/catalog.py); a term it did
+    not is typed here by the allow-list's own reading."""
+    new = {}
+    for path, _, ch in request.keyed_channels():
+        if ch.expr is not None and ch.expr not in schema.exprs and ch.expr not in new:
+            if ch.expr in schema.columns:  # {"expr": "fee"}: the column itself
+                continue
+            _, (kind, type_name) = compile_typed(ch.expr, schema, d, pointer(*path, "expr"))
+            new[ch.expr] = ColumnInfo(ch.expr, kind, type_name)
+    if not new:
+        return schema
+    return dataclasses.replace(schema, columns={**schema.columns, **new},
+                               exprs={**schema.exprs, **{n: n for n in new}})
+
+
+def _used(keys: list[Key], measures: list[Measure], where: Any) -> dict[str, str]:
+    """The columns a plan reads, each with the pointer of its first use (for the relation:
+    which computed and dimension columns it must provide, planner/source.py)."""
+    used: dict[str, str] = {}
+    for it in [*keys, *measures]:
+        if it.col is not None:
+            used.setdefault(it.col.name, pointer(*it.path, "expr" if it.spec.expr else "column"))
+        if isinstance(it, Measure) and it.condition is not None:
+            for c in it.condition.find_all(exp.Column):
+                used.setdefault(c.name, pointer(*it.path, "condition"))
+        if isinstance(it, Measure):  # a named measure's scalar inputs (planner/measure_sql.py)
+            for e in [it.input_expr, *(p.input for p in it.parts)]:
+                for c in e.find_all(exp.Column) if e is not None else ():
+                    used.setdefault(c.name, pointer(*it.path, "measure"))
+    for c in where.find_all(exp.Column) if where is not None else ():
+        used.setdefault(c.name, pointer("where"))
+    return used
 
 
 def _check_measure(i: int, path, channel: str, ch: Channel, schema: SourceSchema,

@@ -470,6 +470,8 @@ class _Builder:
 
     @staticmethod
     def _nonzero(e: exp.Expression) -> exp.Expression:
+        if isinstance(e, exp.Nullif) and e.expression == exp.Literal.number(0):
+            return e  # NULLIF(b, 0) written by the user already
         return exp.Nullif(this=e, expression=exp.Literal.number(0))
 
 
@@ -563,10 +565,10 @@ def _short(e: Exception) -> str:
     return msg[:160]
 
 
-def compile_filter_sql(text: str, schema: SourceSchema, d: Dialect, *,
-                       max_chars: int = MAX_CHARS, max_in_list: int = MAX_IN_LIST,
-                       tz: str | None = None) -> exp.Expression:
-    """Parse, check and rebuild ``text``; the result is a boolean expression over ``"s"``."""
+def parse_text(text: str, max_chars: int = MAX_CHARS) -> exp.Expression:
+    """The checks every SQL text of a request or config passes before it is rebuilt (length,
+    NUL, nesting, comments, one statement) and sqlglot's parse of it (``planner.expr_sql``
+    shares them)."""
     if len(text) > max_chars:
         raise _fail(f"filter_sql has {len(text)} characters; the limit is {max_chars}",
                     slug="limit-exceeded")
@@ -585,14 +587,21 @@ def compile_filter_sql(text: str, schema: SourceSchema, d: Dialect, *,
     if best > MAX_DEPTH:
         raise _fail(f"filter_sql is nested too deeply (more than {MAX_DEPTH} parentheses)",
                     slug="limit-exceeded")
+    _check_tokens(text)
     try:
-        _check_tokens(text)
-        try:
-            parsed = sqlglot.parse_one(text, read=READ_DIALECT, into=exp.Condition)
-        except Exception as e:  # noqa: BLE001 - ParseError, TokenError, ...
-            raise _fail(f"filter_sql must be a single SQL condition such as \"fee > 10 AND "
-                        f"depot IN ('North Yard')\"; cannot read {_quote(text)} "
-                        f"({_short(e)})") from None
+        return sqlglot.parse_one(text, read=READ_DIALECT, into=exp.Condition)
+    except Exception as e:  # noqa: BLE001 - ParseError, TokenError, ...
+        raise _fail(f"filter_sql must be a single SQL condition such as \"fee > 10 AND "
+                    f"depot IN ('North Yard')\"; cannot read {_quote(text)} "
+                    f"({_short(e)})") from None
+
+
+def compile_filter_sql(text: str, schema: SourceSchema, d: Dialect, *,
+                       max_chars: int = MAX_CHARS, max_in_list: int = MAX_IN_LIST,
+                       tz: str | None = None) -> exp.Expression:
+    """Parse, check and rebuild ``text``; the result is a boolean expression over ``"s"``."""
+    try:
+        parsed = parse_text(text, max_chars)
         built = _Builder(schema, d, max_in_list, tz).build(parsed)
     except RecursionError:
         raise _fail("filter_sql is nested too deeply", slug="limit-exceeded") from None

@@ -1,6 +1,6 @@
 """Named measures: ``[sources.X.measures] name = "<aggregate expression>"``, checked and
-rebuilt from an allow-list (the filter_sql one, planner/filter_sql.py, plus aggregates and
-CASE).
+rebuilt from an allow-list: the scalar one of computed columns (planner/expr_sql.py, which
+widens filter_sql's) plus aggregates.
 
 The expression is parsed by sqlglot (the filter_sql read dialect) and rebuilt node by node:
 
@@ -8,8 +8,9 @@ The expression is parsed by sqlglot (the filter_sql read dialect) and rebuilt no
   ``count(x)``, ``count(DISTINCT x)``, ``approx_count_distinct``, ``sum``, ``avg``, ``min``,
   ``max``, ``median``, ``stddev`` / ``stddev_samp``, ``stddev_pop``, ``variance`` /
   ``var_samp``, ``var_pop``; their argument is a *scalar* expression over the source's
-  columns: everything filter_sql allows (arithmetic, comparisons, coalesce, lower, round,
-  ...) and ``CASE WHEN c THEN a [WHEN ...] [ELSE b] END``; no aggregate inside an aggregate;
+  columns -- physical, computed and dimension columns -- as planner/expr_sql.py allows it
+  (arithmetic, comparisons, CASE, NULLIF, COALESCE, casts, string and date functions); no
+  aggregate inside an aggregate;
 * outside the aggregates: numbers, ``+ - * /`` (``/`` is true division, x / 0 is NULL),
   unary minus, parentheses -- no bare columns (a column outside an aggregate has no value
   per group).
@@ -19,9 +20,8 @@ is that built-in aggregate (it stacks, sorts, ranks and folds into ``(other)`` l
 ``{"agg": ...}``); anything else is *composite*: its value is a double, it works in grouped
 charts, sort and ``then``; top-N and stack refuse it (planner/bind.py). Pure.
 
-The scalar part is filter_sql's ``_Builder`` (with CASE added here): when the computed-column
-allow-list lands (``compile_expr``), this module's ``_MeasureBuilder`` is the place to
-switch to it.
+The scalar part is ``expr_sql.ExprBuilder``; ``_MeasureBuilder`` adds the aggregates and
+refuses a column outside them.
 """
 
 from __future__ import annotations
@@ -35,7 +35,8 @@ from sqlglot import exp
 from planner import aggregates
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, nearest, pointer
-from planner.filter_sql import MAX_CHARS, MAX_IN_LIST, READ_DIALECT, _Builder, _quote, _Typed
+from planner.expr_sql import ExprBuilder
+from planner.filter_sql import MAX_CHARS, MAX_IN_LIST, READ_DIALECT, _quote, _Typed
 from planner.plan import Measure
 from planner.schema import ColumnInfo, SourceSchema
 
@@ -83,7 +84,7 @@ class MeasureError(PlanError):
     the settings put it where the measure came from)."""
 
 
-class _MeasureBuilder(_Builder):
+class _MeasureBuilder(ExprBuilder):
     def __init__(self, schema: SourceSchema | None, d: Dialect, tz: str | None) -> None:
         super().__init__(schema, d, MAX_IN_LIST, tz)  # type: ignore[arg-type]
         self.inside = False
@@ -100,8 +101,6 @@ class _MeasureBuilder(_Builder):
         if type(node) is exp.Anonymous and str(node.this).lower() in aggregates.NAMES:
             raise _error(f"{node.this}() is not written as a SQL aggregate here; use "
                          "count / sum / avg / min / max / median / stddev / variance")
-        if isinstance(node, exp.Case):
-            return self._case(node, depth)
         if isinstance(node, exp.Column) and not self.inside:
             raise _error(f"the column {_quote(self._text(node))} stands outside an aggregate "
                          "(it has no single value per group): wrap it, e.g. sum(...)")
@@ -156,25 +155,6 @@ class _MeasureBuilder(_Builder):
         else:
             kind_out = "number"
         return _Typed(exp.Placeholder(this=str(len(self.parts) - 1)), kind_out)
-
-    def _case(self, node: exp.Case, depth: int) -> _Typed:
-        if node.args.get("this") is not None:
-            raise _error("write CASE WHEN <condition> THEN ... (not CASE <value> WHEN ...)")
-        self._only_args(node, {"ifs", "default"})
-        conds, values = [], []
-        for branch in node.args.get("ifs") or []:
-            self._only_args(branch, {"this", "true"})
-            c = self.build(branch.this, depth + 1)
-            self._need(c, ("boolean",), "CASE WHEN", node)
-            conds.append(c.node)
-            values.append(self.build(branch.args["true"], depth + 1))
-        default = node.args.get("default")
-        if default is not None:
-            values.append(self.build(default, depth + 1))
-        built, kind = self._unify(values, node)
-        ifs = [exp.If(this=c, true=v) for c, v in zip(conds, built)]
-        return _Typed(exp.Case(ifs=ifs, default=built[len(ifs)] if default is not None
-                               else None), kind)
 
 
 def _error(detail: str, slug: str = "bad-measure") -> MeasureError:

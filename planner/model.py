@@ -142,6 +142,13 @@ class Channel(_Strict):
     ``measure``: a named measure of the source's config)."""
 
     column: Text | None = Field(None, min_length=1, max_length=256)
+    expr: Text | None = Field(
+        None, min_length=1, max_length=4096,
+        description="In place of column: a scalar SQL expression over the source's columns "
+        "(physical, computed, dimension columns as depots.city), from the allow-list of "
+        "filter_sql widened to CASE, NULLIF, casts, ||, replace, date_trunc and extract "
+        "(README \"Source model\"). Its kind comes from the engine.",
+        examples=["fee / NULLIF(distance_km, 0)"])
     agg: AggName | None = None
     measure: Text | None = Field(
         None, min_length=1, max_length=256,
@@ -177,6 +184,14 @@ class Channel(_Strict):
 
     @model_validator(mode="after")
     def _consistent(self) -> "Channel":
+        if self.column is not None and self.expr is not None and self.column != self.expr:
+            raise ValueError("use one of column or expr")
+        if self.expr is not None and self.column is None:  # checked as its column from here
+            return self._checked(self.model_copy(update={"column": self.expr}))
+        return self._checked(self)
+
+    @staticmethod
+    def _checked(self: "Channel") -> "Channel":
         if self.within is not None and self.then != "fraction":
             raise ValueError("within goes with then=fraction")
         if self.measure is not None:

@@ -31,6 +31,7 @@ function                    name                            meaning
 ``series()``                ``_sluice_n``                   the integer series' table alias
 ``profile(part)``           ``_sluice_<part>``              a column profile's output / CTE
                                                             (``PROFILE_PARTS``)
+``dim_alias(i)``            ``_sluice_d<i>``                the i-th joined dimension table
 ==========================  ==============================  ==================================
 
 Window columns of a built aggregate are named after their input's name plus ``_r``, ``_c``,
@@ -152,3 +153,7 @@ def profile(part: str) -> str:
     """An output column or CTE of a column profile (``part`` in ``PROFILE_PARTS``)."""
     assert part in PROFILE_PARTS, part
     return f"{INTERNAL}{part}"
+
+
+def dim_alias(i: int) -> str:
+    return f"{INTERNAL}d{i}"

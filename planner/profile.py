@@ -33,7 +33,7 @@ from sqlglot import exp
 from planner import names
 from planner.errors import PlanError, nearest
 from planner.schema import ColumnInfo, SourceSchema
-from planner.source import relation
+from planner.source import relation, using
 
 #: most frequent values returned by default for text and boolean columns
 DEFAULT_TOP = 20
@@ -85,7 +85,7 @@ def plan_profile(schema: SourceSchema, name: str, dialect, top: int | None = Non
     if not 0 <= top <= MAX_TOP:
         raise PlanError("", f"top must be between 0 and {MAX_TOP}", slug="invalid-request")
     has_range = col.kind != "boolean"  # MIN(boolean) does not exist on PostgreSQL
-    table = relation(schema, dialect)
+    table = relation(using(schema, {col.name: ""}), dialect)  # a model column: joined
     value = dialect.column(col.name)
     if top == 0:
         ok = dialect.instant_range(value.copy(), col.kind) if col.is_temporal else None

@@ -35,16 +35,63 @@ class ColumnInfo:
 
 
 @dataclass(frozen=True)
+class Dimension:
+    """A many-to-one join to a dimension table (Kimball & Ross, The Data Warehouse Toolkit):
+    ``fact_column`` of the source equals ``key`` of ``table``; its ``columns`` are requested as
+    ``<name>.<column>``. ``duplicate``: a key value the engine found more than once (fan-out:
+    a request using the dimension is refused), else None."""
+
+    name: str
+    table: tuple[str, ...]
+    fact_column: str
+    key: str
+    columns: tuple[str, ...]
+    duplicate: str | None = None
+
+    def column_name(self, column: str) -> str:
+        return f"{self.name}.{column}"
+
+
+@dataclass(frozen=True)
 class SourceSchema:
     name: str
     table: tuple[str, ...]  # qualified table name parts, e.g. ("main", "deliveries")
+    #: every column a request may name: physical, computed and dimension columns
     columns: dict[str, ColumnInfo] = field(default_factory=dict)
     #: named measures (config ``[sources.X.measures]``): name -> aggregate expression text,
     #: checked per request by planner/measure_sql.py
     measures: dict[str, str] = field(default_factory=dict)
+    #: computed columns ([sources.X.columns]): name -> SQL text over the physical columns,
+    #: rebuilt per dialect by planner.expr_sql when a statement uses them
+    computed: dict[str, str] = field(default_factory=dict)
+    dimensions: tuple[Dimension, ...] = ()
+    #: a request's ``{"expr": ...}`` terms: internal column name (planner.names.expr_column)
+    #: -> SQL text over every other column (physical, computed, dimension)
+    exprs: dict[str, str] = field(default_factory=dict)
+    #: the computed and dimension columns this request uses: what ``planner.source.relation``
+    #: adds to the table (empty: the plain table)
+    joined: frozenset[str] = frozenset()
 
     def column(self, name: str) -> ColumnInfo | None:
         return self.columns.get(name)
+
+    def dimension_of(self, column: str) -> Dimension | None:
+        """The dimension a ``depots.city`` column comes from (None for other columns)."""
+        for dim in self.dimensions:
+            if column.startswith(dim.name + ".") and column[len(dim.name) + 1:] in dim.columns:
+                return dim
+        return None
+
+    def model_columns(self) -> frozenset[str]:
+        """The names the source model and the request's exprs add to the table's columns."""
+        return frozenset(self.computed) | frozenset(self.exprs) | frozenset(
+            dim.column_name(c) for dim in self.dimensions for c in dim.columns)
+
+    def physical(self) -> "SourceSchema":
+        """The table's own columns only (what a computed column may read)."""
+        model = self.model_columns()
+        return SourceSchema(self.name, self.table,
+                            {n: c for n, c in self.columns.items() if n not in model})
 
 
 _INTEGER = {

@@ -5,19 +5,120 @@ M4, column profiles, row counts — reads ``relation(schema, dialect)``: the sou
 ``"s"``. The source model (computed columns, dimension joins, a key's row condition; see
 DESIGN.md "Source model") extends this one function, so no statement can read the table
 around it. Pure (no I/O).
+
+When a request uses computed or dimension columns (``SourceSchema.joined``, set by bind),
+the relation is a derived table that gives them as plain columns::
+
+    (SELECT "s".*, <expr> AS "fee_per_km", "_sluice_d0"."city" AS "depots.city"
+     FROM <fact> AS "s" LEFT JOIN <depots> AS "_sluice_d0" ON "s"."depot" = "_sluice_d0"."depot"
+    ) AS "s"
+
+Only the dimensions the request uses are joined; facts without a match keep their row with
+the dimension's columns NULL. Computed columns read the fact table's own columns; a request's
+exprs sit one level up and may read computed and dimension columns too. Which columns a
+request uses is bind's business (``using``: it also refuses a dimension whose key is not
+unique, so a fact is never counted once per match).
 """
 
 from __future__ import annotations
 
+import dataclasses
+import functools
+from collections.abc import Mapping
+
 from sqlglot import exp
 
+from planner import names
 from planner.dialects.base import Dialect
-from planner.schema import SourceSchema
+from planner.errors import PlanError
+from planner.expr_sql import compile_expr
+from planner.filter_sql import parse_text
+from planner.schema import ColumnInfo, Dimension, SourceSchema
 
 #: the alias every statement gives the source rows (columns are referenced as ``"s"."col"``)
 ALIAS = "s"
 
 
 def relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
-    """The source rows aliased ``"s"``."""
-    return exp.alias_(d.table(schema.table), ALIAS, quoted=True)
+    """The source rows aliased ``"s"``: the table, or the table with the computed and
+    dimension columns of ``schema.joined`` (and, one level up, the request's exprs)."""
+    table = exp.alias_(d.table(schema.table), ALIAS, quoted=True)
+    if not schema.joined:
+        return table
+    exprs = {n: _compiled(schema, t, d) for n, t in schema.exprs.items() if n in schema.joined}
+    inner = set(schema.joined) - set(exprs)
+    for node in exprs.values():  # what the request's exprs read from the model's columns
+        inner |= {c.name for c in node.find_all(exp.Column)} & schema.model_columns()
+    q = exp.select(_all(d)).from_(table)
+    physical = schema.physical()
+    for name, text in schema.computed.items():
+        if name in inner:
+            q = q.select(exp.alias_(_compiled(physical, text, d), name, quoted=True))
+    for i, dim in enumerate(schema.dimensions):
+        used = [c for c in dim.columns if dim.column_name(c) in inner]
+        if used:
+            q = _join(q, dim, used, names.dim_alias(i), d)
+    if exprs:  # one level up: an expr may read computed and dimension columns
+        q = _sub(q, d) if inner else table
+        q = exp.select(_all(d), *(exp.alias_(node, n, quoted=True) for n, node in exprs.items())
+                       ).from_(q)
+    return _sub(q, d)
+
+
+def using(schema: SourceSchema, used: Mapping[str, str]) -> SourceSchema:
+    """``schema`` whose relation provides the model columns in ``used`` (name -> JSON pointer
+    of its first use); a dimension whose key is not unique is refused there (fan-out)."""
+    joined = frozenset(used) & schema.model_columns()
+    for name in sorted(joined, key=lambda n: used[n]):
+        dim = schema.dimension_of(name)
+        for read in _reads(schema.exprs[name]) if dim is None and name in schema.exprs else ():
+            dim = dim or schema.dimension_of(read)
+        if dim is not None and dim.duplicate is not None:
+            raise PlanError(used[name], f"dimension {dim.name!r} cannot be joined: its key "
+                            f"{dim.key!r} is not unique in {'.'.join(dim.table)} (the value "
+                            f"{dim.duplicate!r} occurs more than once), so a fact would count "
+                            "once per match", slug="dimension-fan-out",
+                            title="Dimension key is not unique")
+    if joined == schema.joined:
+        return schema
+    return dataclasses.replace(schema, joined=joined)
+
+
+def _reads(text: str) -> set[str]:
+    """The column names an expr's text reads (``depots.city`` for a dimension column)."""
+    out = set()
+    for c in parse_text(text).find_all(exp.Column):
+        out.add(f"{c.table}.{c.name}" if c.table else c.name)
+    return out
+
+
+def _compiled(schema: SourceSchema, text: str, d: Dialect) -> exp.Expression:
+    """A computed column's / expr's rebuilt tree for ``d`` (cached: the text is checked once
+    per schema and dialect)."""
+    cols = tuple(c for n, c in schema.columns.items() if n not in schema.exprs)
+    return _compile(text, schema.name, schema.table, cols, d).copy()
+
+
+@functools.lru_cache(maxsize=512)
+def _compile(text: str, source: str, table: tuple[str, ...], cols: tuple[ColumnInfo, ...],
+             d: Dialect) -> exp.Expression:
+    return compile_expr(text, SourceSchema(source, table, {c.name: c for c in cols}), d, "")
+
+
+def _all(d: Dialect) -> exp.Expression:
+    return exp.Column(this=exp.Star(), table=d.ident(ALIAS))
+
+
+def _sub(q: exp.Select, d: Dialect) -> exp.Expression:
+    return exp.Subquery(this=q, alias=exp.TableAlias(this=d.ident(ALIAS)))
+
+
+def _join(q: exp.Select, dim: Dimension, used: list[str], alias: str, d: Dialect) -> exp.Select:
+    """``q LEFT JOIN dim``, selecting its used columns as ``"<dim>.<column>"`` (ClickHouse
+    reads unmatched rows as NULL through the ``join_use_nulls`` every statement there sets)."""
+    right = exp.alias_(d.table(dim.table), alias, table=True, quoted=True)
+    on = exp.EQ(this=d.column(dim.fact_column, ALIAS), expression=d.column(dim.key, alias))
+    q = q.join(right, on=on, join_type="left")
+    for c in used:
+        q = q.select(exp.alias_(d.column(c, alias), dim.column_name(c), quoted=True))
+    return q

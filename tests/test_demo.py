@@ -137,7 +137,46 @@ def test_columns_and_types(con):
     described = {name: typ for name, typ, *_ in con.execute("DESCRIBE deliveries").fetchall()}
     assert described == EXPECTED_TYPES
     tables = {r[0] for r in con.execute("SELECT table_name FROM duckdb_tables()").fetchall()}
-    assert tables == {"deliveries"}
+    assert tables == {"deliveries", "depots", "couriers"}
+
+
+def test_demo_model_served(demo):
+    """The built-in demo config's model (app.demo.MODEL) on the demo file: kinds from the
+    engine, and revenue by depot city / parcels by courier team equal pandas merge(how=left)
+    + groupby over the file's own tables (reference: pandas)."""
+    import pandas as pd
+    from fastapi.testclient import TestClient
+
+    from app.main import create_app
+    from app.settings import load_settings
+
+    app = create_app(load_settings(environ={"SLUICE_DEMO_PATH": str(demo)}))
+    con = _open(demo)
+    facts = con.execute("SELECT depot, courier_id, fee FROM deliveries").df()
+    depots = con.execute("SELECT * FROM depots").df()
+    couriers = con.execute("SELECT * FROM couriers").df()
+    con.close()
+    with TestClient(app) as c:
+        info = c.get("/v1/sources/deliveries").json()
+        assert {x["name"]: x["kind"] for x in info["computed"]} == {
+            "fee_per_km": "double", "delivery_hour": "integer", "lateness": "string",
+            "heavy": "boolean"}
+        assert {x["name"]: x["kind"] for x in info["dimension_columns"]} == {
+            "depots.city": "string", "depots.opened_on": "date", "couriers.team": "string"}
+        assert all(d["unique"] for d in info["dimensions"])
+        r = c.post("/v1/chart", json={"source": "deliveries", "channels": {
+            "x": {"column": "depots.city"}, "y": {"agg": "sum", "column": "fee"}}}).json()
+        got = dict(zip(r["data"]["depots.city"], r["data"]["sum_fee"]))
+        want = facts.merge(depots, on="depot", how="left").groupby("city")["fee"].sum()
+        assert set(got) == set(want.index)
+        assert all(abs(float(got[k]) - float(want[k])) < 1e-6 for k in want.index)
+        r = c.post("/v1/chart", json={"source": "deliveries", "channels": {
+            "x": {"column": "couriers.team"}, "y": {"agg": "count"}}}).json()
+        got = dict(zip(r["data"]["couriers.team"], r["data"]["count"]))
+        joined = facts.merge(couriers, on="courier_id", how="left")
+        want = joined["team"].fillna("<NULL>").value_counts()
+        assert {("<NULL>" if k is None else k): v for k, v in got.items()} == dict(want)
+        assert "<NULL>" in want  # the contractors: facts without a match keep their rows
 
 
 def test_ids_unique_and_dense(con):

@@ -143,7 +143,8 @@ export interface paths {
         };
         /**
          * Source
-         * @description A source's introspected columns (engine type and kind) and row count.
+         * @description A source's introspected columns (engine type and kind), its computed columns (with
+         *     their expression) and dimension columns ([[sources.X.dimensions]]), and its row count.
          */
         get: operations["source_v1_sources__name__get"];
         put?: never;
@@ -649,6 +650,12 @@ export interface components {
              * @example delay_min > 15
              */
             condition?: string | null;
+            /**
+             * Expr
+             * @description In place of column: a scalar SQL expression over the source's columns (physical, computed, dimension columns as depots.city), from the allow-list of filter_sql widened to CASE, NULLIF, casts, ||, replace, date_trunc and extract (README "Source model"). Its kind comes from the engine.
+             * @example fee / NULLIF(distance_km, 0)
+             */
+            expr?: string | null;
             /** Extract */
             extract?: ("year" | "quarter" | "month" | "week" | "isoyear" | "day" | "dow" | "isodow" | "doy" | "hour" | "minute" | "second") | null;
             /**
@@ -953,6 +960,50 @@ export interface components {
              */
             type: string;
         };
+        /** ComputedColumn */
+        ComputedColumn: {
+            /**
+             * Expr
+             * @description the SQL expression of [sources.X.columns]; the type is the one the engine answers for it
+             */
+            expr: string;
+            /**
+             * Kind
+             * @description integer | double | decimal | string | boolean | timestamp | timestamptz | date | other
+             */
+            kind: string;
+            /** Name */
+            name: string;
+            /**
+             * Type
+             * @description the engine's own type name
+             */
+            type: string;
+        } & {
+            [key: string]: unknown;
+        };
+        /** DimensionColumn */
+        DimensionColumn: {
+            /**
+             * Dimension
+             * @description the dimension it comes from; requested by its name
+             */
+            dimension: string;
+            /**
+             * Kind
+             * @description integer | double | decimal | string | boolean | timestamp | timestamptz | date | other
+             */
+            kind: string;
+            /** Name */
+            name: string;
+            /**
+             * Type
+             * @description the engine's own type name
+             */
+            type: string;
+        } & {
+            [key: string]: unknown;
+        };
         /** Distinct */
         Distinct: {
             /** Approximate */
@@ -1202,6 +1253,31 @@ export interface components {
          *           "type": "DECIMAL(10,2)"
          *         }
          *       ],
+         *       "computed": [
+         *         {
+         *           "expr": "fee / NULLIF(distance_km, 0)",
+         *           "kind": "double",
+         *           "name": "fee_per_km",
+         *           "type": "DOUBLE"
+         *         }
+         *       ],
+         *       "dimension_columns": [
+         *         {
+         *           "dimension": "depots",
+         *           "kind": "string",
+         *           "name": "depots.city",
+         *           "type": "VARCHAR"
+         *         }
+         *       ],
+         *       "dimensions": [
+         *         {
+         *           "fact_column": "depot",
+         *           "key": "depot",
+         *           "name": "depots",
+         *           "table": "depots",
+         *           "unique": true
+         *         }
+         *       ],
          *       "engine": "duckdb",
          *       "measures": [
          *         {
@@ -1216,8 +1292,17 @@ export interface components {
          *     }
          */
         SourceDetail: {
-            /** Columns */
+            /**
+             * Columns
+             * @description the table's own columns
+             */
             columns: components["schemas"]["SourceColumn"][];
+            /** Computed */
+            computed?: components["schemas"]["ComputedColumn"][];
+            /** Dimension Columns */
+            dimension_columns?: components["schemas"]["DimensionColumn"][];
+            /** Dimensions */
+            dimensions?: components["schemas"]["SourceDimension"][];
             /** Engine */
             engine: string;
             /**
@@ -1231,6 +1316,24 @@ export interface components {
             row_count: number;
             /** Table */
             table: string;
+        } & {
+            [key: string]: unknown;
+        };
+        /** SourceDimension */
+        SourceDimension: {
+            /** Fact Column */
+            fact_column: string;
+            /** Key */
+            key: string;
+            /** Name */
+            name: string;
+            /** Table */
+            table: string;
+            /**
+             * Unique
+             * @description false: the key has a value on several rows, and requests that use the dimension are refused (422)
+             */
+            unique: boolean;
         } & {
             [key: string]: unknown;
         };
@@ -1425,6 +1528,8 @@ export type Channels = components['schemas']['Channels'];
 export type ChartAnswer = components['schemas']['ChartAnswer'];
 export type ChartRequest = components['schemas']['ChartRequest'];
 export type ColumnProfile = components['schemas']['ColumnProfile'];
+export type ComputedColumn = components['schemas']['ComputedColumn'];
+export type DimensionColumn = components['schemas']['DimensionColumn'];
 export type Distinct = components['schemas']['Distinct'];
 export type Facet = components['schemas']['Facet'];
 export type Health = components['schemas']['Health'];
@@ -1439,6 +1544,7 @@ export type Reduce = components['schemas']['Reduce'];
 export type SortItem = components['schemas']['SortItem'];
 export type SourceColumn = components['schemas']['SourceColumn'];
 export type SourceDetail = components['schemas']['SourceDetail'];
+export type SourceDimension = components['schemas']['SourceDimension'];
 export type SourceMeasure = components['schemas']['SourceMeasure'];
 export type SourcesAnswer = components['schemas']['SourcesAnswer'];
 export type SourceSummary = components['schemas']['SourceSummary'];
