@@ -215,3 +215,24 @@ def test_spark_one_case(tmp_path_factory, frame):
         assert data["total_amount"][i] == want[grp]["total_amount"]
         assert _close(data["flag_share"][i], want[grp]["flag_share"])
         assert _close(data["amount_per_n"][i], want[grp]["amount_per_n"])
+
+
+def test_measure_over_a_computed_column(tmp_path, frame):
+    """A named measure may read a computed column ([sources.X.columns]): the relation then
+    provides it (planner/source.py). Reference: pandas on the same rows."""
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    src = {**fx.load_duckdb(tmp_path, fx.arrow_table(fx.make_rows())),
+           "columns": {"n_abs": "abs(n)"}, "measures": {"big_abs": "sum(CASE WHEN n_abs > 25 "
+                                                                    "THEN n_abs END)"}}
+    app = create_app(parse_settings({"sources": {"duckdb": src}}, "<computed measure>"))
+    with TestClient(app, raise_server_exceptions=False) as c:
+        data = _chart(c, {"source": "duckdb", "channels": {
+            "x": {"column": "grp"}, "y": {"measure": "big_abs"}}})["data"]
+    d = frame.assign(a=frame["n"].abs())
+    want = {}
+    for g, sub in d.groupby(d["grp"].fillna("<NULL>")):  # reference: pandas
+        big = sub["a"][sub["a"] > 25]
+        want[None if g == "<NULL>" else g] = int(big.sum()) if len(big) else None
+    assert dict(zip(data["grp"], data["big_abs"])) == want
