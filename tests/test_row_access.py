@@ -148,6 +148,7 @@ def test_row_condition_on_spark(tmp_path_factory):
     root = tmp_path_factory.mktemp("rows_spark")
     rows = fx.make_rows()
     src = fx.load_spark(root, fx.arrow_table(rows))
+    src["statement_timeout_ms"] = 180_000  # the first request starts the JVM
     st_ = parse_settings({"sources": {"spark": src}, "keys": _keys(["spark"], COND),
                           "server": {"request_log": False}}, "<row access spark>")
     df = _engine_frame()
