@@ -88,7 +88,7 @@ def _warm(service: Any, report: dict[str, float]) -> None:
 def _check_row_conditions(catalog: Any) -> None:
     """Introspect every source an API key has a row condition on: the catalog checks each
     condition against the columns found and logs those that do not fit (app.catalog)."""
-    keys = getattr(catalog.settings, "keys", None) or []
+    keys = getattr(getattr(catalog, "settings", None), "keys", None) or []
     for name in dict.fromkeys(src for k in keys for src, _ in k.rows):
         try:
             catalog.entry(name)
