@@ -89,6 +89,13 @@ def finish(plan: Plan, extents_row: dict[str, Any] | None = None) -> Plan:
     return dataclasses.replace(laid, main=_main_statement(laid))
 
 
+def guarded(plan: Plan) -> Plan:
+    """A finished plan whose main statement writes every numeric bin index with its
+    floating-point guard: run when the checked plain floor's flag (``names.misbinned``)
+    says some group's values do not all lie in its bin (``planner.emit_keys.checkable``)."""
+    return dataclasses.replace(plan, main=_main_statement(plan, guard=True))
+
+
 def layout_key(plan: Plan, extents_row: dict[str, Any] | None = None,
                memo: dict | None = None) -> tuple:
     """What ``finish(extents_row)`` takes from the row: equal keys (same request shape)

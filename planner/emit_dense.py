@@ -72,6 +72,8 @@ def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
     has = names.has_data()
     n, matched = names.rows(), names.matched()
     outs = [names.outside_count(k.index) for k in flags]
+    if any(k.checked for k in plan.keys):  # the checked floor's flag (planner.emit_checked)
+        outs.append(names.misbinned())
     keys = [k.internal for k in plan.keys]
     data = exp.select(*[_ref(c) for c in keys], *[_ref(m.internal) for m in plan.measures],
                       _ref(n), _ref(matched), *[_ref(o) for o in outs],

@@ -16,11 +16,14 @@ CTE names come from ``planner.names.cte``. In: a laid-out ``Plan``; out: ``exp.S
 
 from __future__ import annotations
 
+import dataclasses
+
 from sqlglot import exp
 
 from planner import names
 from planner.dialects.base import Dialect
 from planner.emit_dense import _dense
+from planner.emit_checked import bin_value, checkable, misbinned_expr
 from planner.emit_keys import _instant_in_range, _key_expr, _key_outputs, _outside_expr
 from planner.emit_measures import _measure_agg, _measure_input, _window_columns
 from planner.emit_sql import _ref, _table
@@ -29,12 +32,18 @@ from planner.plan import Key, Plan
 from planner.source import relation
 
 
-def _main_statement(plan: Plan) -> exp.Select:
+def _main_statement(plan: Plan, guard: bool = False) -> exp.Select:
     """The main statement: the stages' CTEs, then the outer SELECT (facet cap, ORDER BY,
-    LIMIT). Each stage appends its CTEs to ``ctes`` and returns the name of the last one."""
+    LIMIT). Each stage appends its CTEs to ``ctes`` and returns the name of the last one.
+    Numeric bins over an unknown range get the checked plain floor (``checkable``) unless
+    ``guard`` (the statement the service runs when the check failed) or a top-N fold
+    re-groups the rows."""
     d, req = plan.dialect, plan.request
     ctes: list[tuple[str, exp.Expression]] = []
     fold = _fold_after_grouping(plan)
+    if not guard and not fold and any(checkable(d, k) for k in plan.keys):
+        plan = dataclasses.replace(plan, keys=tuple(
+            dataclasses.replace(k, checked=True) if checkable(d, k) else k for k in plan.keys))
     flags = _base(plan, ctes, fold)
     group_cols = [k.internal for k in plan.keys] + [k.outside_flag for k in flags]
     current = _grouped(plan, ctes, group_cols, fold)
@@ -76,6 +85,9 @@ def _base(plan: Plan, ctes: list, fold: bool) -> list[Key]:
         else:
             key_value = _key_expr(d, k)
         base = base.select(exp.alias_(key_value, k.internal, quoted=True))
+    for k in keys:
+        if k.checked:  # the value itself, for the per-group check (emit_keys.checkable)
+            base = base.select(exp.alias_(bin_value(d, k), names.value(k.index), quoted=True))
     flags = []
     for k in keys:
         flag = _outside_expr(d, k)
@@ -127,6 +139,12 @@ def _grouped(plan: Plan, ctes: list, group_cols: list[str], fold: bool) -> str:
                                 and n.this == arg else n)
         grouped = grouped.select(exp.alias_(agg, m.internal, quoted=True))
     grouped = grouped.select(exp.alias_(exp.Count(this=exp.Star()), names.rows(), quoted=True))
+    for k in plan.keys:
+        if k.checked:
+            v = _ref(names.value(k.index))
+            grouped = grouped.select(
+                exp.alias_(exp.Min(this=v), names.value_range(k.index, "min"), quoted=True),
+                exp.alias_(exp.Max(this=v.copy()), names.value_range(k.index, "max"), quoted=True))
     if group_cols:
         grouped = grouped.group_by(*[_ref(c) for c in group_cols])
     pairs = _distinct_pairs(d, grouped, rows_name, group_cols)
@@ -151,6 +169,10 @@ def _counted(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
             true=_ref(names.rows()))], default=exp.Literal.number(0)))
         counted = counted.select(exp.alias_(_over_all(cnt), names.outside_count(k.index),
                                             quoted=True))
+    checked = [k for k in plan.keys if k.checked]
+    if checked:  # over every group, before limits, caps and LIMIT drop any
+        counted = counted.select(exp.alias_(misbinned_expr(plan.dialect, checked),
+                                            names.misbinned(), quoted=True))
     ctes.append((names.cte("counted"), counted))
     current = names.cte("counted")
     if flags:
@@ -179,6 +201,9 @@ def _final(plan: Plan, ctes: list, current: str, flags: list[Key], cap: int | No
     for k in flags:
         final = final.select(exp.alias_(_over_all(exp.Max(this=_ref(names.outside_count(k.index)))),
                                         names.outside_count(k.index), quoted=True))
+    if any(k.checked for k in keys):  # (empty cells of the dense grid carry NULL)
+        final = final.select(exp.alias_(_over_all(exp.Max(this=_ref(names.misbinned()))),
+                                        names.misbinned(), quoted=True))
     if cap is not None:
         facet_keys = [k for k in keys if k.channel in ("row", "col")]
         rank = exp.Window(this=exp.RowNumber(),
