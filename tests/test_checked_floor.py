@@ -86,9 +86,9 @@ def service(tmp_path_factory):
 ENGINES = ["duckdb", "sqlite", "postgres"]
 
 
-def _chart(service, source):
+def _chart(service, source, where=()):
     req = ChartRequest.model_validate({
-        "source": source, "limit": 10000,
+        "source": source, "limit": 10000, "where": list(where),
         "channels": {"x": {"column": "v", "bin": {"width": WIDTH, "origin": 0}},
                      "y": {"agg": "count"}}})
     out = service.to_json(service.run(req))
@@ -128,8 +128,8 @@ def test_width_bins_count_every_value_in_its_reported_bin(service, engine, name,
 def test_guarded_form_runs_only_when_the_check_fails(service, engine):
     """Values on the edges need the guarded statement (a second main statement, reported in
     ``sql`` and ``stats.statements``, after the extents statement); values mid-bin are
-    answered by the checked plain floor alone; a repeat of the failed layout runs the guarded
-    form at once."""
+    answered by the checked plain floor alone; a repeat of the failed layout, or another
+    layout of the same column and width on that source, runs the guarded form at once."""
     from app.service import ChartService
     from planner import names
 
@@ -145,3 +145,11 @@ def test_guarded_form_runs_only_when_the_check_fails(service, engine):
     again = _chart(service, f"edges_{engine}")
     assert [names.misbinned() in q for q in mains(again)] == [False]  # guarded at once
     assert again["data"] == first["data"]
+    # another layout of the same width on that source (a brush moved the data's min): the
+    # data sits on this width's edges, so the guarded form runs at once
+    moved = _chart(service, f"edges_{engine}", [{"column": "v", "gte": -20}])
+    assert moved["bins"]["x"]["start"] != first["bins"]["x"]["start"]
+    assert [names.misbinned() in q for q in mains(moved)] == [False]
+    rows = [v for v in EDGE_VALUES if v >= -20]
+    got = {r["x_lo"]: r["count"] for r in moved["rows"] if r["x_lo"] is not None}
+    assert got == _expected(rows, moved["bins"]["x"])  # reference: pandas.cut(right=False)
