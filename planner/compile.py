@@ -76,7 +76,7 @@ def count_sql(plan: Plan) -> str:
             sel.append(exp.alias_(exp.Sum(this=flag), k.outside_flag, quoted=True))
     q = exp.select(*sel).from_(relation(plan.schema, d))
     if plan.where is not None:
-        q = q.where(plan.where)
+        q = q.where(plan.where, copy=False)
     return d.render(q)
 
 
