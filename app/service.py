@@ -240,9 +240,10 @@ class ChartService:
         self.catalog = catalog
         self._plans = PlanCache()
         #: checked plain-floor bins (planner.compile.checked_bins) that missed an edge on a
-        #: source: (source, column, width) -> later layouts of them run the guarded form at
-        #: once; and the guarded plans by checked main statement (both bounded)
-        self._guard_bins: set[tuple[str, str, float]] = set()
+        #: source: (source, the key's row condition, column, width) -> later layouts of them
+        #: run the guarded form at once; and the guarded plans by checked main statement
+        #: (both bounded)
+        self._guard_bins: set[tuple[str, str | None, str, float]] = set()
         self._guarded: dict[str, tuple[Plan, str]] = {}
         st = catalog.settings
         self.limiter = Limiter(getattr(st, "limits", None) or Limits(),
@@ -352,7 +353,8 @@ class ChartService:
                 self._plans.remember_extents(entry, extents_sql, args, row)
         t2 = time.perf_counter()
         plan, main_sql = self._plans.finished(prep, entry, row)
-        checked = [(req.source, *c) for c in checked_bins(plan)]
+        # per row condition too: what one key's rows did never shows in another's answer
+        checked = [(req.source, entry.schema.rows, *c) for c in checked_bins(plan)]
         if checked and any(c in self._guard_bins for c in checked):
             plan, main_sql = self._guarded_plan(main_sql, plan)  # missed before: guarded
         plan_more = _ms(t2)

@@ -542,3 +542,46 @@ def test_shared_redis_cache_keeps_conditions_apart(tmp_path):
             want = df.loc[df["region"] == region, "depot"].value_counts(dropna=False)
             assert dict(zip(r["data"]["depot"], r["data"]["count"])) == {
                 (None if pd.isna(k) else k): int(v) for k, v in want.items()}
+
+
+def test_what_one_keys_rows_did_never_shows_in_anothers_answer(tmp_path):
+    """The checked plain floor (app/service.py) remembers a bin that missed an edge; it must
+    remember it per row condition: the south rows sit on the edges of 0.1-wide bins (the
+    plain floor misses some, a second statement runs), the north rows nowhere near them.
+    The north key's answer after the unrestricted key's must equal the answer over a table
+    of only the north rows (reference: the same request on DuckDB over that table), and every
+    row is in the bin lo <= v < hi it reports (reference: pandas.cut over the answer's edges)."""
+    import math as m
+
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    edges = sorted({v for i in range(-200, 200) for e in [i * 0.1]
+                    for v in (e, m.nextafter(e, -m.inf), m.nextafter(e, m.inf))})
+    plain = [(i + 0.5) * 0.1 for i in range(-200, 200)]
+    full, north = tmp_path / "full.duckdb", tmp_path / "north.duckdb"
+    for path, rows in ((full, [("south", v) for v in edges] + [("north", v) for v in plain]),
+                       (north, [("north", v) for v in plain])):
+        con = duckdb.connect(str(path))
+        con.execute("CREATE TABLE t (region VARCHAR, v DOUBLE)")
+        con.executemany("INSERT INTO t VALUES (?, ?)", rows)
+        con.close()
+    sources = {"full": {"engine": "duckdb", "path": str(full), "table": "t"},
+               "north": {"engine": "duckdb", "path": str(north), "table": "t"}}
+    st_ = parse_settings({"sources": sources, "keys": _keys(["full"], NORTH),
+                          "server": {"request_log": False}}, "<checked floor rows>")
+    body = {"channels": {"x": {"column": "v", "bin": {"width": 0.1, "origin": 0}},
+                         "y": {"agg": "count"}}}
+    with TestClient(create_app(st_), raise_server_exceptions=False) as c:
+        everyone = _ok(c.post("/v1/chart", json={"source": "full", **body}, headers=_hdr(ALL_KEY)))
+        assert everyone["stats"]["statements"] >= 2  # the check failed on the south rows
+        got = _ok(c.post("/v1/chart", json={"source": "full", **body}, headers=_hdr(ROWS_KEY)))
+        ref = _ok(c.post("/v1/chart", json={"source": "north", **body}, headers=_hdr(ALL_KEY)))
+        _same(_strip(got), _strip(ref))
+        # the same statements too (the guarded form would show the south rows' edge miss)
+        derived = '(SELECT * FROM "t" AS "s" WHERE ("s"."region" = \'north\')) AS "s"'
+        assert all(derived in q for q in got["sql"])
+        assert [q.replace(derived, '"t" AS "s"') for q in got["sql"]] == ref["sql"]
+        lo = np.array(got["data"]["x_lo"])
+        cut = pd.cut(pd.Series(plain), np.append(lo, got["data"]["x_hi"][-1]), right=False)
+        assert cut.value_counts(sort=False).tolist() == got["data"]["count"]
