@@ -606,3 +606,34 @@ def test_what_one_keys_rows_did_never_shows_in_anothers_answer(tmp_path):
         lo = np.array(got["data"]["x_lo"])
         cut = pd.cut(pd.Series(plain), np.append(lo, got["data"]["x_hi"][-1]), right=False)
         assert cut.value_counts(sort=False).tolist() == got["data"]["count"]
+
+
+def test_the_condition_reads_instants_in_utc_whatever_the_request_zone(tmp_path):
+    """An offset-less instant in a key's condition is UTC: a request's ``tz`` (which moves
+    the instants of its own filters) cannot move the key's boundary (reference: pandas)."""
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    db = tmp_path / "a.duckdb"
+    df = ff.build_duckdb(db)
+    cond = "delivered_at >= TIMESTAMP '2026-03-01 00:00:00'"
+    st_ = parse_settings({"sources": {"deliveries": {"engine": "duckdb", "path": str(db),
+                                                     "table": "deliveries"}},
+                          "keys": _keys(["deliveries"], cond), "server": {"request_log": False}},
+                         "<tz>")
+    edge = pd.Timestamp("2026-03-01T00:00:00Z")
+    want = int((df["delivered_at"] >= edge).sum())
+    # rows within a day of the edge exist, so a zone shift of hours would change the count
+    assert ((df["delivered_at"] - edge).abs() < pd.Timedelta(hours=12)).sum() > 0
+    with TestClient(create_app(st_), raise_server_exceptions=False) as c:
+        for tz in ("UTC", "Pacific/Kiritimati", "America/Los_Angeles"):
+            r = _ok(c.post("/v1/chart", json={"source": "deliveries", "tz": tz, "channels": {
+                "x": {"column": "region"}, "y": {"agg": "count"}}}, headers=_hdr(ROWS_KEY)))
+            assert r["stats"]["source_rows"] == r["stats"]["matched_rows"] == want, tz
+            p = _ok(c.get("/v1/sources/deliveries/columns/delivered_at", headers=_hdr(ROWS_KEY)))
+            assert p["row_count"] == want
+            assert pd.Timestamp(p["min"]) >= edge
+        ready = c.get("/readyz", headers=_hdr(ROWS_KEY)).json()["sources"]["deliveries"]
+        assert "row_count" not in ready  # the table's total is not this key's to see
+        assert c.get("/readyz", headers=_hdr(ALL_KEY)).json()["sources"]["deliveries"][
+            "row_count"] == len(df)
