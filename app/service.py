@@ -24,8 +24,8 @@ from app.engines import Engine
 from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
 from app.engines.arrow import conform, key_zone, request_zone
 from planner import names as internal
-from planner.compile import (Plan, bind_sql, bind_values, bins_meta, display_sql, finish,
-                             layout_key, param_shape, prepare)
+from planner.compile import (Plan, bind_sql, bind_values, bins_meta, checked_bins,
+                             display_sql, finish, guarded, layout_key, param_shape, prepare)
 from planner.compile import count_sql as count_sql_of
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
@@ -127,7 +127,8 @@ class PlanCache:
 
     def prepared(self, req: ChartRequest, entry: SourceEntry, dialect: Any) -> "Prepared":
         shape = orjson.dumps(param_shape(req, dialect, entry.schema), option=orjson.OPT_SORT_KEYS)
-        key = (shape, dialect.name, entry.schema.name, entry.version)
+        # the key's row condition is part of the plan (planner.source.relation): keys apart
+        key = (shape, dialect.name, entry.schema.name, entry.version, entry.schema.rows)
         prep = self._prepared.get(key)
         if prep is None:
             plan = prepare(req, entry.schema, dialect, params=True)
@@ -140,12 +141,11 @@ class PlanCache:
         return prep
 
     def extents_row(self, entry: SourceEntry, sql: str, args: list[Any]) -> dict[str, Any] | None:
-        return self._extents.get((entry.schema.name, entry.version, sql, _digest(args)))
+        return self._extents.get(_extents_key(entry, sql, args))
 
     def remember_extents(self, entry: SourceEntry, sql: str, args: list[Any],
                          row: dict[str, Any]) -> None:
-        self._extents.put((entry.schema.name, entry.version, sql, _digest(args)), row,
-                          2 * len(sql) + 64 * len(row) + 512)
+        self._extents.put(_extents_key(entry, sql, args), row, 2 * len(sql) + 64 * len(row) + 512)
 
     def finished(self, prep: "Prepared", entry: SourceEntry, row: dict[str, Any] | None
                  ) -> tuple[Plan, str]:
@@ -158,6 +158,11 @@ class PlanCache:
             hit = (dataclasses.replace(plan, main=None, extents=None), plan.main_sql)
             self._finished.put(key, hit, _plan_charge(prep.key[0], prep.bound_values, hit[1]))
         return hit
+
+
+def _extents_key(entry: SourceEntry, sql: str, args: list[Any]) -> tuple:
+    # (the SQL holds the row condition too; the condition is named for plain reading)
+    return (entry.schema.name, entry.version, entry.schema.rows, sql, _digest(args))
 
 
 def _digest(args: list[Any]) -> bytes:
@@ -218,6 +223,15 @@ def _column_meta(c: Any, t: pa.DataType) -> dict[str, Any]:
     return out
 
 
+def _misbinned(raw: pa.Table) -> bool:
+    """Whether the main statement's per-group check of a plain-floor bin index failed
+    (``planner.emit_keys.checkable``: some group holds a value outside its bin)."""
+    name = internal.misbinned()
+    if name not in raw.column_names or raw.num_rows == 0:
+        return False
+    return bool(raw.column(name)[0].as_py())
+
+
 def _ms(t0: float) -> float:
     return round((time.perf_counter() - t0) * 1000.0, 3)
 
@@ -226,11 +240,22 @@ class ChartService:
     def __init__(self, catalog: Catalog) -> None:
         self.catalog = catalog
         self._plans = PlanCache()
+        #: checked plain-floor bins (planner.compile.checked_bins) that missed an edge on a
+        #: source: (source, the key's row condition, column, width) -> later layouts of them
+        #: run the guarded form at once; and the guarded plans by checked main statement
+        #: (both bounded)
+        self._guard_bins: set[tuple[str, str | None, str, float]] = set()
+        self._guarded: dict[str, tuple[Plan, str]] = {}
         st = catalog.settings
         self.limiter = Limiter(getattr(st, "limits", None) or Limits(),
                                {n: c.options for n, c in st.sources.items()})
 
     # ---- planning ------------------------------------------------------------------
+    def entry(self, name: str) -> SourceEntry:
+        """The source as the calling API key sees it: with its row condition, if it has one
+        (``[[keys]] rows``, app.auth; the grant is the request's own, a context variable)."""
+        return self.catalog.view(name, auth.rows_for(name))
+
     def check_source(self, name: str) -> None:
         """404 (pointer /source) with the nearest names when ``name`` is not configured;
         403 first when the caller's API key does not grant it (app.auth)."""
@@ -250,7 +275,7 @@ class ChartService:
         check_request(req, limits)  # [limits] caps, 422 with pointers
         engine = self.limiter.guard(req.source, self.catalog.engine(req.source),
                                     user_sql=req.filter_sql is not None)  # statement timeout
-        entry = self.catalog.with_exprs(self.catalog.entry(req.source), req)  # expr kinds
+        entry = self.catalog.with_exprs(self.entry(req.source), req)  # key rows, expr kinds
         check_filter_sql(req, limits, entry.schema, get_dialect(engine.dialect))
         if dialect_name is None:
             dialect_name = engine.dialect
@@ -329,10 +354,22 @@ class ChartService:
                 self._plans.remember_extents(entry, extents_sql, args, row)
         t2 = time.perf_counter()
         plan, main_sql = self._plans.finished(prep, entry, row)
+        # per row condition too: what one key's rows did never shows in another's answer
+        checked = [(req.source, entry.schema.rows, *c) for c in checked_bins(plan)]
+        if checked and any(c in self._guard_bins for c in checked):
+            plan, main_sql = self._guarded_plan(main_sql, plan)  # missed before: guarded
         plan_more = _ms(t2)
         statements.append(display_sql(main_sql))
         sql, args = bind_sql(main_sql, values, style)
         raw = engine.execute(sql, args)
+        if _misbinned(raw):  # the checked plain floor missed an edge: the guarded form
+            if len(self._guard_bins) >= 4096:
+                self._guard_bins.clear()
+            self._guard_bins.update(checked)
+            plan, main_sql = self._guarded_plan(main_sql, plan)
+            statements.append(display_sql(main_sql))
+            sql, args = bind_sql(main_sql, values, style)
+            raw = engine.execute(sql, args)
         extra = None
         if raw.num_rows == 0:
             count_sql = count_sql_of(plan)
@@ -345,6 +382,17 @@ class ChartService:
         table, meta = self._shape(plan, entry, raw, extra, statements)
         timing["shape"] = _ms(t3)
         return ChartResult(plan, entry, table, meta, timing)
+
+    def _guarded_plan(self, main_sql: str, plan: Plan) -> tuple[Plan, str]:
+        """``planner.compile.guarded(plan)`` and its text, kept by the checked statement's
+        text (the text is what is reused; the trees are big)."""
+        hit = self._guarded.get(main_sql)
+        if hit is None:
+            if len(self._guarded) >= 256:
+                self._guarded.clear()
+            g = guarded(plan)
+            hit = self._guarded[main_sql] = (dataclasses.replace(g, main=None), g.main_sql)
+        return hit
 
     def _bins(self, plan: Plan) -> dict[str, Any]:
         out = bins_meta(plan)

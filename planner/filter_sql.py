@@ -568,7 +568,8 @@ def _short(e: Exception) -> str:
 def parse_text(text: str, max_chars: int = MAX_CHARS) -> exp.Expression:
     """The checks every SQL text of a request or config passes before it is rebuilt (length,
     NUL, nesting, comments, one statement) and sqlglot's parse of it (``planner.expr_sql``
-    shares them)."""
+    shares them; the config checks a key's row condition with it before any source is
+    opened)."""
     if len(text) > max_chars:
         raise _fail(f"filter_sql has {len(text)} characters; the limit is {max_chars}",
                     slug="limit-exceeded")
@@ -590,6 +591,8 @@ def parse_text(text: str, max_chars: int = MAX_CHARS) -> exp.Expression:
     _check_tokens(text)
     try:
         return sqlglot.parse_one(text, read=READ_DIALECT, into=exp.Condition)
+    except RecursionError:
+        raise _fail("filter_sql is nested too deeply", slug="limit-exceeded") from None
     except Exception as e:  # noqa: BLE001 - ParseError, TokenError, ...
         raise _fail(f"filter_sql must be a single SQL condition such as \"fee > 10 AND "
                     f"depot IN ('North Yard')\"; cannot read {_quote(text)} "

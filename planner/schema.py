@@ -71,6 +71,10 @@ class SourceSchema:
     #: the computed and dimension columns this request uses: what ``planner.source.relation``
     #: adds to the table (empty: the plain table)
     joined: frozenset[str] = frozenset()
+    #: the calling API key's row condition on this source (``[[keys]] rows``): SQL text of
+    #: the ``filter_sql`` allow-list, compiled per dialect by ``planner.source.relation``
+    #: into every statement's FROM; None: every row
+    rows: str | None = None
 
     def column(self, name: str) -> ColumnInfo | None:
         return self.columns.get(name)

@@ -18,6 +18,14 @@ the dimension's columns NULL. Computed columns read the fact table's own columns
 exprs sit one level up and may read computed and dimension columns too. Which columns a
 request uses is bind's business (``using``: it also refuses a dimension whose key is not
 unique, so a fact is never counted once per match).
+
+A key's row condition (``SourceSchema.rows``, from ``[[keys]] rows``) makes the table itself
+a derived table, ``(SELECT * FROM <table> AS "s" WHERE <condition>) AS "s"``, beneath the
+model's columns and joins: the request's own ``where`` and ``filter_sql`` apply outside it,
+so nothing a request writes (an ``OR``, a parenthesis, a comment) can reach around the
+condition. The condition passes the ``filter_sql`` allow-list (``planner.filter_sql``) over
+the table's own columns, rebuilt for the target dialect, with offset-less instants read in
+UTC (never in the request's zone).
 """
 
 from __future__ import annotations
@@ -32,17 +40,35 @@ from planner import names
 from planner.dialects.base import Dialect
 from planner.errors import PlanError
 from planner.expr_sql import compile_expr
-from planner.filter_sql import parse_text
+from planner.filter_sql import compile_filter_sql, parse_text
 from planner.schema import ColumnInfo, Dimension, SourceSchema
 
 #: the alias every statement gives the source rows (columns are referenced as ``"s"."col"``)
 ALIAS = "s"
 
 
+def row_condition(schema: SourceSchema, d: Dialect) -> exp.Expression | None:
+    """The key's row condition for ``d``; a condition that does not fit the source (a column
+    gone since start-up) is a 503 naming no request field: the operator's config is wrong."""
+    if schema.rows is None:
+        return None
+    try:
+        return compile_filter_sql(schema.rows, schema.physical(), d, tz="UTC")
+    except PlanError as e:
+        raise PlanError("", f"this API key's row condition on source {schema.name!r} cannot "
+                        f"be applied ({e.detail}); the operator must fix its [[keys]] rows",
+                        slug="row-condition-invalid", title="Row condition invalid",
+                        status=503) from None
+
+
 def relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
-    """The source rows aliased ``"s"``: the table, or the table with the computed and
-    dimension columns of ``schema.joined`` (and, one level up, the request's exprs)."""
+    """The source rows aliased ``"s"``: the table (only the key's rows, when it has a
+    condition), or that with the computed and dimension columns of ``schema.joined`` (and,
+    one level up, the request's exprs)."""
     table = exp.alias_(d.table(schema.table), ALIAS, quoted=True)
+    cond = row_condition(schema, d)
+    if cond is not None:
+        table = exp.select(exp.Star()).from_(table).where(cond).subquery(ALIAS, copy=False)
     if not schema.joined:
         return table
     exprs = {n: _compiled(schema, t, d) for n, t in schema.exprs.items() if n in schema.joined}
