@@ -19,7 +19,7 @@ from typing import Any
 
 from sqlglot import exp
 
-from planner import aggregates, m4
+from planner import aggregates, m4, names
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, Unsupported, pointer
 from planner.filter_sql import compile_filter_sql
@@ -74,15 +74,14 @@ def with_exprs(request: ChartRequest, schema: SourceSchema, d: Dialect) -> Sourc
     not is typed here by the allow-list's own reading."""
     new = {}
     for path, _, ch in request.keyed_channels():
-        if ch.expr is not None and ch.expr not in schema.exprs and ch.expr not in new:
-            if ch.expr in schema.columns:  # {"expr": "fee"}: the column itself
-                continue
+        # (an expr already there, or {"expr": "fee"}: the column itself)
+        if ch.expr is not None and ch.expr not in schema.columns and ch.expr not in new:
             _, (kind, type_name) = compile_typed(ch.expr, schema, d, pointer(*path, "expr"))
-            new[ch.expr] = ColumnInfo(ch.expr, kind, type_name)
+            new[ch.expr] = ColumnInfo(names.expr_column(ch.expr), kind, type_name)
     if not new:
         return schema
     return dataclasses.replace(schema, columns={**schema.columns, **new},
-                               exprs={**schema.exprs, **{n: n for n in new}})
+                               exprs={**schema.exprs, **{c.name: t for t, c in new.items()}})
 
 
 def _used(keys: list[Key], measures: list[Measure], where: Any) -> dict[str, str]:
