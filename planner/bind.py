@@ -47,12 +47,19 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
         if ch.is_measure and channel in ("row", "col"):
             raise PlanError(pointer(*path, "agg"), f"facet {channel} must be a key (a column), "
                             "not a measure (agg)")
-        if ch.is_measure:
-            measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect,
-                                           request_tz))
-        else:
-            keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
-                                   request_tz))
+        try:
+            if ch.is_measure:
+                measures.append(_check_measure(len(measures), path, channel, ch, schema,
+                                               dialect, request_tz))
+            else:
+                keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
+                                       request_tz))
+        except PlanError as e:  # an expr's messages say its text and point at it
+            if ch.expr is not None:
+                e.detail = e.detail.replace(names.expr_column(ch.expr), ch.expr)
+                if e.pointer == pointer(*path, "column"):
+                    e.pointer = pointer(*path, "expr")
+            raise
     slots: list[Any] | None = [] if params and dialect.caps.param_form is not None else None
     where = _compile_where(request, schema, dialect, slots)
     stack_index, approximate = _check_options(request, dialect, keys, measures)

@@ -361,3 +361,15 @@ def test_long_expr_with_name(client, frame, engine):
     ref = pd.DataFrame({"k": sign, "v": n.fillna(0) * 25}).groupby("k")["v"].agg(["size", "sum"])
     _same(_as_dict(got["n_sign"], got["count"]), _as_dict(ref.index, ref["size"]))
     _same(_as_dict(got["n_sign"], got["total"]), _as_dict(ref.index, ref["sum"]))
+
+
+@pytest.mark.parametrize("engine", ["duckdb", "mysql"])
+def test_filter_sql_reads_model_columns(client, frame, engine):
+    """filter_sql names dimension (depots.city) and computed columns; reference: pandas."""
+    got = _rows(_post(client, engine, {
+        "channels": {"x": {"column": "grp"}, "y": {"agg": "count"}},
+        "filter_sql": "grps.weight >= 5 OR band = 'high'"}))
+    x = frame["x"].to_numpy(dtype=float, na_value=np.nan)
+    keep = (frame["grps.weight"] >= 5).fillna(False).to_numpy() | (x >= 10)
+    want = frame[keep].groupby("grp", dropna=False).size()
+    _same(_as_dict(got["grp"], got["count"]), _as_dict(want.index, want.values))
