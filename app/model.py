@@ -32,6 +32,7 @@ from sqlglot import exp
 from app.engines import EngineUnavailable
 from app.settings import SourceConfig
 from planner.errors import PlanError, nearest, pointer
+from planner.names import expr_column
 from planner.expr_sql import compile_typed
 from planner.schema import ColumnInfo, Dimension, SourceSchema, classify
 from planner.source import relation, using
@@ -76,19 +77,19 @@ def with_exprs(eng: Any, schema: SourceSchema, d: Any, texts: list[tuple[tuple, 
         key = (schema.name, version, text)
         info = cache.get(key)
         if info is None:
-            ptr = pointer(*path, "expr")
-            node, annotated = compile_typed(text, schema, d, ptr)  # 422 here, with a pointer
+            ptr, name = pointer(*path, "expr"), expr_column(text)
+            _, annotated = compile_typed(text, schema, d, ptr)  # 422 here, with a pointer
             probe = dataclasses.replace(
-                schema, columns={**schema.columns, text: ColumnInfo(text, *annotated)},
-                exprs={**schema.exprs, text: text})
-            probe = using(probe, {text: ptr})  # a fan-out dimension: 422 at the expr
-            info = _types(eng, d, relation(probe, d), {text: (d.column(text, "s"), annotated)})[text]
+                schema, columns={**schema.columns, text: ColumnInfo(name, *annotated)},
+                exprs={**schema.exprs, name: text})
+            probe = using(probe, {name: ptr})  # a fan-out dimension: 422 at the expr
+            info = _types(eng, d, relation(probe, d), {name: (d.column(name, "s"), annotated)})[name]
             if len(cache) >= MAX_EXPR_KINDS:
                 cache.clear()
             cache[key] = info
         new[text] = info
     return dataclasses.replace(schema, columns={**schema.columns, **new},
-                               exprs={**schema.exprs, **{t: t for t in new}})
+                               exprs={**schema.exprs, **{c.name: t for t, c in new.items()}})
 
 
 def _types(eng: Any, d: Any, source: exp.Expression,

@@ -19,7 +19,7 @@ from typing import Any
 
 from sqlglot import exp
 
-from planner import aggregates, m4, measure_sql, window
+from planner import aggregates, m4, measure_sql, names, window
 from planner.dialects.base import Dialect
 from planner.errors import PlanError, Unsupported, pointer
 from planner.filter_sql import compile_filter_sql
@@ -47,15 +47,22 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
         if ch.is_measure and channel in ("row", "col"):
             raise PlanError(pointer(*path, "agg"), f"facet {channel} must be a key (a column), "
                             "not a measure (agg)")
-        if ch.measure is not None:  # a named measure of the source's config
-            measures.append(measure_sql.bind_named(len(measures), path, channel, ch, schema,
-                                                   dialect, request_tz))
-        elif ch.is_measure:
-            measures.append(_check_measure(len(measures), path, channel, ch, schema, dialect,
-                                           request_tz))
-        else:
-            keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
-                                   request_tz))
+        try:
+            if ch.measure is not None:  # a named measure of the source's config
+                measures.append(measure_sql.bind_named(len(measures), path, channel, ch,
+                                                       schema, dialect, request_tz))
+            elif ch.is_measure:
+                measures.append(_check_measure(len(measures), path, channel, ch, schema,
+                                               dialect, request_tz))
+            else:
+                keys.append(_check_key(len(keys), path, channel, ch, schema, dialect,
+                                       request_tz))
+        except PlanError as e:  # an expr's messages say its text and point at it
+            if ch.expr is not None:
+                e.detail = e.detail.replace(names.expr_column(ch.expr), ch.expr)
+                if e.pointer == pointer(*path, "column"):
+                    e.pointer = pointer(*path, "expr")
+            raise
     slots: list[Any] | None = [] if params and dialect.caps.param_form is not None else None
     where = _compile_where(request, schema, dialect, slots)
     stack_index, approximate = _check_options(request, dialect, keys, measures)
@@ -77,15 +84,14 @@ def with_exprs(request: ChartRequest, schema: SourceSchema, d: Dialect) -> Sourc
     not is typed here by the allow-list's own reading."""
     new = {}
     for path, _, ch in request.keyed_channels():
-        if ch.expr is not None and ch.expr not in schema.exprs and ch.expr not in new:
-            if ch.expr in schema.columns:  # {"expr": "fee"}: the column itself
-                continue
+        # (an expr already there, or {"expr": "fee"}: the column itself)
+        if ch.expr is not None and ch.expr not in schema.columns and ch.expr not in new:
             _, (kind, type_name) = compile_typed(ch.expr, schema, d, pointer(*path, "expr"))
-            new[ch.expr] = ColumnInfo(ch.expr, kind, type_name)
+            new[ch.expr] = ColumnInfo(names.expr_column(ch.expr), kind, type_name)
     if not new:
         return schema
     return dataclasses.replace(schema, columns={**schema.columns, **new},
-                               exprs={**schema.exprs, **{n: n for n in new}})
+                               exprs={**schema.exprs, **{c.name: t for t, c in new.items()}})
 
 
 def _used(keys: list[Key], measures: list[Measure], where: Any) -> dict[str, str]:

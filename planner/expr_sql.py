@@ -18,7 +18,7 @@ engine. What an expression may use beyond ``filter_sql``:
 * dates: ``date_trunc('unit', t)`` (the ``trunc`` precisions; a naive timestamp, instants
   read in UTC) and ``extract(field FROM t)`` (the ``extract`` fields), written per dialect by
   the same ``Dialect.trunc`` / ``Dialect.extract`` that temporal keys use;
-* a dimension column as ``depots.city`` (``[[sources.X.dimensions]]``).
+* (like ``filter_sql``) a dimension column as ``depots.city`` (``[[sources.X.dimensions]]``).
 
 ``compile_expr`` returns the rebuilt tree over ``"s"`` (see ``planner.source``); errors are
 422s whose pointer is the caller's and whose detail names the offending text; unknown columns
@@ -68,16 +68,6 @@ class ExprBuilder(fs._Builder):
         return handler(self, node, depth + 1)
 
     # ---- constructs ----------------------------------------------------------------
-    def _qualified(self, node: exp.Column, depth: int) -> fs._Typed:
-        """``depots.city``: a dimension column (its catalog name is the dotted text)."""
-        if not isinstance(node.this, exp.Identifier) or node.args.get("table") is None:
-            return super().build(node, depth)
-        self._only_args(node, {"this", "table"})
-        table = node.args["table"]
-        name = f"{table.name}.{node.this.name}"
-        quoted = bool(table.args.get("quoted") or node.this.args.get("quoted"))
-        return self._column(exp.Identifier(this=name, quoted=quoted), node)
-
     def _case(self, node: exp.Case, depth: int) -> fs._Typed:
         self._only_args(node, {"this", "ifs", "default"})
         subject = self.build(node.this, depth) if node.this is not None else None
@@ -184,7 +174,7 @@ def _is_typed_literal(node: exp.Cast) -> bool:
 
 
 _HANDLERS = {
-    exp.Column: ExprBuilder._qualified, exp.Case: ExprBuilder._case,
+    exp.Case: ExprBuilder._case,
     exp.Nullif: ExprBuilder._nullif, exp.Cast: ExprBuilder._cast,
     exp.DPipe: ExprBuilder._concat, exp.Replace: ExprBuilder._replace,
     exp.TimestampTrunc: ExprBuilder._date_trunc, exp.DateTrunc: ExprBuilder._date_trunc,

@@ -6,7 +6,8 @@ into a fresh expression tree: nothing of the parsed tree is reused, so a constru
 module does not know cannot reach the engine. What is allowed:
 
 * column references, resolved in the source's catalog and re-created as catalog
-  identifiers (never qualified, never with the text the user typed);
+  identifiers (never qualified, never with the text the user typed); ``depots.city`` is the
+  one name of a dimension column (``[[sources.X.dimensions]]``);
 * literals: numbers, strings (no NUL), ``true``/``false``, ``NULL``, and
   ``DATE '...'`` / ``TIMESTAMP '...'`` (ISO 8601) — each re-created as a typed literal;
 * comparisons (``= <> < <= > >=``, ``IS [NOT] DISTINCT FROM``), ``AND``/``OR``/``NOT``,
@@ -212,6 +213,13 @@ class _Builder:
             return _Typed(exp.Paren(this=t.node), t.kind, t.literal_text)
 
         if isinstance(node, exp.Column):
+            table = node.args.get("table")
+            if isinstance(table, exp.Identifier) and isinstance(node.this, exp.Identifier):
+                # a dimension column: depots.city ([[sources.X.dimensions]]) is one name
+                self._only_args(node, {"this", "table"})
+                quoted = bool(table.args.get("quoted") or node.this.args.get("quoted"))
+                return self._column(exp.Identifier(this=f"{table.name}.{node.this.name}",
+                                                   quoted=quoted), node)
             self._only_args(node, {"this"})
             ident = node.this
             if not isinstance(ident, exp.Identifier):

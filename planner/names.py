@@ -32,6 +32,8 @@ function                    name                            meaning
 ``profile(part)``           ``_sluice_<part>``              a column profile's output / CTE
                                                             (``PROFILE_PARTS``)
 ``dim_alias(i)``            ``_sluice_d<i>``                the i-th joined dimension table
+``expr_column(text)``       ``_sluice_x<digest>``           a request's ``expr`` as a column
+                                                            (its text stays its output name)
 ==========================  ==============================  ==================================
 
 Window columns of a built aggregate are named after their input's name plus ``_r``, ``_c``,
@@ -43,6 +45,8 @@ statement per column, never in the same statement as a chart's names) take their
 """
 
 from __future__ import annotations
+
+import hashlib
 
 #: Prefix of the planner's own columns in a result; the service strips them.
 INTERNAL = "_sluice_"
@@ -172,3 +176,9 @@ def profile(part: str) -> str:
 
 def dim_alias(i: int) -> str:
     return f"{INTERNAL}d{i}"
+
+
+def expr_column(text: str) -> str:
+    """The source-relation column of a request's ``{"expr": text}``: a short identifier (an
+    expr's text may be longer than an engine keeps a name: MariaDB cuts at 256 characters)."""
+    return f"{INTERNAL}x{hashlib.sha256(text.encode('utf-8')).hexdigest()[:16]}"

@@ -65,8 +65,9 @@ class SourceSchema:
     #: rebuilt per dialect by planner.expr_sql when a statement uses them
     computed: dict[str, str] = field(default_factory=dict)
     dimensions: tuple[Dimension, ...] = ()
-    #: a request's ``{"expr": ...}`` terms: internal column name (planner.names.expr_column)
-    #: -> SQL text over every other column (physical, computed, dimension)
+    #: a request's ``{"expr": ...}`` terms: relation column name (planner.names.expr_column)
+    #: -> SQL text over every other column (physical, computed, dimension); in ``columns``
+    #: under their text, as a ColumnInfo of that relation column
     exprs: dict[str, str] = field(default_factory=dict)
     #: the computed and dimension columns this request uses: what ``planner.source.relation``
     #: adds to the table (empty: the plain table)
@@ -95,7 +96,7 @@ class SourceSchema:
         """The table's own columns only (what a computed column may read)."""
         model = self.model_columns()
         return SourceSchema(self.name, self.table,
-                            {n: c for n, c in self.columns.items() if n not in model})
+                            {n: c for n, c in self.columns.items() if c.name not in model})
 
 
 _INTEGER = {

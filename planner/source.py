@@ -121,7 +121,7 @@ def _reads(text: str) -> set[str]:
 def _compiled(schema: SourceSchema, text: str, d: Dialect) -> exp.Expression:
     """A computed column's / expr's rebuilt tree for ``d`` (cached: the text is checked once
     per schema and dialect)."""
-    cols = tuple(c for n, c in schema.columns.items() if n not in schema.exprs)
+    cols = tuple(c for c in schema.columns.values() if c.name not in schema.exprs)
     return _compile(text, schema.name, schema.table, cols, d).copy()
 
 

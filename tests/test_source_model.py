@@ -344,3 +344,32 @@ def test_spark_small(tmp_path):
                   how="left")
     want = df.groupby("label", dropna=False)["v"].sum(min_count=1)
     _same(_as_dict(got["grps.label"], got["sum_x_per_n"]), _as_dict(want.index, want.values))
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_long_expr_with_name(client, frame, engine):
+    """An expr longer than the names engines keep (PostgreSQL 63 bytes, MariaDB 256
+    characters for a column alias); reference: pandas groupby."""
+    key = "CASE WHEN n IS NULL THEN 'no n' WHEN n >= 0 THEN 'zero or more' ELSE 'below zero' END"
+    total = " + ".join(["coalesce(n, 0)"] * 25)
+    assert len(total) > 256 and len(key) > 64
+    got = _rows(_post(client, engine, {"channels": {
+        "x": {"expr": key, "name": "n_sign"}, "y": {"agg": "count"},
+        "size": {"agg": "sum", "expr": total, "name": "total"}}}))
+    n = frame["n"]
+    sign = np.where(n.isna(), "no n", np.where(n.fillna(0) >= 0, "zero or more", "below zero"))
+    ref = pd.DataFrame({"k": sign, "v": n.fillna(0) * 25}).groupby("k")["v"].agg(["size", "sum"])
+    _same(_as_dict(got["n_sign"], got["count"]), _as_dict(ref.index, ref["size"]))
+    _same(_as_dict(got["n_sign"], got["total"]), _as_dict(ref.index, ref["sum"]))
+
+
+@pytest.mark.parametrize("engine", ["duckdb", "mysql"])
+def test_filter_sql_reads_model_columns(client, frame, engine):
+    """filter_sql names dimension (depots.city) and computed columns; reference: pandas."""
+    got = _rows(_post(client, engine, {
+        "channels": {"x": {"column": "grp"}, "y": {"agg": "count"}},
+        "filter_sql": "grps.weight >= 5 OR band = 'high'"}))
+    x = frame["x"].to_numpy(dtype=float, na_value=np.nan)
+    keep = (frame["grps.weight"] >= 5).fillna(False).to_numpy() | (x >= 10)
+    want = frame[keep].groupby("grp", dropna=False).size()
+    _same(_as_dict(got["grp"], got["count"]), _as_dict(want.index, want.values))
