@@ -12,6 +12,7 @@ column names come from ``planner.names``.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 from dataclasses import dataclass
 from typing import Any
@@ -129,6 +130,8 @@ class Measure:
     @property
     def aggregate(self) -> aggregates.Aggregate:
         if self.formula is not None:  # a composite: a double, folds into nothing, no pile
+            if any(aggregates.get(p.agg).approximate for p in self.parts):
+                return dataclasses.replace(COMPOSITE, approximate=True)
             return COMPOSITE
         return aggregates.get(self.spec.agg)
 

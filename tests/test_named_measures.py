@@ -29,6 +29,7 @@ MEASURES = {
     "max_twice_n": "max(n * 2)",
     "x_per_row": "sum(x) / count(*)",  # composites
     "amount_per_n": "sum(amount) / sum(abs(n))",
+    "k_per_row": "approx_count_distinct(k) / count(*)",  # an estimate inside a composite
 }
 
 
@@ -172,7 +173,8 @@ def test_source_lists_its_measures_with_kinds(client):
     kinds = {m["name"]: m["kind"] for m in got}
     # reference: the fixture's declared column types (amount numeric(12,2), n integer)
     assert kinds == {"total_amount": "decimal", "flag_share": "double", "big_n": "integer",
-                     "max_twice_n": "integer", "x_per_row": "double", "amount_per_n": "double"}
+                     "max_twice_n": "integer", "x_per_row": "double", "amount_per_n": "double",
+                     "k_per_row": "double"}
     assert {m["name"]: m["expression"] for m in got} == MEASURES
 
 
@@ -215,6 +217,16 @@ def test_spark_one_case(tmp_path_factory, frame):
         assert data["total_amount"][i] == want[grp]["total_amount"]
         assert _close(data["flag_share"][i], want[grp]["flag_share"])
         assert _close(data["amount_per_n"][i], want[grp]["amount_per_n"])
+
+
+def test_a_composite_with_an_estimate_says_approximate(client, frame):
+    got = _chart(client, {"source": "duckdb", "channels": {
+        "x": {"column": "grp"}, "y": {"measure": "k_per_row"}}})
+    assert got["approximate"] is True
+    want = frame.groupby(frame["grp"].fillna("<NULL>")).apply(  # reference: pandas nunique
+        lambda t: t["k"].nunique() / len(t)).to_dict()
+    for g, v in zip(got["data"]["grp"], got["data"]["k_per_row"]):
+        assert math.isclose(v, want[g if g is not None else "<NULL>"], rel_tol=0.05), g
 
 
 def test_measure_over_a_computed_column(tmp_path, frame):
