@@ -225,6 +225,8 @@ class ChartService:
     def __init__(self, catalog: Catalog) -> None:
         self.catalog = catalog
         self._plans = PlanCache()
+        #: texts of the statements several charts of a batch share (app/batch_sets.py)
+        self.shared_sql = _ByteLRU(8 * 1024 * 1024)
         st = catalog.settings
         self.limiter = Limiter(getattr(st, "limits", None) or Limits(),
                                {n: c.options for n, c in st.sources.items()})
