@@ -29,8 +29,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from planner import names
-from planner.compile import bind_sql, bind_values, count_sql, display_sql, layout_key, prepare
-from planner.emit_sets import combinable, sets_extents, sets_statement
+from planner.compile import (bind_sql, bind_values, combinable, count_sql, display_sql,
+                             layout_key, prepare, sets_extents, sets_statement)
 from planner.errors import PlanError
 from planner.model import ChartRequest
 

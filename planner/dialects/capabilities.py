@@ -85,7 +85,9 @@ class Capabilities:
     scan (planner/emit_sets.py), when ``shared_cte`` also says the engine computes the grouped
     sets once. False: one statement per chart."""
 
-    shared_cte: str | None = field(default=None, metadata=_row("grouping_sets"))
+    shared_cte: str | None = field(default=None, metadata=_internal(
+        "one statement for a batch or one per chart; the answers are the same (it also "
+        "words the grouping_sets cell)"))
     """How a CTE that several parts of one statement read is computed once: "materialized"
     (written ``AS MATERIALIZED``), "engine" (the engine shares it by itself), or None (the
     engine may inline it per reference, so one statement of N charts could scan N times:
