@@ -24,8 +24,8 @@ from app.engines import Engine
 from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
 from app.engines.arrow import conform, key_zone, request_zone
 from planner import names as internal
-from planner.compile import (Plan, bind_sql, bind_values, bins_meta, display_sql, finish,
-                             layout_key, param_shape, prepare)
+from planner.compile import (Plan, bind_sql, bind_values, bins_meta, checked_bins,
+                             display_sql, finish, guarded, layout_key, param_shape, prepare)
 from planner.compile import count_sql as count_sql_of
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
@@ -217,6 +217,15 @@ def _column_meta(c: Any, t: pa.DataType) -> dict[str, Any]:
     return out
 
 
+def _misbinned(raw: pa.Table) -> bool:
+    """Whether the main statement's per-group check of a plain-floor bin index failed
+    (``planner.emit_keys.checkable``: some group holds a value outside its bin)."""
+    name = internal.misbinned()
+    if name not in raw.column_names or raw.num_rows == 0:
+        return False
+    return bool(raw.column(name)[0].as_py())
+
+
 def _ms(t0: float) -> float:
     return round((time.perf_counter() - t0) * 1000.0, 3)
 
@@ -227,6 +236,11 @@ class ChartService:
         self._plans = PlanCache()
         #: texts of the statements several charts of a batch share (app/batch_sets.py)
         self.shared_sql = _ByteLRU(8 * 1024 * 1024)
+        #: checked plain-floor bins (planner.compile.checked_bins) that missed an edge on a
+        #: source: (source, column, width) -> later layouts of them run the guarded form at
+        #: once; and the guarded plans by checked main statement (both bounded)
+        self._guard_bins: set[tuple[str, str, float]] = set()
+        self._guarded: dict[str, tuple[Plan, str]] = {}
         st = catalog.settings
         self.limiter = Limiter(getattr(st, "limits", None) or Limits(),
                                {n: c.options for n, c in st.sources.items()})
@@ -330,10 +344,21 @@ class ChartService:
                 self._plans.remember_extents(entry, extents_sql, args, row)
         t2 = time.perf_counter()
         plan, main_sql = self._plans.finished(prep, entry, row)
+        checked = [(req.source, *c) for c in checked_bins(plan)]
+        if checked and any(c in self._guard_bins for c in checked):
+            plan, main_sql = self._guarded_plan(main_sql, plan)  # missed before: guarded
         plan_more = _ms(t2)
         statements.append(display_sql(main_sql))
         sql, args = bind_sql(main_sql, values, style)
         raw = engine.execute(sql, args)
+        if _misbinned(raw):  # the checked plain floor missed an edge: the guarded form
+            if len(self._guard_bins) >= 4096:
+                self._guard_bins.clear()
+            self._guard_bins.update(checked)
+            plan, main_sql = self._guarded_plan(main_sql, plan)
+            statements.append(display_sql(main_sql))
+            sql, args = bind_sql(main_sql, values, style)
+            raw = engine.execute(sql, args)
         extra = None
         if raw.num_rows == 0:
             count_sql = count_sql_of(plan)
@@ -346,6 +371,17 @@ class ChartService:
         table, meta = self._shape(plan, entry, raw, extra, statements)
         timing["shape"] = _ms(t3)
         return ChartResult(plan, entry, table, meta, timing)
+
+    def _guarded_plan(self, main_sql: str, plan: Plan) -> tuple[Plan, str]:
+        """``planner.compile.guarded(plan)`` and its text, kept by the checked statement's
+        text (the text is what is reused; the trees are big)."""
+        hit = self._guarded.get(main_sql)
+        if hit is None:
+            if len(self._guarded) >= 256:
+                self._guarded.clear()
+            g = guarded(plan)
+            hit = self._guarded[main_sql] = (dataclasses.replace(g, main=None), g.main_sql)
+        return hit
 
     def _bins(self, plan: Plan) -> dict[str, Any]:
         out = bins_meta(plan)

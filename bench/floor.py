@@ -29,6 +29,9 @@ DOUBLE column, as hand-written grouped counts:
   cand_index_clamp  guard, clamped on the guarded index         (the planner before)
   cand_value_clamp  guard, clamped on v against the first/last edge (the planner now)
   cand_bool_clamp   the guard as CAST(comparison AS INTEGER) sums, clamped on v
+  cand_checked      the plain floor clamped on v, with each group's min / max value (the
+                    checked plain floor, planner/emit_checked.py: the service re-runs the
+                    guarded form only when a group holds a value outside its bin)
 
 ``cand_equal`` says whether each answer equals cand_index_clamp's (the exact reference).
 """
@@ -125,7 +128,10 @@ def candidates(con: Any) -> dict[str, str]:
     keys = {"cand_plain": finite(i0), "cand_index_clamp": finite(index_clamp(case_guard)),
             "cand_value_clamp": finite(value_clamp(case_guard)),
             "cand_bool_clamp": finite(value_clamp(bool_guard))}
-    return {name: hand.format(k=k) for name, k in keys.items()}
+    out = {name: hand.format(k=k) for name, k in keys.items()}
+    out["cand_checked"] = (f"SELECT {finite(value_clamp(i0))} AS k, count(*) AS n, min({v}) AS vmin, "
+                           f"max({v}) AS vmax FROM deliveries AS s GROUP BY 1 ORDER BY 1 NULLS LAST")
+    return out
 
 
 def measure(con: Any, qs: dict[str, str], runs: int = RUNS) -> dict[str, Any]:
@@ -143,7 +149,7 @@ def measure(con: Any, qs: dict[str, str], runs: int = RUNS) -> dict[str, Any]:
     def counts(name: str) -> list[tuple]:
         t = answers[name]
         if name.startswith(("hand", "cand")):
-            return [(r["k"], r["n"]) for r in t.to_pylist()]
+            return [(r["k"], r["n"]) for r in t.select(["k", "n"]).to_pylist()]
         return [(r["x_lo"], r["count"]) for r in t.to_pylist()]
 
     hand = ([((None if k is None else ORIGIN + k * WIDTH), n) for k, n in counts("hand_plain")]

@@ -53,6 +53,7 @@ from sqlglot import exp
 from planner import m4, names
 from planner.bind import bind
 from planner.dialects.base import Dialect
+from planner.emit_checked import checkable
 from planner.emit_extents import _extents_statement
 from planner.emit_keys import _outside_expr, _unguarded_index
 from planner.emit_main import _main_statement
@@ -79,7 +80,7 @@ def count_sql(plan: Plan) -> str:
             sel.append(exp.alias_(exp.Sum(this=flag), k.outside_flag, quoted=True))
     q = exp.select(*sel).from_(relation(plan.schema, d))
     if plan.where is not None:
-        q = q.where(plan.where)
+        q = q.where(plan.where, copy=False)
     return d.render(q)
 
 
@@ -91,6 +92,22 @@ def finish(plan: Plan, extents_row: dict[str, Any] | None = None) -> Plan:
         return dataclasses.replace(plan, reduced_row=row, main=m4.main_statement(plan, row))
     laid = lay_out(plan, row)
     return dataclasses.replace(laid, main=_main_statement(laid))
+
+
+def guarded(plan: Plan) -> Plan:
+    """A finished plan whose main statement writes every numeric bin index with its
+    floating-point guard: run when the checked plain floor's flag (``names.misbinned``)
+    says some group's values do not all lie in its bin (``planner.emit_keys.checkable``)."""
+    return dataclasses.replace(plan, main=_main_statement(plan, guard=True))
+
+
+def checked_bins(plan: Plan) -> tuple[tuple[str, float], ...]:
+    """(column, width) of each numeric key of a finished plan whose bin index is the checked
+    plain floor (``planner.emit_checked.checkable``): data whose values sit on a width's edges
+    (prices in cents, widths of 0.1) fail the check for every layout of that width, so the
+    service remembers these and asks ``guarded`` at once."""
+    return tuple((k.col.name, k.nbins.width) for k in plan.keys
+                 if checkable(plan.dialect, k) and k.nbins is not None)
 
 
 def layout_key(plan: Plan, extents_row: dict[str, Any] | None = None,

@@ -62,7 +62,7 @@ def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
     order = binned + others
     q = exp.select(*[_ref(k.internal) for k in order]).from_(sources[0])
     for s in sources[1:]:
-        q = q.join(s, join_type="cross")
+        q = q.join(s, join_type="cross", copy=False)
     gname = names.cte("grid")
     ctes.append((gname, q))
     # The grid's rows and the data's rows, grouped by the keys (NULLs group together, like a
@@ -72,6 +72,8 @@ def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
     has = names.has_data()
     n, matched = names.rows(), names.matched()
     outs = [names.outside_count(k.index) for k in flags]
+    if any(k.checked for k in plan.keys):  # the checked floor's flag (planner.emit_checked)
+        outs.append(names.misbinned())
     keys = [k.internal for k in plan.keys]
     data = exp.select(*[_ref(c) for c in keys], *[_ref(m.internal) for m in plan.measures],
                       _ref(n), _ref(matched), *[_ref(o) for o in outs],
@@ -90,11 +92,11 @@ def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
     for m in plan.measures:  # one data row per cell at most: MAX returns its value unchanged
         dense = dense.select(exp.alias_(exp.Case(ifs=[exp.If(this=missing.copy(), true=fill.copy())],
                                                  default=exp.Max(this=_ref(m.internal))),
-                                        m.internal, quoted=True))
+                                        m.internal, quoted=True), copy=False)
     dense = dense.select(exp.alias_(exp.Sum(this=_ref(n)), n, quoted=True),
                          exp.alias_(exp.Max(this=_ref(matched)), matched, quoted=True),
-                         *[exp.alias_(exp.Max(this=_ref(o)), o, quoted=True) for o in outs])
-    dense = dense.group_by(*[_ref(c) for c in keys])
+                         *[exp.alias_(exp.Max(this=_ref(o)), o, quoted=True) for o in outs], copy=False)
+    dense = dense.group_by(*[_ref(c) for c in keys], copy=False)
     name = names.cte("dense")
     ctes.append((name, dense))
     return name

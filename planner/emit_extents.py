@@ -77,9 +77,9 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
     if windows:  # the source rows with their window columns, still called "s"
         inner = exp.select(*_columns_of(*sel), *windows).from_(src)
         if plan.where is not None:
-            inner = inner.where(plan.where.copy())
+            inner = inner.where(plan.where.copy(), copy=False)
         return exp.select(*sel).from_(exp.alias_(exp.Subquery(this=inner), "s", quoted=True))
     q = exp.select(*sel).from_(src)
     if plan.where is not None:
-        q = q.where(plan.where.copy())
+        q = q.where(plan.where.copy(), copy=False)
     return q

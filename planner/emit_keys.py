@@ -108,6 +108,17 @@ def _nbin_index(d: Dialect, k: Key, v: exp.Expression) -> exp.Expression:
     b = k.nbins
     assert b is not None
     start, width = d.real(b.start), d.real(b.width)
+    if k.checked:  # the plain floor, its groups verified after execution (checkable)
+        q = v.copy() if b.start == 0.0 else exp.Paren(this=exp.Sub(this=v.copy(),
+                                                                   expression=start.copy()))
+        idx = d.floor(exp.Div(this=q, expression=width.copy()))
+        if b.count is None:
+            return idx
+        return exp.Case(ifs=[  # the closed last bin, and values below a snapped start
+            exp.If(this=exp.GTE(this=v.copy(), expression=d.real(
+                b.start + float(b.count) * b.width)), true=d.number(b.count - 1)),
+            exp.If(this=exp.LT(this=v.copy(), expression=start.copy()),
+                   true=exp.Literal.number(0))], default=idx)
     unguarded = _unguarded_index(d, k)
     if unguarded is not None:
         fast, closed = unguarded
@@ -166,6 +177,17 @@ def _unguarded_index(d: Dialect, k: Key) -> tuple[float, bool] | None:
             and _integer_floor_is_exact(b, k.vrange):
         return b.start + float(b.count) * b.width, True
     return None
+
+
+def _nbin_edges(d: Dialect, k: Key, v: exp.Expression) -> tuple[exp.Expression, exp.Expression]:
+    """The bin start and end of numeric bin number ``v`` (the answer's ``_lo`` / ``_hi``)."""
+    b = k.nbins
+    assert b is not None
+    lo = exp.Add(this=d.real(b.start), expression=exp.Mul(this=v, expression=d.real(b.width)))
+    hi = exp.Add(this=d.real(b.start), expression=exp.Mul(
+        this=exp.Paren(this=exp.Add(this=v.copy(), expression=exp.Literal.number(1))),
+        expression=d.real(b.width)))
+    return lo, hi
 
 
 SUB_DAY_UNITS = ("hour", "minute", "second")
@@ -315,12 +337,7 @@ def _key_outputs(d: Dialect, k: Key) -> list[exp.Expression]:
     """Output columns of a key, computed from its internal grouping value."""
     v = _ref(k.internal)
     if k.mode == "nbin":
-        b = k.nbins
-        assert b is not None
-        lo = exp.Add(this=d.real(b.start), expression=exp.Mul(this=v, expression=d.real(b.width)))
-        hi = exp.Add(this=d.real(b.start), expression=exp.Mul(
-            this=exp.Paren(this=exp.Add(this=v.copy(), expression=exp.Literal.number(1))),
-            expression=d.real(b.width)))
+        lo, hi = _nbin_edges(d, k, v)
         return [exp.alias_(lo, k.names[0], quoted=True), exp.alias_(hi, k.names[1], quoted=True)]
     if k.mode == "tbin":
         step = k.tstep

@@ -16,11 +16,14 @@ CTE names come from ``planner.names.cte``. In: a laid-out ``Plan``; out: ``exp.S
 
 from __future__ import annotations
 
+import dataclasses
+
 from sqlglot import exp
 
 from planner import names
 from planner.dialects.base import Dialect
 from planner.emit_dense import _dense
+from planner.emit_checked import bin_value, checkable, misbinned_expr
 from planner.emit_keys import _instant_in_range, _key_expr, _key_outputs, _outside_expr
 from planner.emit_measures import _measure_agg, _measure_input, _window_columns
 from planner.emit_sql import _ref, _table
@@ -29,12 +32,18 @@ from planner.plan import Key, Plan
 from planner.source import relation
 
 
-def _main_statement(plan: Plan) -> exp.Select:
+def _main_statement(plan: Plan, guard: bool = False) -> exp.Select:
     """The main statement: the stages' CTEs, then the outer SELECT (facet cap, ORDER BY,
-    LIMIT). Each stage appends its CTEs to ``ctes`` and returns the name of the last one."""
+    LIMIT). Each stage appends its CTEs to ``ctes`` and returns the name of the last one.
+    Numeric bins over an unknown range get the checked plain floor (``checkable``) unless
+    ``guard`` (the statement the service runs when the check failed) or a top-N fold
+    re-groups the rows."""
     d, req = plan.dialect, plan.request
     ctes: list[tuple[str, exp.Expression]] = []
     fold = _fold_after_grouping(plan)
+    if not guard and not fold and any(checkable(d, k) for k in plan.keys):
+        plan = dataclasses.replace(plan, keys=tuple(
+            dataclasses.replace(k, checked=True) if checkable(d, k) else k for k in plan.keys))
     flags = _base(plan, ctes, fold)
     group_cols = [k.internal for k in plan.keys] + [k.outside_flag for k in flags]
     current = _grouped(plan, ctes, group_cols, fold)
@@ -46,11 +55,11 @@ def _main_statement(plan: Plan) -> exp.Select:
 
     outer = exp.select(exp.Star()).from_(_table(names.cte("final")))
     if cap is not None:
-        outer = outer.where(exp.LTE(this=_ref(names.facet_rank()), expression=d.number(cap)))
+        outer = outer.where(exp.LTE(this=_ref(names.facet_rank()), expression=d.number(cap)), copy=False)
     terms = _sort_terms(plan, internal=False)
     if terms:
-        outer = outer.order_by(*terms)
-    outer = outer.limit(d.number(req.limit))
+        outer = outer.order_by(*terms, copy=False)
+    outer = outer.limit(d.number(req.limit), copy=False)
     for name, q in ctes:
         outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q, copy=False)
     return outer
@@ -75,22 +84,25 @@ def _base(plan: Plan, ctes: list, fold: bool) -> list[Key]:
             key_value = _top_key_expr(d, k, rank_name)
         else:
             key_value = _key_expr(d, k)
-        base = base.select(exp.alias_(key_value, k.internal, quoted=True))
+        base = base.select(exp.alias_(key_value, k.internal, quoted=True), copy=False)
+    for k in keys:
+        if k.checked:  # the value itself, for the per-group check (emit_keys.checkable)
+            base = base.select(exp.alias_(bin_value(d, k), names.value(k.index), quoted=True), copy=False)
     flags = []
     for k in keys:
         flag = _outside_expr(d, k)
         if flag is not None:
             flags.append(k)
-            base = base.select(exp.alias_(flag, k.outside_flag, quoted=True))
+            base = base.select(exp.alias_(flag, k.outside_flag, quoted=True), copy=False)
     for m in measures:
         arg = _measure_input(d, m) if m.has_input else exp.Null()
         if m.col is not None and m.col.is_temporal and m.aggregate.output == "input":
             arg = _instant_in_range(d, m.col, arg)  # the same instants a time key shows
-        base = base.select(exp.alias_(arg, names.measure_input(m.index), quoted=True))
+        base = base.select(exp.alias_(arg, names.measure_input(m.index), quoted=True), copy=False)
     if not keys and not measures:  # pragma: no cover - the model requires a channel
-        base = base.select(exp.Literal.number(1))
+        base = base.select(exp.Literal.number(1), copy=False)
     if plan.where is not None:
-        base = base.where(plan.where.copy())
+        base = base.where(plan.where.copy(), copy=False)
     ctes.append((names.cte("base"), base))
     return flags
 
@@ -116,7 +128,7 @@ def _grouped(plan: Plan, ctes: list, group_cols: list[str], fold: bool) -> str:
                 exp.alias_(exp.Sum(this=d.double(arg)), names.measure_partial(m.index, "sum"),
                            quoted=True),
                 exp.alias_(exp.Count(this=arg.copy()), names.measure_partial(m.index, "cnt"),
-                           quoted=True))
+                           quoted=True), copy=False)
             continue
         agg = _measure_agg(d, m.spec.agg, arg, m.spec.q, names.measure_input(m.index))
         if (m.aggregate.built == "quantile" and m.col is not None and m.col.kind == "integer"
@@ -125,10 +137,16 @@ def _grouped(plan: Plan, ctes: list, group_cols: list[str], fold: bool) -> str:
             # integers instead of their DOUBLE casts is ~1.5x faster (10M rows, DuckDB 2.0)
             agg = agg.transform(lambda n: n.this if isinstance(n, exp.Cast)
                                 and n.this == arg else n)
-        grouped = grouped.select(exp.alias_(agg, m.internal, quoted=True))
-    grouped = grouped.select(exp.alias_(exp.Count(this=exp.Star()), names.rows(), quoted=True))
+        grouped = grouped.select(exp.alias_(agg, m.internal, quoted=True), copy=False)
+    grouped = grouped.select(exp.alias_(exp.Count(this=exp.Star()), names.rows(), quoted=True), copy=False)
+    for k in plan.keys:
+        if k.checked:
+            v = _ref(names.value(k.index))
+            grouped = grouped.select(
+                exp.alias_(exp.Min(this=v), names.value_range(k.index, "min"), quoted=True),
+                exp.alias_(exp.Max(this=v.copy()), names.value_range(k.index, "max"), quoted=True), copy=False)
     if group_cols:
-        grouped = grouped.group_by(*[_ref(c) for c in group_cols])
+        grouped = grouped.group_by(*[_ref(c) for c in group_cols], copy=False)
     pairs = _distinct_pairs(d, grouped, rows_name, group_cols)
     if pairs is not None:
         ctes.append((names.cte("pairs"), pairs[0]))
@@ -144,13 +162,17 @@ def _counted(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
     with outside-limit flags, kept (the groups inside the limits)."""
     counted = exp.select(exp.Star()).from_(_table(current))
     counted = counted.select(exp.alias_(_over_all(exp.Sum(this=_ref(names.rows()))),
-                                        names.matched(), quoted=True))
+                                        names.matched(), quoted=True), copy=False)
     for k in flags:
         cnt = exp.Sum(this=exp.Case(ifs=[exp.If(
             this=exp.EQ(this=_ref(k.outside_flag), expression=exp.Literal.number(1)),
             true=_ref(names.rows()))], default=exp.Literal.number(0)))
         counted = counted.select(exp.alias_(_over_all(cnt), names.outside_count(k.index),
-                                            quoted=True))
+                                            quoted=True), copy=False)
+    checked = [k for k in plan.keys if k.checked]
+    if checked:  # over every group, before limits, caps and LIMIT drop any
+        counted = counted.select(exp.alias_(misbinned_expr(plan.dialect, checked),
+                                            names.misbinned(), quoted=True), copy=False)
     ctes.append((names.cte("counted"), counted))
     current = names.cte("counted")
     if flags:
@@ -167,24 +189,27 @@ def _final(plan: Plan, ctes: list, current: str, flags: list[Key], cap: int | No
     d, keys = plan.dialect, plan.keys
     final = exp.select().from_(_table(current))
     for k in keys:
-        final = final.select(*_key_outputs(d, k))
+        final = final.select(*_key_outputs(d, k), copy=False)
     for m in plan.measures:
-        final = final.select(exp.alias_(_ref(m.internal), m.name, quoted=True))
+        final = final.select(exp.alias_(_ref(m.internal), m.name, quoted=True), copy=False)
     if plan.stack_measure is not None:
-        final = final.select(*_stack_columns(plan))
+        final = final.select(*_stack_columns(plan), copy=False)
     final = final.select(
         exp.alias_(_ref(names.rows()), names.rows(), quoted=True),
         exp.alias_(_over_all(exp.Max(this=_ref(names.matched()))), names.matched(), quoted=True),
-        exp.alias_(_over_all(exp.Count(this=exp.Star())), names.groups(), quoted=True))
+        exp.alias_(_over_all(exp.Count(this=exp.Star())), names.groups(), quoted=True), copy=False)
     for k in flags:
         final = final.select(exp.alias_(_over_all(exp.Max(this=_ref(names.outside_count(k.index)))),
-                                        names.outside_count(k.index), quoted=True))
+                                        names.outside_count(k.index), quoted=True), copy=False)
+    if any(k.checked for k in keys):  # (empty cells of the dense grid carry NULL)
+        final = final.select(exp.alias_(_over_all(exp.Max(this=_ref(names.misbinned()))),
+                                        names.misbinned(), quoted=True), copy=False)
     if cap is not None:
         facet_keys = [k for k in keys if k.channel in ("row", "col")]
         rank = exp.Window(this=exp.RowNumber(),
                           partition_by=[_ref(k.internal) for k in facet_keys] or None,
                           order=exp.Order(expressions=_sort_terms(plan, internal=True)))
-        final = final.select(exp.alias_(rank, names.facet_rank(), quoted=True))
+        final = final.select(exp.alias_(rank, names.facet_rank(), quoted=True), copy=False)
     ctes.append((names.cte("final"), final))
     return names.cte("final")
 
@@ -228,7 +253,7 @@ def _distinct_pairs(d: Dialect, grouped: exp.Select, rows_name: str, group_cols:
             agg: exp.Expression = d.bigint(exp.Sum(this=_ref(n)))  # COUNT(*)'s type
         else:
             agg = exp.Count(this=arg.copy())
-        out = out.select(exp.alias_(agg, e.alias, quoted=True))
+        out = out.select(exp.alias_(agg, e.alias, quoted=True), copy=False)
     return pairs, out.group_by(*[k.copy() for k in keys])
 
 

@@ -17,7 +17,9 @@ Discovery 1(1), 1997)::
     spine     one row per chart; each chart's rows LEFT JOINed to its spine row, so every
               column keeps the type it has when the chart is asked alone
 
-The answer of chart i is the rows whose ``chart()`` is i, ordered by its order column,
+Numeric bins keep the exact (proven plain or guarded) index: never the checked plain
+floor of planner/emit_checked.py, whose miss would need a second run of the whole
+statement. The answer of chart i is the rows whose ``chart()`` is i, ordered by its order column,
 with its columns renamed back (``Shared.columns``): the table its own main statement gives.
 Only shapes whose stages after grouping are counted / kept / final qualify (``combinable``);
 the others (top-N, empty_bins, built quantiles / deviations, count_distinct, M4) run as

@@ -45,7 +45,7 @@ def _top_cte(plan: Plan, k: Key) -> exp.Select:
     q = (exp.select(exp.alias_(ref.copy(), "v", quoted=True), exp.alias_(rank, "r", quoted=True))
          .from_(src).group_by(ref.copy()))
     if where:
-        q = q.where(exp.and_(*where))
+        q = q.where(exp.and_(*where), copy=False)
     return q
 
 
@@ -127,15 +127,15 @@ def _fold_top(plan: Plan, ctes: list, group_cols: list[str]) -> str:
                            names.measure_partial(m.index, "cnt")] if m.aggregate.fold == "mean"
                           else [m.internal])] + [names.rows()]
     folded = folded.select(*[exp.alias_(e, c, quoted=True) for e, c in zip(outs, group_cols)],
-                           *[_ref(c, "g") for c in partials])
+                           *[_ref(c, "g") for c in partials], copy=False)
     relabelled = names.cte("relabelled")
     ctes.append((relabelled, folded))
     out = exp.select(*[_ref(c) for c in group_cols]).from_(_table(relabelled))
     for m in plan.measures:
-        out = out.select(exp.alias_(_refold(m, None), m.internal, quoted=True))
-    out = out.select(exp.alias_(exp.Sum(this=_ref(names.rows())), names.rows(), quoted=True))
+        out = out.select(exp.alias_(_refold(m, None), m.internal, quoted=True), copy=False)
+    out = out.select(exp.alias_(exp.Sum(this=_ref(names.rows())), names.rows(), quoted=True), copy=False)
     if group_cols:
-        out = out.group_by(*[_ref(c) for c in group_cols])
+        out = out.group_by(*[_ref(c) for c in group_cols], copy=False)
     name = names.cte("folded")
     ctes.append((name, out))
     return name

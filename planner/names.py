@@ -89,6 +89,21 @@ def rows() -> str:
     return f"{INTERNAL}n"
 
 
+def value(i: int) -> str:
+    """Key i's DOUBLE value per source row, for the checked floor (planner.emit_keys)."""
+    return f"{INTERNAL}v{i}"
+
+
+def value_range(i: int, end: str) -> str:
+    """``value_range(i, "min")`` / ``"max"``: key i's smallest / largest value per group."""
+    return f"{INTERNAL}v{i}_{end}"
+
+
+def misbinned() -> str:
+    """1 when some group's values do not all lie in its bin (the checked floor missed)."""
+    return f"{INTERNAL}misbinned"
+
+
 def m4(part: str) -> str:
     return f"{INTERNAL}m4_{part}"
 

@@ -48,6 +48,9 @@ class Key:
     tlimits: tuple[dt.datetime, dt.datetime] | None = None
     #: time bins: the stop instant of a closed last bin (values equal to it go into it)
     tclosed: dt.datetime | None = None
+    #: numeric bins over an unknown range written as the plain floor, verified per group
+    #: after execution (``planner.emit_keys.checked_keys``); set by the emit stage only
+    checked: bool = False
 
     @property
     def label(self) -> str:
