@@ -32,6 +32,7 @@ function                    name                            meaning
 ``sets_column(j)``          ``_sluice_g<j>``                grouping-sets statement: column j of
                                                             the shared rows / groups
 ``set_id()``                ``_sluice_set``                 the GROUPING() bits of a group
+``sets(j)``                 ``_sluice_sets<j>``             grouping j of a grouping-sets statement
 ``chart()``                 ``_sluice_chart``               which chart a row of a shared
                                                             statement answers
 ``chart_cte(i, stage)``     ``_sluice_c<i>_<stage>``        chart i's CTE in a shared statement
@@ -168,6 +169,11 @@ def profile(part: str) -> str:
 def sets_column(j: int) -> str:
     """Column j of a grouping-sets statement's shared rows and groups (planner.emit_sets)."""
     return f"{INTERNAL}g{j}"
+
+
+def sets(j: int) -> str:
+    """Grouping j of a grouping-sets statement (planner.emit_sets)."""
+    return f"{cte('sets')}{j}"
 
 
 def set_id() -> str:
