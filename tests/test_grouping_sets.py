@@ -226,7 +226,7 @@ def test_empty_shared_answer_has_the_totals_of_the_chart_alone(client):
 
 
 def test_spark_shared_statement(tmp_path_factory, monkeypatch):
-    """Spark SQL (local mode): two charts under one filter, one GROUPING SETS statement,
+    """Spark SQL (local mode): three charts under one filter, one statement (GROUPING SETS),
     each equal to the chart alone (reference: Spark running each chart's own statement)."""
     from app.main import create_app
     from app.settings import parse_settings
@@ -236,7 +236,8 @@ def test_spark_shared_statement(tmp_path_factory, monkeypatch):
     src["table"] = "sluice_gsets"
     app = create_app(parse_settings({"sources": {"spark": src}}, "<grouping sets spark>"))
     body = {"source": "spark", "tz": "UTC", "where": [{"column": "n", "gte": -10}],
-            "charts": [CHARTS[2], CHARTS[3]]}
+            "charts": [CHARTS[2], CHARTS[3], {"id": "grp", "channels": {
+                "x": {"column": "grp"}, "y": {"agg": "count"}, "size": {"agg": "avg", "column": "x"}}}]}
     with TestClient(app, raise_server_exceptions=False) as c:
         count = Counter(monkeypatch, c.app.state.catalog.engine("spark"))
         r = c.post("/v1/batch", json=body)
@@ -244,7 +245,10 @@ def test_spark_shared_statement(tmp_path_factory, monkeypatch):
         monkeypatch.undo()
         assert r.status_code == 200, r.text
         results = r.json()["results"]
-        assert len(executed) == (1 if _shares(c, "spark") else 2)
+        shares = _shares(c, "spark")
+        assert len(executed) == (1 if shares else 3)
+        # cat and grp have the same aggregates: one GROUPING SETS grouping of the two
+        assert ("GROUPING SETS" in results[0]["sql"][-1]) == shares
         for chart, res in zip(body["charts"], results):
             assert "status" not in res, res
             assert _same(res) == _same(_alone(c, body, chart))
