@@ -9,6 +9,7 @@ Config::
     name = "dashboards"                           # optional, shows in logs only
     hash = "sha256:9f86d08..."                    # or a bare 64-hex sha256, or pbkdf2 (below)
     sources = ["deliveries"]                      # or ["*"] for every source
+    rows = { deliveries = "region = 'North'" }    # optional: only these rows (below)
 
 With no ``[[keys]]`` the API is open (a local tool). With keys, every route but the probes
 and the docs (``/healthz``, ``/readyz``, ``/docs``, ``/openapi.json``, ``/``, ``/static``) needs
@@ -32,6 +33,17 @@ checks one key at a time, so many connections from one address cannot occupy eve
 thread. The
 client is the connection's address (behind a reverse proxy, let uvicorn take it from
 ``X-Forwarded-For``: ``forwarded_allow_ips``). ``/healthz`` never looks at keys.
+
+**Row conditions** (``rows``, a table of source name -> condition): the key reads only the
+rows of that source where the condition holds. The condition is written like ``filter_sql``
+and passes its allow-list (``planner.filter_sql``); offset-less instants in it are UTC. It
+is ANDed into the FROM of every statement the key causes (``planner.source.relation``):
+charts, batches, extents, ``/v1/sql``, column profiles, row counts (``row_count`` of
+``/v1/sources/{name}``, ``stats.source_rows``); ``/readyz`` shows such a key no row count.
+The config check reads the text (one condition, no comments or ``;``) and needs the source
+granted to the key; its columns and types are checked when the source is introspected
+(start-up, each new data version): a condition that does not fit is logged, and the key's
+requests to that source answer 503 ``row-condition-invalid`` (never the unfiltered rows).
 
 ``/metrics`` shows every source's name and counters, so with keys configured it needs an
 **operator key** (``operator = true`` in its ``[[keys]]`` table); any other key gets a 403.
@@ -74,6 +86,9 @@ class ApiKey:
     sources: tuple[str, ...]
     name: str = ""
     operator: bool = False  # may read /metrics
+    #: (source, row condition) pairs: the rows this key may read of those sources
+    rows: tuple[tuple[str, str], ...] = ()
+    index: int = -1  # position in [[keys]] (config errors name it)
 
     def grants(self, source: str) -> bool:
         return "*" in self.sources or source in self.sources
@@ -89,9 +104,18 @@ class Grant:
     #: which configured key this is (its stored hash; "" without keys): names may repeat,
     #: and app.sessions keeps the sessions of different keys apart by it
     key: str = field(default="", repr=False)
+    #: the key's row conditions, (source, condition text) pairs (``[[keys]] rows``)
+    rows: tuple[tuple[str, str], ...] = ()
 
     def allows(self, source: str) -> bool:
         return self.sources is None or "*" in self.sources or source in self.sources
+
+    def rows_for(self, source: str) -> str | None:
+        """The row condition this key reads ``source`` under (None: every row)."""
+        for name, cond in self.rows:
+            if name == source:
+                return cond
+        return None
 
 
 OPEN = Grant()
@@ -115,6 +139,11 @@ def require(source: str, ptr: str | None = "/source") -> None:
     if not g.allows(source):
         raise Problem(403, "forbidden-source", "Source not granted",
                       f"this API key is not granted source {source!r}", ptr)
+
+
+def rows_for(source: str) -> str | None:
+    """The calling key's row condition on ``source`` (None: every row)."""
+    return current().rows_for(source)
 
 
 def filter_names(names: Iterable[str]) -> list[str]:
@@ -166,10 +195,10 @@ def parse_keys(raw: Any, sources: Iterable[str],
         key = ("keys", str(i))
         if not isinstance(k, dict):
             raise fail(key, "must be a table with hash and sources", "write [[keys]] then hash = ...")
-        extra = set(k) - {"hash", "sources", "name", "operator"}
+        extra = set(k) - {"hash", "sources", "name", "operator", "rows"}
         if extra:
             raise fail(key + (sorted(extra)[0],), "unknown key",
-                       "valid keys: hash, sources, name, operator")
+                       "valid keys: hash, sources, name, operator, rows")
         h = k.get("hash")
         if not isinstance(h, str) or not _valid_hash(h.strip().lower()):
             raise fail(key + ("hash",), "is missing or not a hash",
@@ -190,10 +219,45 @@ def parse_keys(raw: Any, sources: Iterable[str],
         if not isinstance(operator, bool):
             raise fail(key + ("operator",), "must be true or false",
                        "operator = true lets this key read /metrics")
+        rows = _parse_rows(k.get("rows"), srcs, known, key, fail)
         h = h.strip()
         h = h if h.startswith("pbkdf2_sha256$") else h.lower()
-        out.append(ApiKey(h, tuple(srcs), name, operator))
+        out.append(ApiKey(h, tuple(srcs), name, operator, rows, i))
     return out
+
+
+def _parse_rows(raw: Any, granted: list[str], known: set[str], key: tuple[str, ...],
+                fail: Callable[[tuple[str, ...], str, str | None], Exception]
+                ) -> tuple[tuple[str, str], ...]:
+    """``rows = { source = "condition" }``: each source known and granted, each condition
+    one condition of the filter_sql allow-list as far as it can be read without the source's
+    columns (those are checked at introspection: app.catalog)."""
+    from planner.errors import PlanError
+    from planner.filter_sql import parse_filter_sql
+
+    if raw is None:
+        return ()
+    example = "rows = { deliveries = \"region = 'North'\" }"
+    if not isinstance(raw, dict) or not raw:
+        raise fail(key + ("rows",), "must be a table of source name = condition", example)
+    out = []
+    for src, cond in raw.items():
+        at = key + ("rows", src)
+        if src not in known:
+            raise fail(at, f"names unknown source {src!r}", f"known sources: {', '.join(sorted(known))}")
+        if "*" not in granted and src not in granted:
+            raise fail(at, f"source {src!r} is not in this key's sources",
+                       "add it to sources or remove it from rows")
+        if not isinstance(cond, str) or not cond.strip():
+            raise fail(at, "must be a non-empty condition (text)", example)
+        try:
+            parse_filter_sql(cond)
+        except PlanError as e:
+            raise fail(at, f"is not a condition sluice accepts: {e.detail}",
+                       "write it like filter_sql: columns, literals, comparisons, AND/OR/NOT, "
+                       "IN, BETWEEN, LIKE (README: filter_sql)") from None
+        out.append((src, cond.strip()))
+    return tuple(out)
 
 
 def parse_cors(raw: Any, fail: Callable[[tuple[str, ...], str, str | None], Exception]) -> list[str]:
@@ -272,7 +336,8 @@ class KeyRing:
         if match is None:
             self._bad.put(fp, True)
             return None
-        grant = Grant(match.name, frozenset(match.sources), match.operator, match.hash)
+        grant = Grant(match.name, frozenset(match.sources), match.operator, match.hash,
+                      match.rows)
         self._good.put(fp, grant)
         return grant
 

@@ -7,7 +7,9 @@ Why it looks like this:
   to one entry. The second part is ``engine.data_version()``: file identity (inode, size,
   mtime) for DuckDB, so a rebuilt file is never answered from old entries; a TTL bucket for
   server engines (their module decides). The third part is the representation (``json`` /
-  ``arrow``), because what is cached is the encoded body.
+  ``arrow``), because what is cached is the encoded body. A fourth part, the calling API
+  key's row condition on the source (``[[keys]] rows``), keeps keys that see different rows
+  apart; the shared cache's digest covers every part.
 * **Encoded bytes.** A hit must cost ~nothing, so the JSON body is stored *without* its
   ``cache`` and ``timing_ms`` members and these are appended on the way out (``stamp``): one
   bytes concatenation, no re-encoding.
@@ -124,8 +126,13 @@ class ResultCache:
 
     # ---- keys ----------------------------------------------------------------------------
     @staticmethod
-    def key(canonical_request: bytes, data_version: str, variant: str = "json") -> tuple:
-        return (canonical_request, data_version, variant)
+    def key(canonical_request: bytes, data_version: str, variant: str = "json",
+            rows: str | None = None) -> tuple:
+        """``rows``: the API key's row condition on the source (app.auth), a fourth part
+        only when there is one, so keys without conditions keep their keys (and shared
+        entries) as they were."""
+        base = (canonical_request, data_version, variant)
+        return base if rows is None else base + (rows,)
 
     # ---- LRU -----------------------------------------------------------------------------
     @property

@@ -7,10 +7,18 @@ changes, so a request costs no catalog round trip.
 File engines that can tell their file was replaced or removed (``stale()``, DuckDB) are closed
 and opened again on the next request that needs them: a rebuilt file renamed over the old
 one is answered from at once, a deleted one is a 503 naming the source until it returns.
+
+An API key with a row condition on a source (``[[keys]] rows``, app.auth) sees the source
+through ``view(name, rows)``: the same entry with the condition on its schema (so every
+statement reads only those rows: ``planner.source.relation``) and its own row count, counted
+once per data version and condition. Each introspection checks every key's condition
+against the columns found and logs the ones that no longer fit (their requests get a 503).
 """
 
 from __future__ import annotations
 
+import dataclasses
+import logging
 import threading
 import time
 from dataclasses import dataclass
@@ -21,8 +29,12 @@ from app import deadline
 from app.engines import Engine, EngineError, EngineUnavailable, open_engine
 from app.settings import Settings, SourceConfig
 from planner.dialects import get_dialect
+from planner.errors import PlanError
+from planner.filter_sql import compile_filter_sql
 from planner.schema import ColumnInfo, SourceSchema, classify
 from planner.source import relation
+
+log = logging.getLogger("sluice")
 
 
 @dataclass
@@ -48,6 +60,7 @@ class Catalog:
         self._lock = threading.Lock()
         self._open_locks: dict[str, threading.Lock] = {}
         self._failed: dict[str, tuple[float, str]] = {}  # name -> (when, why) of the last failed open
+        self._views: dict[tuple[str, str], SourceEntry] = {}  # (source, row condition) -> view
 
     def names(self) -> list[str]:
         return self.settings.source_names
@@ -129,13 +142,46 @@ class Catalog:
         schema = SourceSchema(
             name=name, table=parts,
             columns={c: ColumnInfo(c, classify(t, dialect.sqlglot or None), t) for c, t in cols})
+        entry = SourceEntry(cfg, schema, self._count(eng, schema), version)
+        self._check_rows(entry, dialect)
+        self._entries[name] = entry
+        return entry
+
+    @staticmethod
+    def _count(eng: Engine, schema: SourceSchema) -> int:
+        dialect = get_dialect(eng.dialect)
         count_sql = dialect.render(
             exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True))
             .from_(relation(schema, dialect)))
-        row = eng.fetch_row(count_sql)
-        entry = SourceEntry(cfg, schema, int(row.get("n") or 0), version)
-        self._entries[name] = entry
-        return entry
+        return int(eng.fetch_row(count_sql).get("n") or 0)
+
+    def _check_rows(self, entry: SourceEntry, dialect) -> None:
+        """Log every key's row condition on this source that the columns found refuse (its
+        requests answer 503 row-condition-invalid: ``planner.source.row_condition``)."""
+        for k in getattr(self.settings, "keys", None) or []:
+            for src, cond in k.rows:
+                if src != entry.schema.name:
+                    continue
+                try:
+                    compile_filter_sql(cond, entry.schema, dialect, tz="UTC")
+                except PlanError as e:
+                    log.error("config: [keys.%d.rows.%s] does not fit source %r: %s; this key's "
+                              "requests to it answer 503", k.index, src, src, e.detail)
+
+    def view(self, name: str, rows: str | None) -> SourceEntry:
+        """The source as a key with row condition ``rows`` sees it: the schema carries the
+        condition, ``row_count`` counts only those rows (once per data version)."""
+        entry = self.entry(name)
+        if rows is None:
+            return entry
+        hit = self._views.get((name, rows))
+        if hit is not None and hit.version == entry.version:
+            return hit
+        schema = dataclasses.replace(entry.schema, rows=rows)
+        view = SourceEntry(entry.cfg, schema, self._count(self.engine(name), schema),
+                           entry.version)
+        self._views[(name, rows)] = view
+        return view
 
     def close(self) -> None:
         for eng in self._engines.values():

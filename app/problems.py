@@ -82,6 +82,10 @@ PROBLEM_TYPES: dict[str, tuple[str, str, str]] = {
     "source-unavailable": ("Source unavailable", "503",
                            "The source's engine cannot be reached or opened; retry after "
                            "`Retry-After` seconds, and see `GET /readyz`."),
+    "row-condition-invalid": ("Row condition invalid", "503",
+                              "The API key's row condition (`[[keys]] rows`) no longer fits "
+                              "the source's columns; nothing is answered for this key until "
+                              "the operator fixes the config (the detail names the key)."),
     "statement-timeout": ("Statement timed out", "504",
                           "The statement ran longer than the source's "
                           "`statement_timeout_ms` and was cancelled; narrow the request."),

@@ -14,7 +14,7 @@ from typing import Any, Callable
 from fastapi import APIRouter, Query, Request
 from starlette.responses import Response
 
-from app import answers, batch_sets, formats, observability, sessions
+from app import answers, auth, batch_sets, formats, observability, sessions
 from app.answers import JSONResponse
 from app.cache import Entry, canonical, open_json, source_version, stamp_json
 from app.encode import ARROW_STREAM, arrow_stream, dumps
@@ -152,15 +152,18 @@ def _claim(*names: str | None) -> None:
 def cached(st: Any, source: str, ident: bytes, fmt: str, run: Callable[[], Entry],
            lookup: bool) -> tuple[Entry, str]:
     """The cached answer for ``ident`` (a request's canonical bytes) in ``fmt`` on
-    ``source``, by the source's data version (single-flight), or ``run()``'s. Chart, batch
-    and column-profile answers all come through here."""
+    ``source``, by the source's data version and the API key's row condition on it
+    (single-flight), or ``run()``'s. Chart, batch and column-profile answers all come
+    through here."""
     cache = st.cache
     if not cache.enabled:
         return run(), "miss"
     with st.service.limiter.deadline(source):  # the data version is asked on time too
         version = source_version(st.catalog.config(source).engine, st.catalog.engine(source),
                                  cache.ttl_s)
-        return cache.compute(cache.key(ident, version, fmt), source, run, lookup=lookup)
+        # keys with different row conditions never share an answer (app.auth rows)
+        key = cache.key(ident, version, fmt, auth.rows_for(source))
+        return cache.compute(key, source, run, lookup=lookup)
 
 
 def may_reuse(request: Request) -> bool:

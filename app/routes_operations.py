@@ -51,6 +51,8 @@ async def readyz(request: Request) -> Response:
     st = request.app.state
     ok, detail = await st.readiness.report(st.catalog.names())
     detail = {k: v for k, v in detail.items() if auth.allowed(k)}  # no key: no names
+    for k in [k for k in detail if auth.rows_for(k) is not None]:  # a key's rows: no total
+        detail[k] = {n: v for n, v in detail[k].items() if n != "row_count"}
     return JSONResponse({"ready": ok, "sources": detail}, status_code=200 if ok else 503)
 
 

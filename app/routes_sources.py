@@ -4,7 +4,8 @@ filter widgets.
 
 A column profile's statement comes from ``planner.profile`` (one per profile); it runs here through the
 service's limiter (statement timeout, ``max_concurrent``) and the answer is kept in the
-result cache by (source, column, top) and the source's data version, like a chart answer.
+result cache by (source, column, top) and the source's data version, like a chart answer
+(and, like it, by the API key's row condition: only the rows the key may read are profiled).
 Access follows ``GET /v1/sources/{name}``: 403 for a source the key does not grant (before
 existence), 404 for an unknown source or column with the nearest names.
 """
@@ -98,7 +99,7 @@ def source(name: str, request: Request) -> Response:
     st = request.app.state
     cfg = _config(st.catalog, name, ptr="")  # its 404 carries pointer "" (a column's: none)
     with st.service.limiter.deadline(name):  # a frozen warehouse answers on time
-        entry = st.catalog.entry(name)
+        entry = st.service.entry(name)  # row_count: the rows this key may read
     cols = [{"name": c.name, "type": c.sql_type, "kind": c.kind}
             for c in entry.schema.columns.values()]
     return JSONResponse({"name": name, "engine": cfg.engine, "table": cfg.table,
@@ -142,7 +143,7 @@ def column_profile(name: str, column: str, request: Request,
     _config(catalog, name)  # 403, then 404
     observability.note_source(name)
     engine = catalog.engine(name)
-    entry = catalog.entry(name)
+    entry = service.entry(name)  # with the key's row condition (app.auth)
     try:
         col = prof.resolve(entry.schema, column)
         top = prof.default_top(col) if top is None else top

@@ -127,7 +127,8 @@ class PlanCache:
 
     def prepared(self, req: ChartRequest, entry: SourceEntry, dialect: Any) -> "Prepared":
         shape = orjson.dumps(param_shape(req, dialect, entry.schema), option=orjson.OPT_SORT_KEYS)
-        key = (shape, dialect.name, entry.schema.name, entry.version)
+        # the key's row condition is part of the plan (planner.source.relation): keys apart
+        key = (shape, dialect.name, entry.schema.name, entry.version, entry.schema.rows)
         prep = self._prepared.get(key)
         if prep is None:
             plan = prepare(req, entry.schema, dialect, params=True)
@@ -140,12 +141,11 @@ class PlanCache:
         return prep
 
     def extents_row(self, entry: SourceEntry, sql: str, args: list[Any]) -> dict[str, Any] | None:
-        return self._extents.get((entry.schema.name, entry.version, sql, _digest(args)))
+        return self._extents.get(_extents_key(entry, sql, args))
 
     def remember_extents(self, entry: SourceEntry, sql: str, args: list[Any],
                          row: dict[str, Any]) -> None:
-        self._extents.put((entry.schema.name, entry.version, sql, _digest(args)), row,
-                          2 * len(sql) + 64 * len(row) + 512)
+        self._extents.put(_extents_key(entry, sql, args), row, 2 * len(sql) + 64 * len(row) + 512)
 
     def finished(self, prep: "Prepared", entry: SourceEntry, row: dict[str, Any] | None
                  ) -> tuple[Plan, str]:
@@ -158,6 +158,11 @@ class PlanCache:
             hit = (dataclasses.replace(plan, main=None, extents=None), plan.main_sql)
             self._finished.put(key, hit, _plan_charge(prep.key[0], prep.bound_values, hit[1]))
         return hit
+
+
+def _extents_key(entry: SourceEntry, sql: str, args: list[Any]) -> tuple:
+    # (the SQL holds the row condition too; the condition is named for plain reading)
+    return (entry.schema.name, entry.version, entry.schema.rows, sql, _digest(args))
 
 
 def _digest(args: list[Any]) -> bytes:
@@ -237,15 +242,21 @@ class ChartService:
         #: texts of the statements several charts of a batch share (app/batch_sets.py)
         self.shared_sql = _ByteLRU(8 * 1024 * 1024)
         #: checked plain-floor bins (planner.compile.checked_bins) that missed an edge on a
-        #: source: (source, column, width) -> later layouts of them run the guarded form at
-        #: once; and the guarded plans by checked main statement (both bounded)
-        self._guard_bins: set[tuple[str, str, float]] = set()
+        #: source: (source, the key's row condition, column, width) -> later layouts of them
+        #: run the guarded form at once; and the guarded plans by checked main statement
+        #: (both bounded)
+        self._guard_bins: set[tuple[str, str | None, str, float]] = set()
         self._guarded: dict[str, tuple[Plan, str]] = {}
         st = catalog.settings
         self.limiter = Limiter(getattr(st, "limits", None) or Limits(),
                                {n: c.options for n, c in st.sources.items()})
 
     # ---- planning ------------------------------------------------------------------
+    def entry(self, name: str) -> SourceEntry:
+        """The source as the calling API key sees it: with its row condition, if it has one
+        (``[[keys]] rows``, app.auth; the grant is the request's own, a context variable)."""
+        return self.catalog.view(name, auth.rows_for(name))
+
     def check_source(self, name: str) -> None:
         """404 (pointer /source) with the nearest names when ``name`` is not configured;
         403 first when the caller's API key does not grant it (app.auth)."""
@@ -265,7 +276,7 @@ class ChartService:
         check_request(req, limits)  # [limits] caps, 422 with pointers
         engine = self.limiter.guard(req.source, self.catalog.engine(req.source),
                                     user_sql=req.filter_sql is not None)  # statement timeout
-        entry = self.catalog.entry(req.source)
+        entry = self.entry(req.source)
         check_filter_sql(req, limits, entry.schema, get_dialect(engine.dialect))
         if dialect_name is None:
             dialect_name = engine.dialect
@@ -344,7 +355,8 @@ class ChartService:
                 self._plans.remember_extents(entry, extents_sql, args, row)
         t2 = time.perf_counter()
         plan, main_sql = self._plans.finished(prep, entry, row)
-        checked = [(req.source, *c) for c in checked_bins(plan)]
+        # per row condition too: what one key's rows did never shows in another's answer
+        checked = [(req.source, entry.schema.rows, *c) for c in checked_bins(plan)]
         if checked and any(c in self._guard_bins for c in checked):
             plan, main_sql = self._guarded_plan(main_sql, plan)  # missed before: guarded
         plan_more = _ms(t2)

@@ -567,6 +567,21 @@ def compile_filter_sql(text: str, schema: SourceSchema, d: Dialect, *,
                        max_chars: int = MAX_CHARS, max_in_list: int = MAX_IN_LIST,
                        tz: str | None = None) -> exp.Expression:
     """Parse, check and rebuild ``text``; the result is a boolean expression over ``"s"``."""
+    parsed = parse_filter_sql(text, max_chars)
+    try:
+        built = _Builder(schema, d, max_in_list, tz).build(parsed)
+    except RecursionError:
+        raise _fail("filter_sql is nested too deeply", slug="limit-exceeded") from None
+    if built.kind not in ("boolean",):
+        raise _fail(f"filter_sql must be a condition (true or false), not a {built.kind}: "
+                    f"{_quote(text)}", slug="type-mismatch")
+    return exp.Paren(this=built.node)
+
+
+def parse_filter_sql(text: str, max_chars: int = MAX_CHARS) -> exp.Expression:
+    """The checks that need no catalog (length, NUL, nesting, comments, one statement, one
+    condition): sqlglot's parsed tree, never sent anywhere (``compile_filter_sql`` rebuilds
+    it). The config checks a key's row condition with it before any source is opened."""
     if len(text) > max_chars:
         raise _fail(f"filter_sql has {len(text)} characters; the limit is {max_chars}",
                     slug="limit-exceeded")
@@ -593,10 +608,6 @@ def compile_filter_sql(text: str, schema: SourceSchema, d: Dialect, *,
             raise _fail(f"filter_sql must be a single SQL condition such as \"fee > 10 AND "
                         f"depot IN ('North Yard')\"; cannot read {_quote(text)} "
                         f"({_short(e)})") from None
-        built = _Builder(schema, d, max_in_list, tz).build(parsed)
     except RecursionError:
         raise _fail("filter_sql is nested too deeply", slug="limit-exceeded") from None
-    if built.kind not in ("boolean",):
-        raise _fail(f"filter_sql must be a condition (true or false), not a {built.kind}: "
-                    f"{_quote(text)}", slug="type-mismatch")
-    return exp.Paren(this=built.node)
+    return parsed

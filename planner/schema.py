@@ -39,6 +39,10 @@ class SourceSchema:
     name: str
     table: tuple[str, ...]  # qualified table name parts, e.g. ("main", "deliveries")
     columns: dict[str, ColumnInfo] = field(default_factory=dict)
+    #: the calling API key's row condition on this source (``[[keys]] rows``): SQL text of
+    #: the ``filter_sql`` allow-list, compiled per dialect by ``planner.source.relation``
+    #: into every statement's FROM; None: every row
+    rows: str | None = None
 
     def column(self, name: str) -> ColumnInfo | None:
         return self.columns.get(name)
