@@ -14,7 +14,7 @@ from typing import Any, Callable
 from fastapi import APIRouter, Query, Request
 from starlette.responses import Response
 
-from app import answers, auth, formats, observability, sessions
+from app import answers, auth, batch_sets, formats, observability, sessions
 from app.answers import JSONResponse
 from app.cache import Entry, canonical, open_json, source_version, stamp_json
 from app.encode import ARROW_STREAM, arrow_stream, dumps
@@ -88,9 +88,14 @@ def batch(req: BatchRequest, request: Request) -> Response:
     st.service.check_source(req.source)
     linked.check_ids(req)  # 422 at /charts/<i>/id
     _claim(req.session, *(c.session or req.session for c in req.charts))  # each chart's own
+    links = [linked.compose(req, i) for i in range(len(req.charts))]
+    # charts under one composed filter: one statement (app/batch_sets.py), run on first use
+    shared = batch_sets.shared_runs(st.service, {
+        i: link.request for i, (chart, link) in enumerate(zip(req.charts, links))
+        if chart.source is None or chart.source == req.source})
     results = []
     for i, chart in enumerate(req.charts):
-        link = linked.compose(req, i)
+        link = links[i]
         ends = (b"{" if chart.id is None else b'{"id":' + dumps(chart.id) + b",",
                 b',"brushes":' + dumps(link.brushes) + b"}")
         if chart.source is not None and chart.source != req.source:
@@ -99,7 +104,8 @@ def batch(req: BatchRequest, request: Request) -> Response:
                 f"a batch runs on one source ({req.source!r})", f"/charts/{i}/source").body())))
             continue
         try:
-            results.append(_member(ends, json_answer(st, link.request, True, time.perf_counter())))
+            results.append(_member(ends, json_answer(st, link.request, True, time.perf_counter(),
+                                                     shared.get(i))))
         except sessions.Stopped:
             raise  # superseded or the client left: the whole batch answers the problem
         except (PlanError, Problem, EngineError) as e:
@@ -170,10 +176,13 @@ def answer_timing(entry: Entry, state: str, t_in: float) -> dict[str, float]:
     return entry.timing if state == "miss" else {"lookup": _ms_since(t_in)}
 
 
-def json_answer(st: Any, req: ChartRequest, lookup: bool, t_in: float) -> bytes:
-    """The JSON answer bytes, from the cache when it has them (chart and batch routes)."""
+def json_answer(st: Any, req: ChartRequest, lookup: bool, t_in: float,
+                compute: Callable[[], Any] | None = None) -> bytes:
+    """The JSON answer bytes, from the cache when it has them (chart and batch routes).
+    ``compute``: how a miss gets the ``ChartResult`` (a batch's shared statement), else
+    ``service.run``."""
     def run() -> Entry:
-        result = st.service.run(req)
+        result = compute() if compute is not None else st.service.run(req)
         observability.record_chart(req.source, result.meta, result.timing)
         t0 = time.perf_counter()
         payload = st.service.to_json(result, wire=True)  # decimals: exact digits, vectorised

@@ -240,6 +240,8 @@ class ChartService:
     def __init__(self, catalog: Catalog) -> None:
         self.catalog = catalog
         self._plans = PlanCache()
+        #: texts of the statements several charts of a batch share (app/batch_sets.py)
+        self.shared_sql = _ByteLRU(8 * 1024 * 1024)
         #: checked plain-floor bins (planner.compile.checked_bins) that missed an edge on a
         #: source: (source, the key's row condition, column, width) -> later layouts of them
         #: run the guarded form at once; and the guarded plans by checked main statement

@@ -546,7 +546,8 @@ def measure_multi(m, http: httpx.Client, con: duckdb.DuckDBPyConnection) -> dict
         if d2 is not None:
             row["sanity_detail"] = f"step {total}: {d2}"
         row["sanity_equal"] = row["sanity_equal"] and d2 is None and not bad
-        row["statements"] = sum(a["stats"].get("statements", 0) for a in last)
+        # statements the batch ran: charts sharing one (app/batch_sets.py) list the same text
+        row["statements"] = len({q for a in last for q in a.get("sql", [])})
         row["steps"] = total
     else:
         t = {"limit": [], "alone": [], "drag_span": [], "drag_last_move": []}

@@ -31,12 +31,15 @@ only earlier ones::
     planner.emit_dense     empty_bins: the bin series, grid, cells, dense CTEs
     planner.emit_main      the main statement: base -> grouped -> counted -> kept ->
                            [dense] -> final, COUNT(DISTINCT) pairs, stack columns, sort
+    planner.emit_sets      several charts of a batch under one filter: one GROUPING SETS
+                           statement (``sets_statement``) and one extents statement
 
 In: ``Plan`` (+ extents row); out: ``exp.Select`` trees on a NEW plan (``dataclasses.replace``;
 the plan passed in is never changed, so a bound plan can be shared), rendered by
 ``Plan.extents_sql`` / ``Plan.main_sql``. Pure (no I/O). The names app/ and tests/ import
 from here (``prepare``, ``finish``, ``count_sql``, ``layout_key``, ``bind_sql``,
-``bind_values``, ``display_sql``, ``param_shape``, ``bins_meta``, ``Plan``) stay importable
+``bind_values``, ``display_sql``, ``param_shape``, ``bins_meta``, ``Plan``, and the batch's
+``combinable`` / ``sets_statement`` / ``sets_extents``) stay importable
 from here. Internal column and CTE names: ``planner.names``.
 """
 
@@ -54,6 +57,7 @@ from planner.emit_checked import checkable
 from planner.emit_extents import _extents_statement
 from planner.emit_keys import _outside_expr, _unguarded_index
 from planner.emit_main import _main_statement
+from planner.emit_sets import combinable, sets_extents, sets_statement  # noqa: F401 (app/)
 from planner.layout import lay_out, lay_out_key
 from planner.model import ChartRequest
 from planner.plan import Plan

@@ -34,6 +34,14 @@ function                    name                            meaning
 ``dim_alias(i)``            ``_sluice_d<i>``                the i-th joined dimension table
 ``expr_column(text)``       ``_sluice_x<digest>``           a request's ``expr`` as a column
                                                             (its text stays its output name)
+``sets_column(j)``          ``_sluice_g<j>``                grouping-sets statement: column j of
+                                                            the shared rows / groups
+``set_id()``                ``_sluice_set``                 the GROUPING() bits of a group
+``sets(j)``                 ``_sluice_sets<j>``             grouping j of a grouping-sets statement
+``chart()``                 ``_sluice_chart``               which chart a row of a shared
+                                                            statement answers
+``chart_cte(i, stage)``     ``_sluice_c<i>_<stage>``        chart i's CTE in a shared statement
+``chart_column(i, j)``      ``_sluice_c<i>_<j>``            chart i's column j (extents: its name)
 ==========================  ==============================  ==================================
 
 Window columns of a built aggregate are named after their input's name plus ``_r``, ``_c``,
@@ -123,9 +131,10 @@ def measure_partial(i: int, part: str) -> str:
     return f"{measure(i)}_{part}"
 
 
-#: the main statement's CTEs, in the order they may appear (planner.emit_main)
+#: the main statement's CTEs, in the order they may appear (planner.emit_main; "sets" and
+#: "spine": the grouping-sets statement of a batch, planner.emit_sets)
 CTES = ("base", "ranked", "pairs", "grouped", "relabelled", "folded", "counted", "kept",
-        "others", "grid", "cells", "dense", "windowed", "final")
+        "others", "grid", "cells", "dense", "windowed", "final", "sets", "spine")
 
 
 def cte(stage: str) -> str:
@@ -182,3 +191,32 @@ def expr_column(text: str) -> str:
     """The source-relation column of a request's ``{"expr": text}``: a short identifier (an
     expr's text may be longer than an engine keeps a name: MariaDB cuts at 256 characters)."""
     return f"{INTERNAL}x{hashlib.sha256(text.encode('utf-8')).hexdigest()[:16]}"
+
+
+def sets_column(j: int) -> str:
+    """Column j of a grouping-sets statement's shared rows and groups (planner.emit_sets)."""
+    return f"{INTERNAL}g{j}"
+
+
+def sets(j: int) -> str:
+    """Grouping j of a grouping-sets statement (planner.emit_sets)."""
+    return f"{cte('sets')}{j}"
+
+
+def set_id() -> str:
+    return f"{INTERNAL}set"
+
+
+def chart() -> str:
+    return f"{INTERNAL}chart"
+
+
+def chart_cte(i: int, stage: str) -> str:
+    """Chart i's CTE of one stage in a shared statement (``stage`` in ``CTES``, or "out")."""
+    assert stage in CTES or stage in ("out", "cut"), stage
+    return f"{INTERNAL}c{i}_{stage}"
+
+
+def chart_column(i: int, j: int | str) -> str:
+    """Chart i's output column j (or, for its extents, its own name) in a shared statement."""
+    return f"{INTERNAL}c{i}_{j}"

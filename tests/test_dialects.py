@@ -123,7 +123,8 @@ def test_capability_table_covers_every_dialect_and_row():
 OTHER_VALUE = {"checked": "golden", "unsupported": frozenset({"tz"}), "quantile_method": "window",
                "stddev_method": "two_pass", "approx_distinct": ("hll", 0.5),
                "nulls_order_native": False, "param_form": ("each", "qmark"),
-               "max_identifier_bytes": 30, "identifiers_bmp_only": True, "arg_min_max": True}
+               "max_identifier_bytes": 30, "identifiers_bmp_only": True, "arg_min_max": True,
+               "grouping_sets": True}
 
 
 def test_every_capability_field_is_shown_or_internal():

@@ -255,3 +255,24 @@ def test_spark_one_case(tmp_path_factory, frame):
     app = create_app(parse_settings({"sources": {"spark": source}}, "<window spark>"))
     with TestClient(app, raise_server_exceptions=False) as c:
         check_a(_chart(c, body_a("spark")), frame)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_window_measures_in_a_shared_batch_statement(client, frame, engine):
+    """Charts of one batch under one filter may share a GROUPING SETS statement
+    (planner/emit_sets.py); their then measures run per chart there too. Reference: pandas
+    (cases a and b); a filter that keeps every row (id is never NULL) keeps them uncached."""
+    where = [{"column": "id", "gte": 0}]
+    charts = [{"id": "a", "channels": body_a(engine)["channels"]},
+              {"id": "b", "channels": body_b(engine)["channels"],
+               "facet": body_b(engine)["facet"]}]
+    r = client.post("/v1/batch", json={"source": engine, "tz": "UTC", "where": where,
+                                       "charts": charts})
+    assert r.status_code == 200, r.text
+    res = json.loads(r.text, parse_float=decimal.Decimal)["results"]
+    check_a(res[0], frame)
+    check_b(res[1], frame)
+    if engine == "duckdb":  # DuckDB shares one statement (caps.grouping_sets)
+        from planner import names
+
+        assert res[0]["sql"][-1] == res[1]["sql"][-1] and names.cte("spine") in res[0]["sql"][-1]

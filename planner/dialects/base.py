@@ -61,6 +61,7 @@ TABLE_ROWS: tuple[tuple[str, str], ...] = (
     ("identifiers", "output name limits"),
     ("params", "bound parameters (IN lists), paramstyle"),
     ("m4", "M4 `reduce`"),
+    ("grouping_sets", "batch: charts under one filter (GROUPING SETS)"),
 )
 
 #: Cell text of the ``params`` row per ``Capabilities.param_form`` form.
@@ -136,6 +137,13 @@ class Dialect:
             return "; ".join(limits) + " (422)" if limits else "no limit"
         if feature == "m4":
             return "arg_min / arg_max" if c.arg_min_max else "no (422)"
+        if feature == "grouping_sets":
+            if not c.grouping_sets:
+                return "one statement per chart"
+            if c.shared_cte is None:
+                return "GROUPING SETS; one statement per chart (CTE not shared)"
+            return ("one statement (GROUPING SETS, CTE AS MATERIALIZED)"
+                    if c.shared_cte == "materialized" else "one statement (GROUPING SETS)")
         return self.notes.get(feature, "yes")
 
     # --- small builders for subclasses ------------------------------------------------

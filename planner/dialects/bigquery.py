@@ -22,6 +22,7 @@ class BigQuery(Dialect):
         checked="golden",
         quantile_method="window",
         approx_distinct=("hyperloglog++", None),
+        grouping_sets=True,  # (generated only: not measured, so one statement per chart)
     )
     instant_type = "TIMESTAMP"
     naive_type = "DATETIME"

@@ -78,6 +78,21 @@ class Capabilities:
     """arg_min / arg_max (min_by / max_by) render and are checked here: the M4 reduction
     (planner/m4.py) is offered; otherwise ``reduce: m4`` is refused (422)."""
 
+    grouping_sets: bool = field(default=False, metadata=_row("grouping_sets"))
+    """``GROUP BY GROUPING SETS (...)`` with ``GROUPING(e)`` (Gray et al., "Data Cube: A
+    Relational Aggregation Operator Generalizing Group-By, Cross-Tab, and Sub-Totals", 1997):
+    the charts of one ``/v1/batch`` whose composed filters are equal can be grouped in one
+    scan (planner/emit_sets.py), when ``shared_cte`` also says the engine computes the grouped
+    sets once. False: one statement per chart."""
+
+    shared_cte: str | None = field(default=None, metadata=_internal(
+        "one statement for a batch or one per chart; the answers are the same (it also "
+        "words the grouping_sets cell)"))
+    """How a CTE that several parts of one statement read is computed once: "materialized"
+    (written ``AS MATERIALIZED``), "engine" (the engine shares it by itself), or None (the
+    engine may inline it per reference, so one statement of N charts could scan N times:
+    the batch then runs one statement per chart even with ``grouping_sets``)."""
+
     wide_instants: bool = field(default=False, metadata=_internal(
         "only adds a range test to time keys; the answer is the same"))
     """The engine's timestamps can lie outside years 1..9999 (year 12000, 'infinity'), which

@@ -42,6 +42,9 @@ class ClickHouse(Dialect):
     sqlglot = "clickhouse"
     caps = Capabilities(
         approx_distinct=("hyperloglog (uniqCombined)", 0.01),
+        # GROUPING SETS + GROUPING(), but a CTE is inlined at every reference
+        # (enable_materialized_cte is off by default): one statement per chart
+        grouping_sets=True,
     )
     agg_spellings = {"stddev_samp": _stable("stddevSampStable", 2),
                      "stddev_pop": _stable("stddevPopStable", 1),

@@ -22,6 +22,8 @@ class Postgres(Dialect):
         max_identifier_bytes=63,  # NAMEDATALEN - 1: longer names are cut
         wide_instants=True,  # 'infinity' and years past 9999 are legal values
         approx_distinct=("exact (COUNT DISTINCT)", 0.0),
+        # GROUPING SETS since 9.5, AS MATERIALIZED since 12
+        grouping_sets=True, shared_cte="materialized",
     )
     notes = {
         "quantile": "PERCENTILE_CONT WITHIN GROUP",

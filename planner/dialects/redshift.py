@@ -20,6 +20,7 @@ class Redshift(Postgres):
         max_identifier_bytes=127,
         checked="golden",
         approx_distinct=("hyperloglog", 0.02),
+        shared_cte=None,  # (generated only: not measured, so one statement per chart)
     )
     notes = {**Postgres.notes,
              "approx_count_distinct": "APPROXIMATE COUNT(DISTINCT)",

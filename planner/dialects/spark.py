@@ -27,6 +27,9 @@ class Spark(Dialect):
     caps = Capabilities(
         wide_instants=True,  # 'infinity' and years past 9999 are legal values
         approx_distinct=("hyperloglog++", 0.05),
+        # GROUPING SETS + grouping(); a CTE read several times keeps one plan whose shuffle
+        # the engine reuses (ReusedExchange)
+        grouping_sets=True, shared_cte="engine",
     )
     agg_spellings = {"approx_count_distinct": "approx_count_distinct"}
     notes = {

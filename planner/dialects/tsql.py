@@ -28,6 +28,7 @@ class TSQL(Dialect):
         quantile_method="window",
         nulls_order_native=False,
         approx_distinct=("hyperloglog", 0.02),
+        grouping_sets=True,  # (generated only: not measured, so one statement per chart)
     )
     agg_spellings = {"stddev_samp": "STDEV", "stddev_pop": "STDEVP", "var_samp": "VAR",
                      "var_pop": "VARP", "approx_count_distinct": "APPROX_COUNT_DISTINCT"}
