@@ -248,3 +248,22 @@ def test_measure_over_a_computed_column(tmp_path, frame):
         big = sub["a"][sub["a"] > 25]
         want[None if g == "<NULL>" else g] = int(big.sum()) if len(big) else None
     assert dict(zip(data["grp"], data["big_abs"])) == want
+
+
+@pytest.mark.parametrize("engine", ["duckdb", "postgres"])
+def test_named_measures_in_a_shared_batch_statement(client, frame, engine):
+    """Two charts under one filter share a statement where the engine allows it
+    (planner/emit_sets.py); single-aggregate named measures are aggregates like any there.
+    Reference: pandas; a filter that keeps every row keeps the answers uncached."""
+    charts = [{"channels": {"x": {"column": "grp"}, "y": {"measure": "flag_share"}}},
+              {"channels": {"x": {"column": "grp"}, "y": {"measure": "big_n"},
+                            "color": {"measure": "x_per_row"}}}]
+    r = client.post("/v1/batch", json={"source": engine, "charts": charts,
+                                       "where": [{"column": "id", "gte": 0}]})
+    assert r.status_code == 200, r.text
+    res = r.json()["results"]
+    want = _reference(frame)
+    for g, v in zip(res[0]["data"]["grp"], res[0]["data"]["flag_share"]):
+        assert _close(v, want[g]["flag_share"]), g
+    for g, v, w in zip(res[1]["data"]["grp"], res[1]["data"]["big_n"], res[1]["data"]["x_per_row"]):
+        assert v == want[g]["big_n"] and _close(w, want[g]["x_per_row"]), g
