@@ -29,8 +29,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from planner import names
-from planner.compile import (bind_sql, bind_values, combinable, count_sql, display_sql,
-                             layout_key, prepare, sets_extents, sets_statement)
+from planner.compile import (bind_sql, bind_values, combinable, display_sql, layout_key,
+                             param_style, prepare, sets_extents, sets_statement)
 from planner.errors import PlanError
 from planner.model import ChartRequest
 
@@ -125,7 +125,7 @@ class _Group:
         for k, m in enumerate(members):
             m.k = k
         d = members[0].prep.plan.dialect
-        style = d.caps.param_form[1] if d.caps.param_form else "qmark"
+        style = param_style(d)
         values = members[0].values
         plan_ms = (time.perf_counter() - t0) * 1000.0
         t1 = time.perf_counter()
@@ -157,11 +157,8 @@ class _Group:
             rows = rows.take(pc.sort_indices(rows.column(order)))
             sub = pa.table({own: rows.column(c) for c, own in cols})
             statements = m.statements + [shown]
-            extra = None
-            if sub.num_rows == 0:  # the totals of an empty answer, as the chart alone
-                csql = count_sql(plan)
-                statements.append(display_sql(csql))
-                extra = engine.fetch_row(*bind_sql(csql, values, style))
+            extra = (svc.totals(plan, engine, values, style, statements)  # as the chart alone
+                     if sub.num_rows == 0 else None)
             table, meta = svc._shape(plan, entry, sub, extra, statements)
             timing = {"plan": round(plan_ms, 3), "execute": round(execute_ms, 3),
                       "shape": round((time.perf_counter() - t3) * 1000.0, 3)}
@@ -173,11 +170,9 @@ class _Group:
         svc = self.service
         need = []
         for m in members:
-            if m.prep.extents_sql is None:
-                continue
-            _, args = bind_sql(m.prep.extents_sql, m.values, style)
-            m.row = svc._plans.extents_row(entry, m.prep.extents_sql, args)
-            if m.row is None:
+            m.row = svc.extents_row(m.prep, entry, engine, m.values, style, m.statements,
+                                    lookup_only=True)
+            if m.row is None and m.prep.extents_sql is not None:
                 need.append(m)
         if not need:
             return
@@ -202,10 +197,7 @@ class _Group:
                 svc._plans.remember_extents(entry, m.prep.extents_sql, args, m.row)
             return
         for m in need:
-            sql, args = bind_sql(m.prep.extents_sql, m.values, style)
-            m.statements.append(display_sql(m.prep.extents_sql))
-            m.row = engine.fetch_row(sql, args)
-            svc._plans.remember_extents(entry, m.prep.extents_sql, args, m.row)
+            m.row = svc.extents_row(m.prep, entry, engine, m.values, style, m.statements)
 
 
 def _result(plan: Any, entry: Any, table: pa.Table, meta: dict, timing: dict) -> Any:

@@ -31,9 +31,8 @@ from app.engines import Engine, EngineError, EngineUnavailable, open_engine
 from app.settings import Settings, SourceConfig
 from planner.dialects import get_dialect
 from planner.errors import PlanError
-from planner.filter_sql import compile_filter_sql
 from planner.schema import ColumnInfo, SourceSchema, classify
-from planner.source import relation
+from planner.source import relation, row_condition
 
 log = logging.getLogger("sluice")
 
@@ -167,8 +166,8 @@ class Catalog:
             for src, cond in k.rows:
                 if src != entry.schema.name:
                     continue
-                try:
-                    compile_filter_sql(cond, entry.schema.physical(), dialect, tz="UTC")
+                try:  # the relation's own compile (planner.source.row_condition)
+                    row_condition(dataclasses.replace(entry.schema, rows=cond), dialect)
                 except PlanError as e:
                     log.error("config: [keys.%d.rows.%s] does not fit source %r: %s; this key's "
                               "requests to it answer 503", k.index, src, src, e.detail)

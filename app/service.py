@@ -25,7 +25,8 @@ from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_l
 from app.engines.arrow import conform, key_zone, request_zone
 from planner import names as internal
 from planner.compile import (Plan, bind_sql, bind_values, bins_meta, checked_bins,
-                             display_sql, finish, guarded, layout_key, param_shape, prepare)
+                             display_sql, finish, guarded, layout_key, param_shape,
+                             param_style, prepare)
 from planner.compile import count_sql as count_sql_of
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
@@ -247,7 +248,7 @@ class ChartService:
         #: run the guarded form at once; and the guarded plans by checked main statement
         #: (both bounded)
         self._guard_bins: set[tuple[str, str | None, str, float]] = set()
-        self._guarded: dict[str, tuple[Plan, str]] = {}
+        self._guarded = _ByteLRU(4 * 1024 * 1024)
         st = catalog.settings
         self.limiter = Limiter(getattr(st, "limits", None) or Limits(),
                                {n: c.options for n, c in st.sources.items()})
@@ -341,19 +342,11 @@ class ChartService:
         dialect = prep.plan.dialect
         # this request's values for the plan's parameter slots (long IN lists), checked
         values = bind_values(req, entry.schema, dialect) if prep.plan.slots else []
-        style = dialect.caps.param_form[1] if dialect.caps.param_form else "qmark"
+        style = param_style(dialect)
         timing["plan"] = _ms(t0)
         t1 = time.perf_counter()
-        statements = []
-        row = None
-        extents_sql = prep.extents_sql
-        if extents_sql is not None:
-            sql, args = bind_sql(extents_sql, values, style)
-            row = self._plans.extents_row(entry, extents_sql, args)
-            if row is None:  # not known for this data version yet: one more statement
-                statements.append(display_sql(extents_sql))
-                row = engine.fetch_row(sql, args)  # GuardedEngine: no args, no params
-                self._plans.remember_extents(entry, extents_sql, args, row)
+        statements: list[str] = []
+        row = self.extents_row(prep, entry, engine, values, style, statements)
         t2 = time.perf_counter()
         plan, main_sql = self._plans.finished(prep, entry, row)
         # per row condition too: what one key's rows did never shows in another's answer
@@ -372,12 +365,7 @@ class ChartService:
             statements.append(display_sql(main_sql))
             sql, args = bind_sql(main_sql, values, style)
             raw = engine.execute(sql, args)
-        extra = None
-        if raw.num_rows == 0:
-            count_sql = count_sql_of(plan)
-            statements.append(display_sql(count_sql))
-            sql, args = bind_sql(count_sql, values, style)
-            extra = engine.fetch_row(sql, args)
+        extra = self.totals(plan, engine, values, style, statements) if raw.num_rows == 0 else None
         timing["execute"] = round(_ms(t1) - plan_more, 3)
         timing["plan"] = round(timing["plan"] + plan_more, 3)
         t3 = time.perf_counter()
@@ -385,15 +373,39 @@ class ChartService:
         timing["shape"] = _ms(t3)
         return ChartResult(plan, entry, table, meta, timing)
 
+    def extents_row(self, prep: "Prepared", entry: SourceEntry, engine: Engine,
+                    values: list[Any], style: str, statements: list[str],
+                    lookup_only: bool = False) -> dict[str, Any] | None:
+        """The extents row of ``prep`` for these values: the cache's for this data version,
+        else the engine's (one more statement, added to ``statements``) -- or None with
+        ``lookup_only`` when the cache lacks it (a batch merges the missing ones)."""
+        extents_sql = prep.extents_sql
+        if extents_sql is None:
+            return None
+        sql, args = bind_sql(extents_sql, values, style)
+        row = self._plans.extents_row(entry, extents_sql, args)
+        if row is None and not lookup_only:
+            statements.append(display_sql(extents_sql))
+            row = engine.fetch_row(sql, args)  # GuardedEngine: no args, no params
+            self._plans.remember_extents(entry, extents_sql, args, row)
+        return row
+
+    def totals(self, plan: Plan, engine: Engine, values: list[Any], style: str,
+               statements: list[str]) -> dict[str, Any]:
+        """Matched and outside-limit counts when the main statement returned no rows (its
+        window totals are absent): one more statement, added to ``statements``."""
+        count_sql = count_sql_of(plan)
+        statements.append(display_sql(count_sql))
+        return engine.fetch_row(*bind_sql(count_sql, values, style))
+
     def _guarded_plan(self, main_sql: str, plan: Plan) -> tuple[Plan, str]:
         """``planner.compile.guarded(plan)`` and its text, kept by the checked statement's
         text (the text is what is reused; the trees are big)."""
         hit = self._guarded.get(main_sql)
         if hit is None:
-            if len(self._guarded) >= 256:
-                self._guarded.clear()
             g = guarded(plan)
-            hit = self._guarded[main_sql] = (dataclasses.replace(g, main=None), g.main_sql)
+            hit = (dataclasses.replace(g, main=None), g.main_sql)
+            self._guarded.put(main_sql, hit, 2 * (len(main_sql) + len(hit[1])) + 4096)
         return hit
 
     def _bins(self, plan: Plan) -> dict[str, Any]:

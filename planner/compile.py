@@ -66,7 +66,7 @@ from planner.source import relation
 
 # re-exported: the names app/ and tests/ import from planner.compile
 from planner.layout import bins_meta  # noqa: F401
-from planner.where import bind_sql, bind_values, display_sql, param_shape  # noqa: F401
+from planner.where import bind_sql, bind_values, display_sql, param_shape, param_style  # noqa: F401
 
 
 def count_sql(plan: Plan) -> str:

@@ -176,6 +176,11 @@ def bind_sql(sql: str, values: list[Any], style: str) -> tuple[str, list[Any]]:
     return _SLOT.sub(sub, sql), args
 
 
+def param_style(d: Dialect) -> str:
+    """The placeholder style ``bind_sql`` writes for ``d``'s driver (``qmark`` without one)."""
+    return d.caps.param_form[1] if d.caps.param_form else "qmark"
+
+
 def display_sql(sql: str) -> str:
     """SQL with slot markers shown as ``?`` (the ``sql`` member of an answer)."""
     return _SLOT.sub("?", sql)
