@@ -240,3 +240,13 @@ def load_spark(root: Path, table: pa.Table) -> dict:
                 "java_options": "-XX:TieredStopAtLevel=1 -XX:+UseSerialGC",
                 "spark_conf": {"spark.sql.adaptive.enabled": False,
                                "spark.sql.codegen.wholeStage": False}}}
+
+
+def five_engines(root: Path, rows: list[dict] | None = None) -> dict[str, dict]:
+    """The fixture rows (``make_rows()`` unless given) loaded into DuckDB, PostgreSQL, MariaDB,
+    SQLite and chdb: one source config per engine, named by engine (the tests' matrix)."""
+    rows = make_rows() if rows is None else rows
+    table = arrow_table(rows)
+    return {"duckdb": load_duckdb(root, table), "postgres": load_postgres(rows),
+            "mysql": load_mysql(rows), "sqlite": load_sqlite(root, rows),
+            "clickhouse": load_chdb(root, table)}

@@ -79,11 +79,7 @@ def engines(tmp_path_factory):
     from app.settings import parse_settings
 
     root = tmp_path_factory.mktemp("rows_engines")
-    rows = fx.make_rows()
-    table = fx.arrow_table(rows)
-    sources = {"duckdb": fx.load_duckdb(root, table), "postgres": fx.load_postgres(rows),
-               "mysql": fx.load_mysql(rows), "sqlite": fx.load_sqlite(root, rows),
-               "clickhouse": fx.load_chdb(root, table)}
+    sources = fx.five_engines(root)
     st_ = parse_settings({"sources": sources, "keys": _keys(ENGINES, COND),
                           "server": {"request_log": False}}, "<row access engines>")
     with TestClient(create_app(st_), raise_server_exceptions=False) as c:

@@ -123,11 +123,7 @@ def client(tmp_path_factory):
     from app.settings import parse_settings
 
     root = tmp_path_factory.mktemp("model")
-    rows = fx.make_rows()
-    table = fx.arrow_table(rows)
-    sources = {"duckdb": fx.load_duckdb(root, table), "postgres": fx.load_postgres(rows),
-               "mysql": fx.load_mysql(rows), "sqlite": fx.load_sqlite(root, rows),
-               "clickhouse": fx.load_chdb(root, table)}
+    sources = fx.five_engines(root)
     sources = {name: _load_dims(name, cfg) for name, cfg in sources.items()}
     app = create_app(parse_settings({"sources": sources}, "<source model>"))
     with TestClient(app, raise_server_exceptions=False) as c:

@@ -32,11 +32,7 @@ def client(tmp_path_factory):
     from app.settings import parse_settings
 
     root = tmp_path_factory.mktemp("window")
-    rows = fx.make_rows()
-    table = fx.arrow_table(rows)
-    sources = {"duckdb": fx.load_duckdb(root, table), "postgres": fx.load_postgres(rows),
-               "mysql": fx.load_mysql(rows), "sqlite": fx.load_sqlite(root, rows),
-               "clickhouse": fx.load_chdb(root, table)}
+    sources = fx.five_engines(root)
     app = create_app(parse_settings({"sources": sources}, "<window measures>"))
     with TestClient(app, raise_server_exceptions=False) as c:
         yield c
