@@ -121,6 +121,8 @@ class ProblemDetail(_Open):
                            "has one")
     brushes: list[str] | None = Field(None, description="in a /v1/batch result: ids of the "
                                       "charts whose brush filters this chart (never its own)")
+    stable: bool | None = Field(None, description="in a /v1/batch result: whether its layouts "
+                                "would come from the rows before the brushes")
 
     model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
         "type": "/problems/unknown-column", "title": "Unknown column", "status": 422,
@@ -137,11 +139,15 @@ class BatchChartAnswer(ChartAnswer):
     id: str | None = Field(None, description="the chart's id, when it has one")
     brushes: list[str] = Field(description="ids of the charts whose brush filtered this "
                                "chart, in chart order (never its own)")
+    stable: bool = Field(False, description="true when the chart's data-driven bin layouts "
+                         "and top-N membership came from the rows before the brushes (the "
+                         "batch's where and its own; `stable` of the chart), so its bins may "
+                         "extend beyond the brushed rows; its counts always follow them")
 
     model_config = ConfigDict(extra="allow", json_schema_extra={"examples": [{
         "id": "distance",
         **ChartAnswer.model_config["json_schema_extra"]["examples"][0],  # type: ignore[index]
-        "brushes": ["vehicles"]}]})
+        "brushes": ["vehicles"], "stable": True}]})
 
 
 class BatchAnswer(_Open):
@@ -155,7 +161,8 @@ class BatchAnswer(_Open):
         "source": "deliveries", "results": [
             {"id": "vehicles", "type": "/problems/unknown-column", "title": "Unknown column",
              "status": 422, "detail": "unknown column 'nope' in source 'deliveries'",
-             "pointer": "/charts/0/brush/0/column", "brushes": ["distance"]}]}]})
+             "pointer": "/charts/0/brush/0/column", "brushes": ["distance"],
+             "stable": True}]}]})
 
 
 class SqlAnswer(_Open):

@@ -82,8 +82,9 @@ def batch(req: BatchRequest, request: Request) -> Response:
     """Several charts on one source. Chart i is answered as the chart request whose
     ``where`` is the batch's ``where``, its own and every other chart's ``brush``
     (``planner.linked``): its answer (cached like /v1/chart), or its problem document
-    (pointer into the batch body); each result also has its ``id`` and ``brushes`` (the
-    ids of the charts whose brush filtered it). The batch itself answers 200."""
+    (pointer into the batch body); each result also has its ``id``, ``brushes`` (the ids
+    of the charts whose brush filtered it) and ``stable`` (its layouts came from the rows
+    before those brushes). The batch itself answers 200."""
     st = request.app.state
     st.service.check_source(req.source)
     linked.check_ids(req)  # 422 at /charts/<i>/id
@@ -97,7 +98,8 @@ def batch(req: BatchRequest, request: Request) -> Response:
     for i, chart in enumerate(req.charts):
         link = links[i]
         ends = (b"{" if chart.id is None else b'{"id":' + dumps(chart.id) + b",",
-                b',"brushes":' + dumps(link.brushes) + b"}")
+                b',"brushes":' + dumps(link.brushes) + b',"stable":'
+                + (b"true" if link.stable else b"false") + b"}")
         if chart.source is not None and chart.source != req.source:
             results.append(_member(ends, dumps(Problem(
                 422, "invalid-request", "Chart names another source",
@@ -124,7 +126,7 @@ def batch(req: BatchRequest, request: Request) -> Response:
 
 def _member(ends: tuple[bytes, bytes], body: bytes) -> bytes:
     """One result of a batch: the encoded answer or problem ``body`` (an object) between
-    ``ends`` (its ``id`` first, its ``brushes`` last)."""
+    ``ends`` (its ``id`` first, its ``brushes`` and ``stable`` last)."""
     return ends[0] + body[1:-1] + ends[1]
 
 

@@ -76,10 +76,10 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
     windows = _window_columns(d, [], built)
     if windows:  # the source rows with their window columns, still called "s"
         inner = exp.select(*_columns_of(*sel), *windows).from_(src)
-        if plan.where is not None:
-            inner = inner.where(plan.where.copy(), copy=False)
+        if plan.extents_where is not None:
+            inner = inner.where(plan.extents_where.copy(), copy=False)
         return exp.select(*sel).from_(exp.alias_(exp.Subquery(this=inner), "s", quoted=True))
     q = exp.select(*sel).from_(src)
-    if plan.where is not None:
-        q = q.where(plan.where.copy(), copy=False)
+    if plan.extents_where is not None:  # (layout_filters: without the brushes)
+        q = q.where(plan.extents_where.copy(), copy=False)
     return q

@@ -267,6 +267,6 @@ def sets_extents(plans: Sequence[Plan]) -> tuple[exp.Select, tuple[tuple[tuple[s
             own.append((name, e.alias))
         columns.append(tuple(own))
     out = exp.select(*sel).from_(relation(first.schema, d))
-    if first.where is not None:
-        out = out.where(first.where.copy())
+    if first.extents_where is not None:
+        out = out.where(first.extents_where.copy())
     return out, tuple(columns)

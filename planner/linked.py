@@ -3,9 +3,12 @@ scatterplots", Technometrics 29(2), 1987) as ordinary chart requests.
 
 Chart i of a ``BatchRequest`` is asked as the ``ChartRequest`` whose ``where`` is the
 batch's ``where``, then the chart's own, then the ``brush`` of every OTHER chart in chart
-order -- never its own brush, so the brushed chart keeps its whole distribution. Its answer
-is therefore exactly the answer of that chart request asked alone (bins, top-N, stats, the
-result and plan caches). ``Linked.origins`` remembers where in the batch body each filter of
+order -- never its own brush, so the brushed chart keeps its whole distribution. With
+``stable`` (the default) and brushes from other charts, its ``layout_filters`` is the count
+of the batch's and its own filters: data-driven bin layouts and top-N membership come from
+the rows before the brushes, so bars keep their place while a brush moves. Its answer is
+exactly the answer of that chart request asked alone (bins, top-N, stats, the result and
+plan caches). ``Linked.origins`` remembers where in the batch body each filter of
 the composed ``where`` came from, so a problem inside one points into the batch.
 """
 
@@ -32,6 +35,8 @@ class Linked:
     origins: list[str]
     #: whether the chart's ``tz`` is the batch's (a problem at /tz points at the batch's)
     batch_tz: bool
+    #: whether its bin layouts and top-N come from the rows before the brushes (``stable``)
+    stable: bool = False
 
     def batch_pointer(self, ptr: str | None) -> str:
         """A pointer into the composed chart request -> the pointer into the batch body."""
@@ -47,7 +52,8 @@ class Linked:
 
 
 def check_ids(batch: BatchRequest) -> None:
-    """422 at ``/charts/<i>/id`` for an id given twice, or a brush on a chart without one."""
+    """422 at ``/charts/<i>/id`` for an id given twice or a brush on a chart without one, at
+    ``/charts/<i>/layout_filters`` for a chart that sets its own (``stable`` does)."""
     seen: dict[str, int] = {}
     for i, chart in enumerate(batch.charts):
         if chart.id is None:
@@ -59,6 +65,11 @@ def check_ids(batch: BatchRequest) -> None:
             raise PlanError(pointer("charts", i, "id"), f"chart id {chart.id!r} is given twice "
                             f"(charts {seen[chart.id]} and {i}); ids are unique within a batch")
         seen[chart.id] = i
+    for i, chart in enumerate(batch.charts):
+        if chart.layout_filters is not None:
+            raise PlanError(pointer("charts", i, "layout_filters"), "a chart of a batch takes "
+                            "its layout filters from the batch: `stable` (default true) lays "
+                            "it out from the batch's where and its own, without the brushes")
 
 
 def compose(batch: BatchRequest, index: int) -> Linked:
@@ -70,7 +81,8 @@ def compose(batch: BatchRequest, index: int) -> Linked:
         inherited["tz"] = batch.tz
     base = ChartRequest.model_validate(  # (its session is claimed by the route)
         chart.model_dump(by_alias=True, exclude_none=True,
-                         exclude={"session", "id", "brush", "where", "source"}) | inherited)
+                         exclude={"session", "id", "brush", "where", "source", "stable",
+                                  "layout_filters"}) | inherited)
     where = list(batch.where) + list(chart.where)
     origins = [pointer("where", k) for k in range(len(batch.where))]
     origins += [pointer("charts", index, "where", k) for k in range(len(chart.where))]
@@ -83,5 +95,8 @@ def compose(batch: BatchRequest, index: int) -> Linked:
         origins += [pointer("charts", j, "brush", k) for k in range(len(other.brush))]
     # no re-validation: each filter was validated where it was written; the composed list's
     # length is capped by [limits] max_filters when the chart is planned (pointer mapped back)
-    request = base.model_copy(update={"where": where})
-    return Linked(index, request, brushes, origins, batch_tz)
+    update: dict[str, object] = {"where": where}
+    if chart.stable and brushes:  # layouts from the rows before the brushes (BatchChart.stable)
+        update["layout_filters"] = len(batch.where) + len(chart.where)
+    request = base.model_copy(update=update)
+    return Linked(index, request, brushes, origins, batch_tz, "layout_filters" in update)

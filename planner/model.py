@@ -418,6 +418,14 @@ class ChartRequest(_Strict):
         "64): a newer request with the same session (and the same API key) interrupts this "
         "one's running statements, and this one answers 409 (problem type superseded).",
         examples=["tab-7f3a"])
+    layout_filters: int | None = Field(
+        None, ge=0, le=256,
+        description="How many leading filters of `where` (together with `filter_sql`) decide "
+        "the data-driven bin layouts (extent, rule statistics) and the top-N membership; the "
+        "later filters only select the rows that are counted. Default: all of them. A "
+        "/v1/batch sets it for a linked chart so its bars do not move while other charts' "
+        "brushes do (see `stable`). M4 reductions take their pixel columns from all filters.",
+        examples=[1])
 
     @field_validator("where", mode="before")
     @classmethod
@@ -481,6 +489,13 @@ class BatchChart(ChartRequest):
         "timestamp key, in on a category key). Every OTHER chart of the batch is filtered by "
         "them; this chart is not, so it keeps its whole distribution.",
         examples=[[{"column": "distance_km", "gte": 5, "lt": 20}]])
+
+    stable: StrictBool = Field(
+        True, description="Stable bins while brushing: the chart's data-driven bin layouts "
+        "and top-N membership come from the rows under the batch's `where` and its own, not "
+        "the other charts' brushes, so its bars keep their place and width while a brush "
+        "moves (counts still follow the brushes). false: layouts from all its filters, as "
+        "the chart asked alone.")
 
     @field_validator("brush", mode="before")
     @classmethod

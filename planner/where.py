@@ -187,16 +187,33 @@ def display_sql(sql: str) -> str:
 
 
 def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect,
-                   slots: list[Any] | None = None) -> exp.Expression | None:
+                   slots: list[Any] | None = None
+                   ) -> tuple[exp.Expression | None, exp.Expression | None, bool]:
+    """(the condition of every filter, the condition that decides data-driven layouts, whether
+    the two differ). The layout condition is the first ``layout_filters`` filters of
+    ``where`` and ``filter_sql``; its slot markers are a prefix of the full condition's, so
+    ``bind_values`` serves the statements of both."""
     # offset-less instants in where and filter_sql are read in the request's zone
     token = _READ_TZ.set(_check_tz(req.tz, pointer("tz")))
     try:
         parts = [_compile_filter(f, ("where", i), schema, d, slots)
                  for i, f in enumerate(req.where)]
+        extra = []
         if req.filter_sql is not None:  # allow-listed SQL text, rebuilt from the catalog
-            parts.append(compile_filter_sql(req.filter_sql, schema, d, tz=_READ_TZ.get()))
+            extra.append(compile_filter_sql(req.filter_sql, schema, d, tz=_READ_TZ.get()))
     finally:
         _READ_TZ.reset(token)
+    n = len(parts) if req.layout_filters is None else req.layout_filters
+    if n > len(parts):
+        raise PlanError(pointer("layout_filters"), f"layout_filters is {n} but where has "
+                        f"{len(parts)} filters")
+    where = _conjunction(parts + extra)
+    if n == len(parts):
+        return where, where, False
+    return where, _conjunction(parts[:n] + extra), True
+
+
+def _conjunction(parts: list[exp.Expression]) -> exp.Expression | None:
     if not parts:
         return None
     return exp.and_(*parts) if len(parts) > 1 else parts[0]

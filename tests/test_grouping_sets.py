@@ -121,7 +121,7 @@ def _shares(client, source: str) -> bool:
 def _same(res: dict) -> dict:
     """An answer without what says which statements ran for it and how long they took."""
     out = {k: v for k, v in res.items()
-           if k not in ("sql", "timing_ms", "cache", "id", "brushes", "stats")}
+           if k not in ("sql", "timing_ms", "cache", "id", "brushes", "stable", "stats")}
     out["stats"] = {k: v for k, v in res["stats"].items() if k != "statements"}
     return out
 
@@ -192,7 +192,8 @@ def test_member_answer_is_cached_for_the_chart_alone(client):
     alone = client.post("/v1/chart", json=req).json()
     assert alone["cache"] == "hit"
     assert {k: v for k, v in alone.items() if k not in ("cache", "timing_ms")} == \
-        {k: v for k, v in res[2].items() if k not in ("cache", "timing_ms", "id", "brushes")}
+        {k: v for k, v in res[2].items()
+         if k not in ("cache", "timing_ms", "id", "brushes", "stable")}
 
 
 def test_different_brushes_are_separate_statements(client, monkeypatch):
@@ -210,8 +211,9 @@ def test_different_brushes_are_separate_statements(client, monkeypatch):
     assert len(executed) == 2 and not any("GROUPING SETS" in s for s in executed)
     for i, res in enumerate(results):
         other = charts[1 - i]["brush"]
-        alone = _alone(client, dict(body, where=body["where"] + other),
-                       {k: v for k, v in charts[i].items() if k != "brush"})
+        alone = _alone(client, dict(body, where=body["where"] + other),  # stable layouts
+                       {**{k: v for k, v in charts[i].items() if k != "brush"},
+                        "layout_filters": len(body["where"])})
         assert _same(res) == _same(alone)
 
 
@@ -252,3 +254,26 @@ def test_spark_shared_statement(tmp_path_factory, monkeypatch):
         for chart, res in zip(body["charts"], results):
             assert "status" not in res, res
             assert _same(res) == _same(_alone(c, body, chart))
+        check_linked_stable(c, "spark")
+
+
+def check_linked_stable(c: TestClient, source: str) -> None:
+    """Linked charts on ``source`` with a brush on another chart (tests/test_linked.py's
+    dashboard, at the brush step whose rows would move both layouts): every chart equals
+    the chart alone with ``layout_filters`` (the engine), Freedman-Diaconis edges and the
+    top 4 from the rows of the shared where (numpy, pandas)."""
+    tl = load("test_linked")
+    lo, hi = tl.N_STEPS[1]
+    body = tl.stable_batch(source, lo, hi)
+    results = c.post("/v1/batch", json=body).json()["results"]
+    df = pd.DataFrame(fx.make_rows())
+    frame = df.assign(n=df["n"].astype("Int64"), x=df["x"].astype("Float64"),
+                      ts=pd.to_datetime(df["ts"], utc=True))
+    layout = frame[tl._mask(frame, set())]
+    sub = layout[((layout["n"] >= lo) & (layout["n"] < hi)).fillna(False)]
+    for i, res in enumerate(results[:3]):
+        assert "status" not in res and res["stable"] is True, res
+        alone = c.post("/v1/chart", json=tl._composed(body, i)).json()
+        assert tl._answer(alone) == tl._answer(res)
+    tl.check_fd(results[0], sub, layout)
+    tl.check_cat(results[1], sub, layout)

@@ -85,9 +85,11 @@ def _null(v):
     return None if v is None or v is pd.NA or (isinstance(v, float) and math.isnan(v)) else v
 
 
-def check_x(got: dict, sub: pd.DataFrame) -> None:
+def check_x(got: dict, sub: pd.DataFrame, layout: pd.DataFrame | None = None) -> None:
+    """``layout``: the rows the bin range comes from (default ``sub``, the counted rows)."""
     vals = sub["x"].dropna().to_numpy(dtype=float)
-    lo, hi = math.floor(vals.min() / 5) * 5, math.ceil(vals.max() / 5) * 5
+    span = (sub if layout is None else layout)["x"].dropna().to_numpy(dtype=float)
+    lo, hi = math.floor(span.min() / 5) * 5, math.ceil(span.max() / 5) * 5
     edges = np.arange(lo, hi + 5, 5.0)[: int((hi - lo) / 5) + 1]
     counts, _ = np.histogram(vals, bins=edges)  # reference: numpy.histogram, last bin closed
     want = {(float(a), float(a + 5)): int(c) for a, c in zip(edges[:-1], counts) if c}
@@ -110,11 +112,14 @@ def check_month(got: dict, sub: pd.DataFrame) -> None:
     assert got_map == want
 
 
-def check_cat(got: dict, sub: pd.DataFrame) -> None:
+def check_cat(got: dict, sub: pd.DataFrame, layout: pd.DataFrame | None = None) -> None:
+    """``layout``: the rows the top 4 are ranked on (default ``sub``, the counted rows)."""
+    ranked = sorted((sub if layout is None else layout)["cat"].value_counts(dropna=True).items(),
+                    key=lambda kv: (-kv[1], kv[0]))
+    top = [k for k, _ in ranked[:4]]
     counts = sub["cat"].value_counts(dropna=True)
-    ranked = sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))
-    want = {k: int(v) for k, v in ranked[:4]}
-    rest = sum(int(v) for _, v in ranked[4:])
+    want = {k: int(counts[k]) for k in top if k in counts.index}
+    rest = int(counts[[k for k in counts.index if k not in top]].sum())
     if rest:
         want["(other)"] = rest
     if sub["cat"].isna().any():
@@ -135,18 +140,31 @@ CHECKS = {"x": check_x, "month": check_month, "cat": check_cat, "grp": check_grp
 BRUSHED = {"x", "month", "cat"}
 
 
+def check(name: str, got: dict, sub: pd.DataFrame, layout: pd.DataFrame | None) -> None:
+    if name in ("x", "cat"):  # the data-driven layouts: bin range, top-N membership
+        CHECKS[name](got, sub, layout)
+    else:
+        CHECKS[name](got, sub)
+
+
 def _answer(res: dict) -> dict:
-    return {k: v for k, v in res.items() if k not in ("cache", "timing_ms", "id", "brushes")}
+    return {k: v for k, v in res.items()
+            if k not in ("cache", "timing_ms", "id", "brushes", "stable")}
 
 
 def _composed(body: dict, i: int) -> dict:
-    """Chart i sent alone: the batch's where, its own, the other charts' brushes in order."""
+    """Chart i sent alone: the batch's where, its own, the other charts' brushes in order;
+    with ``stable`` (default true) and brushes, the shared and its own filters decide the
+    layouts (``layout_filters``)."""
     chart = body["charts"][i]
     where = body.get("where", []) + chart.get("where", [])
+    own = len(where)
     for j, other in enumerate(body["charts"]):
         if j != i:
             where += other.get("brush", [])
-    alone = {k: v for k, v in chart.items() if k not in ("id", "brush", "where")}
+    alone = {k: v for k, v in chart.items() if k not in ("id", "brush", "where", "stable")}
+    if chart.get("stable", True) and len(where) > own:
+        alone["layout_filters"] = own
     return {"source": body["source"], "tz": body["tz"], **alone, "where": where}
 
 
@@ -161,15 +179,17 @@ def test_linked_batch_matches_charts_alone_and_pandas(client, frame, engine):
         assert "status" not in res, res
         me = res["id"]
         assert res["brushes"] == [c for c in ("x", "month", "cat") if c != me]
+        assert res["stable"] is True
         # (a) the chart alone with the composed where: the same answer (from the cache)
         alone = client.post("/v1/chart", json=_composed(body, i))
         assert alone.status_code == 200, alone.text
         assert alone.json()["cache"] == "hit"
         assert _answer(alone.json()) == _answer(res)
-        # (b) pandas on the rows the shared where and the OTHER charts' brushes keep
+        # (b) pandas on the rows the shared where and the OTHER charts' brushes keep; the
+        # bin range and the top 4 from the rows of the shared where (stable bins)
         sub = frame[_mask(frame, BRUSHED - {me})]
         assert res["stats"]["matched_rows"] == len(sub)
-        CHECKS[me](res, sub)
+        check(me, res, sub, frame[_mask(frame, set())])
     # the brushes filter: the unbrushed chart sees fewer rows than the shared where keeps
     assert results[3]["stats"]["matched_rows"] < int(_mask(frame, set()).sum())
 
@@ -221,6 +241,134 @@ def test_moved_brush_reuses_the_plans(client, frame, engine):
     sub = frame[m.astype(bool)]
     assert res[3]["stats"]["matched_rows"] == len(sub)
     check_grp(res[3], sub)
+
+
+# --- stable bins while brushing (BatchChart.stable) --------------------------------------
+
+#: brush steps on n (a chart of its own): at -5..5 and 30..41 the top 4 of the brushed rows
+#: differ from the top 4 under the shared where (pandas on the fixture rows)
+N_STEPS = [(-40, 0), (-5, 5), (10, 20), (30, 41)]
+
+
+def stable_batch(source: str, lo: int, hi: int, stable: bool = True) -> dict:
+    charts = [
+        {"id": "hist", "channels": {"x": {"column": "x", "bin": {"rule": "fd"}},
+                                    "y": {"agg": "count"}}},
+        {"id": "cat", "channels": {"x": {"column": "cat", "top": 4}, "y": {"agg": "count"}}},
+        {"id": "day", "channels": {"x": {"column": "ts", "bin": {"bins": 12}},
+                                   "y": {"agg": "count"}}},
+        {"id": "n", "channels": {"x": {"column": "grp"}, "y": {"agg": "count"}},
+         "brush": [{"column": "n", "gte": lo, "lt": hi}]}]
+    if not stable:
+        for c in charts:
+            c["stable"] = False
+    return {"source": source, "tz": "UTC", "where": copy.deepcopy(SHARED), "charts": charts}
+
+
+def check_fd(got: dict, sub: pd.DataFrame, layout: pd.DataFrame) -> np.ndarray:
+    """Freedman-Diaconis edges of ``layout``'s x (numpy.histogram_bin_edges, the reference
+    of tests/test_reference_bins.py), ``sub``'s counts in them (numpy.histogram)."""
+    edges = np.histogram_bin_edges(layout["x"].dropna().to_numpy(dtype=float), bins="fd")
+    counts, _ = np.histogram(sub["x"].dropna().to_numpy(dtype=float), bins=edges)
+    b = got["bins"]["x"]
+    assert b["count"] == len(edges) - 1 and b["method"] == "fd"
+    assert math.isclose(b["start"], edges[0], rel_tol=1e-9)
+    assert math.isclose(b["stop"], edges[-1], rel_tol=1e-9)
+    data = got["data"]
+    have = {}
+    for lo, c in zip(data["x_lo"], data["count"]):
+        if lo is not None:
+            have[int(np.argmin(np.abs(edges[:-1] - lo)))] = c
+    assert have == {k: int(c) for k, c in enumerate(counts) if c}
+    return edges
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_stable_bins_while_the_brush_moves(client, frame, engine):
+    """Four positions of a brush on another chart: each chart's data-driven layout (the
+    Freedman-Diaconis edges, the top 4, the nice time bins) stays the layout of the rows
+    under the shared where while its counts follow the brush. References: numpy
+    (histogram_bin_edges 'fd', histogram) and pandas on the fixture rows; the time layout
+    is the engine's own for the chart alone under the shared where; each answer equals the
+    chart alone with ``layout_filters`` (the engine again). The extents statement runs for
+    the first position only: it reads no brush (``stats.statements``)."""
+    layout = frame[_mask(frame, set())]
+    unbrushed = client.post("/v1/chart", json={
+        "source": engine, "tz": "UTC", "where": SHARED,
+        "channels": stable_batch(engine, 0, 1)["charts"][2]["channels"]}).json()
+    moved_fd = moved_top = False
+    for lo, hi in N_STEPS:
+        body = stable_batch(engine, lo, hi)
+        res = client.post("/v1/batch", json=body).json()["results"]
+        sub = layout[((layout["n"] >= lo) & (layout["n"] < hi)).fillna(False)]
+        for i in range(3):
+            assert "status" not in res[i], res[i]
+            assert res[i]["brushes"] == ["n"] and res[i]["stable"] is True
+            assert res[i]["stats"]["matched_rows"] == len(sub)
+            alone = client.post("/v1/chart", json=_composed(body, i)).json()
+            assert _answer(alone) == _answer(res[i])
+        if (lo, hi) != N_STEPS[0]:  # the extents row of the unbrushed rows is reused
+            assert res[0]["stats"]["statements"] == res[2]["stats"]["statements"] == 1
+        edges = check_fd(res[0], sub, layout)
+        own = np.histogram_bin_edges(sub["x"].dropna().to_numpy(dtype=float), bins="fd")
+        moved_fd |= len(own) != len(edges) or not np.allclose(own, edges)
+        check_cat(res[1], sub, layout)
+        moved_top |= _top4(sub) != _top4(layout)
+        assert res[2]["bins"] == unbrushed["bins"]
+        day = res[2]["data"]
+        ts = sub["ts"].dropna()
+        stop = pd.Timestamp(unbrushed["bins"]["x"]["stop"])
+        for a, b, c in zip(day["x_lo"], day["x_hi"], day["count"]):
+            if a is None:  # the NULL bin
+                assert c == int(sub["ts"].isna().sum())
+                continue
+            a, b = pd.Timestamp(a), pd.Timestamp(b)
+            assert c == int(((ts >= a) & ((ts < b) | ((b == stop) & (ts == b)))).sum())
+        assert sum(day["count"]) == len(sub)
+        assert res[3]["stable"] is False and res[3]["brushes"] == []  # nothing brushes it
+    assert moved_fd and moved_top  # the brushed rows alone would have moved both layouts
+
+
+def _top4(rows: pd.DataFrame) -> list[str]:
+    return [k for k, _ in sorted(rows["cat"].value_counts().items(),
+                                 key=lambda kv: (-kv[1], kv[0]))[:4]]
+
+
+@pytest.mark.parametrize("engine", ["duckdb", "postgres"])
+def test_stable_false_lays_out_from_every_filter(client, frame, engine):
+    """``stable: false``: layouts from the brushed rows, as the chart asked alone without
+    ``layout_filters`` (references: numpy on those rows, pandas's top 4, the engine)."""
+    lo, hi = N_STEPS[1]
+    body = stable_batch(engine, lo, hi, stable=False)
+    res = client.post("/v1/batch", json=body).json()["results"]
+    layout = frame[_mask(frame, set())]
+    sub = layout[((layout["n"] >= lo) & (layout["n"] < hi)).fillna(False)]
+    check_fd(res[0], sub, sub)
+    check_cat(res[1], sub, sub)
+    for i in range(3):
+        assert res[i]["stable"] is False
+        alone = _composed(body, i)
+        assert "layout_filters" not in alone
+        assert _answer(client.post("/v1/chart", json=alone).json()) == _answer(res[i])
+
+
+def test_layout_filters_problems(client):
+    """A chart of a batch cannot set ``layout_filters`` (``stable`` does); a chart request's
+    count cannot pass its filters; ``stable`` is a boolean."""
+    body = stable_batch("duckdb", 0, 10)
+    body["charts"][1]["layout_filters"] = 0
+    r = _post(client, body)
+    assert r.status_code == 422 and r.json()["pointer"] == "/charts/1/layout_filters"
+    body = stable_batch("duckdb", 0, 10)
+    body["charts"][2]["stable"] = "yes"
+    r = _post(client, body)
+    assert r.status_code == 422 and r.json()["pointer"] == "/charts/2/stable"
+    chart = {"source": "duckdb", "where": SHARED, "layout_filters": 2,
+             "channels": {"x": {"column": "x", "bin": {"bins": 10}}, "y": {"agg": "count"}}}
+    r = client.post("/v1/chart", json=chart)
+    assert r.status_code == 422 and r.json()["pointer"] == "/layout_filters", r.text
+    r = client.post("/v1/chart", json=dict(chart, layout_filters=-1))
+    assert r.status_code == 422 and r.json()["pointer"] == "/layout_filters", r.text
 
 
 # --- problems: 422 with pointers into the batch body --------------------------------------

@@ -81,8 +81,9 @@ export interface paths {
          * @description Several charts on one source. Chart i is answered as the chart request whose
          *     ``where`` is the batch's ``where``, its own and every other chart's ``brush``
          *     (``planner.linked``): its answer (cached like /v1/chart), or its problem document
-         *     (pointer into the batch body); each result also has its ``id`` and ``brushes`` (the
-         *     ids of the charts whose brush filtered it). The batch itself answers 200.
+         *     (pointer into the batch body); each result also has its ``id``, ``brushes`` (the ids
+         *     of the charts whose brush filtered it) and ``stable`` (its layouts came from the rows
+         *     before those brushes). The batch itself answers 200.
          */
         post: operations["batch_v1_batch_post"];
         delete?: never;
@@ -228,6 +229,7 @@ export interface components {
          *           "detail": "unknown column 'nope' in source 'deliveries'",
          *           "id": "vehicles",
          *           "pointer": "/charts/0/brush/0/column",
+         *           "stable": true,
          *           "status": 422,
          *           "title": "Unknown column",
          *           "type": "/problems/unknown-column"
@@ -285,6 +287,12 @@ export interface components {
              */
             id?: string | null;
             /**
+             * Layout Filters
+             * @description How many leading filters of `where` (together with `filter_sql`) decide the data-driven bin layouts (extent, rule statistics) and the top-N membership; the later filters only select the rows that are counted. Default: all of them. A /v1/batch sets it for a linked chart so its bars do not move while other charts' brushes do (see `stable`). M4 reductions take their pixel columns from all filters.
+             * @example 1
+             */
+            layout_filters?: number | null;
+            /**
              * Limit
              * @default 10000
              */
@@ -301,6 +309,12 @@ export interface components {
             sort?: components["schemas"]["SortItem"][];
             /** Source */
             source?: string | null;
+            /**
+             * Stable
+             * @description Stable bins while brushing: the chart's data-driven bin layouts and top-N membership come from the rows under the batch's `where` and its own, not the other charts' brushes, so its bars keep their place and width while a brush moves (counts still follow the brushes). false: layouts from all its filters, as the chart asked alone.
+             * @default true
+             */
+            stable?: boolean;
             /** Stack */
             stack?: ("sum" | "fraction" | "centered") | null;
             /**
@@ -404,6 +418,7 @@ export interface components {
          *         "SELECT MIN(\"distance_km\") ...",
          *         "WITH \"_sluice_base\" AS (...) SELECT ..."
          *       ],
+         *       "stable": true,
          *       "stats": {
          *         "groups": 3,
          *         "matched_rows": 25,
@@ -467,6 +482,12 @@ export interface components {
             } | null;
             /** Sql */
             sql: string[];
+            /**
+             * Stable
+             * @description true when the chart's data-driven bin layouts and top-N membership came from the rows before the brushes (the batch's where and its own; `stable` of the chart), so its bins may extend beyond the brushed rows; its counts always follow them
+             * @default false
+             */
+            stable?: boolean;
             stats: components["schemas"]["Stats"];
             /** Timing Ms */
             timing_ms: {
@@ -884,6 +905,12 @@ export interface components {
              */
             filter_sql?: string | null;
             /**
+             * Layout Filters
+             * @description How many leading filters of `where` (together with `filter_sql`) decide the data-driven bin layouts (extent, rule statistics) and the top-N membership; the later filters only select the rows that are counted. Default: all of them. A /v1/batch sets it for a linked chart so its bars do not move while other charts' brushes do (see `stable`). M4 reductions take their pixel columns from all filters.
+             * @example 1
+             */
+            layout_filters?: number | null;
+            /**
              * Limit
              * @default 10000
              */
@@ -1150,6 +1177,11 @@ export interface components {
             instance?: string | null;
             /** Pointer */
             pointer?: string | null;
+            /**
+             * Stable
+             * @description in a /v1/batch result: whether its layouts would come from the rows before the brushes
+             */
+            stable?: boolean | null;
             /** Status */
             status: number;
             /** Suggestions */
