@@ -196,6 +196,8 @@ class _Group:
             for m, cols in zip(need, columns):
                 m.row = {own: row.get(c) for c, own in cols}
                 m.statements.append(display_sql(text))
+                m.row = svc.checked_extents(m.prep.plan, engine, m.row, m.values, style,
+                                            m.statements)  # (inf or NaN: guarded, alone)
                 _, args = bind_sql(m.prep.extents_sql, m.values, style)
                 svc._plans.remember_extents(entry, m.prep.extents_sql, args, m.row)
             return

@@ -25,8 +25,9 @@ from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_l
 from app.engines.arrow import conform, key_zone, request_zone
 from planner import names as internal
 from planner.compile import (Plan, bind_sql, bind_values, bins_meta, checked_bins,
-                             display_sql, finish, guarded, layout_key, param_shape,
-                             param_style, prepare)
+                             display_sql, extents_finite, finish, guarded,
+                             guarded_extents_sql, layout_key, param_shape, param_style,
+                             prepare)
 from planner.compile import count_sql as count_sql_of
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
@@ -300,13 +301,15 @@ class ChartService:
         if plan.extents is None:
             return None
         native = get_dialect(engine.dialect)
-        extents = plan.extents
         if native is not plan.dialect:  # built from the target's constructs: rebuild natively
             try:
-                extents = prepare(plan.request, plan.schema, native).extents
+                plan = prepare(plan.request, plan.schema, native)
             except Unsupported:  # e.g. tz on a SQLite source: extents need none of it
-                extents = prepare(_extents_only(plan.request, plan.schema), plan.schema, native).extents
-        return engine.fetch_row(native.render(extents)) if extents is not None else None
+                plan = prepare(_extents_only(plan.request, plan.schema), plan.schema, native)
+            if plan.extents is None:
+                return None
+        row = engine.fetch_row(native.render(plan.extents))  # (literal values: no params)
+        return self.checked_extents(plan, engine, row, [], "qmark", [])
 
     def plan_sql(self, req: ChartRequest, dialect_name: str | None) -> dict[str, Any]:
         self.check_source(req.source)
@@ -387,8 +390,21 @@ class ChartService:
         if row is None and not lookup_only:
             statements.append(display_sql(extents_sql))
             row = engine.fetch_row(sql, args)  # GuardedEngine: no args, no params
+            row = self.checked_extents(prep.plan, engine, row, values, style, statements)
             self._plans.remember_extents(entry, extents_sql, args, row)
         return row
+
+    def checked_extents(self, plan: Plan, engine: Engine, row: dict[str, Any] | None,
+                        values: list[Any], style: str, statements: list[str]
+                        ) -> dict[str, Any] | None:
+        """``row`` when the plain extents statement's extremes are finite
+        (``planner.compile.extents_finite``), else the guarded statement's row (one more
+        statement, added to ``statements``): data with inf or NaN."""
+        if extents_finite(plan, row):
+            return row
+        text = guarded_extents_sql(plan)
+        statements.append(display_sql(text))
+        return engine.fetch_row(*bind_sql(text, values, style))
 
     def totals(self, plan: Plan, engine: Engine, values: list[Any], style: str,
                statements: list[str]) -> dict[str, Any]:

@@ -46,6 +46,7 @@ from here. Internal column and CTE names: ``planner.names``.
 from __future__ import annotations
 
 import dataclasses
+import math
 from typing import Any
 
 from sqlglot import exp
@@ -54,7 +55,7 @@ from planner import m4, names
 from planner.bind import bind
 from planner.dialects.base import Dialect
 from planner.emit_checked import checkable
-from planner.emit_extents import _extents_statement
+from planner.emit_extents import _extents_statement, extents_checks
 from planner.emit_keys import _outside_expr, _unguarded_index
 from planner.emit_main import _main_statement
 from planner.emit_sets import combinable, sets_extents, sets_statement  # noqa: F401 (app/)
@@ -99,6 +100,24 @@ def guarded(plan: Plan) -> Plan:
     floating-point guard: run when the checked plain floor's flag (``names.misbinned``)
     says some group's values do not all lie in its bin (``planner.emit_keys.checkable``)."""
     return dataclasses.replace(plan, main=_main_statement(plan, guard=True))
+
+
+def guarded_extents_sql(plan: Plan) -> str:
+    """The extents statement with every double value tested for finiteness: run when a min
+    or max of the plain one (``extents_checks``) comes back non-finite."""
+    q = _extents_statement(plan, guarded=True)
+    assert q is not None
+    return plan.dialect.render(q)
+
+
+def extents_finite(plan: Plan, row: dict[str, Any] | None) -> bool:
+    """Whether an extents row of the plain statement is exact: every checked min / max is
+    NULL or a finite number (``planner.emit_extents.extents_checks``)."""
+    for c in extents_checks(plan) if row else ():
+        v = row.get(c)
+        if v is not None and not math.isfinite(float(v)):
+            return False
+    return True
 
 
 def checked_bins(plan: Plan) -> tuple[tuple[str, float], ...]:

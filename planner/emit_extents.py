@@ -18,16 +18,38 @@ from planner.plan import Key, Plan
 from planner.source import relation
 
 
-def _bin_input(d: Dialect, k: Key) -> exp.Expression:
+def _bin_input(d: Dialect, k: Key, guarded: bool = True) -> exp.Expression:
     """The value a numeric bin places: the column as DOUBLE, NULL when it is not finite
-    (inf, -inf, NaN: such rows go to the NULL bin and never widen a layout from the data)."""
+    (inf, -inf, NaN: such rows go to the NULL bin and never widen a layout from the data).
+    ``guarded=False``: the plain value (``_unguarded``)."""
     v = d.double(d.number_cell(d.column(k.col.name, "s")))
-    if k.col.kind != "double":  # integers and decimals are always finite
+    if k.col.kind != "double" or not guarded:  # integers and decimals are always finite
         return v
     return exp.Case(ifs=[exp.If(this=d.finite(v), true=v.copy())])
 
 
-def _extents_statement(plan: Plan) -> exp.Select | None:
+def _unguarded(d: Dialect, k: Key) -> bool:
+    """Whether the extents statement reads a double key's plain values: the dialect's MIN /
+    MAX show any non-finite value (``caps.extremes_show_nonfinite``) and the statement
+    carries the key's min and max (no limits), so finite extremes prove the guard changed
+    nothing -- no inf or NaN among the rows, hence equal counts, deviations, quartiles."""
+    return (d.caps.extremes_show_nonfinite and k.col.kind == "double" and k.mode == "nbin"
+            and k.nlimits is None)
+
+
+def extents_checks(plan: Plan) -> tuple[str, ...]:
+    """The extents row's columns that must be finite (or NULL) for the plain statement of
+    ``_extents_statement`` to equal the guarded one; empty when it is guarded throughout.
+    Otherwise the caller runs ``_extents_statement(plan, guarded=True)`` instead."""
+    d = plan.dialect
+    return tuple(names.extents(k.index) + stat for k in plan.keys
+                 if k.binned and k.spec.bin is not None and _unguarded(d, k)
+                 for stat in ("min", "max"))
+
+
+def _extents_statement(plan: Plan, guarded: bool = False) -> exp.Select | None:
+    """The extents statement; ``guarded``: every double value tested for finiteness (the
+    statement the checked one falls back to, ``extents_checks``)."""
     d = plan.dialect
     sel: list[exp.Expression] = []
     built: dict[str, tuple[exp.Expression, str]] = {}  # window inputs (see _window_columns)
@@ -45,7 +67,7 @@ def _extents_statement(plan: Plan) -> exp.Select | None:
             continue
         if b.rule is None and k.nlimits is not None:
             continue  # nice bins (or a width) over explicit limits need no statistics
-        v = _bin_input(d, k)
+        v = _bin_input(d, k, guarded or not _unguarded(d, k))
         if k.nlimits is not None:  # numpy trims the data to the range before applying a rule
             lo, hi = k.nlimits
             v = exp.Case(ifs=[exp.If(this=exp.Between(this=v.copy(), low=d.real(lo),

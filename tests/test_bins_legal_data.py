@@ -315,3 +315,32 @@ def collections_counter(items):
     for i in items:
         out[i] = out.get(i, 0) + 1
     return out
+
+
+@pytest.mark.parametrize("engine", ["duckdb", "postgres", "sqlite", "mysql"])
+def test_plain_extents_fall_back_to_the_guarded_statement(service, engine):
+    """The extents statement reads the plain values (``caps.extremes_show_nonfinite``) and
+    the guarded one runs only when a min or max comes back non-finite. With inf / NaN among
+    the rows: three statements (plain extents, guarded extents, main) and the answer of
+    ``check_rule`` (numpy on the finite values); MariaDB holds none: two. Over finite rows
+    only (a where that inf and NaN fail): two statements, numpy's sturges edges."""
+    from app.service import ChartService
+
+    service = ChartService(service.catalog)  # (empty caches: every statement runs)
+    body, _ = BODIES["rule"]
+    out = run(service, engine, body)
+    check_rule(out, engine)
+    nonfinite = engine != "mysql"
+    assert out["stats"]["statements"] == (3 if nonfinite else 2), out["sql"]
+    guard = ("ISFINITE", "1.7976931348623157E+308")  # (Dialect.finite: a function or BETWEEN)
+    assert [any(g in s.upper() for g in guard) for s in out["sql"][:-1]] \
+        == ([False, True] if nonfinite else [False]), out["sql"]
+    where = [{"column": "v", "gte": -1e300, "lte": 1e300}]
+    out = run(service, engine, {**body, "where": where})
+    assert out["stats"]["statements"] == 2
+    finite = np.array(FINITE)
+    edges = np.histogram_bin_edges(finite, bins="sturges")  # reference: numpy
+    counts, _ = np.histogram(finite, bins=edges)  # reference: numpy.histogram
+    b = out["bins"]["x"]
+    assert b["count"] == len(edges) - 1 and math.isclose(b["start"], edges[0])
+    assert [r["count"] for r in out["rows"] if r["x_lo"] is not None] == [int(c) for c in counts if c]

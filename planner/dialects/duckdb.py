@@ -12,6 +12,8 @@ class DuckDB(Dialect):
     name = "duckdb"
     sqlglot = "duckdb"
     caps = Capabilities(
+        # DuckDB orders NaN above +inf (checked here: min/max of {nan, 1, inf, -inf} = -inf, nan)
+        extremes_show_nonfinite=True,
         param_form=("list", "qmark"),
         arg_min_max=True,
         wide_instants=True,  # 'infinity' and years past 9999 are legal values

@@ -33,6 +33,8 @@ class MySQL(Dialect):
     name = "mysql"
     sqlglot = "mysql"
     caps = Capabilities(
+        # MariaDB / MySQL DOUBLE columns hold no inf or NaN
+        extremes_show_nonfinite=True,
         param_form=("each", "format"),
         identifiers_bmp_only=True,
         quantile_method="window",

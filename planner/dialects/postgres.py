@@ -18,6 +18,8 @@ class Postgres(Dialect):
     name = "postgres"
     sqlglot = "postgres"
     caps = Capabilities(
+        # PostgreSQL orders NaN above every other value (its docs; checked here as for DuckDB)
+        extremes_show_nonfinite=True,
         param_form=("list", "format"),
         max_identifier_bytes=63,  # NAMEDATALEN - 1: longer names are cut
         wide_instants=True,  # 'infinity' and years past 9999 are legal values

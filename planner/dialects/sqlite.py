@@ -34,6 +34,8 @@ class SQLite(Dialect):
     name = "sqlite"
     sqlglot = "sqlite"
     caps = Capabilities(
+        # SQLite stores NaN as NULL; inf comes back from MIN / MAX (checked here)
+        extremes_show_nonfinite=True,
         param_form=("json", "qmark"),
         unsupported=frozenset({"tz"}),
         quantile_method="window",
