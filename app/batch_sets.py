@@ -40,8 +40,7 @@ def filter_key(req: ChartRequest) -> bytes:
     (the zone offset-less instants in the filters are read in) and which of the filters
     decide the layouts (``layout_filters``, when fewer than all), canonical JSON."""
     d = req.model_dump(mode="json", include={"source", "where", "filter_sql", "tz"})
-    n = req.layout_filters
-    d["layout_filters"] = n if n is not None and n < len(req.where) else None
+    d["layout_filters"] = req.layout_filters if req.split_layout else None
     return orjson.dumps(d, option=orjson.OPT_SORT_KEYS)
 
 

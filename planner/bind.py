@@ -64,7 +64,7 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
                     e.pointer = pointer(*path, "expr")
             raise
     slots: list[Any] | None = [] if params and dialect.caps.param_form is not None else None
-    where, layout_where, split = _compile_where(request, schema, dialect, slots)
+    where, layout_where = _compile_where(request, schema, dialect, slots)
     stack_index, approximate = _check_options(request, dialect, keys, measures)
     named_keys, named_measures, columns = _assign_names(keys, measures, stack_index)
     stack = named_measures[stack_index] if stack_index is not None else None
@@ -72,8 +72,7 @@ def bind(request: ChartRequest, schema: SourceSchema, dialect: Dialect,
     schema = using(schema, _used(keys, measures, where))
     plan = Plan(request, schema, dialect, tuple(named_keys), tuple(named_measures), where,
                 columns=tuple(columns), approximate=approximate, stack_measure=stack,
-                slots=len(slots or ()), layout_where=layout_where if split else None,
-                layout_split=split)
+                slots=len(slots or ()), layout_where=layout_where)
     if request.reduce is not None:  # M4 line reduction: planner/m4.py
         m4.check(plan)
     return plan

@@ -35,8 +35,11 @@ class Linked:
     origins: list[str]
     #: whether the chart's ``tz`` is the batch's (a problem at /tz points at the batch's)
     batch_tz: bool
-    #: whether its bin layouts and top-N come from the rows before the brushes (``stable``)
-    stable: bool = False
+
+    @property
+    def stable(self) -> bool:
+        """Whether its bin layouts and top-N come from the rows before the brushes."""
+        return self.request.split_layout
 
     def batch_pointer(self, ptr: str | None) -> str:
         """A pointer into the composed chart request -> the pointer into the batch body."""
@@ -56,6 +59,10 @@ def check_ids(batch: BatchRequest) -> None:
     ``/charts/<i>/layout_filters`` for a chart that sets its own (``stable`` does)."""
     seen: dict[str, int] = {}
     for i, chart in enumerate(batch.charts):
+        if chart.layout_filters is not None:
+            raise PlanError(pointer("charts", i, "layout_filters"), "a chart of a batch takes "
+                            "its layout filters from the batch: `stable` (default true) lays "
+                            "it out from the batch's where and its own, without the brushes")
         if chart.id is None:
             if chart.brush:
                 raise PlanError(pointer("charts", i, "id"), f"chart {i} has a brush but no "
@@ -65,11 +72,6 @@ def check_ids(batch: BatchRequest) -> None:
             raise PlanError(pointer("charts", i, "id"), f"chart id {chart.id!r} is given twice "
                             f"(charts {seen[chart.id]} and {i}); ids are unique within a batch")
         seen[chart.id] = i
-    for i, chart in enumerate(batch.charts):
-        if chart.layout_filters is not None:
-            raise PlanError(pointer("charts", i, "layout_filters"), "a chart of a batch takes "
-                            "its layout filters from the batch: `stable` (default true) lays "
-                            "it out from the batch's where and its own, without the brushes")
 
 
 def compose(batch: BatchRequest, index: int) -> Linked:
@@ -99,4 +101,4 @@ def compose(batch: BatchRequest, index: int) -> Linked:
     if chart.stable and brushes:  # layouts from the rows before the brushes (BatchChart.stable)
         update["layout_filters"] = len(batch.where) + len(chart.where)
     request = base.model_copy(update=update)
-    return Linked(index, request, brushes, origins, batch_tz, "layout_filters" in update)
+    return Linked(index, request, brushes, origins, batch_tz)

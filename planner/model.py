@@ -432,6 +432,12 @@ class ChartRequest(_Strict):
     def _shallow(cls, v: Any) -> Any:
         return shallow_filters(v, "/where")
 
+    @property
+    def split_layout(self) -> bool:
+        """Whether fewer filters decide the layouts than select the rows (``layout_filters``
+        below the length of ``where``)."""
+        return self.layout_filters is not None and self.layout_filters < len(self.where)
+
     def predicates(self) -> list[tuple[tuple[str | int, ...], "Predicate"]]:
         """Every predicate of ``where`` with its path in the request, depth first in request
         order (inside ``any`` and ``not`` too): the order the planner binds values in."""

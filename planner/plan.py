@@ -170,12 +170,11 @@ class Plan:
     #: the condition that decides data-driven layouts and top-N membership when it differs
     #: from ``where`` (``ChartRequest.layout_filters``: the first filters, without brushes)
     layout_where: exp.Expression | None = None
-    layout_split: bool = False
 
     @property
     def extents_where(self) -> exp.Expression | None:
         """The rows the extents statement and the top-N ranking read."""
-        return self.layout_where if self.layout_split else self.where
+        return self.layout_where if self.request.split_layout else self.where
 
     # ---- SQL text --------------------------------------------------------------------
     @property

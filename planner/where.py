@@ -188,11 +188,11 @@ def display_sql(sql: str) -> str:
 
 def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect,
                    slots: list[Any] | None = None
-                   ) -> tuple[exp.Expression | None, exp.Expression | None, bool]:
-    """(the condition of every filter, the condition that decides data-driven layouts, whether
-    the two differ). The layout condition is the first ``layout_filters`` filters of
-    ``where`` and ``filter_sql``; its slot markers are a prefix of the full condition's, so
-    ``bind_values`` serves the statements of both."""
+                   ) -> tuple[exp.Expression | None, exp.Expression | None]:
+    """(the condition of every filter, the condition that decides data-driven layouts: None
+    unless ``req.split_layout``). The layout condition is the first ``layout_filters``
+    filters of ``where`` and ``filter_sql``; its slot markers are a prefix of the full
+    condition's, so ``bind_values`` serves the statements of both."""
     # offset-less instants in where and filter_sql are read in the request's zone
     token = _READ_TZ.set(_check_tz(req.tz, pointer("tz")))
     try:
@@ -208,9 +208,7 @@ def _compile_where(req: ChartRequest, schema: SourceSchema, d: Dialect,
         raise PlanError(pointer("layout_filters"), f"layout_filters is {n} but where has "
                         f"{len(parts)} filters")
     where = _conjunction(parts + extra)
-    if n == len(parts):
-        return where, where, False
-    return where, _conjunction(parts[:n] + extra), True
+    return where, (_conjunction(parts[:n] + extra) if req.split_layout else None)
 
 
 def _conjunction(parts: list[exp.Expression]) -> exp.Expression | None:

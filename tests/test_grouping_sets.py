@@ -266,9 +266,7 @@ def check_linked_stable(c: TestClient, source: str) -> None:
     lo, hi = tl.N_STEPS[1]
     body = tl.stable_batch(source, lo, hi)
     results = c.post("/v1/batch", json=body).json()["results"]
-    df = pd.DataFrame(fx.make_rows())
-    frame = df.assign(n=df["n"].astype("Int64"), x=df["x"].astype("Float64"),
-                      ts=pd.to_datetime(df["ts"], utc=True))
+    frame = tl.fixture_frame()
     layout = frame[tl._mask(frame, set())]
     sub = layout[((layout["n"] >= lo) & (layout["n"] < hi)).fillna(False)]
     for i, res in enumerate(results[:3]):

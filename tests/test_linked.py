@@ -61,11 +61,16 @@ def client(tmp_path_factory):
         yield c
 
 
-@pytest.fixture(scope="module")
-def frame():
+def fixture_frame() -> pd.DataFrame:
+    """The fixture rows in pandas, nullable number types, ``ts`` as UTC instants."""
     df = pd.DataFrame(fx.make_rows())
     return df.assign(n=df["n"].astype("Int64"), x=df["x"].astype("Float64"),
                      ts=pd.to_datetime(df["ts"], utc=True))
+
+
+@pytest.fixture(scope="module")
+def frame():
+    return fixture_frame()
 
 
 def _mask(df: pd.DataFrame, which: set[str]) -> pd.Series:
