@@ -55,7 +55,7 @@ from planner import m4, names
 from planner.bind import bind
 from planner.dialects.base import Dialect
 from planner.emit_checked import checkable
-from planner.emit_extents import _extents_statement, extents_checks
+from planner.emit_extents import _extents_statement, extents_checks, finite_proved
 from planner.emit_keys import _outside_expr, _unguarded_index
 from planner.emit_main import _main_statement
 from planner.emit_sets import combinable, sets_extents, sets_statement  # noqa: F401 (app/)
@@ -91,8 +91,18 @@ def finish(plan: Plan, extents_row: dict[str, Any] | None = None) -> Plan:
     row = extents_row or {}
     if plan.request.reduce is not None:  # M4 line reduction: planner/m4.py
         return dataclasses.replace(plan, reduced_row=row, main=m4.main_statement(plan, row))
-    laid = lay_out(plan, row)
+    laid = _proved(lay_out(plan, row), row)
     return dataclasses.replace(laid, main=_main_statement(laid))
+
+
+def _proved(plan: Plan, row: dict[str, Any]) -> Plan:
+    """``plan`` with each double bin the extents row proves finite marked so."""
+    d = plan.dialect
+    if not any(finite_proved(d, k, row) for k in plan.keys if k.mode == "nbin"):
+        return plan
+    return dataclasses.replace(plan, keys=tuple(
+        dataclasses.replace(k, finite=True) if k.mode == "nbin" and finite_proved(d, k, row)
+        else k for k in plan.keys))
 
 
 def guarded(plan: Plan) -> Plan:
@@ -150,7 +160,8 @@ def layout_key(plan: Plan, extents_row: dict[str, Any] | None = None,
         if k.mode == "nbin":
             k = lay_out_key(k, row)  # a laid-out copy: the plan itself stays unlaid
             b = k.nbins
-            out.append((b.start, b.width, b.count, b.method, _unguarded_index(plan.dialect, k)))
+            out.append((b.start, b.width, b.count, b.method, _unguarded_index(plan.dialect, k),
+                        finite_proved(plan.dialect, k, row)))
         elif k.mode == "tbin":
             k = lay_out_key(k, row)
             out.append((k.tstep.iso, k.tstart, k.tcount, k.tclosed))

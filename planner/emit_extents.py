@@ -8,6 +8,8 @@ columns where the target has no aggregate). ``planner.layout`` reads them back. 
 
 from __future__ import annotations
 
+import math
+
 from sqlglot import exp
 
 from planner import names
@@ -45,6 +47,21 @@ def extents_checks(plan: Plan) -> tuple[str, ...]:
     return tuple(names.extents(k.index) + stat for k in plan.keys
                  if k.binned and k.spec.bin is not None and _unguarded(d, k)
                  for stat in ("min", "max"))
+
+
+def finite_proved(d: Dialect, k: Key, row: dict | None) -> bool:
+    """Whether the extents ``row`` proves that key ``k`` (a double bin) has no inf or NaN
+    among the rows it bins: it came from the plain statement (no ``names.extents_guarded``)
+    that read the key's own values (``_unguarded``), whose MIN / MAX would show any
+    non-finite value, and both are finite or NULL. The main statement reads the same rows or
+    fewer (a chart's brushes only narrow its layout rows), so its bin index may skip the
+    finiteness guard -- on 10M rows in DuckDB the guard cost ~25% of a histogram."""
+    if not row or names.extents_guarded() in row or not _unguarded(d, k):
+        return False
+    p = names.extents(k.index)
+    if p + "min" not in row:
+        return False
+    return all(v is None or math.isfinite(float(v)) for v in (row[p + "min"], row[p + "max"]))
 
 
 def _extents_statement(plan: Plan, guarded: bool = False) -> exp.Select | None:
@@ -94,6 +111,8 @@ def _extents_statement(plan: Plan, guarded: bool = False) -> exp.Select | None:
             built[p + "w"] = (v.copy(), "quantile")
     if not sel:
         return None
+    if guarded:  # (its row proves nothing about finiteness: planner.compile.finite_proved)
+        sel.append(exp.alias_(exp.Literal.number(1), names.extents_guarded(), quoted=True))
     src: exp.Expression = relation(plan.schema, d)
     windows = _window_columns(d, [], built)
     if windows:  # the source rows with their window columns, still called "s"

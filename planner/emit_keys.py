@@ -76,7 +76,7 @@ def _key_expr(d: Dialect, k: Key) -> exp.Expression:
     if k.mode == "nbin":
         ref = d.number_cell(ref)
         idx = _nbin_index(d, k, d.double(ref))
-        if k.col.kind == "double":  # inf / NaN have no bin: the NULL bin (like pandas.cut)
+        if k.col.kind == "double" and not k.finite:  # inf / NaN: the NULL bin (pandas.cut)
             return exp.Case(ifs=[exp.If(this=d.finite(d.double(ref.copy())), true=idx)])
         return idx
     if k.mode == "tbin":

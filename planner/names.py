@@ -95,6 +95,12 @@ def extents(i: int, stat: str = "") -> str:
     return f"{INTERNAL}e{i}_{stat}"
 
 
+def extents_guarded() -> str:
+    """A column only the guarded extents statement carries (its row proves nothing about
+    the finiteness of the values: ``planner.compile.finite_proved``)."""
+    return f"{INTERNAL}eguarded"
+
+
 def matched() -> str:
     return f"{INTERNAL}matched"
 

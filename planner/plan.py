@@ -57,6 +57,9 @@ class Key:
     #: numeric bins over an unknown range written as the plain floor, verified per group
     #: after execution (``planner.emit_keys.checked_keys``); set by the emit stage only
     checked: bool = False
+    #: a double bin whose rows hold no inf or NaN (``planner.emit_extents.finite_proved``):
+    #: its bin index needs no finiteness test; set by the layout step only
+    finite: bool = False
 
     @property
     def label(self) -> str:
