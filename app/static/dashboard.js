@@ -222,8 +222,13 @@ async function dashRun() {
     if (my !== DASH.seq) return;
     data = { title: "Request failed", status: "-", detail: String(e) };
   }
-  // superseded by a newer request of this session: quiet, the newer one answers
-  if (r && r.status === 409 && String(data.type || "").endsWith("superseded")) { DASH.superseded += 1; return; }
+  // superseded by a later-arriving request of this session: quiet, that one answers -- unless
+  // this is the newest batch and an older one overtook it on another connection: ask again
+  if (r && r.status === 409 && String(data.type || "").endsWith("superseded")) {
+    DASH.superseded += 1;
+    if (my === DASH.seq) dashRun();
+    return;
+  }
   if (my !== DASH.seq) return;   // a newer batch is on its way: this answer is not drawn
   const prob = $("dash-problem");
   if (!r || !r.ok) {
