@@ -97,12 +97,10 @@ def finish(plan: Plan, extents_row: dict[str, Any] | None = None) -> Plan:
 
 def _proved(plan: Plan, row: dict[str, Any]) -> Plan:
     """``plan`` with each double bin the extents row proves finite marked so."""
-    d = plan.dialect
-    if not any(finite_proved(d, k, row) for k in plan.keys if k.mode == "nbin"):
-        return plan
-    return dataclasses.replace(plan, keys=tuple(
-        dataclasses.replace(k, finite=True) if k.mode == "nbin" and finite_proved(d, k, row)
-        else k for k in plan.keys))
+    keys = tuple(dataclasses.replace(k, finite=True)
+                 if k.mode == "nbin" and finite_proved(plan.dialect, k, row) else k
+                 for k in plan.keys)
+    return dataclasses.replace(plan, keys=keys)
 
 
 def guarded(plan: Plan) -> Plan:

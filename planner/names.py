@@ -97,7 +97,7 @@ def extents(i: int, stat: str = "") -> str:
 
 def extents_guarded() -> str:
     """A column only the guarded extents statement carries (its row proves nothing about
-    the finiteness of the values: ``planner.compile.finite_proved``)."""
+    the finiteness of the values: ``planner.emit_extents.finite_proved``)."""
     return f"{INTERNAL}eguarded"
 
 
