@@ -21,11 +21,12 @@ from app.encode import (column_values, domain, instant_text, normalize_column, t
                         wire_values)
 from app import auth
 from app.engines import Engine
+from app.engines.base import EngineError, EngineUnavailable
 from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_limit
 from app.engines.arrow import conform, key_zone, request_zone
 from planner import names as internal
-from planner.compile import (Plan, bind_sql, bind_values, bins_meta, checked_bins,
-                             display_sql, extents_finite, finish, guarded,
+from planner.compile import (Plan, bind_sql, bind_values, bins_meta, carriable,
+                             carried_extents, checked_bins, display_sql, extents_finite, finish, guarded,
                              guarded_extents_sql, layout_key, param_shape, param_style,
                              prepare)
 from planner.compile import count_sql as count_sql_of
@@ -138,7 +139,8 @@ class PlanCache:
                         v.count(",") + 1 if isinstance(v, str) and v.startswith("[") else 1
                         for v in bind_values(req, entry.schema, dialect)) if plan.slots else 0
             # rendered once: the text is what is reused (the plan kept without its tree)
-            prep = Prepared(dataclasses.replace(plan, extents=None), key, plan.extents_sql, bound)
+            prep = Prepared(dataclasses.replace(plan, extents=None), key, plan.extents_sql, bound,
+                            carries=plan.extents is not None and carriable(plan))
             self._prepared.put(key, prep, _plan_charge(shape, bound, prep.extents_sql))
         return prep
 
@@ -149,13 +151,13 @@ class PlanCache:
                          row: dict[str, Any]) -> None:
         self._extents.put(_extents_key(entry, sql, args), row, 2 * len(sql) + 64 * len(row) + 512)
 
-    def finished(self, prep: "Prepared", entry: SourceEntry, row: dict[str, Any] | None
-                 ) -> tuple[Plan, str]:
+    def finished(self, prep: "Prepared", entry: SourceEntry, row: dict[str, Any] | None,
+                 carry: bool = False) -> tuple[Plan, str]:
         # not the row: a brush keeps its layout
-        key = (prep.key, layout_key(prep.plan, row, prep.layouts))
+        key = (prep.key, layout_key(prep.plan, row, prep.layouts), carry)
         hit = self._finished.get(key)
         if hit is None:
-            plan = finish(prep.plan, row)  # a new plan; the shared bound one stays as it is
+            plan = finish(prep.plan, row, carry)  # a new plan; the shared bound one stays as it is
             # the text is what is reused; the trees are big
             hit = (dataclasses.replace(plan, main=None, extents=None), plan.main_sql)
             self._finished.put(key, hit, _plan_charge(prep.key[0], prep.bound_values, hit[1]))
@@ -186,6 +188,11 @@ class Prepared:
     extents_sql: str | None
     bound_values: int = 0  # values of its bound lists (for the byte charge)
     layouts: dict = field(default_factory=dict, repr=False, compare=False)
+    #: the main statement can carry its own extents row (``planner.compile.carriable``)
+    carries: bool = False
+    #: ``"row"``: the last finite extents row of this shape -- a new filter value is first
+    #: laid out from it, in one statement that carries its own row to check the layout
+    recent: dict = field(default_factory=dict, repr=False, compare=False)
 
 
 def _extents_only(req: ChartRequest, schema: Any) -> ChartRequest:
@@ -232,6 +239,15 @@ def _misbinned(raw: pa.Table) -> bool:
     if name not in raw.column_names or raw.num_rows == 0:
         return False
     return bool(raw.column(name)[0].as_py())
+
+
+def carried_row(plan: Plan, raw: pa.Table | None) -> dict[str, Any] | None:
+    """The extents row a main statement with ``carry_extents`` carried over all its groups
+    (``planner.compile.carried_extents``), or None when it returned no rows."""
+    cols = carried_extents(plan)
+    if raw is None or raw.num_rows == 0 or not cols or any(c not in raw.column_names for c in cols):
+        return None
+    return {c: raw.column(c)[0].as_py() for c in cols}
 
 
 def _ms(t0: float) -> float:
@@ -349,25 +365,39 @@ class ChartService:
         timing["plan"] = _ms(t0)
         t1 = time.perf_counter()
         statements: list[str] = []
-        row = self.extents_row(prep, entry, engine, values, style, statements)
+        guess = prep.recent.get("row") if prep.carries else None
+        row = self.extents_row(prep, entry, engine, values, style, statements,
+                               lookup_only=guess is not None)
         t2 = time.perf_counter()
-        plan, main_sql = self._plans.finished(prep, entry, row)
-        # per row condition too: what one key's rows did never shows in another's answer
-        checked = [(req.source, entry.schema.rows, *c) for c in checked_bins(plan)]
-        if checked and any(c in self._guard_bins for c in checked):
-            plan, main_sql = self._guarded_plan(main_sql, plan)  # missed before: guarded
-        plan_more = _ms(t2)
-        statements.append(display_sql(main_sql))
-        sql, args = bind_sql(main_sql, values, style)
-        raw = engine.execute(sql, args)
-        if _misbinned(raw):  # the checked plain floor missed an edge: the guarded form
-            if len(self._guard_bins) >= 4096:
-                self._guard_bins.clear()
-            self._guard_bins.update(checked)
-            plan, main_sql = self._guarded_plan(main_sql, plan)
-            statements.append(display_sql(main_sql))
-            sql, args = bind_sql(main_sql, values, style)
-            raw = engine.execute(sql, args)
+        plan_more = 0.0
+        raw = None
+        if row is None and guess is not None:  # a new filter: one statement, checked after
+            plan, main_sql = self._plans.finished(prep, entry, guess, carry=True)
+            plan_more += _ms(t2)
+            raw, plan, main_sql = self._main(req, plan, main_sql, entry, engine, values, style,
+                                             statements, speculative=True)
+            row = carried_row(plan, raw)
+            if row is not None and extents_finite(plan, row):  # the extents statement's row
+                self._plans.remember_extents(entry, prep.extents_sql, bind_sql(
+                    prep.extents_sql, values, style)[1], row)
+            else:
+                row = None
+            if row is None or layout_key(prep.plan, row, prep.layouts) != layout_key(
+                    prep.plan, guess, prep.layouts):
+                raw = None  # another layout (or inf / NaN): laid out from its own row
+                row = self.extents_row(prep, entry, engine, values, style, statements)
+            t2 = time.perf_counter()
+        if raw is None:
+            plan, main_sql = self._plans.finished(prep, entry, row)
+            plan_more += _ms(t2)
+            raw, plan, main_sql = self._main(req, plan, main_sql, entry, engine, values, style,
+                                             statements)
+        else:
+            raw, plan, main_sql = self._recheck(req, plan, main_sql, raw, entry, engine, values,
+                                                style, statements)
+        if prep.carries and row and extents_finite(plan, row) \
+                and internal.extents_guarded() not in row:
+            prep.recent["row"] = row  # the next filter of this shape starts from it
         extra = self.totals(plan, engine, values, style, statements) if raw.num_rows == 0 else None
         timing["execute"] = round(_ms(t1) - plan_more, 3)
         timing["plan"] = round(timing["plan"] + plan_more, 3)
@@ -375,6 +405,46 @@ class ChartService:
         table, meta = self._shape(plan, entry, raw, extra, statements)
         timing["shape"] = _ms(t3)
         return ChartResult(plan, entry, table, meta, timing)
+
+    def _main(self, req: ChartRequest, plan: Plan, main_sql: str, entry: SourceEntry,
+              engine: Engine, values: list[Any], style: str, statements: list[str],
+              speculative: bool = False) -> tuple[pa.Table | None, Plan, str]:
+        """Run a finished plan's main statement: guarded at once for a bin the checked
+        plain floor missed before, and again guarded when it misses now (``_recheck``).
+        ``speculative``: the layout came from an earlier extents row (``carry=True``), so an
+        engine error -- say, a value that layout cannot place -- answers None and the caller
+        lays the chart out from its own row; it is rechecked once the layout is confirmed."""
+        if self._known_misbinned(req, plan, entry):
+            plan, main_sql = self._guarded_plan(main_sql, plan)
+        statements.append(display_sql(main_sql))
+        try:
+            raw = engine.execute(*bind_sql(main_sql, values, style))
+        except (EngineError, PlanError) as e:
+            if not speculative or isinstance(e, EngineUnavailable):
+                raise
+            return None, plan, main_sql
+        if speculative:
+            return raw, plan, main_sql
+        return self._recheck(req, plan, main_sql, raw, entry, engine, values, style, statements)
+
+    def _known_misbinned(self, req: ChartRequest, plan: Plan, entry: SourceEntry) -> bool:
+        # per row condition too: what one key's rows did never shows in another's answer
+        return any((req.source, entry.schema.rows, *c) in self._guard_bins
+                   for c in checked_bins(plan))
+
+    def _recheck(self, req: ChartRequest, plan: Plan, main_sql: str, raw: pa.Table,
+                 entry: SourceEntry, engine: Engine, values: list[Any], style: str,
+                 statements: list[str]) -> tuple[pa.Table, Plan, str]:
+        """``raw`` unless the checked plain floor missed an edge (``_misbinned``): then the
+        guarded form's answer, and the bins are remembered (``_known_misbinned``)."""
+        if not _misbinned(raw):
+            return raw, plan, main_sql
+        if len(self._guard_bins) >= 4096:
+            self._guard_bins.clear()
+        self._guard_bins.update((req.source, entry.schema.rows, *c) for c in checked_bins(plan))
+        plan, main_sql = self._guarded_plan(main_sql, plan)
+        statements.append(display_sql(main_sql))
+        return engine.execute(*bind_sql(main_sql, values, style)), plan, main_sql
 
     def extents_row(self, prep: "Prepared", entry: SourceEntry, engine: Engine,
                     values: list[Any], style: str, statements: list[str],

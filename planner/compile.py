@@ -57,7 +57,8 @@ from planner.dialects.base import Dialect
 from planner.emit_checked import checkable
 from planner.emit_extents import _extents_statement, extents_checks, finite_proved
 from planner.emit_keys import _outside_expr, _unguarded_index
-from planner.emit_main import _main_statement
+from planner.emit_extents import carried_extents  # noqa: F401 (app/)
+from planner.emit_main import _main_statement, carriable
 from planner.emit_sets import combinable, sets_extents, sets_statement  # noqa: F401 (app/)
 from planner.layout import lay_out, lay_out_key
 from planner.model import ChartRequest
@@ -85,13 +86,18 @@ def count_sql(plan: Plan) -> str:
     return d.render(q)
 
 
-def finish(plan: Plan, extents_row: dict[str, Any] | None = None) -> Plan:
+def finish(plan: Plan, extents_row: dict[str, Any] | None = None, carry: bool = False) -> Plan:
     """Step 2: a new plan with the bins laid out from the extents row and the main
-    statement (``plan`` itself is left as it was)."""
+    statement (``plan`` itself is left as it was). ``carry``: the main statement also
+    carries the extents row of its own rows (``carriable`` plans only), so a layout taken
+    from an earlier row can be checked against it."""
     row = extents_row or {}
     if plan.request.reduce is not None:  # M4 line reduction: planner/m4.py
         return dataclasses.replace(plan, reduced_row=row, main=m4.main_statement(plan, row))
     laid = _proved(lay_out(plan, row), row)
+    if carry:
+        assert carriable(laid), "finish(carry=True) of a plan that cannot carry its extents"
+        laid = dataclasses.replace(laid, carry_extents=True)
     return dataclasses.replace(laid, main=_main_statement(laid))
 
 

@@ -9,6 +9,7 @@ from sqlglot import exp
 
 from planner import names
 from planner.dialects.base import Dialect
+from planner.emit_extents import carried_extents
 from planner.emit_sql import _ref, _table
 from planner.errors import PlanError, pointer
 from planner.plan import Key, Plan
@@ -74,6 +75,7 @@ def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
     outs = [names.outside_count(k.index) for k in flags]
     if any(k.checked for k in plan.keys):  # the checked floor's flag (planner.emit_checked)
         outs.append(names.misbinned())
+    outs += carried_extents(plan)  # (planner.emit_main.carriable)
     keys = [k.internal for k in plan.keys]
     data = exp.select(*[_ref(c) for c in keys], *[_ref(m.internal) for m in plan.measures],
                       _ref(n), _ref(matched), *[_ref(o) for o in outs],

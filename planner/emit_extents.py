@@ -65,6 +65,36 @@ def finite_proved(d: Dialect, k: Key, row: dict | None) -> bool:
     return all(v is None or math.isfinite(float(v)) for v in (row[p + "min"], row[p + "max"]))
 
 
+def needs_extents(k: Key) -> bool:
+    """Whether key ``k``'s layout reads the extents row: a data-driven bin (not a time bin
+    with limits, nor nice bins / a width over explicit limits without a rule)."""
+    if not (k.binned and k.spec.bin is not None):
+        return False
+    if k.mode == "tbin":
+        return k.tlimits is None
+    return not (k.spec.bin.rule is None and k.nlimits is not None)
+
+
+def plain_min_max(d: Dialect, k: Key) -> bool:
+    """Whether key ``k``'s extents are just the MIN and MAX of its plain value
+    (``planner.emit_checked.bin_value``): a numeric bin without a rule or limits, whose
+    values the statement reads unguarded (integers, decimals, ``_unguarded`` doubles)."""
+    return (k.mode == "nbin" and k.spec.bin is not None and k.spec.bin.rule is None
+            and k.nlimits is None and (k.col.kind != "double" or _unguarded(d, k)))
+
+
+def carried_keys(plan: Plan) -> list[Key]:
+    """The keys whose extents a main statement with ``Plan.carry_extents`` carries
+    (``planner.emit_main.carriable``); none without it."""
+    return [k for k in plan.keys if needs_extents(k)] if plan.carry_extents else []
+
+
+def carried_extents(plan: Plan) -> list[str]:
+    """The extents row's columns such a main statement carries over all its groups: each
+    carried key's plain min and max, named as the extents statement names them."""
+    return [names.extents(k.index, end) for k in carried_keys(plan) for end in ("min", "max")]
+
+
 def _extents_statement(plan: Plan, guarded: bool = False) -> exp.Select | None:
     """The extents statement; ``guarded``: every double value tested for finiteness (the
     statement the checked one falls back to, ``extents_checks``)."""
@@ -72,19 +102,16 @@ def _extents_statement(plan: Plan, guarded: bool = False) -> exp.Select | None:
     sel: list[exp.Expression] = []
     built: dict[str, tuple[exp.Expression, str]] = {}  # window inputs (see _window_columns)
     for k in plan.keys:
-        if not (k.binned and k.spec.bin is not None):
+        if not needs_extents(k):
             continue
         b = k.spec.bin
         ref = d.column(k.col.name, "s")
         p = names.extents(k.index)
         if k.mode == "tbin":
-            if k.tlimits is None:
-                ep = d.epoch(_instant_in_range(d, k.col, ref), k.col.kind)
-                sel += [exp.alias_(exp.Min(this=ep), p + "min", quoted=True),
-                        exp.alias_(exp.Max(this=ep.copy()), p + "max", quoted=True)]
+            ep = d.epoch(_instant_in_range(d, k.col, ref), k.col.kind)
+            sel += [exp.alias_(exp.Min(this=ep), p + "min", quoted=True),
+                    exp.alias_(exp.Max(this=ep.copy()), p + "max", quoted=True)]
             continue
-        if b.rule is None and k.nlimits is not None:
-            continue  # nice bins (or a width) over explicit limits need no statistics
         v = _bin_input(d, k, guarded or not _unguarded(d, k))
         if k.nlimits is not None:  # numpy trims the data to the range before applying a rule
             lo, hi = k.nlimits

@@ -25,6 +25,7 @@ from planner import names
 from planner.dialects.base import Dialect
 from planner.emit_dense import _dense
 from planner.emit_checked import bin_value, checkable, misbinned_expr
+from planner.emit_extents import carried_extents, carried_keys, needs_extents, plain_min_max
 from planner.emit_keys import _instant_in_range, _key_expr, _key_outputs, _outside_expr
 from planner.emit_measures import _measure_agg, _measure_input, _window_columns
 from planner.emit_sql import _ref, _table
@@ -68,6 +69,27 @@ def _main_statement(plan: Plan, guard: bool = False) -> exp.Select:
     return outer
 
 
+def carriable(plan: Plan) -> bool:
+    """Whether the main statement can carry its own extents row (``Plan.carry_extents``):
+    every key with data-driven extents has only a plain MIN and MAX
+    (``planner.emit_extents.plain_min_max``) over the very rows the main statement groups
+    (no brushes kept out of the layout, no top-N fold re-grouping them). The service then
+    lays out a changed filter from an earlier row, runs ONE statement, and keeps its answer
+    only when the carried row gives the same layout (``planner.compile.layout_key``)."""
+    r = plan.request
+    if r.reduce is not None or r.split_layout or _fold_after_grouping(plan):
+        return False
+    keys = [k for k in plan.keys if needs_extents(k)]
+    return bool(keys) and all(plain_min_max(plan.dialect, k) for k in keys)
+
+
+def _ranged(plan: Plan) -> list[Key]:
+    """The keys whose per-group smallest and largest value the grouped stage computes
+    (``names.value_range``): checked bins and carried extents."""
+    carried = {k.index for k in carried_keys(plan)}
+    return [k for k in plan.keys if k.checked or k.index in carried]
+
+
 def _over_all(e: exp.Expression) -> exp.Window:
     """``e`` as a window over all groups (``e OVER ()``)."""
     return exp.Window(this=e)
@@ -88,9 +110,8 @@ def _base(plan: Plan, ctes: list, fold: bool) -> list[Key]:
         else:
             key_value = _key_expr(d, k)
         base = base.select(exp.alias_(key_value, k.internal, quoted=True), copy=False)
-    for k in keys:
-        if k.checked:  # the value itself, for the per-group check (emit_keys.checkable)
-            base = base.select(exp.alias_(bin_value(d, k), names.value(k.index), quoted=True), copy=False)
+    for k in _ranged(plan):  # the value itself: the per-group check (emit_checked), extents
+        base = base.select(exp.alias_(bin_value(d, k), names.value(k.index), quoted=True), copy=False)
     flags = []
     for k in keys:
         flag = _outside_expr(d, k)
@@ -151,12 +172,11 @@ def _grouped(plan: Plan, ctes: list, group_cols: list[str], fold: bool) -> str:
                                 and n.this == arg else n)
         grouped = grouped.select(exp.alias_(agg, m.internal, quoted=True), copy=False)
     grouped = grouped.select(exp.alias_(exp.Count(this=exp.Star()), names.rows(), quoted=True), copy=False)
-    for k in plan.keys:
-        if k.checked:
-            v = _ref(names.value(k.index))
-            grouped = grouped.select(
-                exp.alias_(exp.Min(this=v), names.value_range(k.index, "min"), quoted=True),
-                exp.alias_(exp.Max(this=v.copy()), names.value_range(k.index, "max"), quoted=True), copy=False)
+    for k in _ranged(plan):
+        v = _ref(names.value(k.index))
+        grouped = grouped.select(
+            exp.alias_(exp.Min(this=v), names.value_range(k.index, "min"), quoted=True),
+            exp.alias_(exp.Max(this=v.copy()), names.value_range(k.index, "max"), quoted=True), copy=False)
     if group_cols:
         grouped = grouped.group_by(*[_ref(c) for c in group_cols], copy=False)
     pairs = _distinct_pairs(d, grouped, rows_name, group_cols)
@@ -198,6 +218,11 @@ def _counted(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
     if checked:  # over every group, before limits, caps and LIMIT drop any
         counted = counted.select(exp.alias_(misbinned_expr(plan.dialect, checked),
                                             names.misbinned(), quoted=True), copy=False)
+    for k in carried_keys(plan):  # the extents row over every group (carriable)
+        for end, agg in (("min", exp.Min), ("max", exp.Max)):
+            counted = counted.select(exp.alias_(
+                _over_all(agg(this=_ref(names.value_range(k.index, end)))),
+                names.extents(k.index, end), quoted=True), copy=False)
     ctes.append((names.cte("counted"), counted))
     current = names.cte("counted")
     if flags:
@@ -226,9 +251,11 @@ def _final(plan: Plan, ctes: list, current: str, flags: list[Key], cap: int | No
     for k in flags:
         final = final.select(exp.alias_(_over_all(exp.Max(this=_ref(names.outside_count(k.index)))),
                                         names.outside_count(k.index), quoted=True), copy=False)
-    if any(k.checked for k in keys):  # (empty cells of the dense grid carry NULL)
-        final = final.select(exp.alias_(_over_all(exp.Max(this=_ref(names.misbinned()))),
-                                        names.misbinned(), quoted=True), copy=False)
+    totals = [names.misbinned()] if any(k.checked for k in keys) else []
+    totals += carried_extents(plan)
+    for t in totals:  # (empty cells of the dense grid carry NULL)
+        final = final.select(exp.alias_(_over_all(exp.Max(this=_ref(t))), t, quoted=True),
+                             copy=False)
     if cap is not None:
         facet_keys = [k for k in keys if k.channel in ("row", "col")]
         rank = exp.Window(this=exp.RowNumber(),

@@ -173,6 +173,9 @@ class Plan:
     #: the condition that decides data-driven layouts and top-N membership when it differs
     #: from ``where`` (``ChartRequest.layout_filters``: the first filters, without brushes)
     layout_where: exp.Expression | None = None
+    #: the main statement also carries the extents row (``planner.emit_main.carriable``):
+    #: its first row holds the ``names.extents`` min / max the extents statement would give
+    carry_extents: bool = False
 
     @property
     def extents_where(self) -> exp.Expression | None:

@@ -347,3 +347,51 @@ def test_plain_extents_fall_back_to_the_guarded_statement(service, engine):
     b = out["bins"]["x"]
     assert b["count"] == len(edges) - 1 and math.isclose(b["start"], edges[0])
     assert [r["count"] for r in out["rows"] if r["x_lo"] is not None] == [int(c) for c in counts if c]
+
+
+@pytest.mark.parametrize("engine", ["duckdb", "postgres", "sqlite", "mysql"])
+def test_a_new_filter_is_laid_out_from_the_last_row_and_checked(service, engine):
+    """A new filter value of a chart shape seen before runs ONE statement laid out from the
+    shape's last extents row; that statement carries its own min / max
+    (``planner.emit_main.carriable``) and its answer stands only when they give the same
+    layout. Each step's answer must equal the same request in a service with empty caches
+    (the extents statement first) and numpy.histogram over the answer's edges of the values
+    Python keeps; when the layout changes, when inf / NaN come in and when nothing matches,
+    the service lays the chart out from the right row."""
+    from app.service import ChartService
+
+    warm = ChartService(service.catalog)
+    vals = [v for v in values(engine) if v is not None]
+    steps = [  # (where bounds, statements the warm service runs)
+        ((-1e300, 1e300), 2),   # first of its shape: the extents, then the grouped statement
+        ((-1e300, 1e299), 1),   # the same rows: the layout holds, one statement
+        ((0.0, 40.0), 2),       # another layout: the carried row re-lays it out (no extents)
+        ((0.5, 40.0), 1),       # the same layout from a new row: one statement
+        ((1e6, 2e6), None),     # nothing matches
+        ((-3.0, 3.0), None),
+    ]
+    for (lo, hi), statements in steps:
+        body = {"channels": {"x": {"column": "v", "bin": {"bins": 10}}, "y": {"agg": "count"}},
+                "where": [{"column": "v", "gte": lo, "lte": hi}]}
+        got = run(warm, engine, body)
+        alone = run(ChartService(service.catalog), engine, body)  # reference: empty caches
+        assert (got["bins"], got["rows"]) == (alone["bins"], alone["rows"]), (lo, hi)
+        kept = [v for v in vals if not math.isnan(v) and lo <= v <= hi]
+        assert got["stats"]["matched_rows"] == len(kept)
+        if statements is not None:
+            assert got["stats"]["statements"] == statements, got["sql"]
+        if kept:
+            b = got["bins"]["x"]
+            edges = [b["start"] + j * b["width"] for j in range(b["count"] + 1)]
+            counts, _ = np.histogram(kept, bins=edges)  # reference: numpy.histogram
+            assert [r["count"] for r in got["rows"]] == [int(c) for c in counts if c]
+    # without a where the rows hold inf / NaN: the carried max shows it, so the chart is
+    # laid out from the guarded extents and binned with the finiteness test
+    body = {"channels": {"x": {"column": "v", "bin": {"bins": 10}}, "y": {"agg": "count"}}}
+    got, alone = run(warm, engine, body), run(ChartService(service.catalog), engine, body)
+    assert (got["bins"], got["rows"]) == (alone["bins"], alone["rows"])
+    finite = [v for v in vals if math.isfinite(v)]
+    b = got["bins"]["x"]
+    edges = [b["start"] + j * b["width"] for j in range(b["count"] + 1)]
+    counts, _ = np.histogram(finite, bins=edges)  # reference: numpy.histogram
+    assert [r["count"] for r in got["rows"] if r["x_lo"] is not None] == [int(c) for c in counts if c]
