@@ -69,6 +69,9 @@ class _Member:
     values: list
     k: int = 0  # its place in the shared statement (planner.names.chart())
     row: dict | None = None
+    #: the shape's last extents row when its own is not cached: laid out from it, the chart
+    #: carries its own row in the shared statement (``Plan.carry_extents``), checked after
+    guess: dict | None = None
     statements: list = dataclasses.field(default_factory=list)
 
 
@@ -132,10 +135,13 @@ class _Group:
         plan_ms = (time.perf_counter() - t0) * 1000.0
         t1 = time.perf_counter()
         self._extents(members, entry, engine, style)
+        for m in members:
+            svc.remember_layout(m.prep, m.row)
         t2 = time.perf_counter()
-        finished = [svc._plans.finished(m.prep, entry, m.row) for m in members]
-        key = tuple((m.prep.key, layout_key(m.prep.plan, m.row, m.prep.layouts))
-                    for m in members)
+        finished = [svc._plans.finished(m.prep, entry, m.row or m.guess, m.guess is not None)
+                    for m in members]
+        key = tuple((m.prep.key, layout_key(m.prep.plan, m.row or m.guess, m.prep.layouts),
+                     m.guess is not None) for m in members)
         shared = svc.shared_sql.get(key)
         if shared is None:
             built = sets_statement([p for p, _ in finished])
@@ -158,6 +164,9 @@ class _Group:
             rows = raw.filter(mask)
             rows = rows.take(pc.sort_indices(rows.column(order)))
             sub = pa.table({own: rows.column(c) for c, own in cols})
+            if m.guess is not None and not svc.carried_layout(m.prep, entry, plan, sub, m.guess,
+                                                             values, style):
+                continue  # another layout (or inf / NaN, no rows): it runs alone
             statements = m.statements + [shown]
             extra = (svc.totals(plan, engine, values, style, statements)  # as the chart alone
                      if sub.num_rows == 0 else None)
@@ -167,14 +176,17 @@ class _Group:
             self.results[m.index] = _result(plan, entry, table, meta, timing)
 
     def _extents(self, members: list[_Member], entry: Any, engine: Any, style: str) -> None:
-        """Each member's extents row: the cache's, else one merged statement for all that
-        lack theirs (their own statement when only one does)."""
+        """Each member's extents row: the cache's, else the shape's last row as a guess
+        (``ChartService.carried_layout`` checks it), else one merged statement for all
+        that lack theirs (their own statement when only one does)."""
         svc = self.service
         need = []
         for m in members:
             m.row = svc.extents_row(m.prep, entry, engine, m.values, style, m.statements,
                                     lookup_only=True)
-            if m.row is None and m.prep.extents_sql is not None:
+            if m.row is None and m.prep.carries:
+                m.guess = m.prep.recent.get("row")
+            if m.row is None and m.guess is None and m.prep.extents_sql is not None:
                 need.append(m)
         if not need:
             return

@@ -376,14 +376,7 @@ class ChartService:
             plan_more += _ms(t2)
             raw, plan, main_sql = self._main(req, plan, main_sql, entry, engine, values, style,
                                              statements, speculative=True)
-            row = carried_row(plan, raw)
-            if row is not None and extents_finite(plan, row):  # the extents statement's row
-                self._plans.remember_extents(entry, prep.extents_sql, bind_sql(
-                    prep.extents_sql, values, style)[1], row)
-            else:
-                row = None
-            if row is None or layout_key(prep.plan, row, prep.layouts) != layout_key(
-                    prep.plan, guess, prep.layouts):
+            if not self.carried_layout(prep, entry, plan, raw, guess, values, style):
                 raw = None  # another layout (or inf / NaN): laid out from its own row
                 row = self.extents_row(prep, entry, engine, values, style, statements)
             t2 = time.perf_counter()
@@ -395,9 +388,7 @@ class ChartService:
         else:
             raw, plan, main_sql = self._recheck(req, plan, main_sql, raw, entry, engine, values,
                                                 style, statements)
-        if prep.carries and row and extents_finite(plan, row) \
-                and internal.extents_guarded() not in row:
-            prep.recent["row"] = row  # the next filter of this shape starts from it
+        self.remember_layout(prep, row)
         extra = self.totals(plan, engine, values, style, statements) if raw.num_rows == 0 else None
         timing["execute"] = round(_ms(t1) - plan_more, 3)
         timing["plan"] = round(timing["plan"] + plan_more, 3)
@@ -405,6 +396,29 @@ class ChartService:
         table, meta = self._shape(plan, entry, raw, extra, statements)
         timing["shape"] = _ms(t3)
         return ChartResult(plan, entry, table, meta, timing)
+
+    def carried_layout(self, prep: "Prepared", entry: SourceEntry, plan: Plan,
+                       raw: pa.Table | None, guess: dict[str, Any], values: list[Any],
+                       style: str) -> bool:
+        """Whether the answer of a main statement laid out from ``guess`` (``carry=True``)
+        stands: the extents row it carried (``carried_row``) is finite and gives the same
+        layout (``layout_key``), i.e. the extents statement would have led to the same
+        statement. A finite carried row is remembered as that statement's answer either way."""
+        row = carried_row(plan, raw)
+        if row is None or not extents_finite(prep.plan, row):
+            return False
+        self._plans.remember_extents(entry, prep.extents_sql,
+                                     bind_sql(prep.extents_sql, values, style)[1], row)
+        self.remember_layout(prep, row)
+        return layout_key(prep.plan, row, prep.layouts) == layout_key(prep.plan, guess, prep.layouts)
+
+    @staticmethod
+    def remember_layout(prep: "Prepared", row: dict[str, Any] | None) -> None:
+        """Keep ``row`` as the shape's last extents row (the next new filter starts from
+        it) when the shape can carry its extents and the row is a finite plain one."""
+        if (prep.carries and row and extents_finite(prep.plan, row)
+                and internal.extents_guarded() not in row):
+            prep.recent["row"] = row
 
     def _main(self, req: ChartRequest, plan: Plan, main_sql: str, entry: SourceEntry,
               engine: Engine, values: list[Any], style: str, statements: list[str],

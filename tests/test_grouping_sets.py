@@ -18,6 +18,7 @@ ClickHouse embedded through chdb and over HTTP, Spark; the rows of tests/engine_
 
 from __future__ import annotations
 
+import datetime as dt
 import math
 import subprocess
 import sys
@@ -126,6 +127,19 @@ def _same(res: dict) -> dict:
     return out
 
 
+def _close(a, b) -> bool:
+    """Equal, but floats to 1e-12 relative: a mean of doubles summed in another order (the
+    shared statement's grouping against the chart's own) may differ in the last digit --
+    IEEE 754 addition is not associative."""
+    if isinstance(a, float) and isinstance(b, float):
+        return math.isclose(a, b, rel_tol=1e-12, abs_tol=1e-300)
+    if isinstance(a, dict) and isinstance(b, dict):
+        return a.keys() == b.keys() and all(_close(a[k], b[k]) for k in a)
+    if isinstance(a, list) and isinstance(b, list):
+        return len(a) == len(b) and all(_close(x, y) for x, y in zip(a, b))
+    return a == b
+
+
 def _alone(client, body: dict, chart: dict) -> dict:
     req = {"source": body["source"], "tz": body["tz"], "where": body["where"],
            **{k: v for k, v in chart.items() if k != "id"}}
@@ -179,6 +193,53 @@ def test_shared_filter_batch_equals_each_chart_alone(client, frame, engine, monk
         assert len(executed) == len(CHARTS)
         assert len(rows_asked) == len(DATA_BINS)
         assert not any("GROUPING SETS" in s for res in results for s in res["sql"])
+
+
+@pytest.mark.parametrize("engine", [e for e in ENGINES if e != "clickhouse_http"])
+def test_a_moving_filter_carries_the_layouts_in_the_shared_statement(client, engine, monkeypatch):
+    """A batch re-asked with a new filter (a moving range) lays its data-driven bins out
+    from the last extents row and carries each one's own min / max in the shared statement
+    (``planner.emit_main.carriable``): no extents statement; a chart whose carried row gives
+    another layout runs again alone. Reference: every chart equals the same chart asked of a
+    service with empty caches (its extents statement first)."""
+    from app.service import ChartService
+
+    changed = 0
+    previous = None
+    t0 = dt.datetime(2026, 1, 1, tzinfo=dt.timezone.utc)
+    windows = [(0, 300), (1, 300), (2, 299), (100, 4), (100.5, 4), (150, 150)]  # days
+    for step, (start, days) in enumerate(windows):
+        lo = t0 + dt.timedelta(days=start, minutes=7 * ENGINES.index(engine))
+        hi = lo + dt.timedelta(days=days)
+        body = {"source": engine, "tz": TZ, "charts": CHARTS, "where": [
+            {"column": "ts", "gte": lo.isoformat(), "lt": hi.isoformat()}]}
+        count = Counter(monkeypatch, client.app.state.catalog.engine(engine))
+        r = client.post("/v1/batch", json=body)
+        assert r.status_code == 200, r.text
+        results = r.json()["results"]
+        rows_asked = [s for s in count.fetch_row if "_sluice_" in s]
+        executed = [s for s in count.execute if s not in count.fetch_row and "_sluice_" in s]
+        monkeypatch.undo()
+        fresh = ChartService(client.app.state.catalog)  # reference: empty caches
+        real = client.app.state.service
+        client.app.state.service = fresh
+        try:
+            for chart, res in zip(CHARTS, results):
+                assert "status" not in res, res
+                assert _close(_same(res), _same(_alone(client, body, chart))), (step, chart["id"])
+        finally:
+            client.app.state.service = real
+        layout = [res["bins"]["x"] for c, res in zip(CHARTS, results) if c["id"] in DATA_BINS]
+        if step and _shares(client, engine):
+            moved = sum(a != b for a, b in zip(layout, previous))
+            changed += moved
+            assert rows_asked == [], rows_asked  # the shared statement carried the extents
+            # the shared statement + the top-N chart's own (+ each chart whose layout moved,
+            # again alone)
+            assert len(executed) == 2 + moved, (step, executed)
+        previous = layout
+    if _shares(client, engine):
+        assert 0 < changed < 2 * (len(windows) - 1)  # both paths: layouts held, some moved
 
 
 def test_member_answer_is_cached_for_the_chart_alone(client):
