@@ -84,6 +84,8 @@ class _Group:
         self.lock = threading.Lock()
         self.done = False
         self.results: dict[int, Any] = {}
+        #: statements that ran for a member whose answer was not kept (``_run_within``)
+        self.spent: dict[int, list[str]] = {}
         self.error: BaseException | None = None
 
     def result(self, i: int) -> Any:
@@ -99,7 +101,12 @@ class _Group:
         if self.error is not None and not isinstance(self.error, PlanError):
             raise self.error
         req = dict(self.members)[i]
-        return self.service.run(req)  # not part of the shared statement: alone
+        result = self.service.run(req)  # not part of the shared statement: alone
+        spent = self.spent.pop(i, None)
+        if spent:  # it had a place in the shared statement too: that statement ran for it
+            result.meta["sql"] = spent + result.meta["sql"]
+            result.meta["stats"]["statements"] = len(result.meta["sql"])
+        return result
 
     def _run(self) -> None:
         svc = self.service
@@ -166,6 +173,7 @@ class _Group:
             sub = pa.table({own: rows.column(c) for c, own in cols})
             if m.guess is not None and not svc.carried_layout(m.prep, entry, plan, sub, m.guess,
                                                              values, style):
+                self.spent[m.index] = m.statements + [shown]  # (shown in its answer too)
                 continue  # another layout (or inf / NaN, no rows): it runs alone
             statements = m.statements + [shown]
             extra = (svc.totals(plan, engine, values, style, statements)  # as the chart alone

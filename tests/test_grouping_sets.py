@@ -237,6 +237,10 @@ def test_a_moving_filter_carries_the_layouts_in_the_shared_statement(client, eng
             # the shared statement + the top-N chart's own (+ each chart whose layout moved,
             # again alone)
             assert len(executed) == 2 + moved, (step, executed)
+            for c, res in zip(CHARTS, results):  # what ran for it, the shared one included
+                if c["id"] in SHARED:
+                    assert "_sluice_spine" in res["sql"][0]  # (the shared statement)
+                    assert res["stats"]["statements"] == len(res["sql"])
         previous = layout
     if _shares(client, engine):
         assert 0 < changed < 2 * (len(windows) - 1)  # both paths: layouts held, some moved
