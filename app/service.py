@@ -26,9 +26,9 @@ from app.limits import Limiter, Limits, check_filter_sql, check_request, clamp_l
 from app.engines.arrow import conform, key_zone, request_zone
 from planner import names as internal
 from planner.compile import (Plan, bind_sql, bind_values, bins_meta, carriable,
-                             carried_extents, checked_bins, display_sql, extents_finite, finish, guarded,
-                             guarded_extents_sql, layout_key, param_shape, param_style,
-                             prepare)
+                             carried_extents, checked_bins, display_sql, extents_finite,
+                             finish, guarded, guarded_extents_sql, layout_key, param_shape,
+                             param_style, prepare)
 from planner.compile import count_sql as count_sql_of
 from planner.dialects import DIALECTS, get_dialect
 from planner.errors import PlanError, Unsupported, nearest, pointer
@@ -410,7 +410,8 @@ class ChartService:
         self._plans.remember_extents(entry, prep.extents_sql,
                                      bind_sql(prep.extents_sql, values, style)[1], row)
         self.remember_layout(prep, row)
-        return layout_key(prep.plan, row, prep.layouts) == layout_key(prep.plan, guess, prep.layouts)
+        same = layout_key(prep.plan, guess, prep.layouts)
+        return layout_key(prep.plan, row, prep.layouts) == same
 
     @staticmethod
     def remember_layout(prep: "Prepared", row: dict[str, Any] | None) -> None:
