@@ -403,9 +403,14 @@ class ChartService:
         """Whether the answer of a main statement laid out from ``guess`` (``carry=True``)
         stands: the extents row it carried (``carried_row``) is finite and gives the same
         layout (``layout_key``), i.e. the extents statement would have led to the same
-        statement. A finite carried row is remembered as that statement's answer either way."""
+        statement. A finite carried row is remembered as that statement's answer either way;
+        a non-finite one ends the guessing for this shape (the guarded extents follow), so a
+        batch member that runs again alone does not guess a second time."""
         row = carried_row(plan, raw)
-        if row is None or not extents_finite(prep.plan, row):
+        if row is None:
+            return False
+        if not extents_finite(prep.plan, row):  # inf / NaN under such filters: no more
+            prep.recent.pop("row", None)  # guesses until a finite row is laid out again
             return False
         self._plans.remember_extents(entry, prep.extents_sql,
                                      bind_sql(prep.extents_sql, values, style)[1], row)

@@ -55,9 +55,9 @@ from planner import m4, names
 from planner.bind import bind
 from planner.dialects.base import Dialect
 from planner.emit_checked import checkable
-from planner.emit_extents import _extents_statement, extents_checks, finite_proved
+from planner.emit_extents import (_extents_statement, carried_extents,  # noqa: F401 (app/)
+                                   extents_checks, finite_proved)
 from planner.emit_keys import _outside_expr, _unguarded_index
-from planner.emit_extents import carried_extents  # noqa: F401 (app/)
 from planner.emit_main import _main_statement, carriable
 from planner.emit_sets import combinable, sets_extents, sets_statement  # noqa: F401 (app/)
 from planner.layout import lay_out, lay_out_key

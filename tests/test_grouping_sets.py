@@ -111,6 +111,19 @@ class Counter:
             monkeypatch.setattr(engine, name, spy)
 
 
+def _counted_batch(client, monkeypatch, body: dict) -> tuple[list, list[str], list[str]]:
+    """POST /v1/batch: its answers, the extents / totals rows the engine was asked for and
+    the main statements it ran -- the planner's (not the catalog's row count); an engine
+    may answer fetch_row through its own execute."""
+    count = Counter(monkeypatch, client.app.state.catalog.engine(body["source"]))
+    r = client.post("/v1/batch", json=body)
+    assert r.status_code == 200, r.text
+    rows_asked = [s for s in count.fetch_row if "_sluice_" in s]
+    executed = [s for s in count.execute if s not in count.fetch_row and "_sluice_" in s]
+    monkeypatch.undo()
+    return r.json()["results"], rows_asked, executed
+
+
 def _shares(client, source: str) -> bool:
     """Whether the source's dialect takes the shared path (its capability record)."""
     from planner.dialects import get_dialect
@@ -165,15 +178,7 @@ def _check_cat(res: dict, sub: pd.DataFrame) -> None:
 def test_shared_filter_batch_equals_each_chart_alone(client, frame, engine, monkeypatch):
     lo = -30 - ENGINES.index(engine)  # a filter of its own: no cached answer or extents
     body = {"source": engine, "tz": TZ, "where": [{"column": "n", "gte": lo}], "charts": CHARTS}
-    count = Counter(monkeypatch, client.app.state.catalog.engine(engine))
-    r = client.post("/v1/batch", json=body)
-    assert r.status_code == 200, r.text
-    results = r.json()["results"]
-    # the planner's statements (not the catalog's row count); an engine may answer
-    # fetch_row through its own execute
-    rows_asked = [s for s in count.fetch_row if "_sluice_" in s]
-    executed = [s for s in count.execute if s not in count.fetch_row and "_sluice_" in s]
-    monkeypatch.undo()
+    results, rows_asked, executed = _counted_batch(client, monkeypatch, body)
     for chart, res in zip(CHARTS, results):
         assert "status" not in res, res
         assert _same(res) == _same(_alone(client, body, chart)), chart["id"]  # (a)
@@ -213,13 +218,7 @@ def test_a_moving_filter_carries_the_layouts_in_the_shared_statement(client, eng
         hi = lo + dt.timedelta(days=days)
         body = {"source": engine, "tz": TZ, "charts": CHARTS, "where": [
             {"column": "ts", "gte": lo.isoformat(), "lt": hi.isoformat()}]}
-        count = Counter(monkeypatch, client.app.state.catalog.engine(engine))
-        r = client.post("/v1/batch", json=body)
-        assert r.status_code == 200, r.text
-        results = r.json()["results"]
-        rows_asked = [s for s in count.fetch_row if "_sluice_" in s]
-        executed = [s for s in count.execute if s not in count.fetch_row and "_sluice_" in s]
-        monkeypatch.undo()
+        results, rows_asked, executed = _counted_batch(client, monkeypatch, body)
         fresh = ChartService(client.app.state.catalog)  # reference: empty caches
         real = client.app.state.service
         client.app.state.service = fresh

@@ -94,17 +94,19 @@ def counted(monkeypatch):
 
 @pytest.mark.parametrize("bin_spec", [{"bins": 20}, {"width": 2.5, "origin": 0.5}])
 def test_new_filter_values_reuse_the_plan(service, counted, bin_spec):
-    zeroth = service.run(_request(0, bin_spec))
+    # windows of their own per bin spec: both layouts read the same extents statement, whose
+    # cached answer would otherwise carry over from the other case
+    base = 0 if "bins" in bin_spec else 20
+    zeroth = service.run(_request(base, bin_spec))
     assert counted["prepare"] >= 1 and counted["render"] >= 1  # the first one plans
-    # nice bins: the extents statement, then the grouped one; a width and origin: no extents
-    assert len(zeroth.meta["sql"]) == (2 if "bins" in bin_spec else 1)
+    assert len(zeroth.meta["sql"]) == 2  # the extents statement, then the grouped one
     # the next filter is laid out from the last extents row, in one statement that carries
     # its own row (planner.emit_main.carriable); the layout repeats, so its answer stands
-    first = service.run(_request(1, bin_spec))
+    first = service.run(_request(base + 1, bin_spec))
     assert len(first.meta["sql"]) == 1
     counted["prepare"] = counted["bind"] = counted["render"] = 0
     extents = set()
-    for i in range(2, 13):
+    for i in range(base + 2, base + 13):
         res = service.run(_request(i, bin_spec))
         kept = _kept(i)
         # reference: numpy.histogram over the answer's edges of the rows Python keeps
@@ -153,3 +155,45 @@ def test_bad_values_of_a_cached_shape_keep_their_pointer(service, where, ptr):
     with pytest.raises(PlanError) as e:
         service.run(req)
     assert e.value.pointer == ptr
+
+
+def test_inf_and_nan_under_a_new_filter_end_the_guessing(tmp_path):
+    """A new filter value whose rows hold inf or NaN: the carrying statement (laid out from
+    the last finite row) shows them in its plain max, so the chart is laid out from the
+    guarded extents, and the shape stops guessing until a finite row is laid out again.
+    Reference: numpy.histogram over the finite values of the rows the filter keeps, and
+    the same request in a service with empty caches."""
+    from app.service import ChartService
+
+    finite = [round((i * 7.31) % 53.0 - 3.0, 3) for i in range(200)]
+    rows = [(v, i % 10) for i, v in enumerate(finite)] + [
+        (float("inf"), 9), (float("-inf"), 9), (float("nan"), 9)]
+
+    def build(con) -> dict[str, str]:
+        con.execute("CREATE TABLE t (v DOUBLE, g INTEGER)")
+        con.executemany("INSERT INTO t VALUES (?, ?)", rows)
+        return {"t": "t"}
+
+    gen = _load("duckdb_service").duckdb_service(tmp_path / "inf.duckdb", build, "<inf>")
+    service = next(gen)
+    try:
+        def ask(svc, g: int):
+            return svc.to_json(svc.run(ChartRequest.model_validate({
+                "source": "t", "where": [{"column": "g", "lte": g}],
+                "channels": {"x": {"column": "v", "bin": {"bins": 10}}, "y": {"agg": "count"}}})))
+
+        # (g bound, statements): first of its shape; a guess that holds; inf / NaN come in
+        # (the guess, the plain extents, the guarded extents, the main); no guess any more
+        for g, statements in [(7, 2), (8, 1), (9, 4), (10, 3)]:
+            got = ask(service, g)
+            alone = ask(ChartService(service.catalog), g)  # reference: empty caches
+            assert (got["bins"], got["data"]) == (alone["bins"], alone["data"])
+            assert got["stats"]["statements"] == statements, (g, got["sql"])
+            kept = [v for v, k in rows if k <= g and np.isfinite(v)]
+            b = got["bins"]["x"]
+            edges = [b["start"] + j * b["width"] for j in range(b["count"] + 1)]
+            counts, _ = np.histogram(kept, bins=edges)  # reference: numpy.histogram
+            shown = [c for lo, c in zip(got["data"]["x_lo"], got["data"]["count"]) if lo is not None]
+            assert shown == [int(c) for c in counts if c]
+    finally:
+        gen.close()
