@@ -69,6 +69,9 @@ class Aggregate:
     double_input: bool = False
     #: the portable build (used where a dialect lists no spelling)
     build: Builder | None = None
+    #: an order statistic (quantile, median): the finalize selects within each group's
+    #: values, no bounded running state (``caps.materialize_order_statistics``)
+    order_statistic: bool = False
 
     def accepts(self, kind: str) -> bool:
         return self.inputs is None or kind in self.inputs
@@ -113,8 +116,10 @@ _ENTRIES = (
               build=lambda d, arg, q: exp.Min(this=arg)),
     Aggregate("max", ORDERABLE_KINDS, _CANNOT_ORDER, "input", "max", False,
               build=lambda d, arg, q: exp.Max(this=arg)),
-    _num("median", lambda d, arg, q: d.quantile(arg, 0.5), feature="median", built="quantile"),
-    _num("quantile", _quantile, feature="quantile", built="quantile", takes_q=True),
+    _num("median", lambda d, arg, q: d.quantile(arg, 0.5), feature="median", built="quantile",
+         order_statistic=True),
+    _num("quantile", _quantile, feature="quantile", built="quantile", takes_q=True,
+         order_statistic=True),
     _num("stddev_samp", lambda d, arg, q: exp.StddevSamp(this=_double(d, arg)),
          feature="stddev", built="deviation", double_input=True),
     _num("stddev_pop", lambda d, arg, q: exp.StddevPop(this=_double(d, arg)),

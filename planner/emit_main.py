@@ -21,13 +21,13 @@ import dataclasses
 
 from sqlglot import exp
 
-from planner import names
+from planner import aggregates, names
 from planner.dialects.base import Dialect
 from planner.emit_dense import _dense
 from planner.emit_checked import bin_value, checkable, misbinned_expr
 from planner.emit_extents import carried_extents, carried_keys, needs_extents, plain_min_max
 from planner.emit_keys import _instant_in_range, _key_expr, _key_outputs, _outside_expr
-from planner.emit_measures import _measure_agg, _measure_input, _window_columns
+from planner.emit_measures import _built, _measure_agg, _measure_input, _window_columns
 from planner.emit_sql import _ref, _table
 from planner.emit_top import _fold_after_grouping, _fold_top, _top_cte, _top_key_expr
 from planner.emit_window import _windowed
@@ -64,9 +64,23 @@ def _main_statement(plan: Plan, guard: bool = False) -> exp.Select:
     if terms:
         outer = outer.order_by(*terms, copy=False)
     outer = outer.limit(d.number(req.limit), copy=False)
+    kept = names.cte("grouped") if _materialize_grouped(plan) else None
     for name, q in ctes:
-        outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q, copy=False)
+        outer = outer.with_(exp.to_identifier(name, quoted=True), as_=q, copy=False,
+                            materialized=True if name == kept else None)
     return outer
+
+
+def _materialize_grouped(plan: Plan) -> bool:
+    """Whether the grouped CTE is written ``AS MATERIALIZED``: it computes an order
+    statistic with the engine's own function on a dialect that says so
+    (``caps.materialize_order_statistics``)."""
+    d = plan.dialect
+    if not d.caps.materialize_order_statistics:
+        return False
+    aggs = [m.spec.agg for m in plan.measures if not m.composite]
+    aggs += [p.agg for m in plan.measures for p in m.parts]
+    return any(aggregates.get(a).order_statistic and _built(d, a) is None for a in aggs)
 
 
 def carriable(plan: Plan) -> bool:

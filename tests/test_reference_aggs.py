@@ -189,6 +189,28 @@ def test_quantile_matches_numpy_linear(api, ref, q):
         assert api.close(got[k], want, rel=1e-9), (k, q, got[k], want)  # reference: numpy.percentile(method="linear")
 
 
+def test_quantiles_beside_the_stats_windows_match_numpy(api, ref):
+    """Quantile and median per group with the stats windows over the groups: on DuckDB the
+    grouped CTE is computed AS MATERIALIZED (``caps.materialize_order_statistics``), a count
+    beside them is not an order statistic."""
+    resp = api.chart({"channels": {"x": {"column": "grp2"},
+                                   "y": {"agg": "quantile", "column": "n", "q": 0.9, "name": "p90"},
+                                   "size": {"agg": "median", "column": "x"},
+                                   "color": {"agg": "count"}}})
+    assert "AS MATERIALIZED" in resp["sql"][-1]
+    got = {r["grp2"]: r for r in api.rows(resp)}
+    assert set(got) == {_key(k) for k, _ in _groups(ref.t, "grp2")}
+    for k, g in _groups(ref.t, "grp2"):
+        n, x = (v[~np.isnan(v)] for v in (_nonnull_float(g["n"]), _nonnull_float(g["x"])))
+        # reference: numpy.percentile(method="linear") (Hyndman & Fan type 7), pandas len
+        assert api.close(got[k]["p90"], float(np.percentile(n, 90, method="linear")) if len(n) else None)
+        assert api.close(got[k]["median_x"], float(np.percentile(x, 50, method="linear")) if len(x) else None)
+        assert got[k]["count"] == len(g)
+    assert resp["stats"]["matched_rows"] == len(ref.t) and resp["stats"]["groups"] == len(got)
+    plain = api.chart({"channels": {"x": {"column": "grp2"}, "y": {"agg": "count"}}})
+    assert "MATERIALIZED" not in plain["sql"][-1]
+
+
 def test_median_equals_numpy_percentile_50_small_even_group(api, ref):
     # edges table: 11 non-NULL values (odd) -> middle value; also check with a filter giving an
     # even count so the type-7 interpolation is exercised.

@@ -116,6 +116,13 @@ class Capabilities:
     """COUNT(DISTINCT m) beside the row count COUNT(*) is faster as a grouping of the
     distinct (keys, m) pairs first (planner/emit_main.py ``_distinct_pairs``)."""
 
+    materialize_order_statistics: bool = field(default=False, metadata=_internal(
+        "a faster plan shape for quantiles; the answer is the same"))
+    """The grouped CTE of a main statement that computes an order statistic (the
+    registry's ``order_statistic``: quantile, median) is written ``AS MATERIALIZED``: the windows
+    over the groups above it (matched rows, group count) otherwise slow the aggregate's
+    finalize down (planner/emit_main.py ``_main_statement``)."""
+
     quantile_interpolates_integers: bool = field(default=False, metadata=_internal(
         "leaves out a CAST the engine does itself; the answer is the same"))
     """The native quantile of an integer column returns the DOUBLE type 7 interpolation
