@@ -392,6 +392,45 @@ def check_top_high_cardinality(service, engine: str, data) -> dict[str, float]:
     return timings
 
 
+def check_top_single_key(service, engine: str, data) -> None:
+    """``top`` as the only key (the fold ranks the grouped rows in place,
+    planner/emit_top.py ``_fold_one``): by row count, sum and avg. The NULL key (~81 rows,
+    every 997th) is the largest group by count, so it must take no rank of the N."""
+    t = data["wide"]
+    keys, vs = t.column("k").to_pylist(), t.column("v").to_pylist()
+    rows: dict = {}     # key -> its row count
+    per_key: dict = {}  # key -> its non-NULL values
+    for k, v in zip(keys, vs):
+        rows[k] = rows.get(k, 0) + 1
+        per_key.setdefault(k, [])
+        if v is not None:
+            per_key[k].append(v)
+    assert rows[None] > max(n for k, n in rows.items() if k is not None)
+
+    def of(agg: str, ks) -> float | None:  # reference: Python counts, math.fsum, fsum / len
+        if agg == "count":
+            return sum(rows[k] for k in ks)
+        vals = [v for k in ks for v in per_key[k]]
+        return None if not vals else math.fsum(vals) if agg == "sum" else math.fsum(vals) / len(vals)
+
+    for agg in ("count", "sum", "avg"):
+        measure = {"agg": "count"} if agg == "count" else {"agg": agg, "column": "v"}
+        value = {k: of(agg, [k]) for k in rows}
+        out = run(service, engine, "wide", {"channels": {"x": {"column": "k", "top": 10},
+                                                         "y": measure}, "limit": 100})
+        # DEVELOPERS: ranked by the measure descending, ties by value ascending, NULL never
+        # ranked (reference: Python sorted over the per-key values)
+        ranked = sorted((k for k in value if k is not None and value[k] is not None),
+                        key=lambda k: (-value[k], k))[:10]
+        got = {r["k"]: r[next(c for c in r if c != "k")] for r in rows_of(out)}
+        assert set(got) == set(ranked) | {"(other)", None}, (engine, agg, sorted(set(got) - set(ranked)))
+        for k in ranked + [None]:
+            assert close(got[k], value[k]), (engine, agg, k, got[k], value[k])
+        want_other = of(agg, [k for k in rows if k is not None and k not in ranked])
+        assert close(got["(other)"], want_other), (engine, agg, got["(other)"], want_other)
+        assert out["stats"]["matched_rows"] == len(keys)
+
+
 # --- 9.8: filter_sql means one thing everywhere -------------------------------------------
 
 def ref_round(x: float, n: int = 0) -> float:
@@ -519,6 +558,7 @@ def check_all(service, engine: str, data) -> dict[str, float]:
     check_deviations(service, engine, data)
     check_nist(service, engine)
     check_rules(service, engine, data)
+    check_top_single_key(service, engine, data)
     return check_top_high_cardinality(service, engine, data)
 
 
@@ -540,6 +580,11 @@ def test_nist_strd_numacc(sem, engine):
 @pytest.mark.parametrize("engine", ENGINES)
 def test_fd_and_scott_rules_match_numpy(sem, sem_data, engine):
     check_rules(sem, engine, sem_data)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_top_as_the_only_key_never_ranks_null(sem, sem_data, engine):
+    check_top_single_key(sem, engine, sem_data)
 
 
 @pytest.mark.parametrize("engine", ENGINES)
