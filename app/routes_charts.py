@@ -87,6 +87,7 @@ def batch(req: BatchRequest, request: Request) -> Response:
     before those brushes). The batch itself answers 200."""
     st = request.app.state
     st.service.check_source(req.source)
+    lookup = may_reuse(request)
     linked.check_ids(req)  # 422 at /charts/<i>/id
     _claim(req.session, *(c.session or req.session for c in req.charts))  # each chart's own
     links = [linked.compose(req, i) for i in range(len(req.charts))]
@@ -106,7 +107,7 @@ def batch(req: BatchRequest, request: Request) -> Response:
                 f"a batch runs on one source ({req.source!r})", f"/charts/{i}/source").body())))
             continue
         try:
-            results.append(_member(ends, json_answer(st, link.request, True, time.perf_counter(),
+            results.append(_member(ends, json_answer(st, link.request, lookup, time.perf_counter(),
                                                      shared.get(i))))
         except sessions.Stopped:
             raise  # superseded or the client left: the whole batch answers the problem
