@@ -24,7 +24,7 @@ from planner.filter_sql import compile_filter_sql
 from planner.model import AnyOf, ChartRequest, NotOf, Predicate
 from planner.schema import SourceSchema
 from planner.values import (_READ_TZ, _SLOT, _bindable, _check_tz, _literal, _marker,
-                            _padded, _param_in, _param_values, _put, _resolve,
+                            _padded, _param_in, _param_values, _put, _resolve, list_form,
                             _scalar_bindable, _scalar_value)
 
 
@@ -107,7 +107,8 @@ def param_shape(req: ChartRequest, d: Dialect, schema: SourceSchema | None = Non
             for op in ("in", "not_in"):
                 v = f.get(op)
                 if v is not None and _bindable(v):
-                    f[op] = ["\x00", _padded(len(v)), sorted({type(x).__name__ for x in v})]
+                    f[op] = ["\x00", list_form(d, len(v)), _padded(len(v)),
+                             sorted({type(x).__name__ for x in v})]
             col = schema.column(f["column"]) if schema is not None else None
             for op in _SCALAR_OPS:
                 v = f.get(op)
@@ -126,7 +127,6 @@ def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any
     order (the same walk as ``_compile_filter``), checked like literals."""
     if d.caps.param_form is None:
         return []
-    form = d.caps.param_form[0]
     out: list[Any] = []
 
     def bind(f: Predicate, path: tuple) -> None:
@@ -143,6 +143,7 @@ def bind_values(req: ChartRequest, schema: SourceSchema, d: Dialect) -> list[Any
             raw = _param_values(d, col, value, pointer(*path, op))
             if raw is None:
                 continue
+            form = list_form(d, len(raw))
             if form == "each":
                 raw = raw + [raw[-1]] * (_padded(len(raw)) - len(raw))
             elif form == "json":

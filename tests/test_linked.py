@@ -228,8 +228,9 @@ def test_batch_without_brushes_is_a_plain_batch(client, frame):
 def test_moved_brush_reuses_the_plans(client, frame, engine):
     """Dragging the range brushes (new bound values) plans nothing new: the service's plan
     cache holds as many prepared plans as before; the answers follow the moved brushes
-    (reference: pandas). (A short ``in`` list stays literals, planner/values.py
-    ``_bindable``: a new category set is a new plan.)"""
+    (reference: pandas). A new category set of the same padded length (planner/values.py
+    ``list_form``: a short list is one parameter per value, padded to a power of two) plans
+    nothing new either."""
     client.post("/v1/batch", json=linked_batch(engine))
     plans = client.app.state.service._plans._prepared
     before = len(plans)
@@ -245,6 +246,19 @@ def test_moved_brush_reuses_the_plans(client, frame, engine):
     m &= frame["cat"].isin(["alpha", "beta", "Zürich"])
     sub = frame[m.astype(bool)]
     assert res[3]["stats"]["matched_rows"] == len(sub)
+    check_grp(res[3], sub)
+
+    cats = ["gamma", "東京", "naïve", "Alpha"]  # 3 values -> 4: the same padded length
+    body["charts"][2]["brush"] = [{"column": "cat", "in": cats}]
+    res = client.post("/v1/batch", json=body).json()["results"]
+    assert len(plans) == before
+    assert all("?" in q for q in res[3]["sql"][-1:])
+    m2 = (frame["n"] >= -40).fillna(False) & ((frame["x"] >= 0) & (frame["x"] < 30)).fillna(False)
+    m2 &= (frame["ts"] >= pd.Timestamp("2026-05-01", tz="UTC")) & \
+          (frame["ts"] < pd.Timestamp("2026-09-15T12:00", tz="UTC"))
+    m2 &= frame["cat"].isin(cats)
+    sub = frame[m2.astype(bool)]
+    assert res[3]["stats"]["matched_rows"] == len(sub) > 0
     check_grp(res[3], sub)
 
 
