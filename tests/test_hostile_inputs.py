@@ -393,6 +393,9 @@ PARAM_CASES = {
     "short_one_value": [{"column": "cat", "in": ["beta"]}],
     "short_int_in": [{"column": "n", "in": [-50, 3, 7, 9223372036854775807, 12]}],
     "short_float_in": [{"column": "x", "in": sorted({r["x"] for r in ROWS if r["x"] is not None})[:5]}],
+    # floats against an integer column: 2.0 matches n = 2, the others nothing (a parameter
+    # typed from the column would round 1.5 to 2)
+    "short_float_on_int_in": [{"column": "n", "in": [1.5, 2.0, -3.25]}],
     "short_decimal_in": [{"column": "amount", "in": [float(r["amount"]) for r in ROWS[:12]
                                                      if r["amount"] is not None][:3]}],
     "short_bool_in": [{"column": "flag", "in": [True]}],

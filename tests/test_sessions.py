@@ -143,8 +143,12 @@ def client(slow):
     keys = "".join(f'[[keys]]\nname = "{n}"\nhash = "sha256:{hashlib.sha256(k.encode()).hexdigest()}"'
                    '\nsources = ["slow"]\n' for n, k in KEYS.items())
     cfg = slow["root"] / "sluice.toml"
+    # server sources' cache keys hold a time bucket of [cache] ttl_s (default 60 s): a
+    # bucket boundary between a warm request and its hit would make the hit a miss, so the
+    # bucket here outlasts the test
     cfg.write_text("[sources.slow]\n" + slow["source"] + "statement_timeout_ms = 120000\n"
-                   "max_concurrent = 64\n" + keys + "[server]\nrequest_log = false\n")
+                   "max_concurrent = 64\n" + keys + "[server]\nrequest_log = false\n"
+                   "[cache]\nttl_s = 1000000000\n")
     with TestClient(create_app(load_settings(cfg, environ={})), raise_server_exceptions=False) as c:
         c.post("/v1/chart", json=body(-1), headers=key("one"))  # introspection (a COUNT(*))
         yield c
