@@ -113,3 +113,34 @@ def test_representative_requests_use_only_the_sources_columns():
     # a table with only text columns still gets a request; one with nothing plannable none
     assert len(_requests("s", [ColumnInfo("c", "string")])) == 1
     assert _requests("s", [ColumnInfo("b", "other")]) == []
+
+
+def test_warm_up_loads_what_the_first_answer_would(tmp_path):
+    """In a fresh process, the warm-up leaves nothing for the first answer to import: the
+    modules loaded by answering a time chart after the warm-up are the same as before it
+    (pyarrow imports pandas on the first time-zone-aware timestamp: ~300 ms of the first
+    answer before, bench/RESULTS.md stop 25)."""
+    import subprocess
+    import sys
+    import textwrap
+
+    _config(tmp_path)  # the demo file
+    script = textwrap.dedent(f"""
+        import sys
+        from app.main import create_app
+        from app.settings import load_settings
+        from app.warmup import warm_up
+        from planner.model import ChartRequest
+        app = create_app(load_settings({str(tmp_path / "sluice.toml")!r}, environ={{}}))
+        warm_up(app.state.service)
+        before = set(sys.modules)
+        svc = app.state.service
+        req = ChartRequest.model_validate({{"source": "deliveries", "tz": "Europe/Berlin",
+            "channels": {{"x": {{"column": "delivered_at", "trunc": "month"}},
+                          "y": {{"agg": "avg", "column": "fee"}}}}}})
+        svc.to_json(svc.run(req), wire=True)
+        print(sorted(m for m in set(sys.modules) - before if m.split(".")[0] in ("pandas", "pyarrow")))
+    """)
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert out.stdout.strip().splitlines()[-1] == "[]", out.stdout[-2000:]
