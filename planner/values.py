@@ -156,8 +156,9 @@ def _literal(d: Dialect, col: ColumnInfo, value: Any, ptr: str) -> exp.Expressio
 # replaced by the parameter (e.g. MySQL's CAST(... AS BINARY) for text, the timestamp casts),
 # so a value compares exactly as its literal would (tests/test_hostile_inputs.py checks
 # both forms give the same answer on every engine). Number lists mixing ints and floats
-# or holding integers beyond 64-bit signed stay literals. Slots appear in the rendered text as NUL-delimited markers (request text can
-# never contain NUL: planner.model.Text), replaced by ``bind_sql``.
+# or holding integers beyond 64-bit signed stay literals. Slots appear in the rendered
+# text as NUL-delimited markers (request text can never contain NUL: planner.model.Text),
+# replaced by ``bind_sql``.
 
 #: lists at least this long use the dialect's list form (``param_form[0]``), shorter ones
 #: one parameter per value ("each")
