@@ -146,10 +146,46 @@ class Catalog:
             columns={c: ColumnInfo(c, classify(t, dialect.sqlglot or None), t) for c, t in cols},
             measures=dict(cfg.measures))
         schema = model.build(eng, cfg, schema, dialect)  # computed columns, dimensions
-        entry = SourceEntry(cfg, schema, self._count(eng, schema), version)
+        schema, count = self._in_range(eng, cfg, schema, dialect)
+        entry = SourceEntry(cfg, schema, count, version)
         self._check_rows(entry, dialect)
         self._entries[name] = entry
         return entry
+
+    def _in_range(self, eng: Engine, cfg: SourceConfig, schema: SourceSchema, dialect
+                  ) -> tuple[SourceSchema, int]:
+        """(the schema with ``in_range`` set on each physical time column whose instants all
+        lie in years 1..9999, the row count). Only on a file source (its data version is the
+        file's identity, so the proof lasts exactly as long as the entry) of a dialect whose
+        instants may lie outside (``caps.wide_instants``); there the row count's statement
+        also counts each time column's cells outside the range, in the same scan. Else the
+        plain row count."""
+        from app.engines import ENGINES
+
+        kind = ENGINES.get(cfg.engine)
+        added = schema.model_columns()  # computed and dimension columns: not proved here
+        cols = [c for c in schema.columns.values() if c.is_temporal and c.name not in added]
+        checks = []
+        for i, c in enumerate(cols):
+            ref = dialect.column(c.name, "s")
+            ok = dialect.instant_range(ref, c.kind)
+            if ok is None:
+                continue
+            outside = exp.and_(exp.Not(this=exp.Is(this=ref.copy(), expression=exp.Null())),
+                               exp.Not(this=exp.Paren(this=ok)))
+            checks.append((c, f"r{i}", exp.Sum(this=exp.Case(
+                ifs=[exp.If(this=outside, true=exp.Literal.number(1))],
+                default=exp.Literal.number(0)))))
+        if kind is None or not kind.file or not checks:
+            return schema, self._count(eng, schema)
+        q = exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True),
+                       *[exp.alias_(e, name, quoted=True) for _, name, e in checks])
+        row = eng.fetch_row(dialect.render(q.from_(relation(schema, dialect))))
+        n = int(row.get("n") or 0)
+        proved = {c.name for c, name, _ in checks if not row.get(name)}  # 0, or NULL: no rows
+        columns = {k: dataclasses.replace(c, in_range=True) if k in proved else c
+                   for k, c in schema.columns.items()}
+        return dataclasses.replace(schema, columns=columns), n
 
     @staticmethod
     def _count(eng: Engine, schema: SourceSchema) -> int:

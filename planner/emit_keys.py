@@ -40,7 +40,7 @@ def _outside_expr(d: Dialect, k: Key) -> exp.Expression | None:
         lo_l = d.timestamp_literal(k.tlimits[0], k.col.kind)
         hi_l = d.timestamp_literal(k.tlimits[1], k.col.kind)
         cond = exp.or_(exp.LT(this=ref, expression=lo_l), exp.GT(this=ref.copy(), expression=hi_l))
-        ok = d.instant_range(ref.copy(), k.col.kind)
+        ok = None if k.col.in_range else d.instant_range(ref.copy(), k.col.kind)
         if ok is not None:  # 'infinity' / year 12000 are not outside: they go to the NULL bin
             cond = exp.and_(ok, exp.Paren(this=cond))
     else:
@@ -52,8 +52,9 @@ def _outside_expr(d: Dialect, k: Key) -> exp.Expression | None:
 def _instant_in_range(d: Dialect, col: ColumnInfo, ref: exp.Expression) -> exp.Expression:
     """A temporal column as a time key (or min/max) sees it: instants outside years 1..9999
     (UTC), such as 'infinity' or year 12000, and cells outside the engine's storage
-    convention are NULL (their own NULL group, never in a layout, never a min/max)."""
-    ok = d.instant_range(ref, col.kind)
+    convention are NULL (their own NULL group, never in a layout, never a min/max). A column
+    the catalog proved to hold none of them (``ColumnInfo.in_range``) is read as it is."""
+    ok = None if col.in_range else d.instant_range(ref, col.kind)
     if ok is None:
         return ref
     return exp.Case(ifs=[exp.If(this=ok, true=ref.copy())])
@@ -284,7 +285,7 @@ def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
         ref = _instant_in_range(d, k.col, d.column(k.col.name, "s"))
         slow = d.epoch_micros(_trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz), "timestamptz")
         return exp.Case(ifs=[fast], default=slow)
-    if not d.caps.wide_instants:
+    if not d.caps.wide_instants or k.col.in_range:
         return idx
     ok = exp.Between(this=us.copy(), low=d.number(-_YEAR1_MICROS), high=d.number(_YEAR9999_MICROS))
     return exp.Case(ifs=[exp.If(this=ok, true=idx)])

@@ -608,3 +608,63 @@ def test_subday_trunc_in_zones_with_odd_offsets_matches_zoneinfo(zone_service, t
     want = {t.astimezone(UTC): n for t, n in want.items()}
     want[None] = 3  # infinity, year 12000, NULL
     assert got == want
+
+
+def test_a_time_column_proved_in_range_is_read_without_the_year_test(tmp_path):
+    """The catalog proves, per data version of a DuckDB file, that a time column holds only
+    instants of years 1..9999 (app.catalog ``_in_range``, ``ColumnInfo.in_range``); hour and
+    month keys then read it without the range test that turns 'infinity' / year 12000 into
+    NULL, and answer the same. A new file with 'infinity' and year 12000 brings the test
+    back: those two are in the NULL group. reference: Python datetime floors in UTC."""
+    import os
+
+    import duckdb
+
+    from app.catalog import Catalog
+    from app.service import ChartService
+    from app.settings import parse_settings
+    from planner.model import ChartRequest
+
+    rows = _zone_instants()  # 1700 .. 2026, the 1969/1970 boundary, odd minutes
+
+    def write(path, extra: str) -> None:
+        con = duckdb.connect(str(path))
+        con.execute("SET TimeZone = 'UTC'")
+        con.execute("CREATE TABLE t (ts TIMESTAMPTZ)")
+        con.executemany("INSERT INTO t VALUES (?)", [(t,) for t in rows])
+        con.execute("INSERT INTO t VALUES (NULL)" + extra)
+        con.close()
+
+    db = tmp_path / "t.duckdb"
+    write(db, "")
+    catalog = Catalog(parse_settings({"sources": {"t": {"engine": "duckdb", "path": str(db),
+                                                        "table": "t"}}}, "<in range>"))
+    svc = ChartService(catalog)
+    floors = {"hour": lambda t: t.replace(minute=0, second=0, microsecond=0),
+              "month": lambda t: t.replace(day=1, hour=0, minute=0, second=0, microsecond=0)}
+    guards = {"hour": "BETWEEN -62135596800000000", "month": "0001-01-01"}
+
+    def ask(unit: str) -> tuple[dict, str]:
+        res = svc.run(ChartRequest.model_validate(
+            {"source": "t", "channels": {"x": {"column": "ts", "trunc": unit},
+                                         "y": {"agg": "count"}}, "limit": 100000}))
+        got = {None if t is None else t.astimezone(UTC): n for t, n in
+               zip(res.table.column("ts").to_pylist(), res.table.column("count").to_pylist())}
+        return got, res.meta["sql"][-1]
+
+    try:
+        assert catalog.entry("t").schema.column("ts").in_range
+        for unit, floor in floors.items():
+            got, sql = ask(unit)
+            assert guards[unit] not in sql
+            assert got == {**expected_counts(rows, floor), None: 1}
+        fresh = tmp_path / "t2.duckdb"
+        write(fresh, ", ('infinity'), ('12000-01-01 00:00:00+00')")
+        os.replace(fresh, db)  # a new data version: the catalog opens it again
+        assert not catalog.entry("t").schema.column("ts").in_range
+        for unit, floor in floors.items():
+            got, sql = ask(unit)
+            assert guards[unit] in sql
+            assert got == {**expected_counts(rows, floor), None: 3}
+    finally:
+        catalog.close()
