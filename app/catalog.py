@@ -154,38 +154,38 @@ class Catalog:
 
     def _in_range(self, eng: Engine, cfg: SourceConfig, schema: SourceSchema, dialect
                   ) -> tuple[SourceSchema, int]:
-        """(the schema with ``in_range`` set on each physical time column whose instants all
-        lie in years 1..9999, the row count). Only on a file source (its data version is the
-        file's identity, so the proof lasts exactly as long as the entry) of a dialect whose
-        instants may lie outside (``caps.wide_instants``); there the row count's statement
-        also counts each time column's cells outside the range, in the same scan. Else the
-        plain row count."""
+        """(the schema with ``in_range`` set on each physical time column none of whose
+        cells the dialect's range test (``Dialect.instant_range``) turns into NULL, the row
+        count). Only on a file source: its data version is the file's identity, so the proof
+        lasts exactly as long as the entry. There the row count's statement also counts each
+        time column's cells that fail the test, in the same scan; elsewhere the plain row
+        count."""
         from app.engines import ENGINES
 
         kind = ENGINES.get(cfg.engine)
+        if kind is None or not kind.file:
+            return schema, self._count(eng, schema)
         added = schema.model_columns()  # computed and dimension columns: not proved here
-        cols = [c for c in schema.columns.values() if c.is_temporal and c.name not in added]
-        checks = []
-        for i, c in enumerate(cols):
+        checks = []  # (column, alias, its cells failing the test)
+        for c in schema.columns.values():
             ref = dialect.column(c.name, "s")
-            ok = dialect.instant_range(ref, c.kind)
-            if ok is None:
-                continue
-            outside = exp.and_(exp.Not(this=exp.Is(this=ref.copy(), expression=exp.Null())),
-                               exp.Not(this=exp.Paren(this=ok)))
-            checks.append((c, f"r{i}", exp.Sum(this=exp.Case(
-                ifs=[exp.If(this=outside, true=exp.Literal.number(1))],
-                default=exp.Literal.number(0)))))
-        if kind is None or not kind.file or not checks:
+            ok = dialect.instant_range(ref, c.kind) if c.is_temporal and c.name not in added \
+                else None
+            if ok is not None:  # (a NULL cell stays NULL either way; SQLite's test fails it)
+                fails = exp.and_(exp.Not(this=exp.Is(this=ref.copy(), expression=exp.Null())),
+                                 exp.Not(this=exp.Paren(this=ok)))
+                checks.append((c, f"r{len(checks)}", exp.Sum(this=exp.Case(
+                    ifs=[exp.If(this=fails, true=exp.Literal.number(1))],
+                    default=exp.Literal.number(0)))))
+        if not checks:
             return schema, self._count(eng, schema)
         q = exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True),
                        *[exp.alias_(e, name, quoted=True) for _, name, e in checks])
         row = eng.fetch_row(dialect.render(q.from_(relation(schema, dialect))))
-        n = int(row.get("n") or 0)
         proved = {c.name for c, name, _ in checks if not row.get(name)}  # 0, or NULL: no rows
         columns = {k: dataclasses.replace(c, in_range=True) if k in proved else c
                    for k, c in schema.columns.items()}
-        return dataclasses.replace(schema, columns=columns), n
+        return dataclasses.replace(schema, columns=columns), int(row.get("n") or 0)
 
     @staticmethod
     def _count(eng: Engine, schema: SourceSchema) -> int:

@@ -104,6 +104,13 @@ def _ranged(plan: Plan) -> list[Key]:
     return [k for k in plan.keys if k.checked or k.index in carried]
 
 
+def range_aggregates(k: Key, v: exp.Expression) -> list[tuple[exp.Expression, str]]:
+    """Key ``k``'s smallest and largest value ``v`` per group, with their names
+    (``names.value_range``): the checked floor's test and the carried extents read them."""
+    return [(agg(this=v.copy()), names.value_range(k.index, end))
+            for end, agg in (("min", exp.Min), ("max", exp.Max))]
+
+
 def _over_all(e: exp.Expression) -> exp.Window:
     """``e`` as a window over all groups (``e OVER ()``)."""
     return exp.Window(this=e)
@@ -187,10 +194,8 @@ def _grouped(plan: Plan, ctes: list, group_cols: list[str], fold: bool) -> str:
         grouped = grouped.select(exp.alias_(agg, m.internal, quoted=True), copy=False)
     grouped = grouped.select(exp.alias_(exp.Count(this=exp.Star()), names.rows(), quoted=True), copy=False)
     for k in _ranged(plan):
-        v = _ref(names.value(k.index))
-        grouped = grouped.select(
-            exp.alias_(exp.Min(this=v), names.value_range(k.index, "min"), quoted=True),
-            exp.alias_(exp.Max(this=v.copy()), names.value_range(k.index, "max"), quoted=True), copy=False)
+        grouped = grouped.select(*[exp.alias_(e, n, quoted=True) for e, n in
+                                   range_aggregates(k, _ref(names.value(k.index)))], copy=False)
     if group_cols:
         grouped = grouped.group_by(*[_ref(c) for c in group_cols], copy=False)
     pairs = _distinct_pairs(d, grouped, rows_name, group_cols)

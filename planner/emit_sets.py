@@ -41,7 +41,7 @@ from planner import names
 from planner.emit_checked import bin_value
 from planner.emit_extents import carried_keys
 from planner.emit_keys import _instant_in_range, _key_expr, _outside_expr
-from planner.emit_main import _counted, _final, _sort_terms
+from planner.emit_main import _counted, _final, _sort_terms, range_aggregates
 from planner.emit_window import _windowed
 from planner.emit_measures import _measure_agg, _measure_input
 from planner.emit_sql import _ref, _table
@@ -148,9 +148,8 @@ def sets_statement(plans: Sequence[Plan]) -> Shared | None:
             measures.append(aggs.add(_measure_agg(d, m.spec.agg, arg, m.spec.q, name)))
         ranged = []
         for k in carried_keys(plan):  # each group's smallest / largest value (emit_main)
-            v = _ref(rows.add(bin_value(d, k)))
-            ranged += [(aggs.add(exp.Min(this=v.copy())), names.value_range(k.index, "min")),
-                       (aggs.add(exp.Max(this=v.copy())), names.value_range(k.index, "max"))]
+            ranged += [(aggs.add(e), own) for e, own in
+                       range_aggregates(k, _ref(rows.add(bin_value(d, k))))]
         charts.append((keys, flags, measures, ranged))
     # charts grouped apart by the aggregates they need: GROUPING SETS computes every
     # aggregate in every set, so on an engine that shares the rows between several groupings

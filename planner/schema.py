@@ -20,9 +20,10 @@ class ColumnInfo:
     name: str
     kind: str  # integer | double | decimal | string | boolean | timestamp | timestamptz | date | other
     sql_type: str = ""
-    #: a time column whose every instant lies in years 1..9999 (UTC) in this data version,
-    #: proved by the catalog (app.catalog ``_in_range``): time keys and measures skip the
-    #: range test that turns 'infinity' / year 12000 into NULL (``Dialect.instant_range``)
+    #: a time column none of whose cells the dialect's range test turns into NULL in this
+    #: data version ('infinity', year 12000; on SQLite also a cell outside its storage
+    #: convention: ``Dialect.instant_range``), proved by the catalog (app.catalog
+    #: ``_in_range``, file sources): time keys and measures then skip that test
     in_range: bool = False
 
     @property
