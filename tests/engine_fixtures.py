@@ -47,6 +47,11 @@ GROUPS = ["north", "south", "east"]
 DST_UTC = [dt.datetime(2026, 3, 8, 7, tzinfo=UTC), dt.datetime(2026, 3, 29, 1, tzinfo=UTC),
            dt.datetime(2026, 10, 25, 1, tzinfo=UTC), dt.datetime(2026, 11, 1, 6, tzinfo=UTC)]
 
+#: ``[cache]`` for tests that expect a cache hit on a server source: a server source's cache
+#: key holds a time bucket of ``ttl_s`` (default 60 s, app/cache.py source_version), so a
+#: bucket boundary between a request and its repeat turns the hit into a miss; this bucket
+#: outlasts any test run
+STEADY_CACHE = {"ttl_s": 1_000_000_000}
 COLUMNS = ["id", "cat", "grp", "k", "n", "x", "amount", "flag", "ts", "tsn", "day"]
 
 

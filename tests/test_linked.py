@@ -56,7 +56,8 @@ def client(tmp_path_factory):
 
     root = tmp_path_factory.mktemp("linked")
     sources = fx.five_engines(root)
-    app = create_app(parse_settings({"sources": sources}, "<linked charts>"))
+    app = create_app(parse_settings({"sources": sources, "cache": fx.STEADY_CACHE},
+                                    "<linked charts>"))
     with TestClient(app, raise_server_exceptions=False) as c:
         yield c
 

@@ -65,7 +65,7 @@ def client(tmp_path_factory, clickhouse_dsn):
     sources = {"duckdb": fx.load_duckdb(root, table), "postgres": fx.load_postgres(rows),
                "mysql": fx.load_mysql(rows), "sqlite": fx.load_sqlite(root, rows),
                "clickhouse": {"engine": "clickhouse", "dsn": dsn, "table": ch_table}}
-    app = create_app(parse_settings({"sources": sources}, "<profile test>"))
+    app = create_app(parse_settings({"sources": sources, "cache": fx.STEADY_CACHE}, "<profile test>"))
     with TestClient(app, raise_server_exceptions=False) as c:
         yield c
 
