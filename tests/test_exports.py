@@ -198,6 +198,27 @@ def test_accept_encoding(client, header, want):
     assert a == b
 
 
+@pytest.mark.parametrize("body,levels", [
+    (SMALL, {"gzip": 6, "br": 5, "zstd": 3}),   # under 32 KiB: the middle levels
+    (BIG, {"gzip": 1, "br": 3, "zstd": 3}),     # 408 KB: the fast ones (app/compression.py)
+])
+def test_compression_level_follows_the_body_size(client, body, levels):
+    """The bytes sent equal what the reference library (CPython's gzip, Google's brotli,
+    python-zstandard) makes of the decoded answer at the level documented for its size."""
+    import brotli
+    import zstandard
+
+    make = {"gzip": lambda b, lvl: gzip.compress(b, compresslevel=lvl, mtime=0),
+            "br": lambda b, lvl: brotli.compress(b, quality=lvl),
+            "zstd": lambda b, lvl: zstandard.ZstdCompressor(level=lvl).compress(b)}
+    for coding, lvl in levels.items():
+        sent, headers = raw(client, body, "application/json", coding)
+        assert headers["content-encoding"] == coding
+        plain = _decompress(coding, sent)
+        assert (len(plain) >= 32 * 1024) == (body is BIG)
+        assert sent == make[coding](plain, lvl), coding
+
+
 def test_parquet_is_not_compressed_twice(client):
     _, headers = raw(client, BIG, PARQUET, "gzip, br, zstd")
     assert "content-encoding" not in headers
