@@ -299,11 +299,7 @@ class GuardedEngine:
             threading.Thread(target=_interrupt_until_done, args=(interrupt, state, lock),
                              daemon=True).start()
 
-        timer = None
-        if secs is not None:
-            timer = threading.Timer(secs, fire)
-            timer.daemon = True
-            timer.start()
+        timer = deadline.after(secs, fire) if secs is not None else None
         token = work.attach(stop) if work is not None else None
         t0 = time.perf_counter()
         try:

@@ -748,10 +748,11 @@ def test_spark_without_a_statement_timeout_sets_no_timer(tmp_path_factory, monke
     (README "Limits"): before, Spark armed its own cancel timer at 0 s for every statement
     not guarded by app.limits (catalog and row-count statements), racing the job. The
     answer is checked against pyarrow's group counts over the same rows."""
-    import threading
+    import types
 
     import pyarrow as pa
 
+    from app import deadline
     from app.catalog import Catalog
     from app.engines import spark as spark_engine
     from app.service import ChartService
@@ -759,12 +760,12 @@ def test_spark_without_a_statement_timeout_sets_no_timer(tmp_path_factory, monke
 
     armed: list[float] = []
 
-    class Timer(threading.Timer):
-        def __init__(self, interval, *a, **kw):
-            armed.append(interval)
-            super().__init__(interval, *a, **kw)
+    def after(seconds, *a):
+        armed.append(seconds)
+        return deadline.after(seconds, *a)
 
-    monkeypatch.setattr(spark_engine.threading, "Timer", Timer)
+    # the Spark engine's own alarms only (app.limits arms its own through app.deadline)
+    monkeypatch.setattr(spark_engine, "deadline", types.SimpleNamespace(after=after))
     root = tmp_path_factory.mktemp("spark_no_timeout")
     table = pa.table({"g": ["a", "b", "a", None, "a"], "v": [1, 2, 3, 4, 5]})
     src = fx.load_spark(root, table)

@@ -282,3 +282,58 @@ def test_the_deadline_covers_planning_and_shaping(db, tmp_path, monkeypatch, sta
         monkeypatch.undo()
         r = c.post("/v1/chart", json=body)  # the same request, unslowed: answered again
         assert r.status_code == 200 and sum(r.json()["data"]["count"]) == fx.N
+
+
+# ---- the alarms statement timeouts use (app/deadline.after) ------------------------------
+
+def test_alarms_fire_in_time_order_and_a_cancelled_one_never_does():
+    """``deadline.after`` keeps the contract of the ``threading.Timer`` it replaces (Python
+    library reference, threading.Timer): the function runs once after the interval unless
+    cancelled first; cancelling after it fired changes nothing."""
+    import threading
+    import time
+
+    from app import deadline
+
+    got: list[tuple[str, float]] = []
+    done = threading.Event()
+    t0 = time.monotonic()
+
+    def note(name: str) -> None:
+        got.append((name, time.monotonic() - t0))
+        if name == "last":
+            done.set()
+
+    late = deadline.after(0.30, note, "last")
+    first = deadline.after(0.05, note, "first")
+    gone = deadline.after(0.10, note, "cancelled")
+    deadline.after(0.15, note, "second")
+    gone.cancel()
+    gone.cancel()  # twice: still one cancelled alarm
+    assert done.wait(5)
+    assert [n for n, _ in got] == ["first", "second", "last"]
+    assert all(at >= due for (_, at), due in zip(got, (0.05, 0.15, 0.30)))
+    assert first.fired and late.fired and not gone.fired and gone.cancelled
+    late.cancel()  # after it fired: nothing happens
+    assert late.fired and not late.cancelled
+
+
+def test_a_blocking_alarm_holds_up_no_other_and_cancelled_ones_do_not_pile_up():
+    """A cancel that blocks (a PostgreSQL cancel request to a silent server) runs on a thread
+    of its own; thousands of cancelled statements leave no heap behind."""
+    import threading
+    import time
+
+    from app import deadline
+
+    release, second = threading.Event(), threading.Event()
+    deadline.after(0.01, release.wait, 10)  # blocks for up to 10 s
+    deadline.after(0.05, second.set)
+    t0 = time.monotonic()
+    assert second.wait(5) and time.monotonic() - t0 < 2
+    release.set()
+    before = deadline._ALARMS.armed()
+    for _ in range(5000):
+        deadline.after(600, print).cancel()
+    assert deadline._ALARMS.armed() == before
+    assert len(deadline._ALARMS._heap) < before + 200

@@ -177,16 +177,14 @@ class _Watchdog:
         self.seconds = seconds
         self.fired = False
         self._conn: Any = None
-        self._timer: threading.Timer | None = None
+        self._timer: deadline.Alarm | None = None
         self._lock = threading.Lock()
 
     def arm(self, conn: Any) -> None:
         if self.seconds is None:
             return
         self._conn = conn
-        self._timer = threading.Timer(self.seconds, self._fire)
-        self._timer.daemon = True
-        self._timer.start()
+        self._timer = deadline.after(self.seconds, self._fire)
 
     def _fire(self) -> None:
         with self._lock:

@@ -42,6 +42,7 @@ import pyarrow as pa
 import sqlglot
 from sqlglot import exp
 
+from app import deadline
 from app.engines.base import EngineBase, EngineError, EngineUnavailable
 from app.settings import SourceConfig
 
@@ -226,20 +227,18 @@ class SparkEngine(EngineBase):
         spark = self.spark
         sc = spark.sparkContext
         timer = None
-        if tag is None:  # not guarded by app.limits: the engine's own time limit (0: none)
+        own = tag is None  # not guarded by app.limits: the engine's own time limit (0: none)
+        if own:
             tag = f"sluice-{uuid.uuid4().hex}"
-            if self.timeout_s is not None:
-                timer = threading.Timer(self.timeout_s, sc.cancelJobGroup, args=(tag,))
-                timer.daemon = True
         sc.setJobGroup(tag, "sluice chart", interruptOnCancel=True)
-        if timer is not None:
-            timer.start()
+        if own and self.timeout_s is not None:
+            timer = deadline.after(self.timeout_s, sc.cancelJobGroup, tag)
         try:
             return spark.sql(sql).toArrow()
         except Exception as e:  # noqa: BLE001 - AnalysisException, Py4JJavaError, ...
             text = str(e).strip()
             msg = text.splitlines()[0] if text else type(e).__name__
-            if "cancel" in text.lower() and timer is not None and not timer.is_alive():
+            if "cancel" in text.lower() and timer is not None and timer.fired:
                 raise self._timed_out() from None
             raise EngineError(self.cfg.name, f"Spark: {msg}") from None
         finally:
@@ -258,9 +257,7 @@ class SparkEngine(EngineBase):
                 ev.set()
                 _quiet(spark.interruptTag, tag)
             if self.timeout_s is not None:  # statement_timeout_ms = 0: no time limit
-                own_timer = threading.Timer(self.timeout_s, fire)
-                own_timer.daemon = True
-                own_timer.start()
+                own_timer = deadline.after(self.timeout_s, fire)
 
         def run() -> pa.Table:
             spark.addTag(tag)  # thread-local in the Connect client: this worker's calls only
