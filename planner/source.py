@@ -64,7 +64,24 @@ def row_condition(schema: SourceSchema, d: Dialect) -> exp.Expression | None:
 def relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
     """The source rows aliased ``"s"``: the table (only the key's rows, when it has a
     condition), or that with the computed and dimension columns of ``schema.joined`` (and,
-    one level up, the request's exprs)."""
+    one level up, the request's exprs). A column whose type does not behave as its kind
+    (``Dialect.readable``: a UUID, DuckDB's TIMESTAMP_NS) is read through its cast, one level
+    above everything an operator wrote (row conditions, computed columns and joins see the
+    table's own types)."""
+    rel = _relation(schema, d)
+    model = schema.model_columns()
+    names = list(dict.fromkeys(c.name for c in schema.columns.values()
+                               if c.name not in model or c.name in schema.joined))
+    kinds = {c.name: c for c in schema.columns.values()}
+    cast = {n: e for n in names
+            if (e := d.readable(d.column(n, ALIAS), kinds[n].sql_type, kinds[n].kind)) is not None}
+    if not cast:
+        return rel
+    return _sub(exp.select(*(exp.alias_(cast[n], n, quoted=True) if n in cast
+                             else d.column(n, ALIAS) for n in names)).from_(rel), d)
+
+
+def _relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
     table = exp.alias_(d.table(schema.table), ALIAS, quoted=True)
     cond = row_condition(schema, d)
     if cond is not None:

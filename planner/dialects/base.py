@@ -16,6 +16,7 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import functools
+import re
 import sys
 from typing import ClassVar
 
@@ -24,6 +25,8 @@ from sqlglot import exp
 from planner.dialects.capabilities import Capabilities
 
 _UPPER = "ABCDEFGHIJKLMNOPQRSTUVWXYZ"
+#: a UUID type name, ClickHouse's wrappers included
+_UUID = re.compile(r"(nullable\()?(lowcardinality\()?uuid\)*")
 #: Features a dialect may refuse, with the words used in the error message.
 FEATURES: dict[str, str] = {
     "median": "exact median",
@@ -377,6 +380,16 @@ class Dialect:
         hi = dt.datetime(9999, 12, 31, 23, 59, 59, 999999, tzinfo=dt.timezone.utc)
         return exp.Between(this=e, low=self.timestamp_literal(lo, kind),
                            high=self.timestamp_literal(hi, kind))
+
+    def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+        """A column as every statement reads it (``planner.source.relation``) when its own
+        type does not behave as its kind; None: as it is. A UUID column is a string kind:
+        read as text, so comparing it with any string, ranking it beside ``(other)`` and
+        searching it work as on text (PostgreSQL and DuckDB refuse ``uuid = 'x'`` for a
+        non-UUID string and a CASE that mixes text with uuid)."""
+        if kind == "string" and _UUID.fullmatch(sql_type.strip().lower()):
+            return self.cast(ref, "TEXT")
+        return None
 
     def number_cell(self, col: exp.Expression) -> exp.Expression:
         """A number column's value as bins read it; engines whose columns can hold cells of

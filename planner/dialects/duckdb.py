@@ -39,6 +39,21 @@ class DuckDB(Dialect):
     )
     agg_spellings = {"approx_count_distinct": "approx_count_distinct"}
 
+    def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+        # TIMESTAMP_NS holds 1677..2262 only: comparing it with a year-1 (or any out-of-range)
+        # TIMESTAMP fails ("Could not convert Timestamp to higher precision"). Read as
+        # microseconds, the precision of every answer, floored: a CAST rounds, and would put
+        # 12:59:59.9999996 into the next hour (floor division spelled out: // truncates)
+        if kind == "timestamp" and sql_type.strip().upper() == "TIMESTAMP_NS":
+            ns, k = self.fn("EPOCH_NS", ref), self.lit(1000)
+            below = exp.Mod(this=exp.Paren(this=exp.Add(this=exp.Mod(this=ns, expression=k),
+                                                        expression=k.copy())),
+                            expression=k.copy())
+            us = exp.IntDiv(this=exp.Paren(this=exp.Sub(this=ns.copy(), expression=below)),
+                            expression=k.copy())
+            return self.fn("MAKE_TIMESTAMP", us)
+        return super().readable(ref, sql_type, kind)
+
     @staticmethod
     def _naive(e: exp.Expression, kind: str) -> exp.Expression:
         """A date column as a naive TIMESTAMP (midnight); other kinds as they are."""

@@ -1,0 +1,169 @@
+"""Columns whose engine type does not behave as their kind (``Dialect.readable``).
+
+* A UUID column is a string kind. PostgreSQL, DuckDB, MariaDB (10.7+) and ClickHouse store
+  it as a 128-bit type: before, a top-N chart answered 502 ("Cannot mix values of type
+  VARCHAR and UUID in CASE", PostgreSQL: invalid input syntax for type uuid: "(other)"), and
+  so did a ``where`` comparing it with a string that is not a UUID, or ``contains``.
+* DuckDB's TIMESTAMP_NS holds years 1677..2262 only: comparing it with the year-1 bound of
+  the range test made the whole source unusable (the catalog's row count failed).
+
+References: Python's ``uuid`` module (RFC 9562 text form: lowercase, hyphenated) and
+``collections.Counter`` over the generated rows; pandas ``dt.floor`` in ``Europe/Berlin``
+for the hourly bins (tz database rules, DST change on 2026-03-29).
+"""
+
+from __future__ import annotations
+
+import collections
+import datetime as dt
+import random
+import uuid
+
+import duckdb
+import pandas as pd
+import pytest
+from fastapi.testclient import TestClient
+
+from testmods import load as _load  # noqa: E402 - one loader for tests/ helpers
+
+fx = _load("engine_fixtures")
+
+ENGINES = ["duckdb", "postgres", "mysql", "clickhouse"]
+RNG = random.Random(20261204)
+UUIDS = [str(uuid.UUID(int=RNG.getrandbits(128), version=4)) for _ in range(12)]
+N = 400
+T0 = dt.datetime(2026, 3, 28, 20, 0, tzinfo=dt.timezone.utc)
+
+
+def _rows() -> list[dict]:
+    out = []
+    for i in range(N):
+        u = None if i % 9 == 0 else UUIDS[min(int(RNG.expovariate(0.4)), len(UUIDS) - 1)]
+        # plus 0..999 ns, which reading as microseconds floors away; row 5 sits 0.4 us
+        # before an hour (a rounding CAST would move it into the next)
+        t = None if i % 13 == 0 else T0 + dt.timedelta(minutes=7 * i, microseconds=i)
+        if i == 5:
+            t = T0 + dt.timedelta(hours=1, microseconds=-1)
+        out.append({"id": i, "u": u, "t": t, "ns": 600 if i == 5 else i % 1000})
+    return out
+
+
+ROWS = _rows()
+
+
+@pytest.fixture(scope="module")
+def client(tmp_path_factory):
+    import psycopg
+    import pymysql
+    from chdb import session as chs
+
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    root = tmp_path_factory.mktemp("column_types")
+    name = f"sluice_types_{fx.worker()}"
+    db = root / "types.duckdb"
+    con = duckdb.connect(str(db))
+    con.execute("CREATE TABLE t (id BIGINT, u UUID, tns TIMESTAMP_NS)")
+    con.executemany("INSERT INTO t VALUES (?, ?, CAST(? AS TIMESTAMP_NS))",
+                    [(r["id"], r["u"], None if r["t"] is None else
+                      r["t"].replace(tzinfo=None).isoformat(" ") + f"{r['ns']:03d}")
+                     for r in ROWS])
+    con.close()
+    with psycopg.connect(fx.PG_DSN, autocommit=True) as conn:
+        conn.execute(f'DROP TABLE IF EXISTS "{name}"')
+        conn.execute(f'CREATE TABLE "{name}" (id bigint, u uuid)')
+        with conn.cursor().copy(f'COPY "{name}" (id, u) FROM STDIN') as cp:
+            for r in ROWS:
+                cp.write_row([r["id"], r["u"]])
+    my = pymysql.connect(host="127.0.0.1", user="root", password="", database="test",
+                         autocommit=True)
+    with my.cursor() as cur:
+        cur.execute(f"DROP TABLE IF EXISTS `{name}`")
+        cur.execute(f"CREATE TABLE `{name}` (id BIGINT, u UUID)")
+        cur.executemany(f"INSERT INTO `{name}` VALUES (%s, %s)", [(r["id"], r["u"]) for r in ROWS])
+    my.close()
+    folder = fx.chdb_folder(root)
+    s = chs.Session(str(folder))
+    s.query("CREATE DATABASE IF NOT EXISTS sluice_test")
+    s.query("DROP TABLE IF EXISTS sluice_test.column_types")
+    s.query("CREATE TABLE sluice_test.column_types (id Int64, u Nullable(UUID)) "
+            "ENGINE = MergeTree ORDER BY id")
+    s.query("INSERT INTO sluice_test.column_types VALUES " + ", ".join(
+        f"({r['id']}, {'NULL' if r['u'] is None else repr(r['u'])})" for r in ROWS))
+    s.close()
+    sources = {
+        "duckdb": {"engine": "duckdb", "path": str(db), "table": "t"},
+        "postgres": {"engine": "postgres", "dsn": fx.PG_DSN, "table": f"public.{name}"},
+        "mysql": {"engine": "mysql", "dsn": fx.MYSQL_DSN, "table": f"test.{name}"},
+        "clickhouse": {"engine": "clickhouse", "path": str(folder),
+                       "table": "sluice_test.column_types"},
+    }
+    app = create_app(parse_settings({"sources": sources, "server": {"request_log": False}},
+                                    "<column types>"))
+    with TestClient(app, raise_server_exceptions=False) as c:
+        yield c
+
+
+def _chart(client, source: str, **body) -> dict:
+    r = client.post("/v1/chart", json={"source": source, **body})
+    assert r.status_code == 200, r.text
+    return r.json()
+
+
+def _count(client, source: str, where: list[dict]) -> int:
+    return _chart(client, source, where=where, channels={"y": {"agg": "count"}})["data"]["count"][0]
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_uuid_top_n_where_and_profile(client, engine):
+    counts = collections.Counter(r["u"] for r in ROWS if r["u"] is not None)
+    nulls = sum(r["u"] is None for r in ROWS)
+    ranked = sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))
+    out = _chart(client, engine, channels={"x": {"column": "u", "top": 3}, "y": {"agg": "count"}})
+    got = dict(zip(out["data"]["u"], out["data"]["count"]))
+    want = {k: v for k, v in ranked[:3]}
+    want["(other)"] = sum(v for _, v in ranked[3:])
+    want[None] = nulls
+    assert got == want
+
+    u0, part = ranked[0][0], UUIDS[1][9:13]
+    assert _count(client, engine, [{"column": "u", "eq": "not a uuid"}]) == 0
+    assert _count(client, engine, [{"column": "u", "in": [u0, "nope"]}]) == counts[u0]
+    assert _count(client, engine, [{"column": "u", "contains": part}]) == \
+        sum(v for k, v in counts.items() if part in k)
+    assert _count(client, engine, [{"column": "u", "gte": "8"}]) == \
+        sum(v for k, v in counts.items() if k >= "8")  # text order of the RFC 9562 form
+    assert _count(client, engine, [{"column": "u", "ne": "x"}]) == N - nulls
+
+    p = client.get(f"/v1/sources/{engine}/columns/u")
+    assert p.status_code == 200, p.text
+    p = p.json()
+    assert (p["kind"], p["null_count"], p["distinct_count"]) == ("string", nulls, len(counts))
+    assert (p["min"], p["max"]) == (min(counts), max(counts))
+
+
+def test_duckdb_timestamp_ns_hourly_bins_and_wide_filters(client):
+    src = client.get("/v1/sources/duckdb")
+    assert src.status_code == 200, src.text
+    kinds = {c["name"]: c["kind"] for c in src.json()["columns"]}
+    assert kinds["tns"] == "timestamp"
+    out = _chart(client, "duckdb", tz="Europe/Berlin",
+                 channels={"x": {"column": "tns", "trunc": "hour"}, "y": {"agg": "count"}})
+    # a naive column is read as UTC; its hours in Berlin, across the spring-forward change
+    ts = pd.Series([r["t"] for r in ROWS if r["t"] is not None])
+    want = ts.dt.tz_convert("Europe/Berlin").dt.floor("h").value_counts().sort_index()
+    got = pd.Series(out["data"]["count"], index=pd.to_datetime(out["data"]["tns"], utc=True))
+    assert got[got.index.isna()].tolist() == [sum(r["t"] is None for r in ROWS)]  # NULL key
+    got = got[got.index.notna() & (got > 0)]
+    assert list(got.index) == list(want.index.tz_convert("UTC"))
+    assert list(got) == list(want)
+    with_t = sum(r["t"] is not None for r in ROWS)
+    # bounds outside TIMESTAMP_NS's 1677..2262 are legal filters
+    assert _count(client, "duckdb", [{"column": "tns", "gte": "1500-01-01T00:00:00Z"},
+                                     {"column": "tns", "lt": "2500-01-01T00:00:00Z"}]) == with_t
+    first = min(r["t"] for r in ROWS if r["t"] is not None)
+    assert _count(client, "duckdb", [{"column": "tns", "lte": first.isoformat()}]) == 1
+    m = _chart(client, "duckdb", channels={"y": {"agg": "max", "column": "tns"}})
+    assert pd.Timestamp(m["data"]["max_tns"][0]) == pd.Timestamp(max(
+        r["t"] for r in ROWS if r["t"] is not None))
