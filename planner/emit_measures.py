@@ -40,6 +40,15 @@ def _measure_input(d: Dialect, m: Measure) -> exp.Expression | None:
     if m.input_expr is not None:  # a named measure's scalar input (planner/measure_sql.py)
         column = m.input_expr.copy()
     cond = m.condition.copy() if m.condition is not None else None
+    if (m.spec.agg in ("min", "max") and m.col is not None and m.col.kind == "boolean"
+            and m.input_expr is None and not d.caps.boolean_min_max):
+        # no MIN(boolean) on the target: the 1 / 0 / NULL indicator, read back as boolean
+        return aggregates.truth_indicator(exp.EQ(this=column, expression=d.boolean(True)))
+    if (m.spec.agg in ("count_distinct", "approx_count_distinct") and m.col is not None
+            and m.col.kind == "other" and m.input_expr is None):
+        # a type of no kind (point, json, a list) may have no equality on the target
+        # (PostgreSQL: point, json): its distinct text forms
+        return d.text(column)
     return aggregates.measure_input(d, m.spec.agg, column, cond)
 
 

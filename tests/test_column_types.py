@@ -167,3 +167,86 @@ def test_duckdb_timestamp_ns_hourly_bins_and_wide_filters(client):
     m = _chart(client, "duckdb", channels={"y": {"agg": "max", "column": "tns"}})
     assert pd.Timestamp(m["data"]["max_tns"][0]) == pd.Timestamp(max(
         r["t"] for r in ROWS if r["t"] is not None))
+
+
+# ---- more engine types: money, MIN / MAX of booleans, distinct of kindless types, -------
+# ---- integers past int64 -----------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def more(tmp_path_factory):
+    """PostgreSQL money, boolean, point and jsonb; MariaDB BIGINT UNSIGNED near 2**64;
+    DuckDB lists. Row i: money i * 1.25, flag i % 3 = 0 (NULL when i % 7 = 0), point
+    (i % 4, 0), jsonb {"a": i % 5}, big 2**64 - 1 - i, list [i % 6]."""
+    import psycopg
+    import pymysql
+
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    name = f"sluice_types_more_{fx.worker()}"
+    with psycopg.connect(fx.PG_DSN, autocommit=True) as conn:
+        conn.execute(f'DROP TABLE IF EXISTS "{name}"')
+        conn.execute(f'''CREATE TABLE "{name}" AS SELECT i, (i * 1.25)::money AS cash,
+            CASE WHEN i % 7 = 0 THEN NULL ELSE i % 3 = 0 END AS flag,
+            point(i % 4, 0) AS pt, ('{{"a": ' || i % 5 || '}}')::jsonb AS js
+            FROM generate_series(1, {N}) i''')
+    my = pymysql.connect(host="127.0.0.1", user="root", password="", database="test",
+                         autocommit=True)
+    with my.cursor() as cur:
+        cur.execute(f"DROP TABLE IF EXISTS `{name}`")
+        cur.execute(f"CREATE TABLE `{name}` (i INT, big BIGINT UNSIGNED)")
+        cur.executemany(f"INSERT INTO `{name}` VALUES (%s, %s)",
+                        [(i, 2**64 - 1 - i) for i in range(1, N + 1)])
+    my.close()
+    db = tmp_path_factory.mktemp("column_types_more") / "lists.duckdb"
+    con = duckdb.connect(str(db))
+    con.execute(f"CREATE TABLE t AS SELECT i, [i % 6] AS l FROM range(1, {N + 1}) r(i)")
+    con.close()
+    app = create_app(parse_settings({"sources": {
+        "postgres": {"engine": "postgres", "dsn": fx.PG_DSN, "table": f"public.{name}"},
+        "mysql": {"engine": "mysql", "dsn": fx.MYSQL_DSN, "table": f"test.{name}"},
+        "duckdb": {"engine": "duckdb", "path": str(db), "table": "t"}},
+        "server": {"request_log": False}}, "<column types, more>"))
+    with TestClient(app, raise_server_exceptions=False) as c:
+        yield c
+
+
+def test_postgres_money_is_a_decimal(more):
+    import decimal
+
+    cash = [decimal.Decimal(i) * decimal.Decimal("1.25") for i in range(1, N + 1)]
+    out = _chart(more, "postgres", channels={"y": {"agg": "sum", "column": "cash"},
+                                             "size": {"agg": "max", "column": "cash"}})
+    assert decimal.Decimal(str(out["data"]["sum_cash"][0])) == sum(cash)
+    assert decimal.Decimal(str(out["data"]["max_cash"][0])) == max(cash)
+    out = _chart(more, "postgres", channels={"x": {"column": "cash", "bin": {"width": 100}},
+                                             "y": {"agg": "count"}})
+    assert sum(out["data"]["count"]) == N
+    assert out["data"]["count"][0] == sum(c < 100 for c in cash)
+    p = more.get("/v1/sources/postgres/columns/cash")
+    assert p.status_code == 200, p.text
+
+
+def test_postgres_min_max_of_a_boolean(more):
+    flags = {i: None if i % 7 == 0 else i % 3 == 0 for i in range(1, N + 1)}
+    out = _chart(more, "postgres", channels={
+        "x": {"column": "i", "bin": {"width": 3, "origin": 0}},
+        "y": {"agg": "min", "column": "flag"}, "size": {"agg": "max", "column": "flag"}})
+    for lo, mn, mx in zip(out["data"]["x_lo"], out["data"]["min_flag"], out["data"]["max_flag"]):
+        vals = [f for i, f in flags.items() if lo <= i < lo + 3 and f is not None]
+        assert (mn, mx) == ((min(vals), max(vals)) if vals else (None, None)), lo
+
+
+@pytest.mark.parametrize("engine,column,distinct", [
+    ("postgres", "pt", 4), ("postgres", "js", 5), ("duckdb", "l", 6)])
+def test_count_distinct_of_a_type_without_a_kind(more, engine, column, distinct):
+    out = _chart(more, engine, channels={"y": {"agg": "count_distinct", "column": column}})
+    assert out["data"][f"count_distinct_{column}"] == [distinct]
+
+
+def test_mysql_bigint_unsigned_past_int64_is_exact(more):
+    out = _chart(more, "mysql", where=[{"column": "i", "lte": 10}],
+                 channels={"x": {"column": "big"}, "y": {"agg": "count"},
+                           "size": {"agg": "max", "column": "big"}})
+    assert out["data"]["big"] == sorted(2**64 - 1 - i for i in range(1, 11))
+    assert out["data"]["max_big"] == out["data"]["big"]

@@ -59,6 +59,8 @@ def column_array(values: list[Any], hint: pa.DataType | None = None) -> pa.Array
             return pa.array([None if v is None else bytes(v) for v in values], pa.binary())
     try:
         return pa.array(values)
+    except OverflowError:  # integers past int64 (BIGINT UNSIGNED): exact decimals
+        return _decimal_array([None if v is None else decimal.Decimal(v) for v in values])
     except (pa.ArrowInvalid, pa.ArrowTypeError):
         return pa.array([None if v is None else str(v) for v in values], pa.string())
 

@@ -388,8 +388,12 @@ class Dialect:
         searching it work as on text (PostgreSQL and DuckDB refuse ``uuid = 'x'`` for a
         non-UUID string and a CASE that mixes text with uuid)."""
         if kind == "string" and _UUID.fullmatch(sql_type.strip().lower()):
-            return self.cast(ref, "TEXT")
+            return self.text(ref)
         return None
+
+    def text(self, e: exp.Expression) -> exp.Expression:
+        """``e``'s text form (NULL stays NULL)."""
+        return self.cast(e, "TEXT")
 
     def number_cell(self, col: exp.Expression) -> exp.Expression:
         """A number column's value as bins read it; engines whose columns can hold cells of

@@ -55,6 +55,13 @@ class Capabilities:
     """Approximate count distinct: (method, relative standard error) reported in the
     response; a method starting with "exact" means the target answers exactly."""
 
+    boolean_min_max: bool = field(default=True, metadata=_internal(
+        "MIN / MAX of a boolean column, or of its 1 / 0 indicator: the same answer"))
+    """False when the target has no MIN / MAX of a boolean (PostgreSQL: no min(boolean);
+    SQL Server: not for bit): min / max of a boolean column then aggregate its 1 / 0 / NULL
+    indicator (planner/emit_measures.py ``_measure_input``) and the answer reads it back as
+    a boolean."""
+
     nulls_order_native: bool = field(default=True, metadata=_row("nulls_order"))
     """True when ``ORDER BY x NULLS FIRST/LAST`` is accepted as written; False: emulated
     with a CASE term first (``Dialect.order``)."""

@@ -72,10 +72,9 @@ class ClickHouse(Dialect):
                                          expression=exp.Literal.number(1))])
         return node.sql(dialect=self.sqlglot, identify=True)
 
-    def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
-        # CAST(u AS String) refuses a NULL of Nullable(UUID); toString keeps it NULL
-        out = super().readable(ref, sql_type, kind)
-        return None if out is None else self.fn("toString", ref)
+    def text(self, e: exp.Expression) -> exp.Expression:
+        # CAST(u AS String) refuses a NULL (of Nullable(UUID), say); toString keeps it NULL
+        return self.fn("toString", e)
 
     def _dt64(self, e: exp.Expression, tz: str = "UTC") -> exp.Expression:
         return self.fn("toDateTime64", e, self.lit(6), self.lit(tz))

@@ -18,6 +18,7 @@ class Postgres(Dialect):
     name = "postgres"
     sqlglot = "postgres"
     caps = Capabilities(
+        boolean_min_max=False,
         # PostgreSQL orders NaN above every other value (its docs; checked here as for DuckDB)
         extremes_show_nonfinite=True,
         param_form=("list", "format"),
@@ -42,6 +43,13 @@ class Postgres(Dialect):
 
 
     _ARRAY_TYPES = {str: "TEXT[]", int: "BIGINT[]", float: "DOUBLE PRECISION[]", bool: "BOOLEAN[]"}
+
+    def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+        # money (a decimal kind) arrives as locale text ('$1.50') and casts to numeric only,
+        # not to double precision
+        if kind == "decimal" and sql_type.strip().lower() == "money":
+            return self.cast(ref, "NUMERIC")
+        return super().readable(ref, sql_type, kind)
 
     def param_array(self, marker, value_type):
         return self.cast(marker, self._ARRAY_TYPES[value_type])

@@ -23,6 +23,7 @@ class TSQL(Dialect):
     name = "tsql"
     sqlglot = "tsql"
     caps = Capabilities(
+        boolean_min_max=False,
         checked="golden",
         unsupported=frozenset({"tz"}),
         quantile_method="window",
