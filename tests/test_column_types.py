@@ -250,3 +250,37 @@ def test_mysql_bigint_unsigned_past_int64_is_exact(more):
                            "size": {"agg": "max", "column": "big"}})
     assert out["data"]["big"] == sorted(2**64 - 1 - i for i in range(1, 11))
     assert out["data"]["max_big"] == out["data"]["big"]
+
+
+def test_clickhouse_integers_wider_than_64_bits_are_exact(tmp_path_factory):
+    """Int128 / Int256 arrived as Arrow fixed-size binary: 500 (bytes are not JSON). Read as
+    Decimal256(76, 0): keys, sums and extremes equal Python's integers."""
+    from chdb import session as chs
+
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    folder = fx.chdb_folder(tmp_path_factory.mktemp("column_types_ch"))
+    s = chs.Session(str(folder))
+    s.query("CREATE DATABASE IF NOT EXISTS sluice_test")
+    s.query("DROP TABLE IF EXISTS sluice_test.wide_ints")
+    s.query("CREATE TABLE sluice_test.wide_ints (g Int8, a Nullable(Int128), b UInt256) "
+            "ENGINE = MergeTree ORDER BY g")
+    big = 10**30
+    rows = [(i % 3, None if i == 4 else (i - 5) * big, 2**200 + i) for i in range(10)]
+    s.query("INSERT INTO sluice_test.wide_ints VALUES " + ", ".join(
+        f"({g}, {'NULL' if a is None else a}, {b})" for g, a, b in rows))
+    s.close()
+    app = create_app(parse_settings({"sources": {"ch": {
+        "engine": "clickhouse", "path": str(folder), "table": "sluice_test.wide_ints"}},
+        "server": {"request_log": False}}, "<wide ints>"))
+    with TestClient(app, raise_server_exceptions=False) as c:
+        out = _chart(c, "ch", channels={"x": {"column": "g"}, "y": {"agg": "sum", "column": "a"},
+                                        "size": {"agg": "max", "column": "b"}})
+        for g, total, top in zip(out["data"]["g"], out["data"]["sum_a"], out["data"]["max_b"]):
+            assert int(total) == sum(a for gg, a, _ in rows if gg == g and a is not None)
+            assert int(top) == max(b for gg, _, b in rows if gg == g)
+        keys = _chart(c, "ch", channels={"x": {"column": "a"}, "y": {"agg": "count"}})
+        assert [None if k is None else int(k) for k in keys["data"]["a"]] == \
+            sorted(a for _, a, _ in rows if a is not None) + [None]
+        assert c.get("/v1/sources/ch/columns/b").status_code == 200

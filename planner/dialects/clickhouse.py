@@ -20,6 +20,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import re
 
 from sqlglot import exp
 
@@ -35,6 +36,10 @@ def _stable(fn: str, need: int):
                                                  expression=d.lit(need)),
                                     true=d.fn(fn, d.double(arg)))])
     return build
+
+
+#: ClickHouse's integers wider than 64 bits, Nullable / LowCardinality wrappers included
+_WIDE_INT = re.compile(r"(nullable\()?(lowcardinality\()?u?int(128|256)\)*")
 
 
 class ClickHouse(Dialect):
@@ -71,6 +76,13 @@ class ClickHouse(Dialect):
             node.set("settings", [exp.EQ(this=exp.var("join_use_nulls"),
                                          expression=exp.Literal.number(1))])
         return node.sql(dialect=self.sqlglot, identify=True)
+
+    def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+        # (U)Int128 / (U)Int256 travel as 16- or 32-byte binary in Arrow (no such integer
+        # type there), and their sums too: read as Decimal256(76, 0), exact
+        if kind == "integer" and _WIDE_INT.fullmatch(sql_type.strip().lower()):
+            return self.fn("toDecimal256", ref, self.lit(0))
+        return super().readable(ref, sql_type, kind)
 
     def text(self, e: exp.Expression) -> exp.Expression:
         # CAST(u AS String) refuses a NULL (of Nullable(UUID), say); toString keeps it NULL
