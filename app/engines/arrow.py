@@ -240,6 +240,8 @@ def conform_column(arr: pa.ChunkedArray, target: pa.DataType | None) -> pa.Chunk
             return arr.cast(pa.bool_())
         return arr
     if pa.types.is_timestamp(target):
+        if pa.types.is_null(t):  # no rows, or only NULLs, from a driver without types
+            return arr.cast(target)
         if pa.types.is_string(t) or pa.types.is_large_string(t):
             arr = _parse_text_timestamps(arr)
         elif pa.types.is_date(t):
