@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 
 from sqlglot import exp
 
@@ -64,17 +64,27 @@ def row_condition(schema: SourceSchema, d: Dialect) -> exp.Expression | None:
 def relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
     """The source rows aliased ``"s"``: the table (only the key's rows, when it has a
     condition), or that with the computed and dimension columns of ``schema.joined`` (and,
-    one level up, the request's exprs). A column whose type does not behave as its kind
-    (``Dialect.readable``: a UUID, DuckDB's TIMESTAMP_NS) is read through its cast, one level
-    above everything an operator wrote (row conditions, computed columns and joins see the
-    table's own types)."""
+    one level up, the request's exprs). Columns whose engine type does not behave as their
+    kind are read through a cast: ``Dialect.stored`` beneath everything (PostgreSQL money,
+    DuckDB TIMESTAMP_NS, ClickHouse (U)Int128/256: what row conditions and computed columns
+    read too), ``Dialect.readable`` above everything (a UUID as text: joins and operator SQL
+    still compare UUIDs)."""
     rel = _relation(schema, d)
     model = schema.model_columns()
-    names = list(dict.fromkeys(c.name for c in schema.columns.values()
-                               if c.name not in model or c.name in schema.joined))
-    kinds = {c.name: c for c in schema.columns.values()}
-    cast = {n: e for n in names
-            if (e := d.readable(d.column(n, ALIAS), kinds[n].sql_type, kinds[n].kind)) is not None}
+    names = [c.name for c in schema.columns.values()
+             if c.name not in model or c.name in schema.joined]
+    return _cast_columns(rel, names, schema, d.readable, d)
+
+
+def _cast_columns(rel: exp.Expression, names: list[str], schema: SourceSchema,
+                  hook: Callable[[exp.Expression, str, str], exp.Expression | None],
+                  d: Dialect) -> exp.Expression:
+    """``rel`` as it is, or ``(SELECT <names, each through hook's cast where it has one>
+    FROM rel) AS "s"``."""
+    names = list(dict.fromkeys(names))
+    info = {c.name: c for c in schema.columns.values()}
+    cast = {n: e for n in names if n in info
+            and (e := hook(d.column(n, ALIAS), info[n].sql_type, info[n].kind)) is not None}
     if not cast:
         return rel
     return _sub(exp.select(*(exp.alias_(cast[n], n, quoted=True) if n in cast
@@ -83,6 +93,9 @@ def relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
 
 def _relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
     table = exp.alias_(d.table(schema.table), ALIAS, quoted=True)
+    model = schema.model_columns()
+    table = _cast_columns(table, [c.name for c in schema.columns.values() if c.name not in model],
+                          schema, d.stored, d)
     cond = row_condition(schema, d)
     if cond is not None:
         table = exp.select(exp.Star()).from_(table).where(cond).subquery(ALIAS, copy=False)
@@ -100,7 +113,7 @@ def _relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
     for i, dim in enumerate(schema.dimensions):
         used = [c for c in dim.columns if dim.column_name(c) in inner]
         if used:
-            q = _join(q, dim, used, names.dim_alias(i), d)
+            q = _join(q, dim, used, names.dim_alias(i), d, schema)
     if exprs:  # one level up: an expr may read computed and dimension columns
         q = _sub(q, d) if inner else table
         q = exp.select(_all(d), *(exp.alias_(node, n, quoted=True) for n, node in exprs.items())
@@ -156,12 +169,16 @@ def _sub(q: exp.Select, d: Dialect) -> exp.Expression:
     return exp.Subquery(this=q, alias=exp.TableAlias(this=d.ident(ALIAS)))
 
 
-def _join(q: exp.Select, dim: Dimension, used: list[str], alias: str, d: Dialect) -> exp.Select:
-    """``q LEFT JOIN dim``, selecting its used columns as ``"<dim>.<column>"`` (ClickHouse
-    reads unmatched rows as NULL through the ``join_use_nulls`` every statement there sets)."""
+def _join(q: exp.Select, dim: Dimension, used: list[str], alias: str, d: Dialect,
+          schema: SourceSchema) -> exp.Select:
+    """``q LEFT JOIN dim``, selecting its used columns as ``"<dim>.<column>"``, each through
+    ``Dialect.stored`` like the table's own (ClickHouse reads unmatched rows as NULL through
+    the ``join_use_nulls`` every statement there sets)."""
     right = exp.alias_(d.table(dim.table), alias, table=True, quoted=True)
     on = exp.EQ(this=d.column(dim.fact_column, ALIAS), expression=d.column(dim.key, alias))
     q = q.join(right, on=on, join_type="left")
     for c in used:
-        q = q.select(exp.alias_(d.column(c, alias), dim.column_name(c), quoted=True))
+        ref, info = d.column(c, alias), schema.columns.get(dim.column_name(c))
+        cast = d.stored(ref, info.sql_type, info.kind) if info is not None else None
+        q = q.select(exp.alias_(cast if cast is not None else ref, dim.column_name(c), quoted=True))
     return q

@@ -203,7 +203,8 @@ def more(tmp_path_factory):
     con.execute(f"CREATE TABLE t AS SELECT i, [i % 6] AS l FROM range(1, {N + 1}) r(i)")
     con.close()
     app = create_app(parse_settings({"sources": {
-        "postgres": {"engine": "postgres", "dsn": fx.PG_DSN, "table": f"public.{name}"},
+        "postgres": {"engine": "postgres", "dsn": fx.PG_DSN, "table": f"public.{name}",
+                     "columns": {"cash2": "cash * 2"}},
         "mysql": {"engine": "mysql", "dsn": fx.MYSQL_DSN, "table": f"test.{name}"},
         "duckdb": {"engine": "duckdb", "path": str(db), "table": "t"}},
         "server": {"request_log": False}}, "<column types, more>"))
@@ -225,6 +226,16 @@ def test_postgres_money_is_a_decimal(more):
     assert out["data"]["count"][0] == sum(c < 100 for c in cash)
     p = more.get("/v1/sources/postgres/columns/cash")
     assert p.status_code == 200, p.text
+    # what operators write over it reads a number too: a computed column, an expr, filters
+    out = _chart(more, "postgres", where=[{"column": "cash", "gte": 100}],
+                 filter_sql="cash < 400",
+                 channels={"x": {"column": "cash2", "bin": {"width": 200}},
+                           "y": {"agg": "sum", "column": "cash2"},
+                           "size": {"agg": "max", "expr": "cash + cash"}})
+    kept = [2 * c for c in cash if 100 <= c < 400]
+    for lo, total, top in zip(out["data"]["x_lo"], out["data"]["sum_cash2"], out["data"]["max_cash + cash"]):
+        part = [v for v in kept if lo <= v < lo + 200]
+        assert decimal.Decimal(str(total)) == sum(part) and decimal.Decimal(str(top)) == max(part)
 
 
 def test_postgres_min_max_of_a_boolean(more):

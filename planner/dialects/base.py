@@ -381,9 +381,16 @@ class Dialect:
         return exp.Between(this=e, low=self.timestamp_literal(lo, kind),
                            high=self.timestamp_literal(hi, kind))
 
+    def stored(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+        """A table column as everything reads it, row conditions and computed columns
+        included (``planner.source.relation``, beneath the source model), when the engine's
+        own type cannot serve as its kind; None: as it is (the base: every type)."""
+        return None
+
     def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
-        """A column as every statement reads it (``planner.source.relation``) when its own
-        type does not behave as its kind; None: as it is. A UUID column is a string kind:
+        """A column as every statement reads it (``planner.source.relation``, above the
+        source model) when its own type does not behave as its kind; None: as it is. A UUID
+        column is a string kind:
         read as text, so comparing it with any string, ranking it beside ``(other)`` and
         searching it work as on text (PostgreSQL and DuckDB refuse ``uuid = 'x'`` for a
         non-UUID string and a CASE that mixes text with uuid)."""

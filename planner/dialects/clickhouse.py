@@ -77,12 +77,12 @@ class ClickHouse(Dialect):
                                          expression=exp.Literal.number(1))])
         return node.sql(dialect=self.sqlglot, identify=True)
 
-    def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+    def stored(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
         # (U)Int128 / (U)Int256 travel as 16- or 32-byte binary in Arrow (no such integer
         # type there), and their sums too: read as Decimal256(76, 0), exact
         if kind == "integer" and _WIDE_INT.fullmatch(sql_type.strip().lower()):
             return self.fn("toDecimal256", ref, self.lit(0))
-        return super().readable(ref, sql_type, kind)
+        return super().stored(ref, sql_type, kind)
 
     def text(self, e: exp.Expression) -> exp.Expression:
         # CAST(u AS String) refuses a NULL (of Nullable(UUID), say); toString keeps it NULL

@@ -39,7 +39,7 @@ class DuckDB(Dialect):
     )
     agg_spellings = {"approx_count_distinct": "approx_count_distinct"}
 
-    def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+    def stored(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
         # TIMESTAMP_NS holds 1677..2262 only: comparing it with a year-1 (or any out-of-range)
         # TIMESTAMP fails ("Could not convert Timestamp to higher precision"). Read as
         # microseconds, the precision of every answer, floored: a CAST rounds, and would put
@@ -52,7 +52,7 @@ class DuckDB(Dialect):
             us = exp.IntDiv(this=exp.Paren(this=exp.Sub(this=ns.copy(), expression=below)),
                             expression=k.copy())
             return self.fn("MAKE_TIMESTAMP", us)
-        return super().readable(ref, sql_type, kind)
+        return super().stored(ref, sql_type, kind)
 
     @staticmethod
     def _naive(e: exp.Expression, kind: str) -> exp.Expression:

@@ -44,12 +44,12 @@ class Postgres(Dialect):
 
     _ARRAY_TYPES = {str: "TEXT[]", int: "BIGINT[]", float: "DOUBLE PRECISION[]", bool: "BOOLEAN[]"}
 
-    def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+    def stored(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
         # money (a decimal kind) arrives as locale text ('$1.50') and casts to numeric only,
         # not to double precision
         if kind == "decimal" and sql_type.strip().lower() == "money":
             return self.cast(ref, "NUMERIC")
-        return super().readable(ref, sql_type, kind)
+        return super().stored(ref, sql_type, kind)
 
     def param_array(self, marker, value_type):
         return self.cast(marker, self._ARRAY_TYPES[value_type])
