@@ -329,3 +329,59 @@ def test_a_chart_no_row_matches_answers_empty(engines, engine, x, y):
                  where=[{"column": "flag", "in": [True]}, {"column": "flag", "in": [False]}])
     assert all(v == [] for v in out["data"].values()), out["data"]
     assert out["stats"]["matched_rows"] == 0 and out["stats"]["result_rows"] == 0
+
+
+def test_sqlite_cells_of_another_storage_class_are_null_everywhere(tmp_path):
+    """SQLite keeps 'abc' in a NUMERIC column and 'yes' in a BOOLEAN one as text (its type
+    affinity rules, sqlite.org/datatype3.html). Such a cell reads as NULL for keys, measures
+    and filters: before, a NUMERIC key answered 500 (text in a decimal column), a filter
+    ``num >= 5`` kept the text cells (SQLite orders text above every number) and a key
+    grouped them apart. Reference: the same rows in Python with those cells as None."""
+    import decimal
+    import sqlite3
+
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    path = tmp_path / "cells.sqlite"
+    con = sqlite3.connect(path)
+    con.execute("CREATE TABLE t (i INTEGER, num NUMERIC, r REAL, ok BOOLEAN)")
+    cells = ["abc", 1.5, 7, None, "x7", 12.25, "", 3]
+    okc = [1, 0, "yes", None, 1, "no", 0, 1]
+    rows = [(i, cells[i % len(cells)], cells[(i + 1) % len(cells)], okc[i % len(okc)])
+            for i in range(64)]
+    con.executemany("INSERT INTO t VALUES (?, ?, ?, ?)", rows)
+    con.commit()
+    con.close()
+
+    def number(v):
+        return None if isinstance(v, str) else v
+
+    nums = [number(r[1]) for r in rows]
+    reals = [number(r[2]) for r in rows]
+    oks = [None if isinstance(r[3], str) else bool(r[3]) if r[3] is not None else None
+           for r in rows]
+    app = create_app(parse_settings({"sources": {"s": {"engine": "sqlite", "path": str(path),
+                                                       "table": "t"}},
+                                     "server": {"request_log": False}}, "<cells>"))
+    with TestClient(app, raise_server_exceptions=False) as c:
+        out = _chart(c, "s", channels={"x": {"column": "num"}, "y": {"agg": "count"},
+                                       "size": {"agg": "sum", "column": "r"}})
+        got = {None if k is None else decimal.Decimal(str(k)): (n, s)
+               for k, n, s in zip(out["data"]["num"], out["data"]["count"], out["data"]["sum_r"])}
+        want: dict = {}
+        for v, r in zip(nums, reals):
+            key = None if v is None else decimal.Decimal(str(v))
+            n, s = want.get(key, (0, None))
+            want[key] = (n + 1, s if r is None else (s or 0) + r)
+        assert got.keys() == want.keys()
+        for k in want:
+            assert got[k][0] == want[k][0]
+            assert (got[k][1] is None) == (want[k][1] is None)
+            if want[k][1] is not None:
+                assert float(got[k][1]) == pytest.approx(want[k][1])
+        assert _count(c, "s", [{"column": "num", "gte": 5}]) == sum(
+            v is not None and v >= 5 for v in nums)
+        flags = _chart(c, "s", channels={"x": {"column": "ok"}, "y": {"agg": "count"}})
+        assert dict(zip(flags["data"]["ok"], flags["data"]["count"])) == \
+            dict(collections.Counter(oks))

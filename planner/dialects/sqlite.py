@@ -7,10 +7,11 @@ Storage convention for timestamps (SQLite has no timestamp type): a column decla
 fraction digits); a ``DATE`` column holds ``YYYY-MM-DD``. Filters compare that text with
 literals written in the same fixed-width form, so the comparison is exact (and can use an
 index); values stored in another form would compare wrongly in filters. Keys never group
-them wrongly: a cell that breaks the convention (text in a REAL/INTEGER column, an integer or
-text SQLite's date functions cannot read in a TIMESTAMP/DATE column) is NULL for bins and
-time keys (``number_cell``, ``instant_range``) and reads as NULL in results. Results come
-back as text and the service types them from the plan.
+them wrongly: a cell that breaks the convention (an integer or text SQLite's date functions
+cannot read in a TIMESTAMP/DATE column) is NULL for bins and time keys (``instant_range``).
+A cell of another storage class in a number or boolean column ('abc' in a NUMERIC or REAL
+column, 'yes' in a BOOLEAN one) is NULL for every read, filters included (``stored``).
+Results come back as text and the service types them from the plan.
 
 SQLite has no time zone database: only UTC is accepted (``tz`` other than UTC -> 422). It has
 no percentile or standard deviation aggregates: median, quantile and the Freedman–Diaconis
@@ -64,6 +65,18 @@ class SQLite(Dialect):
         check = self.fn("date" if kind == "date" else "datetime", e)
         return exp.and_(exp.EQ(this=self.fn("typeof", e.copy()), expression=self.lit("text")),
                         exp.Not(this=exp.Is(this=check, expression=exp.Null())))
+
+    def stored(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+        # a cell of another storage class than the column's kind ('abc' in a NUMERIC or
+        # REAL column, 'yes' in a BOOLEAN one) is NULL for everything, keys, measures and
+        # filters alike (SQLite would group it apart and compare text above every number)
+        if kind in ("integer", "double", "decimal"):
+            return self.number_cell(ref)
+        if kind == "boolean":
+            return exp.Case(ifs=[exp.If(this=exp.EQ(this=self.fn("typeof", ref),
+                                                    expression=self.lit("integer")),
+                                        true=ref.copy())])
+        return None
 
     def number_cell(self, col: exp.Expression) -> exp.Expression:
         # a REAL / INTEGER column may hold text ('abc' CASTs to 0.0): such cells are NULL
