@@ -252,8 +252,9 @@ def domain(arr: pa.ChunkedArray, tz: str | None = None) -> list[Any] | None:
         lo, hi = mm["min"], mm["max"]
         if not lo.is_valid:
             return None
-        if pa.types.is_timestamp(t):
-            return [instant_text(lo.as_py(), tz or t.tz), instant_text(hi.as_py(), tz or t.tz)]
+        if pa.types.is_timestamp(t):  # (as an array: as_py() fails on a local year 10000)
+            ends = pa.chunked_array([pa.array([lo.value, hi.value], pa.timestamp(t.unit, "UTC"))])
+            return timestamps_to_text(ends, tz or t.tz)
         if pa.types.is_date(t):
             return [lo.as_py().isoformat(), hi.as_py().isoformat()]
         return [lo.as_py(), hi.as_py()]

@@ -11,6 +11,7 @@ Pure (``planner.tzdb`` reads the time zone database).
 
 from __future__ import annotations
 
+import datetime as dt
 import functools
 import math
 import zoneinfo
@@ -71,7 +72,7 @@ def _key_expr(d: Dialect, k: Key) -> exp.Expression:
     if k.mode == "plain":  # a top key folds in _top_key_expr / _fold_top
         return ref
     if k.mode == "trunc":
-        return _trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz)
+        return _trunc_in_range(d, k, ref, _trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz))
     if k.mode == "extract":
         return d.extract(k.spec.extract, d.to_local(ref, k.col.kind, k.tz))
     if k.mode == "nbin":
@@ -284,6 +285,10 @@ def _micro_bin(d: Dialect, k: Key, unit_us: int) -> exp.Expression:
             return exp.Case(ifs=[fast])
         ref = _instant_in_range(d, k.col, d.column(k.col.name, "s"))
         slow = d.epoch_micros(_trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz), "timestamptz")
+        if d.caps.wide_instants:  # a bin starting before year 1 (a zone's LMT offset): NULL
+            slow = exp.Case(ifs=[exp.If(this=exp.Between(
+                this=slow, low=d.number(-_YEAR1_MICROS), high=d.number(_YEAR9999_MICROS)),
+                true=slow.copy())])
         return exp.Case(ifs=[fast], default=slow)
     if not d.caps.wide_instants or k.col.in_range:
         return idx
@@ -317,6 +322,33 @@ def _exact_integer_layout(start: float, width: float, count: int) -> bool:
         if math.floor((first - start) / width) != i or math.floor((last - start) / width) != i:
             return False
     return True
+
+
+#: inputs between these instants have their ``trunc`` bin (any unit up to a year, in any
+#: zone: offsets stay under a day) inside years 1..9999
+_TRUNC_SAFE = (dt.datetime(1, 1, 1, tzinfo=dt.timezone.utc) + dt.timedelta(days=400),
+               dt.datetime(9999, 12, 29, tzinfo=dt.timezone.utc))
+_SHOWN = (dt.datetime(1, 1, 1, tzinfo=dt.timezone.utc),
+          dt.datetime(9999, 12, 31, 23, 59, 59, 999999, tzinfo=dt.timezone.utc))
+
+
+def _trunc_in_range(d: Dialect, k: Key, ref: exp.Expression, key: exp.Expression
+                    ) -> exp.Expression:
+    """``key`` (a ``trunc`` grouping value of ``ref``), NULL when its bin starts outside
+    years 1..9999 in UTC, like every other instant shown: in a zone, the local bin of a
+    value in the first hours (or, trunc year, the first year) of year 1 can start before
+    0001-01-01T00:00Z (Berlin's local midnight is 23:07 the day before). Only where the
+    engine holds such instants (``caps.wide_instants``; elsewhere they cannot arise). The
+    test of the bin's instant runs only for values near either end (one comparison of the
+    column for the others)."""
+    if k.tz == "UTC" or not d.caps.wide_instants:
+        return key
+    safe = exp.Between(this=ref.copy(), low=d.timestamp_literal(_TRUNC_SAFE[0], k.col.kind),
+                       high=d.timestamp_literal(_TRUNC_SAFE[1], k.col.kind))
+    start = key.copy() if k.spec.trunc in SUB_DAY_UNITS else d.from_local(key.copy(), k.tz)
+    shown = exp.Between(this=start, low=d.timestamp_literal(_SHOWN[0], "timestamptz"),
+                        high=d.timestamp_literal(_SHOWN[1], "timestamptz"))
+    return exp.Case(ifs=[exp.If(this=safe, true=key), exp.If(this=shown, true=key.copy())])
 
 
 def _trunc_key(d: Dialect, unit: str, ref: exp.Expression, kind: str, tz: str) -> exp.Expression:

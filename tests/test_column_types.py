@@ -385,3 +385,116 @@ def test_sqlite_cells_of_another_storage_class_are_null_everywhere(tmp_path):
         flags = _chart(c, "s", channels={"x": {"column": "ok"}, "y": {"agg": "count"}})
         assert dict(zip(flags["data"]["ok"], flags["data"]["count"])) == \
             dict(collections.Counter(oks))
+
+
+# ---- the first and last days a time key shows, in a zone -------------------------------
+
+_DAY_US = 86_400_000_000
+
+
+def _us(ordinal: int, t: dt.timedelta = dt.timedelta(0)) -> int:
+    """Microseconds since 0001-01-01T00:00 of proleptic Gregorian day ``ordinal`` (1 =
+    0001-01-01; 3,652,060 = 10000-01-01, past what Python's date holds) plus ``t``."""
+    return (ordinal - 1) * _DAY_US + t // dt.timedelta(microseconds=1)
+
+
+def _bin_start(v: dt.datetime, zone, unit: str) -> int | None:
+    """The UTC start (microseconds since year 1) of ``trunc(unit)`` of the UTC instant ``v``
+    in ``zone``, None before year 1. The zone's offset from Python's zoneinfo (tz database):
+    near year 1 its LMT offset, and no transition near the values used here."""
+    def off(local: dt.datetime) -> int:
+        return zone.utcoffset(local) // dt.timedelta(microseconds=1)
+
+    o = off(v)
+    local = _us(v.toordinal(), v - v.replace(hour=0, minute=0, second=0, microsecond=0)) + o
+    day = local // _DAY_US + 1  # the local day's ordinal
+    if unit == "hour":
+        start = local - local % 3_600_000_000
+    elif day < 1:  # a local wall time in year 0: its month or year starts before year 1
+        return None
+    elif unit == "day" or day > dt.date.max.toordinal():  # (10000-01-01 starts all three)
+        start = _us(day)
+    else:
+        d = dt.date.fromordinal(day)
+        d = d.replace(day=1) if unit == "month" else d.replace(month=1, day=1)
+        start = _us(d.toordinal())
+    s_day = start // _DAY_US + 1
+    at = dt.datetime.fromordinal(min(max(s_day, 2), dt.date.max.toordinal()))
+    start -= off(at) if unit != "hour" else o
+    return None if start < 0 else start
+
+
+def _text_us(text: str) -> int:
+    """An answer's RFC 3339 instant (a five-digit local year allowed) in microseconds since
+    0001-01-01T00:00Z."""
+    date, _, rest = text.partition("T")
+    y, m, d = (int(p) for p in date.split("-"))
+    ordinal = dt.date.max.toordinal() + 1 if y == 10000 else dt.date(y, m, d).toordinal()
+    h, mi, sec = (int(p) for p in rest[:8].split(":"))
+    shift = 0
+    if not rest.endswith("Z"):
+        sign = 1 if rest[8] == "+" else -1
+        oh, om = (int(p) for p in rest[9:].split(":"))
+        shift = sign * (oh * 3600 + om * 60) * 1_000_000
+    return _us(ordinal, dt.timedelta(hours=h, minutes=mi, seconds=sec)) - shift
+
+
+@pytest.mark.parametrize("engine", ["duckdb", "postgres"])
+@pytest.mark.parametrize("x", [
+    {"column": "d", "trunc": "month", "tz": "Europe/Berlin"},
+    {"column": "t", "trunc": "day", "tz": "Asia/Tokyo"},
+    {"column": "t", "trunc": "year", "tz": "America/New_York"},
+    {"column": "t", "trunc": "hour", "tz": "Pacific/Kiritimati"},
+])
+def test_sentinel_dates_in_a_zone(tmp_path, engine, x):
+    """0001-01-01 and 9999-12-31 are common sentinels ("unknown", the open end of a slowly
+    changing dimension). In a zone, the local bin of a year-1 value can start before
+    0001-01-01T00:00Z (Berlin's local midnight then is 23:07 UTC the day before: its LMT
+    offset): that bin is NULL, like every instant outside years 1..9999. Before, DuckDB
+    answered 500 (Python cannot hold the instant) and PostgreSQL 502 (nor can its driver),
+    and so did the domain of an in-range bin whose local year is 10000 (9999-12-31T15:00Z in
+    Tokyo). Reference: each bin start from Python's zoneinfo offsets (``_bin_start``)."""
+    import zoneinfo
+
+    import psycopg
+
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    days = [dt.date(1, 1, 1), dt.date(1, 3, 1), dt.date(2020, 5, 5), dt.date(9999, 12, 31)]
+    times = [dt.datetime(1, 1, 1, 0, 10), dt.datetime(1, 3, 1, 12), dt.datetime(2020, 5, 5),
+             dt.datetime(9999, 12, 31, 23, 59)]
+    if engine == "duckdb":
+        db = tmp_path / "edges.duckdb"
+        con = duckdb.connect(str(db))
+        con.execute("CREATE TABLE e (d DATE, t TIMESTAMP)")
+        con.executemany("INSERT INTO e VALUES (?, ?)", list(zip(days, times)))
+        con.close()
+        src = {"engine": "duckdb", "path": str(db), "table": "e"}
+    else:
+        name = f"sluice_edges_{fx.worker()}"
+        with psycopg.connect(fx.PG_DSN, autocommit=True) as conn:
+            conn.execute(f'DROP TABLE IF EXISTS "{name}"')
+            conn.execute(f'CREATE TABLE "{name}" (d date, t timestamp)')
+            for a, b in zip(days, times):
+                conn.execute(f'INSERT INTO "{name}" VALUES (%s, %s)', (a, b))
+        src = {"engine": "postgres", "dsn": fx.PG_DSN, "table": f"public.{name}"}
+    zone = zoneinfo.ZoneInfo(x["tz"])
+    values = [dt.datetime(v.year, v.month, v.day) for v in days] if x["column"] == "d" else times
+    want = collections.Counter(_bin_start(v, zone, x["trunc"]) for v in values)
+    app = create_app(parse_settings({"sources": {"e": src}, "server": {"request_log": False}},
+                                    "<edges>"))
+    body = {"source": "e", "channels": {"x": x, "y": {"agg": "count"}}}
+    with TestClient(app, raise_server_exceptions=False) as c:
+        arrow = c.post("/v1/chart", json=body,
+                       headers={"accept": "application/vnd.apache.arrow.stream"})
+        assert arrow.status_code == 200, arrow.text
+        r = c.post("/v1/chart", json=body)
+        assert r.status_code == 200, r.text
+    out = r.json()
+    got = collections.Counter()
+    for key, n in zip(out["data"][x["column"]], out["data"]["count"]):
+        got[None if key is None else _text_us(key)] += n
+    assert got == want
+    assert [_text_us(t) for t in out["domains"][x["column"]]] == \
+        [min(k for k in want if k is not None), max(k for k in want if k is not None)]
