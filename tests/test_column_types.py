@@ -498,3 +498,47 @@ def test_sentinel_dates_in_a_zone(tmp_path, engine, x):
     assert got == want
     assert [_text_us(t) for t in out["domains"][x["column"]]] == \
         [min(k for k in want if k is not None), max(k for k in want if k is not None)]
+
+
+@pytest.mark.parametrize("x", [
+    {"column": "d", "trunc": "month", "tz": "Europe/Berlin"},
+    {"column": "t", "trunc": "day", "tz": "Asia/Tokyo"},
+    {"column": "t", "trunc": "year", "tz": "America/New_York"},
+    {"column": "t", "trunc": "month"},
+])
+def test_clickhouse_calendar_bins_outside_1970_to_2149(tmp_path_factory, x):
+    """ClickHouse's toStartOfMonth and friends clamped a Date32 / DateTime64 to Date's range
+    (1970..2149): 1900-01-01 came back as 1970-01-01 and 2299-12-31 as 2149-06-05, silently.
+    Every statement now sets enable_extended_results_for_datetime_functions. Reference: bin
+    starts from Python's zoneinfo offsets (``_bin_start``), over the whole DateTime64 range."""
+    import zoneinfo
+
+    from chdb import session as chs
+
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    days = [dt.date(1900, 1, 1), dt.date(1955, 6, 15), dt.date(2020, 5, 5), dt.date(2299, 12, 31)]
+    times = [dt.datetime(1900, 1, 1, 0, 10), dt.datetime(1955, 6, 15, 12), dt.datetime(2020, 5, 5),
+             dt.datetime(2299, 12, 31, 23, 59)]
+    folder = fx.chdb_folder(tmp_path_factory.mktemp("column_types_ch_dates"))
+    s = chs.Session(str(folder))
+    s.query("CREATE DATABASE IF NOT EXISTS sluice_test")
+    s.query("DROP TABLE IF EXISTS sluice_test.far_dates")
+    s.query("CREATE TABLE sluice_test.far_dates (d Date32, t DateTime64(6, 'UTC')) "
+            "ENGINE = MergeTree ORDER BY d")
+    s.query("INSERT INTO sluice_test.far_dates VALUES " + ", ".join(
+        f"('{a.isoformat()}', '{b.isoformat(' ')}')" for a, b in zip(days, times)))
+    s.close()
+    zone = zoneinfo.ZoneInfo(x.get("tz", "UTC"))
+    values = [dt.datetime(v.year, v.month, v.day) for v in days] if x["column"] == "d" else times
+    want = collections.Counter(_bin_start(v, zone, x["trunc"]) for v in values)
+    app = create_app(parse_settings({"sources": {"ch": {
+        "engine": "clickhouse", "path": str(folder), "table": "sluice_test.far_dates"}},
+        "server": {"request_log": False}}, "<far dates>"))
+    with TestClient(app, raise_server_exceptions=False) as c:
+        out = _chart(c, "ch", channels={"x": x, "y": {"agg": "count"}})
+    got = collections.Counter()
+    for key, n in zip(out["data"][x["column"]], out["data"]["count"]):
+        got[None if key is None else _text_us(key)] += n
+    assert got == want

@@ -10,7 +10,9 @@
   nan) for groups with too few values, as in SQL.
 * approx_count_distinct: ``uniqCombined`` (HyperLogLog-based, ~1% error).
 * Outer joins fill missing columns with default values unless ``join_use_nulls = 1``: every
-  statement carries ``SETTINGS join_use_nulls = 1`` so unmatched rows read as NULL.
+  statement carries ``SETTINGS join_use_nulls = 1`` so unmatched rows read as NULL, and
+  ``enable_extended_results_for_datetime_functions = 1`` so calendar truncation of a
+  DateTime64 / Date32 stays in its range (1900..2299) instead of clamping to 1970..2149.
 * contains / starts_with: ``position`` / ``startsWith`` (byte-exact, case-sensitive).
 * The previous row (``then: change``): ``lag`` answers the type's default (0), not NULL, on a
   partition's first row, so it is ``lagInFrame(toNullable(v))`` over the whole partition
@@ -66,15 +68,18 @@ class ClickHouse(Dialect):
         "null_safe_eq": "IS NOT DISTINCT FROM",
         "text_match": "position / startsWith",
         "division": "`/` is always Float64",
-        "limit": "LIMIT (+ SETTINGS join_use_nulls = 1)",
+        "limit": "LIMIT (+ SETTINGS join_use_nulls = 1, enable_extended_results_for_datetime_functions = 1)",
         "quoting": '"name"',
     }
 
     def render(self, node: exp.Expression) -> str:
         if isinstance(node, exp.Select):
             node = node.copy()
-            node.set("settings", [exp.EQ(this=exp.var("join_use_nulls"),
-                                         expression=exp.Literal.number(1))])
+            # extended results: toStartOfMonth and friends of a DateTime64 / Date32 answer in
+            # their range (1900..2299); without it they clamp to Date's 1970..2149
+            node.set("settings", [exp.EQ(this=exp.var(name), expression=exp.Literal.number(1))
+                                  for name in ("join_use_nulls",
+                                               "enable_extended_results_for_datetime_functions")])
         return node.sql(dialect=self.sqlglot, identify=True)
 
     def stored(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
