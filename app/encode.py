@@ -124,6 +124,26 @@ def _utc_text_matrix(arr: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray | Non
     return out, valid
 
 
+def _wall_text(seconds: int) -> str:
+    """``YYYY-MM-DDTHH:MM:SS`` of a wall clock ``seconds`` after 1970-01-01T00:00, any year
+    (a year-1 instant west of UTC reads as a local time in year 0, which Python's datetime
+    cannot hold): the proleptic Gregorian date from the day number (H. Hinnant's
+    days-to-civil algorithm, "chrono-Compatible Low-Level Date Algorithms"), the year
+    always four digits (strftime writes year 1 as "1")."""
+    days, rest = divmod(seconds, 86400)
+    z = days + 719468
+    era = z // 146097
+    doe = z - era * 146097
+    yoe = (doe - doe // 1460 + doe // 36524 - doe // 146096) // 365
+    doy = doe - (365 * yoe + yoe // 4 - yoe // 100)
+    mp = (5 * doy + 2) // 153
+    day = doy - (153 * mp + 2) // 5 + 1
+    month = mp + 3 if mp < 10 else mp - 9
+    year = yoe + era * 400 + (month <= 2)
+    h, rest = divmod(rest, 3600)
+    return f"{year:04d}-{month:02d}-{day:02d}T{h:02d}:{rest // 60:02d}:{rest % 60:02d}"
+
+
 def timestamps_to_text(arr: pa.ChunkedArray, tz: str | None) -> list[str | None]:
     """RFC 3339 text in ``tz`` (default: the zone of the Arrow type, else UTC)."""
     zone = tz or arr.type.tz or "UTC"
@@ -170,9 +190,8 @@ def timestamps_to_text(arr: pa.ChunkedArray, tz: str | None) -> list[str | None]
                 continue
             minutes = int(np.trunc(off[i] / (60 * per_s)))  # toward zero, as %z cuts
             secs, frac = divmod(int(utc[i]), per_s)
-            t = dt.datetime(1970, 1, 1) + dt.timedelta(seconds=secs + 60 * minutes)
             sign, m = ("-", -minutes) if minutes < 0 else ("+", minutes)
-            out[i] = (t.strftime("%Y-%m-%dT%H:%M:%S") + (f".{frac:0{digits}d}" if digits else "")
+            out[i] = (_wall_text(secs + 60 * minutes) + (f".{frac:0{digits}d}" if digits else "")
                       + f"{sign}{m // 60:02d}:{m % 60:02d}")
     return out
 

@@ -193,3 +193,33 @@ def test_zoned_nanosecond_text_with_nulls(zone: str) -> None:
         assert int(tail[:9]) == frac, (text, r)
         back = dt.datetime.fromisoformat(head + tail[9:])
         assert back == epoch + dt.timedelta(seconds=whole), (text, r)
+
+
+def test_wall_text_of_any_year_matches_python_datetime():
+    """``_wall_text`` (days-to-civil arithmetic) against Python's datetime, whose calendar
+    is the proleptic Gregorian one, over its whole range; and one step past either end,
+    where a year-1 instant read west of UTC (or a 9999 one east of it) has its local year:
+    0000-12-31 is the day before 0001-01-01, 10000-01-01 the day after 9999-12-31."""
+    import random
+
+    from app.encode import _wall_text
+
+    rng = random.Random(20261204)
+    for _ in range(20000):
+        s = rng.randint(-62135596800, 253402300799)
+        t = dt.datetime(1970, 1, 1) + dt.timedelta(seconds=s)
+        assert _wall_text(s) == f"{t.year:04d}" + t.strftime("-%m-%dT%H:%M:%S"), s
+    assert _wall_text(-62135596800 - 3600) == "0000-12-31T23:00:00"
+    assert _wall_text(253402300800) == "10000-01-01T00:00:00"
+
+
+def test_year_one_in_a_zone_with_a_mean_time_offset():
+    """0001-01-01T00:10Z in New York (LMT -4:56:02, cut to -4:56 as the offset text holds
+    minutes) is 0000-12-31T19:14 there; in Tokyo (LMT +9:18:59 -> +9:18) 09:28. Before,
+    the first raised OverflowError (500) and the second wrote the year as "1"."""
+    from app.encode import timestamps_to_text
+
+    arr = pa.chunked_array([pa.array([dt.datetime(1, 1, 1, 0, 10, tzinfo=dt.timezone.utc)],
+                                     pa.timestamp("us", tz="UTC"))])
+    assert timestamps_to_text(arr, "America/New_York") == ["0000-12-31T19:14:00-04:56"]
+    assert timestamps_to_text(arr, "Asia/Tokyo") == ["0001-01-01T09:28:00+09:18"]
