@@ -84,7 +84,7 @@ def client(tmp_path_factory, clickhouse_dsn):
                "mysql": fx.load_mysql(rows), "sqlite": fx.load_sqlite(root, rows),
                "clickhouse": fx.load_chdb(root, table),
                "clickhouse_http": {"engine": "clickhouse", "dsn": dsn, "table": ch_table}}
-    app = create_app(parse_settings({"sources": sources}, "<grouping sets>"))
+    app = create_app(parse_settings({"sources": sources, "cache": fx.STEADY_CACHE}, "<grouping sets>"))
     with TestClient(app, raise_server_exceptions=False) as c:
         yield c
 
@@ -300,7 +300,8 @@ def test_spark_shared_statement(tmp_path_factory, monkeypatch):
     root = tmp_path_factory.mktemp("gsets_spark")
     src = fx.load_spark(root, fx.arrow_table(fx.make_rows()))
     src["table"] = "sluice_gsets"
-    app = create_app(parse_settings({"sources": {"spark": src}}, "<grouping sets spark>"))
+    app = create_app(parse_settings({"sources": {"spark": src}, "cache": fx.STEADY_CACHE},
+                                    "<grouping sets spark>"))
     body = {"source": "spark", "tz": "UTC", "where": [{"column": "n", "gte": -10}],
             "charts": [CHARTS[2], CHARTS[3], {"id": "grp", "channels": {
                 "x": {"column": "grp"}, "y": {"agg": "count"}, "size": {"agg": "avg", "column": "x"}}}]}
