@@ -60,6 +60,21 @@ _FRACTION_DIGITS = {"s": 0, "ms": 3, "us": 6, "ns": 9}
 _TEXT_SECONDS = (-62_135_596_800, 253_402_300_799)
 
 
+def _civil_from_days(days: Any) -> tuple[Any, Any, Any]:
+    """(year, month, day) of day counts since 1970-01-01 (a numpy array or scalar), the
+    proleptic Gregorian calendar: Hinnant's ``civil_from_days`` ("chrono-Compatible
+    Low-Level Date Algorithms", https://howardhinnant.github.io/date_algorithms.html)."""
+    z = days + 719_468
+    era = z // 146_097
+    doe = z - era * 146_097
+    yoe = (doe - doe // 1_460 + doe // 36_524 - doe // 146_096) // 365
+    doy = doe - (365 * yoe + yoe // 4 - yoe // 100)
+    mp = (5 * doy + 2) // 153
+    day = doy - (153 * mp + 2) // 5 + 1
+    month = np.where(mp < 10, mp + 3, mp - 9)
+    return yoe + era * 400 + (month <= 2), month, day
+
+
 def _utc_text_matrix(arr: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray | None] | None:
     """The RFC 3339 UTC text of a timestamp column as one ASCII row per value (an
     ``(n, width)`` uint8 matrix, ``YYYY-MM-DDTHH:MM:SS[.f]Z``) and its validity (None: no
@@ -67,9 +82,7 @@ def _utc_text_matrix(arr: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray | Non
     ``numpy.datetime_as_string``, which formats value by value). Fraction digits as the
     unit's, and only when some value has a fraction (as ``timestamps_to_text`` writes).
     None when a year falls outside 0001..9999 (the caller then formats value by value).
-
-    The civil date of a day count is Hinnant's ``civil_from_days`` ("chrono-Compatible
-    Low-Level Date Algorithms", https://howardhinnant.github.io/date_algorithms.html)."""
+    The civil date of a day count: ``_civil_from_days``."""
     unit = arr.type.unit
     flat = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
     ticks = flat.view(pa.int64())
@@ -86,15 +99,8 @@ def _utc_text_matrix(arr: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray | Non
     digits = _FRACTION_DIGITS[unit] if frac is not None and frac.any() else 0
     days = secs // 86_400
     sod = (secs - days * 86_400).astype(np.int32)
-    z = days.astype(np.int32) + 719_468  # int32 from here: every day count of 0001..9999 fits
-    era = z // 146_097
-    doe = z - era * 146_097
-    yoe = (doe - doe // 1_460 + doe // 36_524 - doe // 146_096) // 365
-    doy = doe - (365 * yoe + yoe // 4 - yoe // 100)
-    mp = (5 * doy + 2) // 153
-    day = doy - (153 * mp + 2) // 5 + 1
-    month = np.where(mp < 10, mp + 3, mp - 9)
-    year = yoe + era * 400 + (month <= 2)
+    # int32 from here: every day count of 0001..9999 fits
+    year, month, day = _civil_from_days(days.astype(np.int32))
     width = 20 + (digits + 1 if digits else 0)
     out = np.empty((len(v), width), np.uint8)
 
@@ -127,19 +133,9 @@ def _utc_text_matrix(arr: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray | Non
 def _wall_text(seconds: int) -> str:
     """``YYYY-MM-DDTHH:MM:SS`` of a wall clock ``seconds`` after 1970-01-01T00:00, any year
     (a year-1 instant west of UTC reads as a local time in year 0, which Python's datetime
-    cannot hold): the proleptic Gregorian date from the day number (H. Hinnant's
-    days-to-civil algorithm, "chrono-Compatible Low-Level Date Algorithms"), the year
-    always four digits (strftime writes year 1 as "1")."""
+    cannot hold), the year always four digits (strftime writes year 1 as "1")."""
     days, rest = divmod(seconds, 86400)
-    z = days + 719468
-    era = z // 146097
-    doe = z - era * 146097
-    yoe = (doe - doe // 1460 + doe // 36524 - doe // 146096) // 365
-    doy = doe - (365 * yoe + yoe // 4 - yoe // 100)
-    mp = (5 * doy + 2) // 153
-    day = doy - (153 * mp + 2) // 5 + 1
-    month = mp + 3 if mp < 10 else mp - 9
-    year = yoe + era * 400 + (month <= 2)
+    year, month, day = (int(x) for x in _civil_from_days(np.int64(days)))
     h, rest = divmod(rest, 3600)
     return f"{year:04d}-{month:02d}-{day:02d}T{h:02d}:{rest // 60:02d}:{rest % 60:02d}"
 

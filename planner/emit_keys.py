@@ -328,8 +328,6 @@ def _exact_integer_layout(start: float, width: float, count: int) -> bool:
 #: zone: offsets stay under a day) inside years 1..9999
 _TRUNC_SAFE = (dt.datetime(1, 1, 1, tzinfo=dt.timezone.utc) + dt.timedelta(days=400),
                dt.datetime(9999, 12, 29, tzinfo=dt.timezone.utc))
-_SHOWN = (dt.datetime(1, 1, 1, tzinfo=dt.timezone.utc),
-          dt.datetime(9999, 12, 31, 23, 59, 59, 999999, tzinfo=dt.timezone.utc))
 
 
 def _trunc_in_range(d: Dialect, k: Key, ref: exp.Expression, key: exp.Expression
@@ -346,8 +344,7 @@ def _trunc_in_range(d: Dialect, k: Key, ref: exp.Expression, key: exp.Expression
     safe = exp.Between(this=ref.copy(), low=d.timestamp_literal(_TRUNC_SAFE[0], k.col.kind),
                        high=d.timestamp_literal(_TRUNC_SAFE[1], k.col.kind))
     start = key.copy() if k.spec.trunc in SUB_DAY_UNITS else d.from_local(key.copy(), k.tz)
-    shown = exp.Between(this=start, low=d.timestamp_literal(_SHOWN[0], "timestamptz"),
-                        high=d.timestamp_literal(_SHOWN[1], "timestamptz"))
+    shown = d.instant_range(start, "timestamptz")  # (not None: wide_instants)
     return exp.Case(ifs=[exp.If(this=safe, true=key), exp.If(this=shown, true=key.copy())])
 
 

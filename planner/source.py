@@ -93,8 +93,7 @@ def _cast_columns(rel: exp.Expression, names: list[str], schema: SourceSchema,
 
 def _relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
     table = exp.alias_(d.table(schema.table), ALIAS, quoted=True)
-    model = schema.model_columns()
-    table = _cast_columns(table, [c.name for c in schema.columns.values() if c.name not in model],
+    table = _cast_columns(table, [c.name for c in schema.physical().columns.values()],
                           schema, d.stored, d)
     cond = row_condition(schema, d)
     if cond is not None:
