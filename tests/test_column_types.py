@@ -505,3 +505,104 @@ def test_clickhouse_calendar_bins_outside_1970_to_2149(tmp_path_factory, x):
     for key, n in zip(out["data"][x["column"]], out["data"]["count"]):
         got[None if key is None else _text_us(key)] += n
     assert got == want
+
+
+@pytest.mark.parametrize("x", [
+    {"column": "t", "trunc": "day", "tz": "Europe/Berlin"},
+    {"column": "t", "trunc": "hour", "tz": "Asia/Kolkata"},
+    {"column": "t", "trunc": "month", "tz": "America/New_York"},
+    {"column": "d", "trunc": "year", "tz": "Australia/Sydney"},
+    {"column": "t", "extract": "hour", "tz": "Europe/Dublin"},
+])
+def test_mysql_zoned_bins_outside_1970_to_2038(x):
+    """MariaDB's CONVERT_TZ converts only instants of the TIMESTAMP range (1970-01-01 ..
+    2038-01-19 UTC) and returns others unchanged: a 1945 summer day in Berlin (UTC+3 then)
+    was binned as UTC's. Outside that range the zone's offsets are in the statement now.
+    Reference: bin starts and local hours from Python's zoneinfo (the tz database), for
+    summer and winter values of years 1000..9999, none near a transition."""
+    import zoneinfo
+
+    fx.ensure_mysql_time_zones()
+    years = [1000, 1583, 1900, 1916, 1945, 1955, 1969, 2020, 2040, 2100, 2299, 5000, 9999]
+    times = [dt.datetime(y, m, 15, h, 20) for y in years for m, h in ((1, 2), (7, 21))]
+    src = _mysql_table(f"sluice_far_zones_{fx.worker()}", "d DATE, t DATETIME(6)",
+                       [(v.date(), v) for v in times])
+    zone = zoneinfo.ZoneInfo(x["tz"])
+    if "extract" in x:
+        local = [v.replace(tzinfo=dt.timezone.utc).astimezone(zone) for v in times]
+        want = collections.Counter(t.hour for t in local)
+    else:
+        values = [dt.datetime(v.year, v.month, v.day) for v in times] if x["column"] == "d" \
+            else times
+        want = collections.Counter(_bin_start(v, zone, x["trunc"]) for v in values)
+    with _serve({"my": src}, "<far zones>") as c:
+        out = _chart(c, "my", channels={"x": x, "y": {"agg": "count"}})
+    name = f"{x['column']}_{x['extract']}" if "extract" in x else x["column"]
+    got = collections.Counter()
+    for key, n in zip(out["data"][name], out["data"]["count"]):
+        got[key if "extract" in x else _text_us(key)] += n
+    assert got == want
+
+
+def test_mysql_zone_conversions_equal_zoneinfo_in_every_zone():
+    """``to_local`` / ``from_local`` of the MySQL dialect in every zone Python knows, at
+    instants one hour and one second either side of the zone's transitions in seven years
+    before 1970 or after 2038 (years drawn at random, fixed seed), and at the ends of
+    DATETIME's range. Reference: Python's zoneinfo (the tz database): local times of a UTC
+    instant, and the UTC instant of a local time with ``fold=0`` (the earlier reading in an
+    overlap; in a gap, the offset before it), the rule documented beside the SQL."""
+    import zoneinfo
+
+    import pymysql
+    from sqlglot import exp
+
+    from planner.dialects import get_dialect
+
+    fx.ensure_mysql_time_zones()
+    d, utc, rng = get_dialect("mysql"), dt.timezone.utc, random.Random(20261205)
+
+    def offset(zone, t):
+        return t.replace(tzinfo=utc).astimezone(zone).utcoffset()
+
+    def transitions(zone, year):  # by bisection of the offset between fortnights
+        pts = [dt.datetime(year, 1, 1) + dt.timedelta(days=15 * k) for k in range(25)]
+        for a, b in zip(pts, pts[1:]):
+            if offset(zone, a) != offset(zone, b):
+                while b - a > dt.timedelta(seconds=1):
+                    m = a + (b - a) / 2
+                    a, b = (m, b) if offset(zone, m) == offset(zone, a) else (a, m)
+                yield b.replace(microsecond=0)
+
+    my = pymysql.connect(host="127.0.0.1", user="root", password="", database="test")
+    checked, wrong = 0, []
+    with my.cursor() as cur:
+        for name in sorted(zoneinfo.available_timezones()):
+            zone = zoneinfo.ZoneInfo(name)
+            years = [rng.randint(1850, 1969) for _ in range(3)] + \
+                [rng.randint(2039, 9998) for _ in range(3)] + [1969]
+            values = [dt.datetime(1000, 1, 1), dt.datetime(9999, 12, 30, 12)]
+            for t in (t for y in years for t in transitions(zone, y)):
+                wall = t.replace(tzinfo=utc).astimezone(zone).replace(tzinfo=None)
+                for s in (-3601, -1, 0, 1, 3599):
+                    values += [t + dt.timedelta(seconds=s), wall + dt.timedelta(seconds=s)]
+            values = [v + dt.timedelta(microseconds=rng.randint(0, 999_999)) for v in values]
+            rows = " UNION ALL ".join(
+                f"SELECT {i} AS i, CAST('{v.isoformat(' ')}' AS DATETIME(6)) AS v"
+                for i, v in enumerate(values))
+            v = exp.column("v")
+            cur.execute(f"SELECT i, {d.to_local(v, 'timestamp', name).sql('mysql')}, "
+                        f"{d.from_local(v.copy(), name).sql('mysql')} FROM ({rows}) r ORDER BY i")
+            for i, local, instant in cur.fetchall():
+                u = values[i]
+                want_local = u.replace(tzinfo=utc).astimezone(zone).replace(tzinfo=None)
+                want_instant = u.replace(tzinfo=zone).astimezone(utc).replace(tzinfo=None)
+                checked += 1
+                if local != want_local:
+                    wrong.append((name, "to_local", u, local, want_local))
+                # (inside 1970..2038 CONVERT_TZ reads a local time in a gap its own way)
+                if instant != want_instant and not dt.datetime(1970, 1, 2) <= u <= \
+                        dt.datetime(2038, 1, 18):
+                    wrong.append((name, "from_local", u, instant, want_instant))
+    my.close()
+    assert checked > 15_000
+    assert wrong == []
