@@ -153,7 +153,9 @@ def _dimension(eng: Any, d: Any, cfg: SourceConfig, schema: SourceSchema, dc: An
             raise EngineUnavailable(cfg.name, f"[{dc.where}.{k}] {c!r} is not a column of "
                                     f"{dc.table!r}; nearest: {', '.join(nearest(c, described))}")
     dim = Dimension(dc.name, parts, dc.fact_column, dc.key, tuple(dc.columns),
-                    _duplicate(eng, d, parts, dc.key))
+                    _duplicate(eng, d, parts, dc.key),
+                    ColumnInfo(dc.key, classify(described[dc.key], d.sqlglot or None),
+                               described[dc.key]))
     if dim.duplicate is not None:
         log.warning("dimension %r of source %r: key %r is not unique (e.g. %r); requests that "
                     "use it are refused", dim.name, cfg.name, dim.key, dim.duplicate)

@@ -44,7 +44,8 @@ class Dimension:
     """A many-to-one join to a dimension table (Kimball & Ross, The Data Warehouse Toolkit):
     ``fact_column`` of the source equals ``key`` of ``table``; its ``columns`` are requested as
     ``<name>.<column>``. ``duplicate``: a key value the engine found more than once (fan-out:
-    a request using the dimension is refused), else None."""
+    a request using the dimension is refused), else None. ``key_column``: the key's type,
+    so that the join reads it as the fact column is read (``Dialect.stored``)."""
 
     name: str
     table: tuple[str, ...]
@@ -52,6 +53,7 @@ class Dimension:
     key: str
     columns: tuple[str, ...]
     duplicate: str | None = None
+    key_column: ColumnInfo | None = None
 
     def column_name(self, column: str) -> str:
         return f"{self.name}.{column}"

@@ -172,9 +172,16 @@ def _join(q: exp.Select, dim: Dimension, used: list[str], alias: str, d: Dialect
           schema: SourceSchema) -> exp.Select:
     """``q LEFT JOIN dim``, selecting its used columns as ``"<dim>.<column>"``, each through
     ``Dialect.stored`` like the table's own (ClickHouse reads unmatched rows as NULL through
-    the ``join_use_nulls`` every statement there sets)."""
+    the ``join_use_nulls`` every statement there sets). The key is compared as it is read:
+    the fact column through ``Dialect.stored`` beneath, the dimension's key through
+    ``Dialect.join_key`` (PostgreSQL has no ``numeric = money``; a floored TIMESTAMP_NS
+    equals no raw one)."""
     right = exp.alias_(d.table(dim.table), alias, table=True, quoted=True)
-    on = exp.EQ(this=d.column(dim.fact_column, ALIAS), expression=d.column(dim.key, alias))
+    key = d.column(dim.key, alias)
+    k = dim.key_column
+    stored_key = d.join_key(key, k.sql_type, k.kind) if k is not None else None
+    on = exp.EQ(this=d.column(dim.fact_column, ALIAS),
+                expression=stored_key if stored_key is not None else key)
     q = q.join(right, on=on, join_type="left")
     for c in used:
         ref, info = d.column(c, alias), schema.columns.get(dim.column_name(c))

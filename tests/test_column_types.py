@@ -606,3 +606,56 @@ def test_mysql_zone_conversions_equal_zoneinfo_in_every_zone():
     my.close()
     assert checked > 15_000
     assert wrong == []
+
+
+@pytest.mark.parametrize("fact_type,dim_type", [
+    ("money", "money"), ("money", "numeric"), ("numeric", "money")])
+def test_postgres_money_dimension_keys(fact_type, dim_type):
+    """A join to a dimension table compares the fact key as every statement reads it (money
+    as numeric, ``Dialect.stored``) with the dimension's key read the same way: before,
+    ``numeric = money`` has no operator (502). Reference: the labels of the generated rows
+    joined in Python (``collections.Counter``)."""
+    import psycopg
+
+    fact, dim = f"sluice_money_fact_{fx.worker()}", f"sluice_money_dim_{fx.worker()}"
+    prices = [1, 2.5, 2.5, 7, 7, 7, 9.99, None]
+    labels = {1: "low", 2.5: "low", 7: "mid", 9.99: "high"}
+    with psycopg.connect(fx.PG_DSN, autocommit=True) as conn:
+        for name, cols in ((fact, f"id int, price {fact_type}"),
+                           (dim, f"price {dim_type}, label text")):
+            conn.execute(f'DROP TABLE IF EXISTS "{name}"')
+            conn.execute(f'CREATE TABLE "{name}" ({cols})')
+        for i, p in enumerate(prices):
+            conn.execute(f'INSERT INTO "{fact}" VALUES (%s, %s::numeric::{fact_type})', (i, p))
+        for p, label in labels.items():
+            conn.execute(f'INSERT INTO "{dim}" VALUES (%s::numeric::{dim_type}, %s)', (p, label))
+    src = {"engine": "postgres", "dsn": fx.PG_DSN, "table": f"public.{fact}", "dimensions": [
+        {"table": f"public.{dim}", "fact_column": "price", "key": "price",
+         "columns": ["label"], "name": "band"}]}
+    with _serve({"pg": src}, "<money keys>") as c:
+        out = _chart(c, "pg", channels={"x": {"column": "band.label"}, "y": {"agg": "count"}})
+    got = dict(zip(out["data"]["band.label"], out["data"]["count"]))
+    assert got == collections.Counter(labels.get(p) for p in prices)
+
+
+def test_duckdb_timestamp_ns_dimension_keys(tmp_path):
+    """A TIMESTAMP_NS fact key is read in microseconds, floored; the dimension's TIMESTAMP_NS
+    key is now read the same way, so keys with nanoseconds still match (before: no row
+    matched, every label NULL). Reference: the labels joined in Python."""
+    db = tmp_path / "ns_keys.duckdb"
+    stamps = ["2026-03-01 10:00:00.000001234", "2026-03-01 10:00:00.000005678",
+              "2026-03-02 00:00:00"]
+    con = duckdb.connect(str(db))
+    con.execute("CREATE TABLE f (id INT, t TIMESTAMP_NS)")
+    con.execute("CREATE TABLE d (t TIMESTAMP_NS, label VARCHAR)")
+    con.executemany("INSERT INTO f VALUES (?, CAST(? AS TIMESTAMP_NS))",
+                    [(i, stamps[i % 3]) for i in range(9)])
+    con.executemany("INSERT INTO d VALUES (CAST(? AS TIMESTAMP_NS), ?)",
+                    [(s, f"shift {i}") for i, s in enumerate(stamps)])
+    con.close()
+    src = {"engine": "duckdb", "path": str(db), "table": "f", "dimensions": [
+        {"table": "d", "fact_column": "t", "key": "t", "columns": ["label"], "name": "shift"}]}
+    with _serve({"ns": src}, "<ns keys>") as c:
+        out = _chart(c, "ns", channels={"x": {"column": "shift.label"}, "y": {"agg": "count"}})
+    assert dict(zip(out["data"]["shift.label"], out["data"]["count"])) == \
+        {f"shift {i}": 3 for i in range(3)}

@@ -387,6 +387,11 @@ class Dialect:
         own type cannot serve as its kind; None: as it is (the base: every type)."""
         return None
 
+    def join_key(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+        """A dimension table's key as a join compares it with the fact column (which is read
+        through ``stored``): through ``stored`` too, so both sides have one type."""
+        return self.stored(ref, sql_type, kind)
+
     def readable(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
         """A column as every statement reads it (``planner.source.relation``, above the
         source model) when its own type does not behave as its kind; None: as it is. A UUID

@@ -78,6 +78,11 @@ class SQLite(Dialect):
                                         true=ref.copy())])
         return None
 
+    def join_key(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+        # stored only NULLs cells of another storage class, which equal no number anyway;
+        # the bare key lets SQLite look it up through an index (an expression cannot)
+        return None
+
     def number_cell(self, col: exp.Expression) -> exp.Expression:
         # a REAL / INTEGER column may hold text ('abc' CASTs to 0.0): such cells are NULL
         kinds = [self.lit("integer"), self.lit("real")]
