@@ -659,3 +659,26 @@ def test_duckdb_timestamp_ns_dimension_keys(tmp_path):
         out = _chart(c, "ns", channels={"x": {"column": "shift.label"}, "y": {"agg": "count"}})
     assert dict(zip(out["data"]["shift.label"], out["data"]["count"])) == \
         {f"shift {i}": 3 for i in range(3)}
+
+
+def test_duckdb_uhugeint_is_read_as_a_double(tmp_path):
+    """DuckDB compares a UHUGEINT with a number by casting it to the number's type, which
+    failed (502) for any value past it, and hands values above 2^127 to Arrow as signed:
+    the max of 2^128 - 1 came back as -1. Read as DOUBLE, exact to 2^53. Reference: Python's
+    integers of the generated rows, as floats (IEEE 754 nearest)."""
+    db = tmp_path / "uhuge.duckdb"
+    values = [0, 5, 2 ** 53, 2 ** 127 + 12345, 2 ** 128 - 1, None]
+    con = duckdb.connect(str(db))
+    con.execute("CREATE TABLE u (id INT, big UHUGEINT)")
+    con.executemany("INSERT INTO u VALUES (?, CAST(? AS UHUGEINT))",
+                    [(i, None if v is None else str(v)) for i, v in enumerate(values)])
+    con.close()
+    present = [float(v) for v in values if v is not None]
+    with _serve({"u": {"engine": "duckdb", "path": str(db), "table": "u"}}, "<uhugeint>") as c:
+        assert _count(c, "u", [{"column": "big", "gte": 5}]) == sum(v >= 5 for v in present)
+        assert _count(c, "u", [{"column": "big", "in": list(range(20))}]) == 2
+        out = _chart(c, "u", channels={"y": {"agg": "max", "column": "big"}})
+        assert out["data"]["max_big"] == [max(present)]
+        out = _chart(c, "u", channels={"x": {"column": "big"}, "y": {"agg": "count"}},
+                     sort=[{"channel": "x"}])
+        assert out["data"]["big"][:-1] == sorted(present)

@@ -52,6 +52,11 @@ class DuckDB(Dialect):
             us = exp.IntDiv(this=exp.Paren(this=exp.Sub(this=ns.copy(), expression=below)),
                             expression=k.copy())
             return self.fn("MAKE_TIMESTAMP", us)
+        if sql_type.strip().upper() in ("UHUGEINT", "UINT128"):
+            # compared with any number DuckDB casts UHUGEINT down to the number's type and
+            # fails past it, and it reaches Arrow as a signed 128-bit decimal (2^128 - 1
+            # read as -1): read as DOUBLE, exact up to 2^53, as DuckDB's own sum of it is
+            return self.double(ref)
         return super().stored(ref, sql_type, kind)
 
     @staticmethod
