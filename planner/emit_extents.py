@@ -25,7 +25,7 @@ def _bin_input(d: Dialect, k: Key, guarded: bool = True) -> exp.Expression:
     (inf, -inf, NaN: such rows go to the NULL bin and never widen a layout from the data).
     ``guarded=False``: the plain value (``_unguarded``)."""
     v = d.double(d.number_cell(d.column(k.col.name, "s")))
-    if k.col.kind != "double" or not guarded:  # integers and decimals are always finite
+    if not d.nonfinite(k.col.kind) or not guarded:  # integers (and most decimals): finite
         return v
     return exp.Case(ifs=[exp.If(this=d.finite(v), true=v.copy())])
 
@@ -35,7 +35,7 @@ def _unguarded(d: Dialect, k: Key) -> bool:
     MAX show any non-finite value (``caps.extremes_show_nonfinite``) and the statement
     carries the key's min and max (no limits), so finite extremes prove the guard changed
     nothing -- no inf or NaN among the rows, hence equal counts, deviations, quartiles."""
-    return (d.caps.extremes_show_nonfinite and k.col.kind == "double" and k.mode == "nbin"
+    return (d.caps.extremes_show_nonfinite and d.nonfinite(k.col.kind) and k.mode == "nbin"
             and k.nlimits is None)
 
 
@@ -80,7 +80,7 @@ def plain_min_max(d: Dialect, k: Key) -> bool:
     (``planner.emit_checked.bin_value``): a numeric bin without a rule or limits, whose
     values the statement reads unguarded (integers, decimals, ``_unguarded`` doubles)."""
     return (k.mode == "nbin" and k.spec.bin is not None and k.spec.bin.rule is None
-            and k.nlimits is None and (k.col.kind != "double" or _unguarded(d, k)))
+            and k.nlimits is None and (not d.nonfinite(k.col.kind) or _unguarded(d, k)))
 
 
 def carried_keys(plan: Plan) -> list[Key]:

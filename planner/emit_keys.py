@@ -35,7 +35,7 @@ def _outside_expr(d: Dialect, k: Key) -> exp.Expression | None:
         v = d.double(d.number_cell(ref))
         cond = exp.or_(exp.LT(this=v, expression=d.real(lo)),
                        exp.GT(this=v.copy(), expression=d.real(hi)))
-        if k.col.kind == "double":  # inf / NaN are not outside: they go to the NULL bin
+        if d.nonfinite(k.col.kind):  # inf / NaN are not outside: they go to the NULL bin
             cond = exp.and_(d.finite(v.copy()), exp.Paren(this=cond))
     elif k.tlimits is not None:
         lo_l = d.timestamp_literal(k.tlimits[0], k.col.kind)
@@ -78,7 +78,7 @@ def _key_expr(d: Dialect, k: Key) -> exp.Expression:
     if k.mode == "nbin":
         ref = d.number_cell(ref)
         idx = _nbin_index(d, k, d.double(ref))
-        if k.col.kind == "double" and not k.finite:  # inf / NaN: the NULL bin (pandas.cut)
+        if d.nonfinite(k.col.kind) and not k.finite:  # inf / NaN: the NULL bin (pandas.cut)
             return exp.Case(ifs=[exp.If(this=d.finite(d.double(ref.copy())), true=idx)])
         return idx
     if k.mode == "tbin":

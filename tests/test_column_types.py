@@ -15,6 +15,7 @@ for the hourly bins (tz database rules, DST change on 2026-03-29).
 from __future__ import annotations
 
 import collections
+import math
 import contextlib
 import datetime as dt
 import random
@@ -682,3 +683,44 @@ def test_duckdb_uhugeint_is_read_as_a_double(tmp_path):
         out = _chart(c, "u", channels={"x": {"column": "big"}, "y": {"agg": "count"}},
                      sort=[{"channel": "x"}])
         assert out["data"]["big"][:-1] == sorted(present)
+
+
+def test_postgres_numeric_nan_and_infinity():
+    """PostgreSQL's numeric holds 'NaN' and (since 14) '+-Infinity'. Any answer holding one
+    gave 500 (pyarrow raises TypeError for Decimal('Infinity')), and bins took the layout
+    from them: [0, 1) held 2.0. They are now what a double's are: the NULL bin, and the
+    measure is a double (inf in Arrow, null in JSON). Reference: pandas.cut of the finite
+    values over the answer's edges, and Python's float arithmetic for the sum."""
+    import psycopg
+    import pyarrow as pa
+
+    name = f"sluice_numeric_nan_{fx.worker()}"
+    values = ["1.25", "2", "NaN", "Infinity", "-Infinity", None, "7.5", "3"]
+    with psycopg.connect(fx.PG_DSN, autocommit=True) as conn:
+        conn.execute(f'DROP TABLE IF EXISTS "{name}"')
+        conn.execute(f'CREATE TABLE "{name}" (id int, n numeric)')
+        for i, v in enumerate(values):
+            conn.execute(f'INSERT INTO "{name}" VALUES (%s, %s::numeric)', (i, v))
+    finite = [float(v) for v in values if v not in (None, "NaN", "Infinity", "-Infinity")]
+    src = {"engine": "postgres", "dsn": fx.PG_DSN, "table": f"public.{name}"}
+    with _serve({"pg": src}, "<numeric nan>") as c:
+        out = _chart(c, "pg", channels={"x": {"column": "n", "bin": {"bins": 4}},
+                                         "y": {"agg": "count"}})
+        d = out["data"]
+        edges = sorted({e for e in d["x_lo"] + d["x_hi"] if e is not None})
+        want = pd.cut(pd.Series(finite), edges, right=False).value_counts()
+        got = {lo: n for lo, n in zip(d["x_lo"], d["count"]) if lo is not None}
+        assert got == {iv.left: n for iv, n in want.items() if n}
+        assert dict(zip(d["x_lo"], d["count"]))[None] == len(values) - len(finite)
+        body = {"source": "pg", "channels": {"y": {"agg": "sum", "column": "n"}},
+                "where": [{"column": "id", "lte": 3}]}
+        assert c.post("/v1/chart", json=body).json()["data"]["sum_n"] == [None]  # NaN
+        r = c.post("/v1/chart", json=body, headers={"accept": "application/vnd.apache.arrow.stream"})
+        assert r.status_code == 200, r.text
+        assert math.isnan(pa.ipc.open_stream(r.content).read_all()["sum_n"][0].as_py())
+        out = _chart(c, "pg", channels={"y": {"agg": "sum", "column": "n"}},
+                     where=[{"column": "id", "in": [0, 1, 3]}])
+        assert out["data"]["sum_n"] == [None]  # 1.25 + 2 + inf: infinite, null in JSON
+        out = _chart(c, "pg", channels={"y": {"agg": "sum", "column": "n"}},
+                     where=[{"column": "id", "in": [0, 1, 6]}])
+        assert out["data"]["sum_n"] == [sum([1.25, 2.0, 7.5])]

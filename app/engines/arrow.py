@@ -32,7 +32,8 @@ def _decimal_array(values: list[Any]) -> pa.Array:
     type holds (NaN, infinities, more than 76 digits) fall back to float64."""
     try:
         return pa.array(values)
-    except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError, OverflowError):
+    except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError, OverflowError,
+            TypeError):  # (pyarrow 22 raises TypeError for Decimal('Infinity'))
         return pa.array([None if v is None else float(v) for v in values], pa.float64())
 
 

@@ -412,6 +412,11 @@ class Dialect:
         another type (SQLite) turn those into NULL."""
         return col
 
+    def nonfinite(self, kind: str) -> bool:
+        """Whether a number column of ``kind`` can hold inf, -inf or NaN: a double, and a
+        decimal where ``caps.nonfinite_decimals``."""
+        return kind == "double" or (kind == "decimal" and self.caps.nonfinite_decimals)
+
     def finite(self, e: exp.Expression) -> exp.Expression:
         """``e`` (a DOUBLE) is neither infinite nor NaN (NaN compares above every number in
         PostgreSQL and DuckDB, false everywhere else; SQLite stores NaN as NULL)."""

@@ -135,6 +135,11 @@ class Capabilities:
     """The native quantile of an integer column returns the DOUBLE type 7 interpolation
     itself, so the planner may leave out the CAST (planner/emit_main.py ``_grouped``)."""
 
+    nonfinite_decimals: bool = field(default=False, metadata=_internal(
+        "guards decimal bins against NaN / infinity as double ones are"))
+    """A decimal column may hold NaN and +-Infinity (PostgreSQL numeric: NaN always,
+    Infinity since 14), which bins treat as a double's: the NULL bin (``Dialect.nonfinite``)."""
+
     extremes_show_nonfinite: bool = field(default=False, metadata=_internal(
         "reads the extents without the finiteness guard and checks them after; the answer "
         "is the same"))

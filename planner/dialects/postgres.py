@@ -21,6 +21,7 @@ class Postgres(Dialect):
         boolean_min_max=False,
         # PostgreSQL orders NaN above every other value (its docs; checked here as for DuckDB)
         extremes_show_nonfinite=True,
+        nonfinite_decimals=True,  # numeric 'NaN', and '+-Infinity' since PostgreSQL 14
         param_form=("list", "format"),
         max_identifier_bytes=63,  # NAMEDATALEN - 1: longer names are cut
         wide_instants=True,  # 'infinity' and years past 9999 are legal values
