@@ -724,3 +724,33 @@ def test_postgres_numeric_nan_and_infinity():
         out = _chart(c, "pg", channels={"y": {"agg": "sum", "column": "n"}},
                      where=[{"column": "id", "in": [0, 1, 6]}])
         assert out["data"]["sum_n"] == [sum([1.25, 2.0, 7.5])]
+
+
+def test_mysql_zero_dates_read_as_null():
+    """MariaDB's default sql_mode accepts the zero date ``0000-00-00 00:00:00`` (and a zero
+    month or day), which pymysql hands over as text: a chart whose answer held one gave 500
+    (pyarrow cannot mix text into timestamps). Such a cell is NULL in the answer now, like
+    a text timestamp outside the storage form. Reference: Python's datetime of the valid
+    rows (MariaDB documents the zero date as a dummy value, "Date and Time Data Types")."""
+    import pymysql
+
+    name = f"sluice_zero_dates_{fx.worker()}"
+    my = pymysql.connect(host="127.0.0.1", user="root", password="", database="test",
+                         autocommit=True)
+    with my.cursor() as cur:
+        cur.execute("SET SESSION sql_mode = ''")
+        cur.execute(f"DROP TABLE IF EXISTS `{name}`")
+        cur.execute(f"CREATE TABLE `{name}` (id INT, t DATETIME)")
+        cur.execute(f"INSERT INTO `{name}` VALUES (1, '0000-00-00 00:00:00'), "
+                    "(2, '2020-02-03 04:05:06'), (3, NULL), (4, '2020-02-28 23:00:00')")
+    my.close()
+    src = {"engine": "mysql", "dsn": fx.MYSQL_DSN, "table": f"test.{name}"}
+    with _serve({"my": src}, "<zero dates>") as c:
+        for x in ({"column": "t"}, {"column": "t", "trunc": "month"}):
+            for accept in ("application/json", "application/vnd.apache.arrow.stream"):
+                r = c.post("/v1/chart", headers={"accept": accept}, json={
+                    "source": "my", "channels": {"x": x, "y": {"agg": "count"}}})
+                assert r.status_code == 200, r.text
+        out = _chart(c, "my", channels={"x": {"column": "t"}, "y": {"agg": "count"}},
+                     where=[{"column": "id", "lte": 2}])
+    assert sorted(out["data"]["t"], key=str) == ["2020-02-03T04:05:06Z", None]

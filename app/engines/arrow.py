@@ -67,10 +67,15 @@ def column_array(values: list[Any], hint: pa.DataType | None = None) -> pa.Array
 
 
 def _timestamps(values: list[Any], hint: pa.DataType) -> pa.Array:
+    """Instants as ``timestamp[us, UTC]``. A driver hands a value it cannot read as a
+    datetime over as text (pymysql: MariaDB's zero date ``0000-00-00 00:00:00``): read as
+    text timestamps are, NULL when it is none."""
     out = []
     for v in values:
         if isinstance(v, dt.datetime):
             v = v.replace(tzinfo=dt.timezone.utc) if v.tzinfo is None else v.astimezone(dt.timezone.utc)
+        elif v is not None:
+            v = _text_instant(v)
         out.append(v)
     return pa.array(out, UTC_US)
 
@@ -85,19 +90,18 @@ def rows_to_table(names: Sequence[str], rows: Sequence[Sequence[Any]],
 
 # --- conforming results to the plan ---------------------------------------------------
 
+def _text_instant(v: Any) -> dt.datetime | None:
+    """A text timestamp (``YYYY-MM-DD HH:MM:SS[.ffffff]``, naive = UTC) as a UTC datetime;
+    None for a cell outside that form."""
+    try:
+        t = dt.datetime.fromisoformat(str(v).strip().replace("T", " ").rstrip("Z"))
+    except (ValueError, OverflowError):
+        return None
+    return t.replace(tzinfo=dt.timezone.utc) if t.tzinfo is None else t.astimezone(dt.timezone.utc)
+
+
 def _parse_text_timestamps(arr: pa.ChunkedArray) -> pa.ChunkedArray:
-    values = []
-    for v in arr.to_pylist():
-        if v is None:
-            values.append(None)
-            continue
-        try:
-            text = str(v).strip().replace("T", " ").rstrip("Z")
-            t = dt.datetime.fromisoformat(text)
-            values.append(t.replace(tzinfo=dt.timezone.utc) if t.tzinfo is None
-                          else t.astimezone(dt.timezone.utc))
-        except (ValueError, OverflowError):  # a cell outside the storage convention: NULL
-            values.append(None)
+    values = [None if v is None else _text_instant(v) for v in arr.to_pylist()]
     return pa.chunked_array([pa.array(values, UTC_US)], UTC_US)
 
 
