@@ -49,6 +49,10 @@ def _measure_input(d: Dialect, m: Measure) -> exp.Expression | None:
         # a type of no kind (point, json, a list) may have no equality on the target
         # (PostgreSQL: point, json): its distinct text forms
         return d.text(column)
+    if m.spec.agg == "sum" and m.col is not None and m.input_expr is None:
+        wide = d.sum_input(column, m.col.sql_type, m.col.kind)
+        if wide is not None:  # an engine whose own sum of the type can overflow
+            return wide
     return aggregates.measure_input(d, m.spec.agg, column, cond)
 
 

@@ -754,3 +754,29 @@ def test_mysql_zero_dates_read_as_null():
         out = _chart(c, "my", channels={"x": {"column": "t"}, "y": {"agg": "count"}},
                      where=[{"column": "id", "lte": 2}])
     assert sorted(out["data"]["t"], key=str) == ["2020-02-03T04:05:06Z", None]
+
+
+def test_clickhouse_sums_of_64_bit_integers_do_not_wrap(tmp_path_factory):
+    """ClickHouse's sum() of Int64 / UInt64 wraps silently past 2^63 / 2^64: two rows of
+    2^63 - 1 summed to -2. Sums of integers are exact now, and so is the "(other)" group a
+    top-N folds from them. Reference: Python's integer arithmetic over the generated rows."""
+    big, ubig = 2 ** 63 - 1, 2 ** 64 - 1
+    rows = [(1, "x", big, ubig, 127), (2, "x", big, ubig, 127), (3, "y", -5, 3, -128),
+            (4, "z", big, 7, 1), (5, "w", 1, 1, 1)]
+    src = _chdb_table(tmp_path_factory.mktemp("column_types_ch_sums"), "sums",
+                      "id Int32, g String, a Int64, u UInt64, i8 Int8", "id",
+                      [f"({i}, '{g}', {a}, {u}, {s})" for i, g, a, u, s in rows])
+    with _serve({"ch": src}, "<ch sums>") as c:
+        out = _chart(c, "ch", channels={"x": {"column": "g"}, "y": {"agg": "sum", "column": "a"},
+                                         "color": {"agg": "sum", "column": "u"},
+                                         "size": {"agg": "sum", "column": "i8"}})
+        top = _chart(c, "ch", channels={"x": {"column": "g", "top": 1},
+                                         "y": {"agg": "sum", "column": "a"}},
+                     sort=[{"channel": "y", "desc": True}])
+    for col, j in (("sum_a", 2), ("sum_u", 3), ("sum_i8", 4)):
+        want = collections.Counter()
+        for r in rows:
+            want[r[1]] += r[j]
+        assert dict(zip(out["data"]["g"], out["data"][col])) == dict(want)
+    assert dict(zip(top["data"]["g"], top["data"]["sum_a"])) == \
+        {"x": 2 * big, "(other)": big - 5 + 1}

@@ -387,6 +387,12 @@ class Dialect:
         own type cannot serve as its kind; None: as it is (the base: every type)."""
         return None
 
+    def sum_input(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
+        """A column as ``sum`` reads it when the engine's own sum of its type can overflow
+        where the exact sum would not; None: as it is (the engine widens: DuckDB sums
+        BIGINT into HUGEINT, PostgreSQL into numeric, MariaDB into DECIMAL)."""
+        return None
+
     def join_key(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
         """A dimension table's key as a join compares it with the fact column (which is read
         through ``stored``): through ``stored`` too, so both sides have one type."""

@@ -72,6 +72,14 @@ class ClickHouse(Dialect):
         "quoting": '"name"',
     }
 
+    def sum_input(self, ref, sql_type, kind):
+        # sum() of Int64 / UInt64 wraps silently (two rows of 2^63 - 1 sum to -2): integers
+        # up to 64 bits are summed as Decimal128(38, 0), exact to 10^38 (chdb, 20M rows in
+        # 100 groups: 57 -> 98 ms); the wider ones are Decimal256 already (``stored``)
+        if kind == "integer" and not _WIDE_INT.fullmatch(sql_type.strip().lower()):
+            return self.fn("toDecimal128", ref, self.lit(0))
+        return None
+
     def render(self, node: exp.Expression) -> str:
         if isinstance(node, exp.Select):
             node = node.copy()
