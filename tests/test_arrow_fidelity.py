@@ -382,3 +382,14 @@ if __name__ == "__main__":  # the chdb engine, in a process of its own (see the 
     (root_dir / "out").mkdir()
     for fname, content in answers_out.items():
         (root_dir / "out" / fname).write_bytes(content)
+
+
+@pytest.mark.parametrize("values", [[2 ** 64 - 1, 3, None], [2 ** 63, 2 ** 53 + 1]])
+def test_unsigned_integers_past_int64_stay_exact(values):
+    """An engine's UInt64 past int64 (ClickHouse, DuckDB UBIGINT) for an integer output:
+    an exact decimal. Before, the fallback cast to float64, which pyarrow refuses past 2^53
+    (ArrowInvalid: a 500). Reference: Python's integers."""
+    from app.engines.arrow import conform_column
+
+    out = conform_column(pa.chunked_array([pa.array(values, pa.uint64())]), pa.int64())
+    assert out.to_pylist() == values

@@ -225,7 +225,8 @@ def _to_integer(arr: pa.ChunkedArray, target: pa.DataType) -> pa.ChunkedArray:
             continue
     if pa.types.is_decimal(arr.type):
         return arr
-    return arr.cast(pa.float64()) if pa.types.is_integer(arr.type) else arr
+    # (a UInt64 past int64: exact as a decimal; a double cast refuses it past 2^53)
+    return arr.cast(pa.decimal128(20, 0)) if pa.types.is_integer(arr.type) else arr
 
 
 def conform_column(arr: pa.ChunkedArray, target: pa.DataType | None) -> pa.ChunkedArray:
