@@ -85,7 +85,12 @@ def _edge(k: int, step: float) -> float:
 
 
 def _grid_index(v: float, step: float, up: bool) -> int:
-    """The largest k with edge_k <= v (or, with ``up``, the smallest k with edge_k >= v)."""
+    """The largest k with edge_k <= v (or, with ``up``, the smallest k with edge_k >= v).
+    LayoutError when consecutive edges near v would be the same double (a step below the
+    spacing of doubles there: the search for k would not end)."""
+    if not abs(v) / step < 2.0 ** 52:
+        raise LayoutError(f"bins of width {step:.17g} near {v:.17g} have edges that are not "
+                          "distinct finite numbers")
     k = math.floor(v / step)
     while _edge(k, step) > v:
         k -= 1
@@ -161,24 +166,30 @@ def _nice_search(lo: float, hi: float, target: int, prune: bool
     edges are the doubles nearest k x step; ``slack`` covers their rounding), so widths
     whose count must exceed the target are not laid out, and the search stops once no
     wider width can give more bins than the best so far (fewest is then not complete)."""
-    span = hi - lo
-    e_lo = Decimal(span / target).adjusted() - 1
-    e_hi = Decimal(max(span, abs(lo), abs(hi))).adjusted() + 1  # up to widths that hold all
+    span = Decimal(hi) - Decimal(lo)  # (exact: hi - lo overflows for -1e308 .. 1e308)
+    e_lo = (span / target).adjusted() - 1
+    e_hi = max(span, Decimal(abs(lo)), Decimal(abs(hi))).adjusted() + 1  # widths holding all
     best: tuple[int, float, float] | None = None  # (count, step, start)
     fewest: tuple[int, float, float] | None = None
     for e in range(e_lo, e_hi + 1):
         for m in NICE_MANTISSAS:
             step = _nice(m, e)
-            if not (step >= _TINY and math.isfinite(lo / step) and math.isfinite(hi / step)):
+            if not (_TINY <= step < math.inf and math.isfinite(lo / step)
+                    and math.isfinite(hi / step)):
                 continue
             if prune:
-                q = span / step
+                q = hi / step - lo / step
                 slack = 2.0 + (abs(lo) + abs(hi)) / step * 1e-12
                 if q > target + slack:
                     continue
                 if best is not None and q + 2.0 + slack < best[0]:
                     return best, fewest
-            start, count = nice_step_count(lo, hi, step)
+            try:
+                start, count = nice_step_count(lo, hi, step)
+            except LayoutError:  # edges finer than the doubles near lo or hi: wider ones next
+                continue
+            if not math.isfinite(start + count * step):  # an edge past the largest double
+                continue
             if count <= target and (best is None or count > best[0]):
                 best = (count, step, start)
             if fewest is None or count < fewest[0]:

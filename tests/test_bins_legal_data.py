@@ -403,3 +403,58 @@ def test_a_new_filter_is_laid_out_from_the_last_row_and_checked(service, engine,
     counts, _ = np.histogram(finite, bins=edges)  # reference: numpy.histogram
     assert [r["count"] for r in got["rows"] if r["x_lo"] is not None and r["count"]] \
         == [int(c) for c in counts if c]
+
+
+@pytest.mark.parametrize("bins", [1, 4, 20])
+def test_nice_bins_over_values_near_the_largest_double(tmp_path, bins):
+    """Finite values reaching -1e308 (beside inf, which goes to the NULL bin): the nice-width
+    search met an infinite width (lo / inf is finite, so the test let it through), and
+    Decimal(inf) made it 500; a span past the largest double (hi - lo overflows) could also
+    keep the grid search from ending. The layout now covers the finite values with finite
+    edges. Reference: numpy.histogram of the finite values over the answer's edges."""
+    from fastapi.testclient import TestClient
+
+    from app.main import create_app
+    from app.settings import parse_settings
+
+    db = tmp_path / "huge.duckdb"
+    vals = [-1e308, -3.5e307, 2.5, 0.0, 1e307, float("inf"), None]
+    con = duckdb.connect(str(db))
+    con.execute("CREATE TABLE h (v DOUBLE)")
+    con.executemany("INSERT INTO h VALUES (?)", [(v,) for v in vals])
+    con.close()
+    app = create_app(parse_settings({"sources": {"h": {"engine": "duckdb", "path": str(db),
+                                                       "table": "h"}},
+                                     "server": {"request_log": False}}, "<huge>"))
+    with TestClient(app, raise_server_exceptions=False) as c:
+        r = c.post("/v1/chart", json={"source": "h", "channels": {
+            "x": {"column": "v", "bin": {"bins": bins}}, "y": {"agg": "count"}}})
+    assert r.status_code == 200, r.text
+    d = r.json()["data"]
+    edges = sorted({e for e in d["x_lo"] + d["x_hi"] if e is not None})
+    assert all(math.isfinite(e) for e in edges)
+    finite = [v for v in vals if v is not None and math.isfinite(v)]
+    counts, _ = np.histogram(finite, bins=edges)
+    assert [n for lo, n in zip(d["x_lo"], d["count"]) if lo is not None] == \
+        [int(c) for c in counts if c]
+    assert dict(zip(d["x_lo"], d["count"]))[None] == 2
+
+
+def test_nice_bins_search_ends_when_the_span_overflows():
+    """-1.7e308 .. 1.7e308: hi - lo is inf, and the nice-width search then tried widths so
+    far below the spacing of doubles near the values that consecutive grid edges were the
+    same double, and its loop never ended (bounded CPU). Now such widths are skipped; no
+    nice width has finite edges here, so the layout is refused (LayoutError, which the
+    planner turns into its one-bin fallback). Run in a subprocess with a timeout, so a
+    regression fails instead of hanging the suite."""
+    code = ("from planner import bins\n"
+            "for t in (1, 4, 20):\n"
+            "    try:\n"
+            "        bins.nice_bins(-1.7e308, 1.7e308, t)\n"
+            "    except bins.LayoutError:\n"
+            "        pass\n"
+            "print('ended')\n")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          timeout=120, cwd=Path(__file__).resolve().parents[1])
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert proc.stdout.strip() == "ended"
