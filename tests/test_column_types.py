@@ -780,3 +780,24 @@ def test_clickhouse_sums_of_64_bit_integers_do_not_wrap(tmp_path_factory):
         assert dict(zip(out["data"]["g"], out["data"][col])) == dict(want)
     assert dict(zip(top["data"]["g"], top["data"]["sum_a"])) == \
         {"x": 2 * big, "(other)": big - 5 + 1}
+
+
+def test_spark_sums_of_64_bit_integers_are_exact(tmp_path):
+    """Spark's sum() of a BIGINT is a BIGINT: past 2^63 it failed (ANSI mode, the default
+    since Spark 4: ARITHMETIC_OVERFLOW, a 502) or wrapped (ANSI off). Integers are summed as
+    DECIMAL(38, 0) now. Reference: Python's integer arithmetic."""
+    pytest.importorskip("pyspark")
+    import pyarrow as pa
+
+    big = 2 ** 63 - 1
+    rows = [("x", big, 100), ("x", big, 100), ("y", -5, 1)]
+    table = pa.table({"g": [r[0] for r in rows], "a": pa.array([r[1] for r in rows], pa.int64()),
+                      "s": pa.array([r[2] for r in rows], pa.int8())})
+    with _serve({"sp": fx.load_spark(tmp_path, table)}, "<spark sums>") as c:
+        out = _chart(c, "sp", channels={"x": {"column": "g"}, "y": {"agg": "sum", "column": "a"},
+                                         "color": {"agg": "sum", "column": "s"}})
+    for col, j in (("sum_a", 1), ("sum_s", 2)):
+        want = collections.Counter()
+        for r in rows:
+            want[r[0]] += r[j]
+        assert dict(zip(out["data"]["g"], out["data"][col])) == dict(want)

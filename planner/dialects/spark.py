@@ -59,6 +59,14 @@ class Spark(Dialect):
     def local_literal(self, value: dt.datetime) -> exp.Expression:
         return self.cast(self.lit(self.wall_text(value) + "+00:00"), "TIMESTAMP")
 
+    def sum_input(self, ref, sql_type, kind):
+        # sum() of a BIGINT is a BIGINT: past 2^63 it fails (ANSI mode, the default since
+        # Spark 4: ARITHMETIC_OVERFLOW, a 502) or wraps (ANSI off). Integers are summed as
+        # DECIMAL(38, 0), exact to 10^38
+        if kind == "integer":
+            return self.cast(ref, "DECIMAL(38, 0)")
+        return None
+
     def to_local(self, e, kind, tz):
         inst = self._ts(e, kind)
         if tz == "UTC":
