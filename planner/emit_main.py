@@ -27,7 +27,7 @@ from planner.emit_dense import _dense
 from planner.emit_checked import bin_value, checkable, misbinned_expr
 from planner.emit_extents import carried_extents, carried_keys, needs_extents, plain_min_max
 from planner.emit_keys import _instant_in_range, _key_expr, _key_outputs, _outside_expr
-from planner.emit_measures import _built, _measure_agg, _measure_input, _window_columns
+from planner.emit_measures import _built, _measure_agg, _measure_input, _window_columns, part_input
 from planner.emit_sql import _ref, _table
 from planner.emit_top import _fold_after_grouping, _fold_top, _top_cte, _top_key_expr
 from planner.emit_window import _windowed
@@ -142,7 +142,7 @@ def _base(plan: Plan, ctes: list, fold: bool) -> list[Key]:
     for m in measures:
         for j, part in enumerate(m.parts):  # a composite named measure's inputs
             if part.input is not None:
-                base = base.select(exp.alias_(part.input.copy(), names.measure_part(m.index, j),
+                base = base.select(exp.alias_(part_input(d, part), names.measure_part(m.index, j),
                                               quoted=True))
         arg = _measure_input(d, m) if m.has_input else exp.Null()
         if m.col is not None and m.col.is_temporal and m.aggregate.output == "input":

@@ -9,12 +9,18 @@ and the grouped stage. Pure.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 from sqlglot import exp
 
 from planner import aggregates
 from planner.dialects.base import Dialect
 from planner.emit_sql import _ref
 from planner.plan import Measure
+from planner.schema import ColumnInfo
+
+if TYPE_CHECKING:
+    from planner.measure_sql import Part
 
 
 # ---- aggregates the target has no function for ------------------------------------------
@@ -40,20 +46,38 @@ def _measure_input(d: Dialect, m: Measure) -> exp.Expression | None:
     if m.input_expr is not None:  # a named measure's scalar input (planner/measure_sql.py)
         column = m.input_expr.copy()
     cond = m.condition.copy() if m.condition is not None else None
-    if (m.spec.agg in ("min", "max") and m.col is not None and m.col.kind == "boolean"
-            and m.input_expr is None and not d.caps.boolean_min_max):
+    return _read_input(d, m.spec.agg, column, m.col if m.input_expr is None else None,
+                       m.input_kind, cond)
+
+
+def part_input(d: Dialect, part: "Part") -> exp.Expression | None:
+    """The per-row input of a composite named measure's aggregate ``part``, read as a
+    single measure's is (``_read_input``)."""
+    assert part.input is not None
+    return _read_input(d, part.agg, part.input.copy(), part.column, part.kind, None)
+
+
+def _read_input(d: Dialect, agg: str, arg: exp.Expression | None, col: ColumnInfo | None,
+                input_kind: str | None, cond: exp.Expression | None) -> exp.Expression | None:
+    """``arg`` as the aggregate ``agg`` reads it on ``d``. ``col``: the column when ``arg``
+    is one; else ``input_kind``, a named measure's input kind (planner/measure_sql.py)."""
+    if agg in ("min", "max") and col is not None and col.kind == "boolean" \
+            and not d.caps.boolean_min_max:
         # no MIN(boolean) on the target: the 1 / 0 / NULL indicator, read back as boolean
-        return aggregates.truth_indicator(exp.EQ(this=column, expression=d.boolean(True)))
-    if (m.spec.agg in ("count_distinct", "approx_count_distinct") and m.col is not None
-            and m.col.kind == "other" and m.input_expr is None):
+        return aggregates.truth_indicator(exp.EQ(this=arg, expression=d.boolean(True)))
+    if agg in ("count_distinct", "approx_count_distinct") and col is not None \
+            and col.kind == "other":
         # a type of no kind (point, json, a list) may have no equality on the target
         # (PostgreSQL: point, json): its distinct text forms
-        return d.text(column)
-    if m.spec.agg == "sum" and m.col is not None and m.input_expr is None:
-        wide = d.sum_input(column, m.col.sql_type, m.col.kind)
-        if wide is not None:  # an engine whose own sum of the type can overflow
-            return wide
-    return aggregates.measure_input(d, m.spec.agg, column, cond)
+        return d.text(arg)
+    if agg == "sum" and arg is not None:
+        # widened where the engine's own sum of the type can overflow
+        if col is not None:
+            wide = d.sum_input(arg, col.sql_type, col.kind)
+        else:
+            wide = d.sum_input(arg, "", "integer") if input_kind == "integer" else None
+        return arg if wide is None else wide
+    return aggregates.measure_input(d, agg, arg, cond)
 
 
 def _window_columns(d: Dialect, partition: list[exp.Expression],

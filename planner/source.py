@@ -83,12 +83,20 @@ def _cast_columns(rel: exp.Expression, names: list[str], schema: SourceSchema,
     FROM rel) AS "s"``."""
     names = list(dict.fromkeys(names))
     info = {c.name: c for c in schema.columns.values()}
-    cast = {n: e for n in names if n in info
-            and (e := hook(d.column(n, ALIAS), info[n].sql_type, info[n].kind)) is not None}
-    if not cast:
+    refs = {n: d.column(n, ALIAS) for n in names}
+    read = {n: _through(hook, ref, info.get(n)) for n, ref in refs.items()}
+    if all(read[n] is refs[n] for n in names):
         return rel
-    return _sub(exp.select(*(exp.alias_(cast[n], n, quoted=True) if n in cast
-                             else d.column(n, ALIAS) for n in names)).from_(rel), d)
+    return _sub(exp.select(*(read[n] if read[n] is refs[n] else
+                             exp.alias_(read[n], n, quoted=True) for n in names)).from_(rel), d)
+
+
+def _through(hook: Callable[[exp.Expression, str, str], exp.Expression | None],
+             ref: exp.Column, info: ColumnInfo | None) -> exp.Expression:
+    """``ref`` through the dialect ``hook``'s cast for its type, or as it is (no cast, or
+    no type known)."""
+    cast = hook(ref, info.sql_type, info.kind) if info is not None else None
+    return ref if cast is None else cast
 
 
 def _relation(schema: SourceSchema, d: Dialect) -> exp.Expression:
@@ -177,14 +185,10 @@ def _join(q: exp.Select, dim: Dimension, used: list[str], alias: str, d: Dialect
     ``Dialect.join_key`` (PostgreSQL has no ``numeric = money``; a floored TIMESTAMP_NS
     equals no raw one)."""
     right = exp.alias_(d.table(dim.table), alias, table=True, quoted=True)
-    key = d.column(dim.key, alias)
-    k = dim.key_column
-    stored_key = d.join_key(key, k.sql_type, k.kind) if k is not None else None
     on = exp.EQ(this=d.column(dim.fact_column, ALIAS),
-                expression=stored_key if stored_key is not None else key)
+                expression=_through(d.join_key, d.column(dim.key, alias), dim.key_column))
     q = q.join(right, on=on, join_type="left")
     for c in used:
-        ref, info = d.column(c, alias), schema.columns.get(dim.column_name(c))
-        cast = d.stored(ref, info.sql_type, info.kind) if info is not None else None
-        q = q.select(exp.alias_(cast if cast is not None else ref, dim.column_name(c), quoted=True))
+        read = _through(d.stored, d.column(c, alias), schema.columns.get(dim.column_name(c)))
+        q = q.select(exp.alias_(read, dim.column_name(c), quoted=True))
     return q

@@ -24,11 +24,6 @@ from typing import NamedTuple
 YEAR1_MICROS = 62_135_596_800_000_000
 
 
-#: POSIX TZ rule (the TZif footer, RFC 8536 section 3.3): std name, offset, [dst name [offset]]
-_TZ_RULE = re.compile(r"^(?:<[^>]*>|[A-Za-z]+)([+-]?\d{1,3}(?::\d{2}){0,2})"
-                      r"(?:(?:<[^>]*>|[A-Za-z]+)([+-]?\d{1,3}(?::\d{2}){0,2})?)?(?:,.*)?$")
-
-
 def _rule_seconds(text: str) -> int:
     sign = -1 if text.startswith("-") else 1
     parts = [int(x) for x in text.lstrip("+-").split(":")] + [0, 0]
@@ -44,18 +39,11 @@ def whole_offsets_from(tz: str, unit_us: int) -> int | None:
     ``trunc`` (the instant minus that remainder) is the UTC floor."""
     unit = unit_us // 1_000_000
     try:
-        data = _tzif_bytes(tz)
-        times, offsets, rule = _read_tzif(data)
-    except (OSError, ValueError, struct.error):
+        times, offsets, rule = zone_offsets(tz)
+    except (OSError, ValueError):
         return None
-    if rule:
-        m = _TZ_RULE.match(rule)
-        if m is None:
-            return None
-        std = _rule_seconds(m.group(1))
-        dst = _rule_seconds(m.group(2)) if m.group(2) else std - 3600
-        if std % unit or dst % unit:
-            return None
+    if any(off % unit for off in (rule.std, rule.dst) if off is not None):
+        return None
     # offsets[0] holds before times[0], offsets[i + 1] from times[i] on
     bad = [i for i, off in enumerate(offsets) if off % unit]
     if not bad:
@@ -171,7 +159,10 @@ def zone_offsets(tz: str) -> tuple[tuple[int, ...], tuple[int, ...], ZoneRule]:
     the first and after each, the rule after the last) of ``tz``, from its TZif file
     (RFC 8536). Placeholder transitions that change no offset are dropped. ValueError or
     OSError when the zone cannot be read."""
-    times, offsets, rule = _read_tzif(_tzif_bytes(tz))
+    try:
+        times, offsets, rule = _read_tzif(_tzif_bytes(tz))
+    except struct.error as e:  # a truncated file
+        raise ValueError(f"{tz}: {e}") from None
     zone_rule = parse_rule(rule) if rule else ZoneRule(offsets[-1])
     kept_t: list[int] = []
     kept_o = [offsets[0]]

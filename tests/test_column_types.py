@@ -659,7 +659,7 @@ def test_duckdb_timestamp_ns_dimension_keys(tmp_path):
     with _serve({"ns": src}, "<ns keys>") as c:
         out = _chart(c, "ns", channels={"x": {"column": "shift.label"}, "y": {"agg": "count"}})
     assert dict(zip(out["data"]["shift.label"], out["data"]["count"])) == \
-        {f"shift {i}": 3 for i in range(3)}
+        collections.Counter(f"shift {i % 3}" for i in range(9))
 
 
 def test_duckdb_uhugeint_is_read_as_a_double(tmp_path):
@@ -677,7 +677,8 @@ def test_duckdb_uhugeint_is_read_as_a_double(tmp_path):
     present = [float(v) for v in values if v is not None]
     with _serve({"u": {"engine": "duckdb", "path": str(db), "table": "u"}}, "<uhugeint>") as c:
         assert _count(c, "u", [{"column": "big", "gte": 5}]) == sum(v >= 5 for v in present)
-        assert _count(c, "u", [{"column": "big", "in": list(range(20))}]) == 2
+        assert _count(c, "u", [{"column": "big", "in": list(range(20))}]) == \
+            sum(v in range(20) for v in values if v is not None)
         out = _chart(c, "u", channels={"y": {"agg": "max", "column": "big"}})
         assert out["data"]["max_big"] == [max(present)]
         out = _chart(c, "u", channels={"x": {"column": "big"}, "y": {"agg": "count"}},
@@ -766,7 +767,15 @@ def test_clickhouse_sums_of_64_bit_integers_do_not_wrap(tmp_path_factory):
     src = _chdb_table(tmp_path_factory.mktemp("column_types_ch_sums"), "sums",
                       "id Int32, g String, a Int64, u UInt64, i8 Int8", "id",
                       [f"({i}, '{g}', {a}, {u}, {s})" for i, g, a, u, s in rows])
+    # a named measure's aggregates read their inputs the same way (planner/emit_measures.py)
+    src = {**src, "measures": {"net": "sum(a) - sum(i8)", "shifted": "sum(a + 0)"}}
     with _serve({"ch": src}, "<ch sums>") as c:
+        named = _chart(c, "ch", channels={"x": {"column": "g"}, "y": {"measure": "net"}},
+                       where=[{"column": "g", "eq": "x"}])
+        assert named["data"]["net"] == [float(2 * big - 254)]  # a formula answers a double
+        shifted = _chart(c, "ch", channels={"y": {"measure": "shifted"}},
+                         where=[{"column": "g", "eq": "x"}])
+        assert shifted["data"]["shifted"] == [2 * big]
         out = _chart(c, "ch", channels={"x": {"column": "g"}, "y": {"agg": "sum", "column": "a"},
                                          "color": {"agg": "sum", "column": "u"},
                                          "size": {"agg": "sum", "column": "i8"}})

@@ -45,6 +45,7 @@ def _datetime_literal(t: dt.datetime) -> exp.Expression:
     WHERE it costs 7 %.)"""
     return exp.Var(this=f"TIMESTAMP'{t.replace(tzinfo=None).isoformat(' ', 'microseconds')}'")
 
+
 #: Where CONVERT_TZ is trusted (naive UTC or local times): a day inside the TIMESTAMP range,
 #: beyond which it returns its argument unchanged (checked live on MariaDB 10.11).
 _NATIVE = (dt.datetime(1970, 1, 2), dt.datetime(2038, 1, 18))
