@@ -288,12 +288,16 @@ class GuardedEngine:
         state = {"done": False, "fired": False}
         lock = threading.Lock()
 
+        # An interrupt is sent under ``lock``, and the statement's end takes it: KILL QUERY
+        # (MariaDB) names the connection, not the statement, so one still in flight when
+        # the statement ended would stop the next statement this thread's connection runs
+        # (seen: a brush move answered 504 when the previous move's re-sent KILL landed).
         def fire() -> None:
             with lock:
                 if state["done"]:
                     return
                 state["fired"] = True
-            interrupt()
+                interrupt()
 
         def stop() -> None:  # the request was stopped (app.sessions): the same interrupt
             threading.Thread(target=_interrupt_until_done, args=(interrupt, state, lock),
@@ -307,8 +311,11 @@ class GuardedEngine:
                 raise work.problem(self._source)
             return self._call(fn, sql, fired=state, work=work)
         finally:
-            with lock:
-                state["done"] = True
+            # (bounded: a cancel that does not return in time must not hold the request)
+            held = lock.acquire(timeout=_INTERRUPT_WAIT_S)
+            state["done"] = True
+            if held:
+                lock.release()
             if timer is not None:
                 timer.cancel()
             if work is not None:
@@ -356,18 +363,23 @@ class GuardedEngine:
 _REFIRE_S = (0.02, 0.05, 0.1, 0.2, 0.4, 0.8)
 
 
+#: how long a statement's end waits for an interrupt in flight (MariaDB's KILL QUERY
+#: connection is bounded by 2 s connect / read / write timeouts)
+_INTERRUPT_WAIT_S = 10.0
+
+
 def _interrupt_until_done(interrupt: Callable[[], None], state: dict,
                           lock: threading.Lock) -> None:
     for pause in (0.0, *_REFIRE_S):
         if pause:
             time.sleep(pause)
-        with lock:
+        with lock:  # (sent under the lock: see GuardedEngine._run)
             if state["done"]:
                 return
-        try:
-            interrupt()
-        except Exception:  # noqa: BLE001 - finished meanwhile; the next try or the end decides
-            pass
+            try:
+                interrupt()
+            except Exception:  # noqa: BLE001 - finished meanwhile; the next try or the end decides
+                pass
 
 
 #: what engines write when their own watchdog gave up on a server that did not answer
