@@ -100,7 +100,41 @@ class Dialect:
 
     # --- rendering ------------------------------------------------------------------
     def render(self, node: exp.Expression) -> str:
+        if self.caps.window_extremes == "first_value":
+            node = node.transform(self._first_value_extreme)
         return node.sql(dialect=self.sqlglot or None, identify=True)
+
+    def _first_value_extreme(self, node: exp.Expression) -> exp.Expression:
+        """In a SELECT, each ``MIN / MAX(e) OVER (PARTITION BY p)`` as ``FIRST_VALUE(e) OVER
+        (PARTITION BY p ORDER BY e [DESC], NULLs last)``: the same value in every row of the
+        partition (the smallest / largest non-NULL e, NULL when there is none), computed in
+        one sort (``caps.window_extremes``). A window's ORDER BY may name the select list's
+        aliases (MariaDB reads ``_sluice_n`` there as the window aliased so, and refuses it),
+        so its columns are qualified with the one relation of the FROM; a SELECT with joins
+        keeps its windows."""
+        if not isinstance(node, exp.Select):
+            return node
+        source = node.args.get("from_")
+        source = source.this if source is not None else None
+        if node.args.get("joins") or not isinstance(source, (exp.Table, exp.Subquery)) \
+                or not source.alias_or_name:
+            return node
+        relation = source.alias_or_name
+        for w in list(node.expressions):
+            for win in list(w.find_all(exp.Window)):
+                if (not isinstance(win.this, (exp.Min, exp.Max)) or win.args.get("order")
+                        or win.args.get("spec") or win.find_ancestor(exp.Select) is not node):
+                    continue
+                e = win.this.this.copy()
+                for c in e.find_all(exp.Column):
+                    if not c.table:
+                        c.set("table", exp.to_identifier(relation, quoted=True))
+                order = self.order(e, desc=isinstance(win.this, exp.Max), nulls_first=False)
+                win.replace(exp.Window(
+                    this=exp.FirstValue(this=win.this.this.copy()),
+                    partition_by=[p.copy() for p in win.args.get("partition_by") or []],
+                    order=exp.Order(expressions=order)))
+        return node
 
     def supports(self, feature: str) -> bool:
         return feature not in self.caps.unsupported

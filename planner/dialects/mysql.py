@@ -63,6 +63,7 @@ class MySQL(Dialect):
         quantile_method="window",
         nulls_order_native=False,
         approx_distinct=("exact (COUNT DISTINCT)", 0.0),
+        window_extremes="first_value",
     )
     notes = {
         "approx_count_distinct": "exact COUNT(DISTINCT)",
