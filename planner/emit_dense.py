@@ -13,6 +13,7 @@ from planner.emit_extents import carried_extents
 from planner.emit_sql import _ref, _table
 from planner.errors import PlanError, pointer
 from planner.plan import Key, Plan
+from planner.window import is_numeric
 
 MAX_DENSE_CELLS = 200_000
 
@@ -88,11 +89,13 @@ def _dense(plan: Plan, ctes: list, current: str, flags: list[Key]) -> str:
                        exp.alias_(exp.Literal.number(0), has, quoted=True)).from_(_table(gname))
     uname = names.cte("cells")
     ctes.append((uname, exp.union(data, empty, distinct=False)))
-    fill = exp.Literal.number(0) if plan.request.empty_bins == "zero" else exp.Null()
     missing = exp.EQ(this=exp.Max(this=_ref(has)), expression=exp.Literal.number(0))
     dense = exp.select(*[_ref(c) for c in keys]).from_(_table(uname))
     for m in plan.measures:  # one data row per cell at most: MAX returns its value unchanged
-        dense = dense.select(exp.alias_(exp.Case(ifs=[exp.If(this=missing.copy(), true=fill.copy())],
+        # zero for number measures; an empty bin has no earliest date or largest text
+        fill = (exp.Literal.number(0) if plan.request.empty_bins == "zero" and is_numeric(m)
+                else exp.Null())
+        dense = dense.select(exp.alias_(exp.Case(ifs=[exp.If(this=missing.copy(), true=fill)],
                                                  default=exp.Max(this=_ref(m.internal))),
                                         m.internal, quoted=True), copy=False)
     dense = dense.select(exp.alias_(exp.Sum(this=_ref(n)), n, quoted=True),

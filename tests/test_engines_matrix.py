@@ -208,6 +208,12 @@ CASES.update({
                                                                     "limits": [-50, 50]}),
                                                 "color": key("grp"), "y": COUNT},
                                    "empty_bins": "zero"},
+    # zero fills number measures only: an empty bin has no earliest day or largest text
+    "bins9_empty_zero_non_numbers": {"channels": {"x": key("x", bin={"width": 10, "limits": [-100, 100]}),
+                                                  "y": agg("min", "day"), "size": agg("max", "cat"),
+                                                  "color": agg("max", "flag"), "opacity": agg("min", "ts"),
+                                                  "shape": agg("max", "n")},
+                                     "empty_bins": "zero"},
     "bins9_empty_2d": {"channels": {"x": key("x", bin={"bins": 5, "limits": [-30, 30]}),
                                     "y": key("n", bin={"bins": 4, "limits": [-40, 40]}), "color": COUNT},
                        "empty_bins": "null"},

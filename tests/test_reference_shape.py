@@ -268,6 +268,36 @@ def test_empty_bins_null_fills_measures_with_null(api, ref):
     assert [r["count"] for r in rows] == [int(c) if c else None for c in counts]
 
 
+def test_empty_bins_zero_leaves_non_number_measures_null(api, ref):
+    """``zero`` fills number measures with 0; an empty bin's earliest time, largest text or
+    boolean is NULL (before: a 502 on DuckDB and PostgreSQL, "CASE types date and integer
+    cannot be matched", and 0 / "0" / false on MariaDB and ClickHouse)."""
+    resp = api.chart({"channels": {
+        "x": {"column": "x", "bin": {"width": 10, "origin": 0, "limits": [-100, 200]}},
+        "y": {"agg": "max", "column": "n"}, "size": {"agg": "min", "column": "ts"},
+        "color": {"agg": "max", "column": "cat"}, "opacity": {"agg": "max", "column": "flag"}},
+        "empty_bins": "zero", "where": [{"column": "x", "is_null": False}]})
+    df = ref.t.dropna(subset=["x"])
+    df = df[(df["x"] >= -100) & (df["x"] <= 200)]
+    edges = np.arange(-100, 201, 10, dtype=float)
+    # reference: pandas groupby over numpy.digitize bins (the last bin closed, as numpy.histogram)
+    idx = np.minimum(np.digitize(df["x"].to_numpy(), edges) - 1, len(edges) - 2)
+    groups = df.groupby(idx)
+    rows = api.rows(resp)
+    assert len(rows) == len(edges) - 1
+    for i, r in enumerate(rows):
+        assert r["x_lo"] == edges[i]
+        if i not in groups.groups:
+            assert (r["max_n"], r["min_ts"], r["max_cat"], r["max_flag"]) == (0, None, None, None)
+            continue
+        g = groups.get_group(i)
+        assert r["max_n"] == int(g["n"].max())
+        assert pd.Timestamp(r["min_ts"]) == g["ts"].min()
+        assert r["max_cat"] == g["cat"].dropna().max()
+        assert r["max_flag"] == bool(g["flag"].dropna().max())
+    assert any(i not in groups.groups for i in range(len(edges) - 1))
+
+
 def test_empty_bins_zero_with_nice_bins_covers_bins_meta(api, ref):
     resp = api.chart(
         {"source": "ranges", "channels": {"x": {"column": "a", "bin": {"bins": 40}}, "y": {"agg": "count"}}, "empty_bins": "zero"}
