@@ -10,7 +10,9 @@ Per source and data version (``app.catalog.Catalog.entry``):
   (``planner.schema.classify``). Where the engine answers without a type (SQLite has no
   static types; PostgreSQL ``numeric`` is left to value inspection) the allow-list's own
   reading of the expression gives it; a boolean expression an engine answers as an integer
-  (MariaDB has no boolean type) stays boolean;
+  (MariaDB has no boolean type) stays boolean; a number is what the allow-list reads it as
+  (BIGINT or DOUBLE; a bare column its own type), since engines type arithmetic their own
+  way and an answer's types are the same on every engine;
 * every ``[[sources.X.dimensions]]`` table is described (its columns' kinds), its key and
   columns checked, and its key checked for uniqueness with one statement (a non-NULL key value
   with more than one row); a duplicated value is kept on the ``Dimension`` and a request that
@@ -104,25 +106,38 @@ def _types(eng: Any, d: Any, source: exp.Expression,
     out = {}
     for name, (_, (kind, type_name)) in nodes.items():
         field = answer.schema.field(aliases[name])
-        engine_type = _type_name(field.type)
+        engine_type = _type_name(field.type, d.sqlglot or None)
         if engine_type is None:  # the engine does not say: the allow-list's reading
             out[name] = ColumnInfo(name, kind, type_name)
             continue
         got = classify(engine_type, d.sqlglot or None)
         if kind == "boolean" and got == "integer":  # an engine without booleans
             got, engine_type = "boolean", "BOOLEAN"
+        elif type_name in ("BIGINT", "DOUBLE") and got in _NUMBERS:
+            # one answer type on every engine: engines type arithmetic their own way (DuckDB
+            # keeps ``amount * 100`` a DECIMAL, PostgreSQL an unsized numeric, MariaDB makes
+            # ``ceil(amount)`` a BIGINT), so a number is what the allow-list reads it as
+            got, engine_type = kind, type_name
         out[name] = ColumnInfo(name, got, engine_type)
     return out
 
 
-def _type_name(t: pa.DataType) -> str | None:
-    """An Arrow type of an engine's answer as an SQL type name (None: no type)."""
+#: the number kinds of planner.schema.classify
+_NUMBERS = ("integer", "double", "decimal")
+
+
+def _type_name(t: pa.DataType, dialect: str | None) -> str | None:
+    """An Arrow type of an engine's answer as an SQL type name of ``dialect`` (None: no
+    type)."""
     if pa.types.is_boolean(t):
         return "BOOLEAN"
     if pa.types.is_integer(t):
         width = t.bit_width + (8 if pa.types.is_unsigned_integer(t) and t.bit_width < 64 else 0)
         if pa.types.is_unsigned_integer(t) and t.bit_width == 64:
-            return "UBIGINT"
+            # the engine's own name (ClickHouse UInt64: length() answers one; MariaDB BIGINT
+            # UNSIGNED), which its dialect classifies; elsewhere the exact DECIMAL(20, 0)
+            name = exp.DataType(this=exp.DataType.Type.UBIGINT).sql(dialect=dialect)
+            return name if classify(name, dialect) == "integer" else "DECIMAL(20,0)"
         return {8: "TINYINT", 16: "SMALLINT", 32: "INTEGER"}.get(width, "BIGINT")
     if pa.types.is_floating(t):
         return "DOUBLE"

@@ -166,7 +166,9 @@ class ExprBuilder(fs._Builder):
             raise fs._fail(f"date part extraction is not supported on {self.d.name}",
                            slug="unsupported")
         naive = self._temporal(self.build(node.expression, depth), "extract", node)
-        return fs._Typed(self.d.extract(name, naive), "number")
+        if name == "epoch":  # seconds since 1970 with their fraction (instants read in UTC)
+            return fs._Typed(self.d.epoch(naive, "timestamp"), "number")
+        return fs._Typed(self.d.extract(name, naive), "integer")  # whole numbers
 
 
 def _is_typed_literal(node: exp.Cast) -> bool:
@@ -212,6 +214,9 @@ def compile_typed(text: str, schema: SourceSchema, d: Dialect, ptr: str, *,
     node = built.node
     if isinstance(node, (exp.Binary, exp.Unary)) and not isinstance(node, exp.Paren):
         node = exp.Paren(this=node)
+    col = schema.column(node.name) if isinstance(node, exp.Column) else None
+    if col is not None:  # a bare column keeps its own type (a DECIMAL(12, 2) stays one)
+        return node, (col.kind, col.sql_type)
     return node, KINDS[built.kind]
 
 

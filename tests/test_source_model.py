@@ -236,6 +236,63 @@ def test_request_expr_key_and_measure(client, frame, engine):
 
 
 @pytest.mark.parametrize("engine", ENGINES)
+def test_expr_answer_types_are_the_same_on_every_engine(client, frame, engine):
+    """Engines type arithmetic their own way (DuckDB kept ``amount * 100`` a DECIMAL,
+    PostgreSQL an unsized numeric, MariaDB made ``ceil(amount)`` a BIGINT, ClickHouse's
+    ``length`` is a UInt64, which was refused as a key); the answer's types are the
+    allow-list's on all of them. Values: pandas (``str.len`` counts characters, as SQL's
+    character length does)."""
+    r = _post(client, engine, {"channels": {
+        "x": {"expr": "length(cat)"}, "y": {"agg": "min", "expr": "amount"},
+        "size": {"agg": "max", "expr": "ceil(amount)"},
+        "color": {"agg": "min", "expr": "amount * 100"}, "opacity": {"agg": "sum", "expr": "n"}}})
+    assert r.status_code == 200, r.text
+    types = {c["name"]: c["type"] for c in r.json()["columns"]}
+    assert types == {"length(cat)": "integer", "min_amount": "decimal",
+                     "max_ceil(amount)": "double", "min_amount * 100": "double",
+                     "sum_n": "integer"}
+    got = _rows(r)
+    amount = frame["amount"].map(lambda v: None if v is None else float(v)).astype("Float64")
+    ref = frame.assign(L=frame["cat"].str.len().astype("Int64"), a=amount)
+    g = ref.groupby("L", dropna=False)
+    assert _as_dict(got["length(cat)"], got["max_ceil(amount)"]) == _as_dict(
+        g["a"].max().index, np.ceil(g["a"].max()))
+    assert _as_dict(got["length(cat)"], got["min_amount * 100"]) == _as_dict(
+        g["a"].min().index, (g["a"].min() * 100).round(6))
+    assert _as_dict(got["length(cat)"], got["sum_n"]) == _as_dict(g["n"].sum().index,
+                                                                  g["n"].sum())
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_expr_extract_epoch_and_fields(client, frame, engine):
+    """``extract(epoch from t)``: seconds since 1970 with their fraction (before: a 500 on
+    MariaDB, SQLite and ClickHouse, and PostgreSQL cut the fraction off); the other fields are
+    whole numbers, typed ``integer``. Reference: Python ``datetime.timestamp()`` and
+    ``.hour`` of the UTC instants."""
+    r = _post(client, engine, {"channels": {
+        "x": {"expr": "extract(hour from ts)"}, "y": {"agg": "max", "expr": "extract(epoch from ts)"},
+        "size": {"agg": "min", "expr": "extract(second from tsn)"}}})
+    assert r.status_code == 200, r.text
+    types = {c["name"]: c["type"] for c in r.json()["columns"]}
+    assert types == {"extract(hour from ts)": "integer", "max_extract(epoch from ts)": "double",
+                     "min_extract(second from tsn)": "integer"}
+    got = _rows(r)
+    epochs: dict = {}
+    seconds: dict = {}
+    for row in fx.make_rows():
+        h = "<NULL>" if row["ts"] is None else row["ts"].hour
+        epochs.setdefault(h, []).append(None if row["ts"] is None else row["ts"].timestamp())
+        seconds.setdefault(h, []).append(None if row["tsn"] is None else row["tsn"].second)
+    want_epoch = {h: max((v for v in vs if v is not None), default=None) for h, vs in epochs.items()}
+    want_second = {h: min((v for v in vs if v is not None), default=None)
+                   for h, vs in seconds.items()}
+    assert _as_dict(got["extract(hour from ts)"], got["max_extract(epoch from ts)"]) == want_epoch
+    assert _as_dict(got["extract(hour from ts)"], got["min_extract(second from tsn)"]) == {
+        k: None if v is None else float(v) for k, v in want_second.items()}
+    assert any(v % 1 for v in want_epoch.values() if v is not None)  # fractions are there
+
+
+@pytest.mark.parametrize("engine", ENGINES)
 def test_dimension_key_and_measure(client, frame, engine):
     """A dimension column as a key (facts without a match: NULL key) and a measure over a
     dimension column; reference: pandas merge(how=left) + groupby(dropna=False)."""
