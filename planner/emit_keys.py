@@ -70,7 +70,7 @@ def _key_expr(d: Dialect, k: Key) -> exp.Expression:
     if k.col.is_temporal:  # plain, trunc, extract and time bins alike
         ref = _instant_in_range(d, k.col, ref)
     if k.mode == "plain":  # a top key folds in _top_key_expr / _fold_top
-        return ref
+        return d.group_number(ref) if k.col.kind == "double" else ref
     if k.mode == "trunc":
         return _trunc_in_range(d, k, ref, _trunc_key(d, k.spec.trunc, ref, k.col.kind, k.tz))
     if k.mode == "extract":

@@ -70,6 +70,9 @@ def _read_input(d: Dialect, agg: str, arg: exp.Expression | None, col: ColumnInf
         # a type of no kind (point, json, a list) may have no equality on the target
         # (PostgreSQL: point, json): its distinct text forms
         return d.text(arg)
+    if agg in ("count_distinct", "approx_count_distinct") and col is not None \
+            and col.kind == "double":
+        return d.group_number(arg)  # -0.0 and 0.0 are one value
     if agg == "sum" and arg is not None:
         # widened where the engine's own sum of the type can overflow
         if col is not None:

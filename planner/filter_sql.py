@@ -298,7 +298,9 @@ class _Builder:
             if len(items) > self.max_in_list:
                 raise _fail(f"IN lists in filter_sql may have at most {self.max_in_list} "
                             f"values (got {len(items)})", slug="limit-exceeded")
-            parts, _ = self._unify([sub(node.this)] + [sub(i) for i in items], node)
+            parts, kind = self._unify([sub(node.this)] + [sub(i) for i in items], node)
+            if kind == "number":  # -0.0 is looked up as 0.0 (Dialect.group_number)
+                parts = [self.d.group_number(p) for p in parts]
             return _Typed(exp.In(this=parts[0], expressions=parts[1:]), "boolean")
 
         if isinstance(node, exp.Is):

@@ -62,14 +62,17 @@ def _compile_filter(f: Any, path: tuple, schema: SourceSchema, d: Dialect,
             if not value:
                 terms.append(exp.false() if op == "in" else exp.true())
                 continue
+            # a set of doubles holds 0.0 once: -0.0 is looked up as 0.0 (Dialect.group_number)
+            member = d.group_number(ref.copy()) if col.kind == "double" else ref.copy()
             raw = _param_values(d, col, value, pointer(*path, op)) if slots is not None else None
             if raw is not None:
-                node = _param_in(d, col, ref.copy(), value[0], pointer(*path, op, 0), len(slots), raw)
+                node = _param_in(d, col, member, value[0], pointer(*path, op, 0), len(slots), raw)
                 slots.append(None)
                 terms.append(node if op == "in" else exp.Not(this=node))
                 continue
-            lits = [_literal(d, col, v, pointer(*path, op, j)) for j, v in enumerate(value)]
-            node = exp.In(this=ref.copy(), expressions=lits)
+            lits = [_literal(d, col, v + 0.0 if isinstance(v, float) else v,
+                              pointer(*path, op, j)) for j, v in enumerate(value)]
+            node = exp.In(this=member, expressions=lits)
             terms.append(node if op == "in" else exp.Not(this=node))
         elif op == "is_null":
             isnull = exp.Is(this=ref.copy(), expression=exp.Null())

@@ -452,6 +452,12 @@ class Dialect:
         another type (SQLite) turn those into NULL."""
         return col
 
+    def group_number(self, e: exp.Expression) -> exp.Expression:
+        """A double as a grouping value (a plain key, a distinct count's input): the same
+        group for -0.0 and 0.0, which compare equal; engines that group by the bits
+        (ClickHouse) add 0 (IEEE 754: -0 + 0 = +0)."""
+        return e
+
     def nonfinite(self, kind: str) -> bool:
         """Whether a number column of ``kind`` can hold inf, -inf or NaN: a double, and a
         decimal where ``caps.nonfinite_decimals``."""

@@ -97,6 +97,14 @@ class ClickHouse(Dialect):
             return self.fn("toDecimal256", ref, self.lit(0))
         return super().stored(ref, sql_type, kind)
 
+    def group_number(self, e: exp.Expression) -> exp.Expression:
+        # GROUP BY and uniqExact hash a Float64's bits: -0.0 and 0.0 were two groups
+        return exp.Add(this=e, expression=exp.Literal.number(0))
+
+    def number_cell(self, col: exp.Expression) -> exp.Expression:
+        # bins: floor(-0.0 / w) is -0.0, a bin index apart from 0.0 (two [0, w) rows)
+        return self.group_number(col)
+
     def text(self, e: exp.Expression) -> exp.Expression:
         # CAST(u AS String) refuses a NULL (of Nullable(UUID), say); toString keeps it NULL
         return self.fn("toString", e)
