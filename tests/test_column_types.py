@@ -320,6 +320,24 @@ def test_a_chart_no_row_matches_answers_empty(engines, engine, x, y):
     assert out["stats"]["matched_rows"] == kept == 0 and out["stats"]["result_rows"] == 0
 
 
+@pytest.mark.parametrize("engine", ["sqlite", "mysql", "postgres", "clickhouse", "duckdb"])
+def test_aggregates_of_no_rows_are_null(engines, engine):
+    """Without keys a chart is one group even when no row matches; its aggregates of no rows
+    are NULL and its counts 0 (SQL standard, ISO/IEC 9075-2 "set functions": from memory).
+    ``id`` is not Nullable on ClickHouse, which answered max 0, sum 0 and avg NaN there,
+    and laid a rule's bins out around 0 (an empty extents row read as min = max = 0)."""
+    none = [{"column": "n", "gt": 1000}]
+    out = _chart(engines, engine, where=none, channels={
+        "y": {"agg": "max", "column": "id"}, "size": {"agg": "sum", "column": "id"},
+        "color": {"agg": "avg", "column": "id"}, "opacity": {"agg": "median", "column": "id"},
+        "shape": {"agg": "count_distinct", "column": "id"}})
+    assert out["data"] == {"max_id": [None], "sum_id": [None], "avg_id": [None],
+                           "median_id": [None], "count_distinct_id": [0]}
+    out = _chart(engines, engine, where=none, channels={
+        "x": {"expr": "coalesce(n, 0)", "bin": {"rule": "fd"}}, "y": {"agg": "count"}})
+    assert out["bins"]["x"]["start"] == 0.0 and out["data"]["count"] == []
+
+
 def test_sqlite_cells_of_another_storage_class_are_null_everywhere(tmp_path):
     """SQLite keeps 'abc' in a NUMERIC column and 'yes' in a BOOLEAN one as text (its type
     affinity rules, sqlite.org/datatype3.html). Such a cell reads as NULL for keys, measures

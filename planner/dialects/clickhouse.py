@@ -84,10 +84,14 @@ class ClickHouse(Dialect):
         if isinstance(node, exp.Select):
             node = node.copy()
             # extended results: toStartOfMonth and friends of a DateTime64 / Date32 answer in
-            # their range (1900..2299); without it they clamp to Date's 1970..2149
+            # their range (1900..2299); without it they clamp to Date's 1970..2149.
+            # null for empty: min / max / sum of no rows are NULL as in SQL (else a column
+            # that is not Nullable answers 0, its avg NaN, and an empty extents row lays out
+            # bins around 0); count stays 0
             node.set("settings", [exp.EQ(this=exp.var(name), expression=exp.Literal.number(1))
                                   for name in ("join_use_nulls",
-                                               "enable_extended_results_for_datetime_functions")])
+                                               "enable_extended_results_for_datetime_functions",
+                                               "aggregate_functions_null_for_empty")])
         return node.sql(dialect=self.sqlglot, identify=True)
 
     def stored(self, ref: exp.Expression, sql_type: str, kind: str) -> exp.Expression | None:
