@@ -58,6 +58,8 @@ class Stats(_Open):
     statements: int = Field(description="SQL statements run for this answer")
     outside_limits: dict[str, int] | None = Field(None, description="per binned channel: "
                                                   "rows outside its limits")
+    cut_text: dict[str, int] | None = Field(None, description="per text column: values "
+                                            "longer than 1000 characters, cut to 1000")
 
 
 class Approximation(_Open):

@@ -121,8 +121,12 @@ def parquet_body(table: pa.Table, meta: dict[str, Any]) -> bytes:
 
 
 def table_headers(meta: dict[str, Any]) -> dict[str, str]:
-    """What a consumer of a bare table must not miss: truncation and approximation."""
+    """What a consumer of a bare table must not miss: truncation, approximation and cut
+    text."""
     out = {"X-Sluice-Truncated": "true" if meta.get("stats", {}).get("truncated") else "false"}
     if meta.get("approximate"):
         out["X-Sluice-Approximate"] = "true"
+    cut = meta.get("stats", {}).get("cut_text")
+    if cut:  # text values cut to 1000 characters (planner.model.MAX_TEXT_CHARS)
+        out["X-Sluice-Cut-Text"] = ", ".join(cut)
     return out

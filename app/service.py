@@ -15,6 +15,7 @@ from typing import Any
 
 import orjson
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from app.catalog import Catalog, SourceEntry, UnknownSource
 from app.encode import (column_values, domain, instant_text, normalize_column, type_name,
@@ -248,6 +249,13 @@ def carried_row(plan: Plan, raw: pa.Table | None) -> dict[str, Any] | None:
     if raw is None or raw.num_rows == 0 or not cols or any(c not in raw.column_names for c in cols):
         return None
     return {c: raw.column(c)[0].as_py() for c in cols}
+
+
+def _flag_count(raw: pa.Table, name: str) -> int:
+    """How many rows of ``raw`` have the 1 / 0 flag column ``name`` set (0 without it)."""
+    if name not in raw.column_names or not raw.num_rows:
+        return 0
+    return int(pc.sum(raw.column(name)).as_py() or 0)
 
 
 def _ms(t0: float) -> float:
@@ -582,6 +590,10 @@ class ChartService:
         }
         if outside:
             stats["outside_limits"] = outside
+        cut = {name: n for j, name in enumerate(plan.text_outputs)
+               if (n := _flag_count(raw, internal.cut_text(j)))}
+        if cut:  # text values cut to MAX_TEXT_CHARS characters (planner/emit_main.py)
+            stats["cut_text"] = cut
         meta: dict[str, Any] = {
             "columns": columns, "bins": bins, "domains": domains, "stats": stats,
             "sql": statements, "dialect": plan.dialect.name,

@@ -31,6 +31,7 @@ from planner.emit_measures import _built, _measure_agg, _measure_input, _window_
 from planner.emit_sql import _ref, _table
 from planner.emit_top import _fold_after_grouping, _fold_top, _top_cte, _top_key_expr
 from planner.emit_window import _windowed
+from planner.model import MAX_TEXT_CHARS
 from planner.plan import Key, Measure, Plan
 from planner.source import relation
 
@@ -57,7 +58,9 @@ def _main_statement(plan: Plan, guard: bool = False) -> exp.Select:
     cap = req.facet.max_groups if req.facet is not None else None
     _final(plan, ctes, current, flags, cap)
 
-    outer = exp.select(exp.Star()).from_(_table(names.cte("final")))
+    final = ctes[-1][1]
+    outer = exp.select(*(_ref(n) for n in answer_columns(plan, final)) if plan.text_outputs
+                       else [exp.Star()]).from_(_table(names.cte("final")))
     if cap is not None:
         outer = outer.where(exp.LTE(this=_ref(names.facet_rank()), expression=d.number(cap)), copy=False)
     terms = _sort_terms(plan, internal=False)
@@ -257,10 +260,9 @@ def _final(plan: Plan, ctes: list, current: str, flags: list[Key], cap: int | No
     counts, outside-limit counts and, with a facet cap, each group's rank in its facet."""
     d, keys = plan.dialect, plan.keys
     final = exp.select().from_(_table(current))
-    for k in keys:
-        final = final.select(*_key_outputs(d, k), copy=False)
-    for m in plan.measures:
-        final = final.select(exp.alias_(_ref(m.value), m.name, quoted=True), copy=False)
+    outputs = [e for k in keys for e in _key_outputs(d, k)]
+    outputs += [exp.alias_(_ref(m.value), m.name, quoted=True) for m in plan.measures]
+    final = final.select(*_cut_text(plan, outputs), copy=False)
     if plan.stack_measure is not None:
         final = final.select(*_stack_columns(plan), copy=False)
     final = final.select(
@@ -283,6 +285,39 @@ def _final(plan: Plan, ctes: list, current: str, flags: list[Key], cap: int | No
         final = final.select(exp.alias_(rank, names.facet_rank(), quoted=True), copy=False)
     ctes.append((names.cte("final"), final))
     return names.cte("final")
+
+
+def _cut_text(plan: Plan, outputs: list[exp.Expression]) -> list[exp.Expression]:
+    """``outputs`` with each text output (``Plan.text_outputs``) cut to MAX_TEXT_CHARS
+    characters, plus its flag ``names.cut_text(j)`` (1 where the value was longer) and the
+    whole value ``names.text_full(j)``, which the ORDER BY reads and the answer leaves out
+    (``answer_columns``): the answer's memory stays bounded whatever the stored texts hold,
+    and it says what it cut. Groups and their order are still those of the whole values."""
+    d, text = plan.dialect, plan.text_outputs
+    if not text:
+        return outputs
+    out, flags = [], []
+    for e in outputs:
+        name = e.alias_or_name
+        if name not in text:
+            out.append(e)
+            continue
+        v = e.this if isinstance(e, exp.Alias) else e
+        out.append(exp.alias_(d.text_prefix(v.copy(), MAX_TEXT_CHARS), name, quoted=True))
+        longer = exp.GT(this=d.char_length(v.copy()), expression=exp.Literal.number(MAX_TEXT_CHARS))
+        j = text.index(name)
+        flags.append(exp.alias_(exp.Case(ifs=[exp.If(this=longer, true=exp.Literal.number(1))],
+                                         default=exp.Literal.number(0)),
+                                names.cut_text(j), quoted=True))
+        flags.append(exp.alias_(v.copy(), names.text_full(j), quoted=True))
+    return out + flags
+
+
+def answer_columns(plan: Plan, final: exp.Select) -> list[str]:
+    """The columns of the final stage ``final`` a statement returns: all but the whole
+    texts that only order the rows (``_cut_text``)."""
+    full = {names.text_full(j) for j in range(len(plan.text_outputs))}
+    return [n for n in (e.alias_or_name for e in final.expressions) if n not in full]
 
 
 def _distinct_pairs(d: Dialect, grouped: exp.Select, rows_name: str, group_cols: list[str]
@@ -365,18 +400,23 @@ def _stack_columns(plan: Plan) -> list[exp.Expression]:
 def _sort_terms(plan: Plan, internal: bool) -> list[exp.Ordered]:
     """ORDER BY terms: the request's sort first, then every key ascending (NULLs last)."""
     d = plan.dialect
+    text = plan.text_outputs
+
+    def out(name: str) -> exp.Expression:  # a text output orders by its whole value
+        return _ref(names.text_full(text.index(name)) if name in text else name)
+
     by_channel: dict[str, exp.Expression] = {}
     for k in plan.keys:
-        by_channel.setdefault(k.channel, _ref(k.internal) if internal else _ref(k.names[0]))
+        by_channel.setdefault(k.channel, _ref(k.internal) if internal else out(k.names[0]))
     for m in plan.measures:
-        by_channel.setdefault(m.channel, _ref(m.value) if internal else _ref(m.name))
+        by_channel.setdefault(m.channel, _ref(m.value) if internal else out(m.name))
     terms: list[exp.Ordered] = []
     used: set[str] = set()
     for s in plan.request.sort:
         terms += d.order(by_channel[s.channel].copy(), s.desc, False)
         used.add(s.channel)
     for k in plan.keys:
-        ref = _ref(k.internal) if internal else _ref(k.names[0])
+        ref = _ref(k.internal) if internal else out(k.names[0])
         if k.channel in used and k.channel != "by":
             continue
         terms += d.order(ref, False, False)

@@ -41,7 +41,7 @@ from planner import names
 from planner.emit_checked import bin_value
 from planner.emit_extents import carried_keys
 from planner.emit_keys import _instant_in_range, _key_expr, _outside_expr
-from planner.emit_main import _counted, _final, _sort_terms, range_aggregates
+from planner.emit_main import _counted, _final, _sort_terms, answer_columns, range_aggregates
 from planner.emit_window import _windowed
 from planner.emit_measures import _measure_agg, _measure_input
 from planner.emit_sql import _ref, _table
@@ -224,7 +224,7 @@ def sets_statement(plans: Sequence[Plan]) -> Shared | None:
         _final(plan, own_ctes, current, [k for k, _ in flags], cap)
         for name, q in own_ctes:
             ctes.append((mapping[name], _rename(q, mapping), False))
-        final_names = [e.alias_or_name for e in own_ctes[-1][1].expressions]
+        final_names = answer_columns(plan, own_ctes[-1][1])
         order = names.chart_column(i, "ord")
         tag = names.chart_column(i, "tag")
         out = exp.select(exp.alias_(exp.Literal.number(i), tag, quoted=True), *[

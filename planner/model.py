@@ -40,6 +40,10 @@ ThenName = Literal["fraction", "cumulative", "change"]
 WithinName = Literal["all", "axis", "facet"]
 
 MAX_BINS = 10_000
+#: longest text value an answer carries: a longer key value or min / max of a text column is
+#: cut to this many characters in SQL (the answer's ``stats.cut_text`` counts them), so 10,000
+#: rows of a text column stay within ~40 MB however long the stored values are
+MAX_TEXT_CHARS = 1000
 #: deepest nesting of ``any`` / ``not`` in ``where`` (a predicate directly in ``where`` is
 #: depth 0). SQLite's parser refuses OR/AND chains nested ~23 levels deep (SQLite 3.40,
 #: measured), so 16 keeps every engine below its own parser and recursion limits.

@@ -123,6 +123,16 @@ def value_range(i: int, end: str) -> str:
     return f"{INTERNAL}v{i}_{end}"
 
 
+def cut_text(j: int) -> str:
+    """1 where text output j (``Plan.text_outputs``) was longer than MAX_TEXT_CHARS."""
+    return f"{INTERNAL}cut{j}"
+
+
+def text_full(j: int) -> str:
+    """Text output j whole, for ordering only (the answer carries it cut)."""
+    return f"{INTERNAL}full{j}"
+
+
 def misbinned() -> str:
     """1 when some group's values do not all lie in its bin (the checked floor missed)."""
     return f"{INTERNAL}misbinned"

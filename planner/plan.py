@@ -178,6 +178,15 @@ class Plan:
     carry_extents: bool = False
 
     @property
+    def text_outputs(self) -> list[str]:
+        """The output columns that hold text: plain text keys (top keys too) and min / max of
+        text; the final stage cuts them to ``MAX_TEXT_CHARS`` (``names.cut_text(j)`` flags the
+        rows of output j that were cut)."""
+        out = [k.names[0] for k in self.keys if k.mode == "plain" and k.col.kind == "string"]
+        return out + [m.name for m in self.measures if m.output_kind == "input" and (
+            (m.col is not None and m.col.kind == "string") or m.input_kind == "string")]
+
+    @property
     def extents_where(self) -> exp.Expression | None:
         """The rows the extents statement and the top-N ranking read."""
         return self.layout_where if self.request.split_layout else self.where

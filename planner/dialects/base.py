@@ -452,6 +452,14 @@ class Dialect:
         another type (SQLite) turn those into NULL."""
         return col
 
+    def char_length(self, e: exp.Expression) -> exp.Expression:
+        """The number of characters (code points) of a text."""
+        return exp.Length(this=e)
+
+    def text_prefix(self, e: exp.Expression, n: int) -> exp.Expression:
+        """The first ``n`` characters of a text."""
+        return exp.Substring(this=e, start=exp.Literal.number(1), length=exp.Literal.number(n))
+
     def group_number(self, e: exp.Expression) -> exp.Expression:
         """A double as a grouping value (a plain key, a distinct count's input): the same
         group for -0.0 and 0.0, which compare equal; engines that group by the bits

@@ -101,6 +101,10 @@ class ClickHouse(Dialect):
             return self.fn("toDecimal256", ref, self.lit(0))
         return super().stored(ref, sql_type, kind)
 
+    def text_prefix(self, e: exp.Expression, n: int) -> exp.Expression:
+        # substring() counts bytes: it could cut a character in two
+        return self.fn("substringUTF8", e, self.lit(1), self.lit(n))
+
     def group_number(self, e: exp.Expression) -> exp.Expression:
         # GROUP BY and uniqExact hash a Float64's bits: -0.0 and 0.0 were two groups
         return exp.Add(this=e, expression=exp.Literal.number(0))
