@@ -18,6 +18,7 @@ CTE names come from ``planner.names.cte``. In: a laid-out ``Plan``; out: ``exp.S
 from __future__ import annotations
 
 import dataclasses
+import functools
 
 from sqlglot import exp
 
@@ -29,9 +30,9 @@ from planner.emit_extents import carried_extents, carried_keys, needs_extents, p
 from planner.emit_keys import _instant_in_range, _key_expr, _key_outputs, _outside_expr
 from planner.emit_measures import _built, _measure_agg, _measure_input, _window_columns, part_input
 from planner.emit_sql import _ref, _table
+from planner.emit_text import answer_columns, cut_text, order_ref
 from planner.emit_top import _fold_after_grouping, _fold_top, _top_cte, _top_key_expr
 from planner.emit_window import _windowed
-from planner.model import MAX_TEXT_CHARS
 from planner.plan import Key, Measure, Plan
 from planner.source import relation
 
@@ -262,7 +263,7 @@ def _final(plan: Plan, ctes: list, current: str, flags: list[Key], cap: int | No
     final = exp.select().from_(_table(current))
     outputs = [e for k in keys for e in _key_outputs(d, k)]
     outputs += [exp.alias_(_ref(m.value), m.name, quoted=True) for m in plan.measures]
-    final = final.select(*_cut_text(plan, outputs), copy=False)
+    final = final.select(*cut_text(plan, outputs), copy=False)
     if plan.stack_measure is not None:
         final = final.select(*_stack_columns(plan), copy=False)
     final = final.select(
@@ -285,39 +286,6 @@ def _final(plan: Plan, ctes: list, current: str, flags: list[Key], cap: int | No
         final = final.select(exp.alias_(rank, names.facet_rank(), quoted=True), copy=False)
     ctes.append((names.cte("final"), final))
     return names.cte("final")
-
-
-def _cut_text(plan: Plan, outputs: list[exp.Expression]) -> list[exp.Expression]:
-    """``outputs`` with each text output (``Plan.text_outputs``) cut to MAX_TEXT_CHARS
-    characters, plus its flag ``names.cut_text(j)`` (1 where the value was longer) and the
-    whole value ``names.text_full(j)``, which the ORDER BY reads and the answer leaves out
-    (``answer_columns``): the answer's memory stays bounded whatever the stored texts hold,
-    and it says what it cut. Groups and their order are still those of the whole values."""
-    d, text = plan.dialect, plan.text_outputs
-    if not text:
-        return outputs
-    out, flags = [], []
-    for e in outputs:
-        name = e.alias_or_name
-        if name not in text:
-            out.append(e)
-            continue
-        v = e.this if isinstance(e, exp.Alias) else e
-        out.append(exp.alias_(d.text_prefix(v.copy(), MAX_TEXT_CHARS), name, quoted=True))
-        longer = exp.GT(this=d.char_length(v.copy()), expression=exp.Literal.number(MAX_TEXT_CHARS))
-        j = text.index(name)
-        flags.append(exp.alias_(exp.Case(ifs=[exp.If(this=longer, true=exp.Literal.number(1))],
-                                         default=exp.Literal.number(0)),
-                                names.cut_text(j), quoted=True))
-        flags.append(exp.alias_(v.copy(), names.text_full(j), quoted=True))
-    return out + flags
-
-
-def answer_columns(plan: Plan, final: exp.Select) -> list[str]:
-    """The columns of the final stage ``final`` a statement returns: all but the whole
-    texts that only order the rows (``_cut_text``)."""
-    full = {names.text_full(j) for j in range(len(plan.text_outputs))}
-    return [n for n in (e.alias_or_name for e in final.expressions) if n not in full]
 
 
 def _distinct_pairs(d: Dialect, grouped: exp.Select, rows_name: str, group_cols: list[str]
@@ -400,11 +368,7 @@ def _stack_columns(plan: Plan) -> list[exp.Expression]:
 def _sort_terms(plan: Plan, internal: bool) -> list[exp.Ordered]:
     """ORDER BY terms: the request's sort first, then every key ascending (NULLs last)."""
     d = plan.dialect
-    text = plan.text_outputs
-
-    def out(name: str) -> exp.Expression:  # a text output orders by its whole value
-        return _ref(names.text_full(text.index(name)) if name in text else name)
-
+    out = functools.partial(order_ref, plan)  # a text output orders by its whole value
     by_channel: dict[str, exp.Expression] = {}
     for k in plan.keys:
         by_channel.setdefault(k.channel, _ref(k.internal) if internal else out(k.names[0]))

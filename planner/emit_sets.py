@@ -41,7 +41,8 @@ from planner import names
 from planner.emit_checked import bin_value
 from planner.emit_extents import carried_keys
 from planner.emit_keys import _instant_in_range, _key_expr, _outside_expr
-from planner.emit_main import _counted, _final, _sort_terms, answer_columns, range_aggregates
+from planner.emit_main import _counted, _final, _sort_terms, range_aggregates
+from planner.emit_text import answer_columns
 from planner.emit_window import _windowed
 from planner.emit_measures import _measure_agg, _measure_input
 from planner.emit_sql import _ref, _table

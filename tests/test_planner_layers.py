@@ -52,7 +52,8 @@ NEW_MODULES = ("planner/plan.py", "planner/names.py", "planner/values.py", "plan
                "planner/emit_sql.py", "planner/emit_keys.py", "planner/emit_measures.py",
                "planner/emit_extents.py", "planner/emit_top.py", "planner/emit_dense.py",
                "planner/emit_main.py", "planner/emit_window.py", "planner/window.py",
-               "planner/emit_checked.py", "planner/source.py", "planner/emit_sets.py")
+               "planner/emit_checked.py", "planner/source.py", "planner/emit_sets.py",
+               "planner/emit_text.py")
 EMIT = frozenset(m[:-3].replace("/", ".") for m in NEW_MODULES if "/emit_" in m)
 
 

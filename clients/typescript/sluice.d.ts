@@ -1458,6 +1458,13 @@ export interface components {
         /** Stats */
         Stats: {
             /**
+             * Cut Text
+             * @description per text column: values longer than 1000 characters, cut to 1000
+             */
+            cut_text?: {
+                [key: string]: number;
+            } | null;
+            /**
              * Groups
              * @description groups before limit
              */
