@@ -338,6 +338,38 @@ def test_aggregates_of_no_rows_are_null(engines, engine):
     assert out["bins"]["x"]["start"] == 0.0 and out["data"]["count"] == []
 
 
+def test_sqlite_sum_past_int64_is_a_clear_422(tmp_path):
+    """SQLite's sum() of integers stops with "integer overflow" past 2^63 - 1 (sqlite.org
+    lang_aggfunc: "sum() will throw an integer overflow exception if all inputs are integers
+    or NULL and an integer overflow occurs at any point"); it has no wider type. That was a
+    502; it is the engine's limit, a 422 at the channels that says what to do. avg, count
+    and sums that fit still answer (references: Python integers)."""
+    import sqlite3
+
+    path = tmp_path / "big.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE t (g TEXT, v INTEGER)")
+    rows = [("a", 2**62), ("a", 2**62), ("b", 2**62), ("b", -5)]
+    conn.executemany("INSERT INTO t VALUES (?, ?)", rows)
+    conn.commit()
+    conn.close()
+    with _serve({"s": {"engine": "sqlite", "path": str(path), "table": "t"}}, "<big>") as c:
+        r = c.post("/v1/chart", json={"source": "s", "channels": {
+            "x": {"column": "g"}, "y": {"agg": "sum", "column": "v"}}})
+        assert r.status_code == 422, r.text
+        body = r.json()
+        assert body["type"].endswith("/unsupported") and body["pointer"] == "/channels"
+        assert "2^63 - 1" in body["detail"]
+        r = c.post("/v1/chart", json={"source": "s", "channels": {
+            "x": {"column": "g"}, "y": {"agg": "sum", "column": "v"}},
+            "where": [{"column": "g", "eq": "b"}]})
+        assert r.status_code == 200 and r.json()["data"]["sum_v"] == [2**62 - 5]
+        r = c.post("/v1/chart", json={"source": "s", "channels": {
+            "x": {"column": "g"}, "y": {"agg": "avg", "column": "v"}}})
+        assert r.status_code == 200
+        assert r.json()["data"]["avg_v"] == [float(2**62), (2**62 - 5) / 2]
+
+
 def test_sqlite_cells_of_another_storage_class_are_null_everywhere(tmp_path):
     """SQLite keeps 'abc' in a NUMERIC column and 'yes' in a BOOLEAN one as text (its type
     affinity rules, sqlite.org/datatype3.html). Such a cell reads as NULL for keys, measures

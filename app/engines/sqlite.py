@@ -16,6 +16,7 @@ from pathlib import Path
 from urllib.parse import quote
 
 from app.engines.base import EngineError, EngineUnavailable, RowEngine, Rows, cursor_rows
+from planner.errors import PlanError, pointer
 from app.settings import SourceConfig
 
 
@@ -57,6 +58,14 @@ class SQLiteEngine(RowEngine):
             if "interrupted" in str(e):
                 raise EngineError(self.cfg.name, "SQLite: interrupted (maximum statement "
                                   "execution time exceeded)") from None
+            if str(e) == "integer overflow":
+                # sum() of integers stops past 2^63 - 1 and SQLite has no wider type (total()
+                # would make every sum a double): the engine's limit, not a failure (422)
+                raise PlanError(pointer("channels"), f"source {self.cfg.name!r}: a sum ran past "
+                                "2^63 - 1, the largest SQLite integer (SQLite has no wider "
+                                "type and stops with 'integer overflow'); sum fewer rows "
+                                "(where) or ask for avg", slug="unsupported",
+                                title="Not supported by the target engine") from None
             raise EngineError(self.cfg.name, f"SQLite: {e}") from None
         except sqlite3.Error as e:
             raise EngineError(self.cfg.name, f"SQLite: {e}") from None
