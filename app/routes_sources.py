@@ -73,6 +73,8 @@ class ColumnProfile(BaseModel):
     distinct: Distinct
     top_values: TopValues | None = Field(description="Most frequent values (text and boolean "
                                          "columns by default; `top` asks for them on any column)")
+    cut_text: bool | None = Field(None, description="true when a text value, min or max "
+                                  "was longer than 1000 characters and is cut to them")
     sql: str
     dialect: str
     cache: str = Field(description="hit | miss")
@@ -235,5 +237,7 @@ def shape(plan: prof.ProfilePlan, raw: pa.Table) -> dict[str, Any]:
         out["top_values"] = {"limit": plan.top, "values": values,
                              "complete": len(values) == out["distinct_count"],
                              "other_rows": out["row_count"] - out["null_count"] - listed}
+    if prof.CUT in raw.column_names and any(raw.column(prof.CUT).to_pylist()):
+        out["cut_text"] = True  # some value, min or max was cut to 1000 characters
     out.update(sql=plan.sql, dialect=plan.dialect)
     return out

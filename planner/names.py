@@ -190,7 +190,7 @@ def series() -> str:
 
 #: the names of a column profile's statement (planner.profile)
 PROFILE_PARTS = ("value", "count", "rows", "nulls", "non_null", "distinct", "min", "max",
-                 "rank", "grouped", "ranked")
+                 "cut", "rank", "grouped", "ranked")
 
 
 def profile(part: str) -> str:

@@ -32,6 +32,7 @@ from sqlglot import exp
 
 from planner import names
 from planner.errors import PlanError, nearest
+from planner.model import MAX_TEXT_CHARS
 from planner.schema import ColumnInfo, SourceSchema
 from planner.source import relation, using
 
@@ -41,9 +42,9 @@ MAX_TOP = 100
 PROFILE_KINDS = frozenset({"integer", "double", "decimal", "string", "boolean", "timestamp",
                            "timestamptz", "date"})
 #: output names (planner.names.profile: the internal prefix, never a user column)
-VALUE, COUNT, ROWS, NULLS, NON_NULL, DISTINCT, LO, HI, RANK = (
+VALUE, COUNT, ROWS, NULLS, NON_NULL, DISTINCT, LO, HI, RANK, CUT = (
     names.profile(p) for p in ("value", "count", "rows", "nulls", "non_null", "distinct",
-                               "min", "max", "rank"))
+                               "min", "max", "rank", "cut"))
 
 
 @dataclass(frozen=True)
@@ -97,8 +98,34 @@ def plan_profile(schema: SourceSchema, name: str, dialect, top: int | None = Non
     else:
         stmt = _grouped(dialect, value, table, top, has_range)
         method, err, approximate = "exact (GROUP BY)", None, False
+    if col.kind == "string":
+        stmt = _cut_text(dialect, stmt)
     return ProfilePlan(col, top, stmt, dialect.render(stmt), dialect.name, has_range, method,
                        err if approximate else None, approximate)
+
+
+def _cut_text(d, stmt: exp.Select) -> exp.Select:
+    """The text values (value, min, max) of the profile's statement cut to MAX_TEXT_CHARS
+    characters, as a chart answer cuts them, with ``CUT``: 1 where one of them was longer."""
+    out, longer = [], []
+    source = stmt.args["from_"].this
+    for e in stmt.expressions:
+        name = e.alias_or_name
+        if name not in (VALUE, LO, HI):
+            out.append(e)
+            continue
+        v = e.this if isinstance(e, exp.Alias) else e
+        out.append(_alias(d.text_prefix(v.copy(), MAX_TEXT_CHARS), name))
+        whole = v.copy()
+        if isinstance(whole, exp.Column) and isinstance(source, (exp.Table, exp.Identifier)):
+            # qualified: ClickHouse reads a bare name as the select list's alias (cut)
+            whole.set("table", exp.to_identifier(source.alias_or_name if isinstance(
+                source, exp.Table) else source.name, quoted=True))
+        longer.append(exp.GT(this=d.char_length(whole),
+                             expression=exp.Literal.number(MAX_TEXT_CHARS)))
+    flag = exp.Case(ifs=[exp.If(this=exp.or_(*longer), true=exp.Literal.number(1))],
+                    default=exp.Literal.number(0))
+    return stmt.select(*out, _alias(flag, CUT), append=False) if longer else stmt
 
 
 def _alias(e: exp.Expression, name: str) -> exp.Alias:

@@ -156,3 +156,21 @@ def test_a_batch_cuts_each_chart(client):
     # the largest text of every 10 ids is PREFIX + "b" (id % 8 == 0; 東 sorts last)
     assert b["data"]["max_s"] == [_cut(PREFIX + "b")] * 4
     assert b["stats"]["cut_text"] == {"max_s": 4}
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+@pytest.mark.parametrize("top", [None, 0])
+def test_profiles_cut_values_min_and_max(client, engine, top):
+    q = "" if top is None else f"?top={top}"
+    r = client.get(f"/v1/sources/{engine}/columns/s{q}")
+    assert r.status_code == 200, r.text
+    got = r.json()
+    texts = [t for _, t in ROWS if t is not None]
+    assert got["min"] == _cut(min(texts)) and got["max"] == _cut(max(texts))
+    assert got["cut_text"] is True
+    if top is None:  # ties of equal counts in the order of the whole values
+        counts = {t: texts.count(t) for t in set(texts)}
+        want = sorted(counts, key=lambda t: (-counts[t], t))
+        assert [v["value"] for v in got["top_values"]["values"]] == [_cut(t) for t in want]
+    r = client.get(f"/v1/sources/{engine}/columns/id")
+    assert "cut_text" not in r.json() or r.json()["cut_text"] is None

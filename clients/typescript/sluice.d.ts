@@ -947,6 +947,11 @@ export interface components {
             cache: string;
             /** Column */
             column: string;
+            /**
+             * Cut Text
+             * @description true when a text value, min or max was longer than 1000 characters and is cut to them
+             */
+            cut_text?: boolean | null;
             /** Dialect */
             dialect: string;
             distinct: components["schemas"]["Distinct"];
